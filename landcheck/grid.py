@@ -19,6 +19,11 @@ from . import geodesy
 __all__ = ["GridSpec", "Window", "iter_windows", "grow_window"]
 
 
+def _compose(a: Affine, b: Affine) -> Affine:
+    """a then b composed (``a @ b``; older affine releases only know ``*``)."""
+    return a @ b if hasattr(Affine, "__matmul__") else a * b
+
+
 @dataclass(frozen=True)
 class GridSpec:
     """Georeferencing of a north-up raster.
@@ -93,7 +98,7 @@ class GridSpec:
         return np.ones(rows.shape, dtype=np.float64) * abs(t.a * t.e) * self.unit_m**2
 
     def window_transform(self, win: "Window") -> Affine:
-        return self.transform * Affine.translation(win.col_off, win.row_off)
+        return _compose(self.transform, Affine.translation(win.col_off, win.row_off))
 
     def window_bounds(self, win: "Window") -> tuple[float, float, float, float]:
         t = self.window_transform(win)

@@ -109,17 +109,21 @@ _COMPILED: dict = {}
 
 
 def _compiled_kernel(method: SlopeMethod):
-    """Build (once) a numba-parallel loop around the same formula function."""
+    """Build (once) a compiled loop around the same formula function.
+
+    The loop is serial and releases the GIL: parallelism comes from running
+    several windows at once in worker threads (see :mod:`landcheck.tiling`).
+    """
     if method in _COMPILED:
         return _COMPILED[method]
     import numba
 
     formula = numba.njit(inline="always")(_FORMULAS[method])
 
-    @numba.njit(parallel=True, cache=False, nogil=True)
+    @numba.njit(cache=False, nogil=True)
     def kernel(e, hx, hy, out):
         rows, cols = out.shape
-        for i in numba.prange(rows):
+        for i in range(rows):
             bx = hx[i]
             by = hy[i]
             for j in range(cols):
@@ -158,7 +162,7 @@ def slope_gradient(
     method : SlopeMethod or str
         ``"horn"`` (default) or ``"zevenbergen-thorne"``.
     backend : {"auto", "numpy", "compiled"}
-        ``"compiled"`` runs the same formula in a parallel numba loop.
+        ``"compiled"`` runs the same formula in a compiled (numba) loop that releases the GIL.
 
     Returns
     -------

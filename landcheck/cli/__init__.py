@@ -1,0 +1,1 @@
+"""Command-line interface: thin shells over the library (see docs/cli.md)."""

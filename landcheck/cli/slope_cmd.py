@@ -1,0 +1,49 @@
+"""``landcheck slope``: a slope raster (COG) from a DEM."""
+
+from __future__ import annotations
+
+import json
+
+import click
+
+from ..terrain import SlopeUnit
+from .main import handle_errors
+from .options import CAUTION_HELP, dem_options, method_option, run_options
+
+
+@click.command("slope", help=f"""Derive a slope raster from a DEM.
+
+Computes slope window by window (one-cell halo, bounded memory) and writes a
+Cloud-Optimized GeoTIFF in percent or degrees. Geographic DEMs get per-row
+cell sizes on the ellipsoid. Cells without all the neighbours the method
+reads (raster edge, next to nodata) are NaN.
+
+{CAUTION_HELP}
+
+\b
+Examples:
+  landcheck slope demo_area/dem.tif slope.tif
+  landcheck slope demo_area/dem.tif slope_deg.tif --unit degrees --method zevenbergen-thorne
+""")
+@click.argument("dem", type=click.Path(dir_okay=False))
+@click.argument("out", type=click.Path(dir_okay=False))
+@click.option("--unit", type=click.Choice([u.value for u in SlopeUnit]), default="percent", show_default=True)
+@method_option
+@dem_options
+@run_options
+@click.option("--json", "as_json", is_flag=True, help="Print a JSON summary on stdout.")
+@click.pass_context
+@handle_errors
+def slope(ctx, dem, out, unit, method, dem_band, dem_crs, z_unit, tile_cells, workers, overwrite, as_json):
+    from ..pipeline import derive_slope
+
+    info = derive_slope(dem, out, method=method or "horn", unit=unit, band=dem_band, dem_crs=dem_crs, z_unit=z_unit,
+                        tile_cells=tile_cells, workers=workers, overwrite=overwrite,
+                        show_progress=None if not ctx.find_root().obj.get("quiet") else False)
+    summary = {"output": str(info.path), "width": info.width, "height": info.height, "valid_cells": info.valid_cells,
+               "min": info.min_value, "max": info.max_value, "unit": info.unit, "method": info.method}
+    if as_json:
+        click.echo(json.dumps(summary))
+    else:
+        click.echo(f"slope ({info.method}, {info.unit}) written to {info.path}: {info.valid_cells} cells, "
+                   f"{info.min_value:.2f}..{info.max_value:.2f}", err=True)
