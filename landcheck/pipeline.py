@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import os
 from dataclasses import dataclass
@@ -12,6 +13,7 @@ import numpy as np
 from .grid import iter_windows
 from .inputs import ZUnit, open_dem
 from .outputs import RasterSink
+from .slope_classes import NO_CLASS, SlopeClassScheme, classify_slope, get_scheme
 from .terrain import SlopeMethod, SlopeUnit, gradient_to_unit
 from .tiling import progress_bar, run_windows, slope_window
 
@@ -47,11 +49,15 @@ def derive_slope(
     workers: int | None = None,
     overwrite: bool = False,
     show_progress: bool | None = None,
+    class_out: str | os.PathLike | None = None,
+    class_scheme: "SlopeClassScheme | None" = None,
 ) -> SlopeRunInfo:
     """Compute a slope raster from a DEM, window by window, and write it as a COG.
 
     Memory use is bounded by ``tile_cells``² per worker; the result is identical
-    for every tile size and worker count (tests check this).
+    for every tile size and worker count (tests check this).  With ``class_out``
+    a uint8 slope-class raster (``class_scheme``, default the planning scheme) is
+    written beside it, with the class labels in the band description.
     """
     method = SlopeMethod.from_user(method)
     unit = SlopeUnit.from_user(unit)
@@ -60,12 +66,21 @@ def derive_slope(
     windows = list(iter_windows(g.height, g.width, tile_cells))
     valid = 0
     vmin, vmax = np.inf, -np.inf
-    with RasterSink(out_path, g, dtype="float32", nodata=np.nan, overwrite=overwrite,
-                    band_names=[f"slope_{unit.value}"]) as sink, \
-            progress_bar(len(windows), "slope", enabled=show_progress) as bar:
+    scheme = class_scheme or get_scheme("planning-6")
+    with contextlib.ExitStack() as stack:
+        sink = stack.enter_context(RasterSink(out_path, g, dtype="float32", nodata=np.nan, overwrite=overwrite,
+                                              band_names=[f"slope_{unit.value}"]))
+        class_sink = None
+        if class_out is not None:
+            class_sink = stack.enter_context(RasterSink(
+                class_out, g, dtype="uint8", nodata=NO_CLASS, overwrite=overwrite,
+                band_names=["slope class: " + "; ".join(f"{i}={lab}" for i, lab in enumerate(scheme.labels))]))
+        bar = stack.enter_context(progress_bar(len(windows), "slope", enabled=show_progress))
         for win, grad in run_windows(lambda w: slope_window(dem, w, method), windows, workers=workers, progress=bar):
             out = gradient_to_unit(grad, unit)
             sink.write(win, out)
+            if class_sink is not None:
+                class_sink.write(win, classify_slope(gradient_to_unit(grad, SlopeUnit.PERCENT), scheme))
             finite = np.isfinite(out)
             n = int(finite.sum())
             if n:

@@ -31,15 +31,31 @@ Examples:
 @method_option
 @dem_options
 @run_options
+@click.option("--class-raster", "class_out", type=click.Path(dir_okay=False), default=None,
+              help="Also write a uint8 slope-class raster here.")
+@click.option("--class-scheme", default="planning-6", show_default=True,
+              help="Built-in scheme (planning-6, fao-2006) or comma-separated breaks in percent, e.g. 8,18,30.")
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary on stdout.")
 @click.pass_context
 @handle_errors
-def slope(ctx, dem, out, unit, method, dem_band, dem_crs, z_unit, tile_cells, workers, overwrite, as_json):
+def slope(ctx, dem, out, unit, method, dem_band, dem_crs, z_unit, tile_cells, workers, overwrite, class_out,
+          class_scheme, as_json):
     from ..pipeline import derive_slope
+    from ..slope_classes import BUILTIN_SCHEMES, get_scheme, scheme_from_breaks
+
+    if class_scheme in BUILTIN_SCHEMES:
+        scheme = get_scheme(class_scheme)
+    else:
+        try:
+            scheme = scheme_from_breaks([float(b) for b in class_scheme.split(",")])
+        except ValueError as exc:
+            raise click.BadParameter(f"{class_scheme!r}: {exc}; give a scheme name or ascending breaks like 8,18,30",
+                                     param_hint="--class-scheme") from None
 
     info = derive_slope(dem, out, method=method or "horn", unit=unit, band=dem_band, dem_crs=dem_crs, z_unit=z_unit,
                         tile_cells=tile_cells, workers=workers, overwrite=overwrite,
-                        show_progress=None if not ctx.find_root().obj.get("quiet") else False)
+                        show_progress=None if not ctx.find_root().obj.get("quiet") else False,
+                        class_out=class_out, class_scheme=scheme)
     summary = {"output": str(info.path), "width": info.width, "height": info.height, "valid_cells": info.valid_cells,
                "min": info.min_value, "max": info.max_value, "unit": info.unit, "method": info.method}
     if as_json:
