@@ -188,3 +188,40 @@ def _polygonal_part(g):
         polys = [p for p in g.geoms if p.geom_type in ("Polygon", "MultiPolygon")]
         return shapely.union_all(polys) if polys else shapely.Polygon()
     return shapely.Polygon()
+
+
+def ground_areas(gdf, crs_wkt: str) -> tuple[np.ndarray, np.ndarray]:
+    """Ellipsoidal area of each geometry and the factor turning map-plane area into ground area.
+
+    Returns
+    -------
+    area_m2 : ndarray
+        Geodesic area on the CRS's ellipsoid (pyproj.Geod, Karney 2013); 0 for empty geometries.
+    area_factor : ndarray
+        1 / areal scale factor of the projection at each geometry's centroid (1 on geographic CRSs),
+        so that map-plane cell areas times the factor are ground areas.
+    """
+    import pyproj
+    import shapely
+
+    crs = pyproj.CRS.from_user_input(crs_wkt)
+    geodetic = crs.geodetic_crs or pyproj.CRS("EPSG:4326")
+    ell = crs.ellipsoid
+    geod = pyproj.Geod(a=ell.semi_major_metre, rf=ell.inverse_flattening) if ell is not None and ell.inverse_flattening else pyproj.Geod(ellps="WGS84")
+    # pyproj.Geod wants x = longitude; geodetic CRSs list latitude first, so force lon/lat order
+    if not crs.is_geographic:
+        tr = pyproj.Transformer.from_crs(crs, geodetic, always_xy=True)
+        geo_vals = shapely.transform(gdf.geometry.values, lambda xy: np.column_stack(tr.transform(xy[:, 0], xy[:, 1])))
+    else:
+        geo_vals = np.asarray(gdf.geometry.values)
+    area = np.array([abs(geod.geometry_area_perimeter(g)[0]) if g is not None and not g.is_empty else 0.0
+                     for g in geo_vals])
+    factor = np.ones(len(gdf))
+    if not crs.is_geographic:
+        cent = shapely.centroid(geo_vals)
+        ok = ~shapely.is_empty(cent)
+        if ok.any():
+            lon, lat = shapely.get_x(cent[ok]), shapely.get_y(cent[ok])
+            scale = pyproj.Proj(crs).get_factors(lon, lat).areal_scale
+            factor[ok] = 1.0 / np.asarray(scale, dtype=float)
+    return area, factor

@@ -49,6 +49,8 @@ def atomic_file(final: str | os.PathLike, *, overwrite: bool = False, suffix: st
     tmp_path = Path(tmp)
     try:
         yield tmp_path
+        if tmp_path.exists():
+            os.chmod(tmp_path, 0o666 & ~_umask())  # mkstemp makes 0600; give the file normal permissions
         os.replace(tmp_path, final)
     except OSError as exc:
         tmp_path.unlink(missing_ok=True)
@@ -90,6 +92,7 @@ def staged_folder(final: str | os.PathLike, *, overwrite: bool = False) -> Itera
     try:
         final.parent.mkdir(parents=True, exist_ok=True)
         stage = Path(tempfile.mkdtemp(prefix=f".{final.name}.partial-", dir=final.parent))
+        os.chmod(stage, 0o777 & ~_umask())
     except OSError as exc:
         raise OutputWriteError(f"{final}: cannot create the output folder ({exc.strerror or exc}).") from exc
     try:
@@ -109,6 +112,12 @@ def staged_folder(final: str | os.PathLike, *, overwrite: bool = False) -> Itera
     except BaseException:
         shutil.rmtree(stage, ignore_errors=True)
         raise
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def _json_default(o):

@@ -10,31 +10,11 @@ import traceback
 import click
 
 from .. import CAUTION, __version__
+from ..versions import show_versions
 from ..errors import LandcheckError
 from .options import CAUTION_HELP, EXIT_INTERNAL
 
 logger = logging.getLogger("landcheck")
-
-
-def show_versions() -> dict:
-    """Versions of landcheck and the libraries whose behaviour affects its numbers."""
-    import importlib.metadata as md
-    import platform
-
-    out = {"landcheck": __version__, "python": platform.python_version()}
-    for pkg in ("numpy", "rasterio", "geopandas", "shapely", "pyproj", "exactextract", "pyflwdir", "numba", "scipy",
-                "matplotlib", "dask", "distributed", "pandas", "pyogrio"):
-        try:
-            out[pkg] = md.version(pkg)
-        except md.PackageNotFoundError:
-            out[pkg] = None
-    try:
-        import rasterio
-
-        out["gdal"] = rasterio.__gdal_version__
-    except ImportError:
-        pass
-    return out
 
 
 def _versions_callback(ctx, _param, value):

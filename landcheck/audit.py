@@ -1,0 +1,339 @@
+"""The audit: DEM + parcels + rulebook -> per-parcel, per-class and whole-area figures and outputs.
+
+:func:`audit` wires the steps; it prints nothing and returns an :class:`AuditResult`.
+One streamed pass over the DEM windows computes slope, hazard-zone bits and
+the exact-coverage sums of every parcel; verdicts and tables follow; every
+output is written into a staged folder that replaces the target in one rename.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import logging
+import os
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+
+from . import CAUTION, __version__
+from .errors import InputDataError, LandcheckWarning
+from .evaluate import (SENSITIVITY_LIMITS_PCT, Verdict, evaluate_parcels, parcel_rules, sensitivity_table,
+                       slope_histogram, summarise_classes)
+from .grid import Window, iter_windows
+from .inputs import DemSource, ZUnit, open_dem
+from .layers import ground_areas, read_parcels
+from .outputs import RasterSink, check_output_path, staged_folder, write_csv, write_gpkg, write_json
+from .overlay import CONFLICT_OUTSIDE, OverlayPlan, Totals, accumulate_window, coverage_triplets
+from .rules import Rulebook, load_rules
+from .terrain import SlopeMethod, gradient_to_unit
+from .tiling import progress_bar, run_windows, slope_window
+
+__all__ = ["audit", "AuditResult", "AuditSettings"]
+
+logger = logging.getLogger(__name__)
+
+
+@dataclass(frozen=True)
+class AuditSettings:
+    """Everything that shapes an audit's numbers besides the input files (recorded in the manifest)."""
+
+    method: SlopeMethod
+    tile_cells: int = 1024
+    dem_band: int | None = None
+    dem_crs: str | None = None
+    z_unit: ZUnit = ZUnit.METRE
+    parcels_layer: str | None = None
+    parcels_crs: str | None = None
+
+
+@dataclass
+class AuditResult:
+    out_dir: Path
+    summary: dict
+    parcels: pd.DataFrame
+    classes: pd.DataFrame
+    warnings: list[str] = field(default_factory=list)
+
+    @property
+    def n_conflicts(self) -> int:
+        return int((self.parcels["verdict"] == Verdict.CONFLICT).sum())
+
+
+def sha256_file(path: str | os.PathLike) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for chunk in iter(lambda: f.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def _input_files(path: str) -> list[str]:
+    """The file and its sidecars (a Shapefile is several files)."""
+    p = Path(path)
+    if p.suffix.lower() == ".shp":
+        return sorted(str(q) for q in p.parent.glob(p.stem + ".*"))
+    return [str(p)] if p.is_file() else []
+
+
+def _build_plan(rules: Rulebook, class_names: np.ndarray, area_factor: np.ndarray, ground_factor: float) -> OverlayPlan:
+    by = {c.name: c for c in rules.classes}
+    class_idx = {c.name: i for i, c in enumerate(rules.classes)}
+    zone_idx = {z.name: i for i, z in enumerate(rules.zones)}
+    if len(rules.zones) > 7:
+        raise InputDataError(f"{rules.path}: {len(rules.zones)} zones defined; at most 7 fit the conflict raster's bits.")
+    limits = set(float(x) for x in SENSITIVITY_LIMITS_PCT)
+    for c in rules.classes:
+        if c.max_slope_pct is not None:
+            limits.add(c.max_slope_pct)
+            limits.add(c.max_slope_pct - c.review_band_pct)
+    thresholds = np.array(sorted(limits))
+    n = len(class_names)
+    limit_index = np.full(n, -1, np.int64)
+    near_index = np.full(n, -1, np.int64)
+    forbid = np.zeros(n, np.uint32)
+    cidx = np.full(n, -1, np.int64)
+    for name in set(class_names):
+        sel = class_names == name
+        if name not in by:
+            continue
+        c = by[name]
+        cidx[sel] = class_idx[name]
+        if c.max_slope_pct is not None:
+            limit_index[sel] = int(np.searchsorted(thresholds, c.max_slope_pct))
+            near_index[sel] = int(np.searchsorted(thresholds, c.max_slope_pct - c.review_band_pct))
+        bits = 0
+        for zn in c.forbidden_zones:
+            bits |= 1 << zone_idx[zn]
+        forbid[sel] = bits
+    return OverlayPlan(thresholds, limit_index, near_index, forbid, area_factor, cidx, len(rules.classes),
+                       len(rules.zones), rules.capability_limit_pct, ground_factor)
+
+
+class _WindowJob:
+    """The per-window task: slope, zone bits, exact coverage, sums.  Picklable for Dask."""
+
+    def __init__(self, dem: DemSource, method: SlopeMethod, geoms: np.ndarray, plan: OverlayPlan,
+                 zones=None):
+        import shapely
+
+        self.dem = dem
+        self.method = method
+        self.geoms = geoms
+        self.plan = plan
+        self.zones = zones
+        self.tree = shapely.STRtree(geoms)
+
+    def __call__(self, win: Window):
+        import shapely
+
+        g = self.dem.grid
+        grad = slope_window(self.dem, win, self.method)
+        slope_pct = gradient_to_unit(grad, "percent")
+        zone_bits = self.zones.bits(win) if self.zones is not None else None
+        land_mask = self.zones.land(win) if self.zones is not None else None
+        box = shapely.box(*g.window_bounds(win))
+        cand = self.tree.query(box, predicate="intersects")
+        cand.sort()
+        trip = coverage_triplets(self.geoms[cand], g.window_transform(win), win.height, win.width)
+        rows = np.arange(win.row_off, win.row_off + win.height)
+        sums, conflict = accumulate_window(slope_pct, zone_bits, g.cell_area_m2(rows), cand, trip, self.plan, land_mask)
+        return sums, slope_pct, conflict, zone_bits
+
+
+def audit(
+    dem_path: str | os.PathLike,
+    parcels_path: str | os.PathLike,
+    rulebook_path: str | os.PathLike,
+    out_dir: str | os.PathLike,
+    *,
+    parcels_layer: str | None = None,
+    parcels_crs: str | None = None,
+    dem_band: int | None = None,
+    dem_crs: str | None = None,
+    z_unit: ZUnit | str = ZUnit.METRE,
+    method: SlopeMethod | str | None = None,
+    tile_cells: int = 1024,
+    workers: int | None = None,
+    overwrite: bool = False,
+    show_progress: bool | None = None,
+    make_report: bool = True,
+    on_step: Callable[[str], None] | None = None,
+) -> AuditResult:
+    """Run the audit and write its output folder (docs/outputs.md).
+
+    Raises
+    ------
+    InputDataError, RuleFileError, OutputExistsError, OutputWriteError
+        Bad input or outputs that cannot be written; nothing is written then.
+    """
+    started = _dt.datetime.now(_dt.timezone.utc)
+    step = on_step or (lambda s: logger.info(s))
+    rules = load_rules(rulebook_path)
+    layer_paths = list(rules.layers.values())
+    out = check_output_path(out_dir, [dem_path, parcels_path, rulebook_path, *layer_paths], overwrite=overwrite)
+    settings = AuditSettings(SlopeMethod.from_user(method) if method else rules.slope_method, tile_cells, dem_band,
+                             dem_crs, ZUnit.from_user(z_unit), parcels_layer, parcels_crs)
+    dem = open_dem(dem_path, band=dem_band, crs=dem_crs, z_unit=settings.z_unit)
+    g = dem.grid
+    step(f"DEM {g.width}x{g.height} cells, {'geographic' if g.geographic else 'projected'}")
+    collected: list[str] = []
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", LandcheckWarning)
+        ps = read_parcels(parcels_path, class_field=rules.class_field, id_field=rules.id_field,
+                          target_crs_wkt=g.crs_wkt, layer=parcels_layer, crs=parcels_crs)
+    collected += [str(w.message) for w in caught if issubclass(w.category, LandcheckWarning)]
+    frame = ps.frame
+    geoms = np.asarray(frame.geometry.values)
+    import shapely
+
+    empty = shapely.is_empty(geoms)
+    dem_box = shapely.box(*g.bounds)
+    inside = shapely.intersects(geoms, dem_box)
+    if not inside.any():
+        raise InputDataError(f"{ps.where}: no parcel overlaps the DEM (DEM bounds {tuple(round(b, 3) for b in g.bounds)} "
+                             "in its CRS); check that the parcels and the DEM cover the same area and CRS.")
+    n_out = int((~inside & ~empty).sum())
+    if n_out:
+        msg = f"{ps.where}: {n_out} parcels lie entirely outside the DEM; they are reported with verdict no_data."
+        collected.append(msg)
+        warnings.warn(msg, LandcheckWarning, stacklevel=2)
+    area_m2, area_factor = ground_areas(frame, g.crs_wkt)
+    pr = parcel_rules(rules, frame["class_value"].to_numpy())
+    unmatched = sorted(set(frame["class_value"][pr.class_name == "no_rule"].astype(str)))
+    if unmatched:
+        msg = (f"{ps.where}: {int((pr.class_name == 'no_rule').sum())} parcels have class values with no rule "
+               f"({', '.join(map(repr, unmatched[:10]))}); they are listed with verdict no_rule.")
+        collected.append(msg)
+        warnings.warn(msg, LandcheckWarning, stacklevel=2)
+    ground_factor = 1.0
+    if not g.geographic:
+        cx, cy = (g.bounds[0] + g.bounds[2]) / 2, (g.bounds[1] + g.bounds[3]) / 2
+        ground_factor = float(ground_areas(
+            __import__("geopandas").GeoDataFrame(geometry=[shapely.box(cx - 1, cy - 1, cx + 1, cy + 1)], crs=g.crs_wkt),
+            g.crs_wkt)[1][0])
+    plan = _build_plan(rules, pr.class_name, area_factor, ground_factor)
+    step(f"{len(frame)} parcels, {len(rules.classes)} classes, {len(rules.zones)} zones")
+
+    zones = None
+    if rules.zones:
+        from .zones import prepare_zones
+
+        zones = prepare_zones(rules, dem, frame, pr, settings, step=step)
+        collected += zones.warnings
+
+    windows = list(iter_windows(g.height, g.width, tile_cells))
+    job = _WindowJob(dem, settings.method, geoms, plan, zones)
+    totals = Totals(len(frame), len(plan.thresholds_pct), plan.n_zones, plan.n_classes)
+    with staged_folder(out, overwrite=overwrite) as stage:
+        zone_names = [z.name for z in rules.zones]
+        with RasterSink(stage / "slope_pct.tif", g, dtype="float32", nodata=np.nan, band_names=["slope_pct"]) as slope_sink, \
+                RasterSink(stage / "conflict.tif", g, dtype="uint8", nodata=CONFLICT_OUTSIDE,
+                           band_names=["conflict bits: 1=slope" + "".join(f", {1 << (i + 1)}={z}" for i, z in enumerate(zone_names))]) as conflict_sink, \
+                progress_bar(len(windows), "audit", enabled=show_progress) as bar:
+            for win, (sums, slope_pct, conflict, _zb) in run_windows(job, windows, workers=workers, progress=bar):
+                totals.add(sums)
+                slope_sink.write(win, slope_pct)
+                conflict_sink.write(win, conflict)
+        step("window pass done")
+        parcels = evaluate_parcels(totals, plan, rules, pr, area_m2, empty, frame["class_value"].to_numpy())
+        parcels.insert(0, "parcel_id", frame["parcel_id"].to_numpy())
+        parcels["geometry_note"] = frame["geometry_note"].to_numpy()
+        classes = summarise_classes(parcels, rules)
+        counted = (parcels["verdict"] != Verdict.NO_DATA).to_numpy() & (parcels["verdict"] != Verdict.NO_RULE).to_numpy()
+        summary = _summary(rules, parcels, classes, totals, plan, pr, counted, zone_names, collected)
+        summary["manifest"] = _manifest(started, dem, parcels_path, rules, settings, workers, g)
+        if zones is not None:
+            summary["zones"] = zones.describe()
+            zones.write_layers(stage)
+        import geopandas as gpd
+
+        gdf = gpd.GeoDataFrame(parcels.copy(), geometry=frame.geometry.values, crs=frame.crs)
+        write_gpkg(stage / "parcels.gpkg", gdf, layer="parcels")
+        write_csv(stage / "parcels.csv", parcels)
+        write_csv(stage / "classes.csv", classes)
+        write_json(stage / "summary.json", summary)
+        if make_report:
+            try:
+                from .report import build_report
+            except ImportError:
+                build_report = None
+            if build_report is not None:
+                step("building the report")
+                build_report(stage)
+    step(f"outputs in {out}")
+    return AuditResult(out, summary, parcels, classes, collected)
+
+
+def _summary(rules, parcels, classes, totals, plan, pr, counted, zone_names, collected) -> dict:
+    counts = {v: int((parcels["verdict"] == v).sum()) for v in Verdict.ALL}
+    cov = float(parcels.loc[counted, "covered_m2"].sum())
+    conflict = float(parcels.loc[counted, "conflict_m2"].sum())
+    dev_names = {c.name for c in rules.classes if c.development}
+    dev = parcels["class_name"].isin(dev_names).to_numpy()
+    total_area = float(parcels["covered_m2"].sum())
+    cap = {
+        "reference_limit_pct": plan.capability_limit_pct,
+        "dem_land_m2": totals.land_m2,
+        "land_within_limit_m2": totals.land_within_m2 if plan.capability_limit_pct is not None else None,
+        "land_within_limit_share": (totals.land_within_m2 / totals.land_m2) if totals.land_m2 > 0 and plan.capability_limit_pct is not None else None,
+        "classified_m2": total_area,
+        "classified_development_m2": float(parcels.loc[dev, "covered_m2"].sum()),
+        "classified_development_share": float(parcels.loc[dev, "covered_m2"].sum()) / totals.land_m2 if totals.land_m2 > 0 else None,
+    }
+    return {
+        "tool": "landcheck",
+        "version": __version__,
+        "caution": CAUTION,
+        "title": rules.title,
+        "totals": {
+            "parcels": int(len(parcels)),
+            "area_m2": float(parcels["area_m2"].sum()),
+            "evaluated_m2": float(parcels["evaluated_m2"].sum()),
+            "conflict_m2": conflict,
+            "conflict_share": conflict / cov if cov > 0 else None,
+            "verdict_counts": counts,
+        },
+        "capability": cap,
+        "classes": classes.to_dict(orient="records"),
+        "sensitivity": sensitivity_table(totals, plan, pr, rules, counted),
+        "slope_histogram": slope_histogram(totals, rules),
+        "conflict_raster_bits": ["slope", *zone_names],
+        "warnings": collected,
+    }
+
+
+def _manifest(started, dem: DemSource, parcels_path, rules: Rulebook, settings: AuditSettings, workers, g) -> dict:
+    from .versions import show_versions
+
+    inputs = [{"role": "dem", "path": str(Path(dem.path).resolve()), "sha256": sha256_file(dem.path)}]
+    for f in _input_files(os.fspath(parcels_path)):
+        inputs.append({"role": "parcels", "path": str(Path(f).resolve()), "sha256": sha256_file(f)})
+    for name, p in rules.layers.items():
+        for f in _input_files(p):
+            inputs.append({"role": f"layer:{name}", "path": str(Path(f).resolve()), "sha256": sha256_file(f)})
+    return {
+        "started_utc": started.isoformat(timespec="seconds"),
+        "finished_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "inputs": inputs,
+        "rulebook": {"path": str(Path(rules.path).resolve()), "sha256": rules.sha256, "text": rules.text},
+        "parameters": {
+            "slope_method": settings.method.value,
+            "tile_cells": settings.tile_cells,
+            "dem_band": dem.band,
+            "dem_crs_override": settings.dem_crs,
+            "z_unit": settings.z_unit.value,
+            "parcels_layer": settings.parcels_layer,
+            "parcels_crs_override": settings.parcels_crs,
+            "workers": workers,
+            "edge_policy": "strict window: no slope where the cell or a neighbour the method reads is invalid",
+            "coverage": "exact cell-coverage fractions",
+        },
+        "crs_wkt": g.crs_wkt,
+        "grid": {"width": g.width, "height": g.height, "transform": list(g.transform)[:6], "geographic": g.geographic},
+        "software": show_versions(),
+    }

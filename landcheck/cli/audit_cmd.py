@@ -1,0 +1,87 @@
+"""``landcheck audit``: the main job."""
+
+from __future__ import annotations
+
+import json
+import warnings
+
+import click
+
+from ..errors import LandcheckWarning
+from .main import handle_errors
+from .options import CAUTION_HELP, EXIT_CONFLICTS, dem_options, method_option, run_options
+
+
+def run_audit_and_report(ctx, *, as_json: bool, fail_on_conflict: bool, **kwargs):
+    """Shared by ``audit`` and ``demo``: run, print the summary, set the exit code."""
+    from ..audit import audit
+
+    quiet = ctx.find_root().obj.get("quiet")
+
+    def on_step(msg):
+        if not quiet:
+            click.echo(f"landcheck: {msg}", err=True)
+
+    with warnings.catch_warnings():
+        # recorded in the result and printed below once; keep them out of the log stream
+        warnings.simplefilter("ignore", LandcheckWarning)
+        result = audit(show_progress=None if not quiet else False, on_step=on_step, **kwargs)
+    t = result.summary["totals"]
+    if as_json:
+        click.echo(json.dumps({"out_dir": str(result.out_dir), "caution": result.summary["caution"], "totals": t,
+                               "capability": result.summary["capability"], "warnings": result.warnings}))
+    elif not quiet:
+        vc = t["verdict_counts"]
+        share = t["conflict_share"]
+        click.echo(
+            f"{t['parcels']} parcels: {vc['conflict']} conflict, {vc['review']} review, {vc['consistent']} consistent, "
+            f"{vc['no_data']} no data, {vc['no_rule']} without a rule. Conflict share of evaluated classified land: "
+            f"{'n/a' if share is None else f'{100 * share:.1f} %'}.", err=True)
+        for w in result.warnings:
+            click.echo(f"warning: {w}", err=True)
+        click.echo(f"Outputs: {result.out_dir}", err=True)
+        click.echo(CAUTION_HELP, err=True)
+    if fail_on_conflict and result.n_conflicts:
+        ctx.exit(EXIT_CONFLICTS)
+    return result
+
+
+@click.command("audit", help=f"""Audit a parcel layer against a rulebook.
+
+For every parcel: exact area (cell-coverage fractions, not cell centres), the
+area and share at or over its class's slope limit and inside forbidden hazard
+zones, a verdict (consistent, conflict, review, no_data, no_rule) with reasons.
+Per class and for the whole area: classified area, compliant area, conflict
+share, and land capability versus classification. Writes a folder of
+GeoPackage, CSV, JSON, Cloud-Optimized GeoTIFFs and an HTML report
+(docs/outputs.md).
+
+{CAUTION_HELP}
+
+\b
+Examples:
+  landcheck audit --dem demo_area/dem.tif --parcels demo_area/parcels.gpkg \\
+      --rulebook demo_area/rulebook.toml --out audit-out
+  landcheck audit ... --json --fail-on-conflict   # for scripts: exit 1 when any parcel conflicts
+""")
+@click.option("--dem", required=True, type=click.Path(dir_okay=False), help="Elevation raster (GeoTIFF or any GDAL raster).")
+@click.option("--parcels", required=True, type=click.Path(dir_okay=False),
+              help="Parcel polygons: GeoPackage, GeoJSON, Shapefile or GeoParquet.")
+@click.option("--parcels-layer", default=None, help="Layer of a multi-layer parcels file.")
+@click.option("--parcels-crs", default=None, metavar="CRS", help="CRS to assume when the parcels have none.")
+@click.option("--rulebook", required=True, type=click.Path(dir_okay=False), help="Rulebook (TOML; docs/rules-file.md).")
+@click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False), help="Output folder (must not exist unless --overwrite).")
+@method_option
+@dem_options
+@run_options
+@click.option("--no-report", is_flag=True, help="Skip the HTML report and maps.")
+@click.option("--json", "as_json", is_flag=True, help="Print a JSON summary on stdout.")
+@click.option("--fail-on-conflict", is_flag=True, help="Exit with status 1 when any parcel is in conflict.")
+@click.pass_context
+@handle_errors
+def command(ctx, dem, parcels, parcels_layer, parcels_crs, rulebook, out_dir, method, dem_band, dem_crs, z_unit,
+            tile_cells, workers, overwrite, no_report, as_json, fail_on_conflict):
+    run_audit_and_report(ctx, as_json=as_json, fail_on_conflict=fail_on_conflict, dem_path=dem, parcels_path=parcels,
+                         rulebook_path=rulebook, out_dir=out_dir, parcels_layer=parcels_layer, parcels_crs=parcels_crs,
+                         dem_band=dem_band, dem_crs=dem_crs, z_unit=z_unit, method=method, tile_cells=tile_cells,
+                         workers=workers, overwrite=overwrite, make_report=not no_report)
