@@ -190,6 +190,11 @@ def _polygonal_part(g):
     return shapely.Polygon()
 
 
+#: longest edge piece when densifying parcel edges before a geodesic area (metres / degrees)
+DENSIFY_M = 20.0
+DENSIFY_DEG = 2e-4
+
+
 def ground_areas(gdf, crs_wkt: str) -> tuple[np.ndarray, np.ndarray]:
     """Ellipsoidal area of each geometry and the factor turning map-plane area into ground area.
 
@@ -208,12 +213,17 @@ def ground_areas(gdf, crs_wkt: str) -> tuple[np.ndarray, np.ndarray]:
     geodetic = crs.geodetic_crs or pyproj.CRS("EPSG:4326")
     ell = crs.ellipsoid
     geod = pyproj.Geod(a=ell.semi_major_metre, rf=ell.inverse_flattening) if ell is not None and ell.inverse_flattening else pyproj.Geod(ellps="WGS84")
-    # pyproj.Geod wants x = longitude; geodetic CRSs list latitude first, so force lon/lat order
+    # Edges are straight lines in the layer's CRS (GIS convention), not geodesics: densify them first so
+    # the geodesic polygon follows the same edges (this matters at 1e-4 for km-sized parcels).
+    vals = np.asarray(gdf.geometry.values)
     if not crs.is_geographic:
+        unit_m = crs.axis_info[0].unit_conversion_factor if crs.axis_info else 1.0
+        vals = shapely.segmentize(vals, DENSIFY_M / unit_m)
+        # pyproj.Geod wants x = longitude; geodetic CRSs list latitude first, so force lon/lat order
         tr = pyproj.Transformer.from_crs(crs, geodetic, always_xy=True)
-        geo_vals = shapely.transform(gdf.geometry.values, lambda xy: np.column_stack(tr.transform(xy[:, 0], xy[:, 1])))
+        geo_vals = shapely.transform(vals, lambda xy: np.column_stack(tr.transform(xy[:, 0], xy[:, 1])))
     else:
-        geo_vals = np.asarray(gdf.geometry.values)
+        geo_vals = shapely.segmentize(vals, DENSIFY_DEG)
     area = np.array([abs(geod.geometry_area_perimeter(g)[0]) if g is not None and not g.is_empty else 0.0
                      for g in geo_vals])
     factor = np.ones(len(gdf))
