@@ -28,7 +28,7 @@ from .grid import Window, iter_windows
 from .inputs import DemSource, ZUnit, open_dem
 from .layers import ground_areas, read_parcels
 from .outputs import RasterSink, check_output_path, staged_folder, write_csv, write_gpkg, write_json
-from .overlay import CONFLICT_OUTSIDE, OverlayPlan, Totals, accumulate_window, coverage_triplets
+from .overlay import CONFLICT_OUTSIDE, ROLE_PARCEL, OverlayPlan, Totals, accumulate_window, coverage_triplets
 from .rules import Rulebook, load_rules
 from .terrain import SlopeMethod, gradient_to_unit
 from .tiling import progress_bar, run_windows, slope_window
@@ -80,12 +80,14 @@ def _input_files(path: str) -> list[str]:
     return [str(p)] if p.is_file() else []
 
 
-def _build_plan(rules: Rulebook, class_names: np.ndarray, area_factor: np.ndarray, ground_factor: float) -> OverlayPlan:
+def _build_plan(rules: Rulebook, class_names: np.ndarray, area_factor: np.ndarray, ground_factor: float,
+                zones=None, piece_parcel=None, piece_role=None) -> OverlayPlan:
     by = {c.name: c for c in rules.classes}
     class_idx = {c.name: i for i, c in enumerate(rules.classes)}
     zone_idx = {z.name: i for i, z in enumerate(rules.zones)}
     if len(rules.zones) > 7:
         raise InputDataError(f"{rules.path}: {len(rules.zones)} zones defined; at most 7 fit the conflict raster's bits.")
+    columns = zones.columns if zones is not None else []
     limits = set(float(x) for x in SENSITIVITY_LIMITS_PCT)
     for c in rules.classes:
         if c.max_slope_pct is not None:
@@ -95,23 +97,35 @@ def _build_plan(rules: Rulebook, class_names: np.ndarray, area_factor: np.ndarra
     n = len(class_names)
     limit_index = np.full(n, -1, np.int64)
     near_index = np.full(n, -1, np.int64)
-    forbid = np.zeros(n, np.uint32)
+    raster_forbid = np.zeros(n, np.uint32)
+    zone_forbid = np.zeros(n, np.uint32)
     cidx = np.full(n, -1, np.int64)
     for name in set(class_names):
-        sel = class_names == name
         if name not in by:
             continue
+        sel = class_names == name
         c = by[name]
         cidx[sel] = class_idx[name]
         if c.max_slope_pct is not None:
             limit_index[sel] = int(np.searchsorted(thresholds, c.max_slope_pct))
             near_index[sel] = int(np.searchsorted(thresholds, c.max_slope_pct - c.review_band_pct))
-        bits = 0
+        rbits = zbits = 0
         for zn in c.forbidden_zones:
-            bits |= 1 << zone_idx[zn]
-        forbid[sel] = bits
-    return OverlayPlan(thresholds, limit_index, near_index, forbid, area_factor, cidx, len(rules.classes),
-                       len(rules.zones), rules.capability_limit_pct, ground_factor)
+            zbits |= 1 << zone_idx[zn]
+            for col in columns:
+                if col.zone_index == zone_idx[zn] and col.raster_channel >= 0:
+                    rbits |= 1 << col.raster_channel
+        raster_forbid[sel] = rbits
+        zone_forbid[sel] = zbits
+    piece_parcel = np.empty(0, np.int64) if piece_parcel is None else piece_parcel
+    piece_role = np.empty(0, np.int64) if piece_role is None else piece_role
+    geom_parcel = np.concatenate([np.arange(n, dtype=np.int64), piece_parcel])
+    geom_role = np.concatenate([np.full(n, ROLE_PARCEL, np.int64), piece_role])
+    col_channel = np.array([c.raster_channel for c in columns], np.int64)
+    col_zone = np.array([c.zone_index if c.zone_index is not None else -1 for c in columns], np.int64)
+    return OverlayPlan(thresholds, limit_index, near_index, raster_forbid, zone_forbid, area_factor, cidx,
+                       len(rules.classes), geom_parcel, geom_role, col_channel, col_zone, rules.capability_limit_pct,
+                       ground_factor)
 
 
 class _WindowJob:
@@ -216,21 +230,27 @@ def audit(
         ground_factor = float(ground_areas(
             __import__("geopandas").GeoDataFrame(geometry=[shapely.box(cx - 1, cy - 1, cx + 1, cy + 1)], crs=g.crs_wkt),
             g.crs_wkt)[1][0])
-    plan = _build_plan(rules, pr.class_name, area_factor, ground_factor)
     step(f"{len(frame)} parcels, {len(rules.classes)} classes, {len(rules.zones)} zones")
 
     zones = None
+    all_geoms = geoms
+    piece_parcel = piece_role = None
     if rules.zones:
-        from .zones import prepare_zones
+        from .zones import prepare_zones, vector_pieces
 
         zones = prepare_zones(rules, dem, frame, pr, settings, step=step)
         collected += zones.warnings
+        pieces, piece_parcel, piece_role = vector_pieces(zones, rules, geoms, pr.class_name)
+        all_geoms = np.concatenate([geoms, pieces]) if len(pieces) else geoms
+        step(f"zones ready: {len(zones.columns)} zone columns, {len(pieces)} parcel/zone intersection pieces")
+    plan = _build_plan(rules, pr.class_name, area_factor, ground_factor, zones, piece_parcel, piece_role)
 
     windows = list(iter_windows(g.height, g.width, tile_cells))
-    job = _WindowJob(dem, settings.method, geoms, plan, zones)
-    totals = Totals(len(frame), len(plan.thresholds_pct), plan.n_zones, plan.n_classes)
+    job = _WindowJob(dem, settings.method, all_geoms, plan, zones)
+    totals = Totals(len(frame), len(plan.thresholds_pct), plan.n_cols, plan.n_classes)
+    zone_names = [z.name for z in rules.zones]
+    columns = zones.columns if zones is not None else []
     with staged_folder(out, overwrite=overwrite) as stage:
-        zone_names = [z.name for z in rules.zones]
         with RasterSink(stage / "slope_pct.tif", g, dtype="float32", nodata=np.nan, band_names=["slope_pct"]) as slope_sink, \
                 RasterSink(stage / "conflict.tif", g, dtype="uint8", nodata=CONFLICT_OUTSIDE,
                            band_names=["conflict bits: 1=slope" + "".join(f", {1 << (i + 1)}={z}" for i, z in enumerate(zone_names))]) as conflict_sink, \
@@ -240,12 +260,12 @@ def audit(
                 slope_sink.write(win, slope_pct)
                 conflict_sink.write(win, conflict)
         step("window pass done")
-        parcels = evaluate_parcels(totals, plan, rules, pr, area_m2, empty, frame["class_value"].to_numpy())
+        parcels = evaluate_parcels(totals, plan, rules, pr, area_m2, empty, frame["class_value"].to_numpy(), columns)
         parcels.insert(0, "parcel_id", frame["parcel_id"].to_numpy())
         parcels["geometry_note"] = frame["geometry_note"].to_numpy()
         classes = summarise_classes(parcels, rules)
         counted = (parcels["verdict"] != Verdict.NO_DATA).to_numpy() & (parcels["verdict"] != Verdict.NO_RULE).to_numpy()
-        summary = _summary(rules, parcels, classes, totals, plan, pr, counted, zone_names, collected)
+        summary = _summary(rules, parcels, classes, totals, plan, pr, counted, zone_names, collected, columns)
         summary["manifest"] = _manifest(started, dem, parcels_path, rules, settings, workers, g)
         if zones is not None:
             summary["zones"] = zones.describe()
@@ -269,7 +289,7 @@ def audit(
     return AuditResult(out, summary, parcels, classes, collected)
 
 
-def _summary(rules, parcels, classes, totals, plan, pr, counted, zone_names, collected) -> dict:
+def _summary(rules, parcels, classes, totals, plan, pr, counted, zone_names, collected, columns) -> dict:
     counts = {v: int((parcels["verdict"] == v).sum()) for v in Verdict.ALL}
     cov = float(parcels.loc[counted, "covered_m2"].sum())
     conflict = float(parcels.loc[counted, "conflict_m2"].sum())
@@ -303,8 +323,21 @@ def _summary(rules, parcels, classes, totals, plan, pr, counted, zone_names, col
         "sensitivity": sensitivity_table(totals, plan, pr, rules, counted),
         "slope_histogram": slope_histogram(totals, rules),
         "conflict_raster_bits": ["slope", *zone_names],
+        "zone_columns": [{"name": c.name, "label": c.label, "rulebook_zone": c.zone_index is not None} for c in columns],
+        "zone_shares_by_class": _zone_shares_by_class(parcels, rules, columns),
         "warnings": collected,
     }
+
+
+def _zone_shares_by_class(parcels: pd.DataFrame, rules: Rulebook, columns) -> dict:
+    """Share of each class's covered area inside each zone column (sea-rise scenarios included)."""
+    out = {}
+    for c in rules.classes:
+        sel = parcels["class_name"] == c.name
+        cov = float(parcels.loc[sel, "covered_m2"].sum())
+        out[c.name] = {col.name: (float(parcels.loc[sel, f"zone_{col.name}_m2"].sum()) / cov if cov > 0 else None)
+                       for col in columns}
+    return out
 
 
 def _manifest(started, dem: DemSource, parcels_path, rules: Rulebook, settings: AuditSettings, workers, g) -> dict:

@@ -74,6 +74,7 @@ def evaluate_parcels(
     area_m2: np.ndarray,
     empty: np.ndarray,
     class_values,
+    zone_columns=(),
 ) -> pd.DataFrame:
     """Per-parcel figures, verdict and reasons (columns documented in docs/outputs.md)."""
     n = len(area_m2)
@@ -95,8 +96,8 @@ def evaluate_parcels(
               np.where(is_conflict, Verdict.CONFLICT,
               np.where(is_near, Verdict.REVIEW, Verdict.CONSISTENT))))
 
-    zone_names = [z.name for z in rules.zones]
     by = {c.name: c for c in rules.classes}
+    zone_of_col = [rules.zones[col.zone_index].name if col.zone_index is not None else None for col in zone_columns]
     reasons = []
     for i in range(n):
         r: list[str] = []
@@ -119,10 +120,10 @@ def evaluate_parcels(
                 if v == Verdict.REVIEW and near[i] > over[i]:
                     r.append(f"slope within {cls.review_band_pct:g} points of the {cls.max_slope_pct:g} % limit "
                              f"on {_fmt_m2(near[i] - over[i])}")
-            for zi, zn in enumerate(zone_names):
-                if zn in cls.forbidden_zones and totals.zone_m2[i, zi] > 0:
-                    share = totals.zone_m2[i, zi] / cov[i] if cov[i] > 0 else np.nan
-                    r.append(f"inside {rules.zone_by_name(zn).label} on {_fmt_m2(totals.zone_m2[i, zi])} "
+            for ci, zn in enumerate(zone_of_col):
+                if zn is not None and zn in cls.forbidden_zones and totals.zone_m2[i, ci] > 0:
+                    share = totals.zone_m2[i, ci] / cov[i] if cov[i] > 0 else np.nan
+                    r.append(f"inside {zone_columns[ci].label} on {_fmt_m2(totals.zone_m2[i, ci])} "
                              f"({100 * share:.1f} % of the parcel)")
             if v == Verdict.CONFLICT:
                 r.insert(0, f"breach {_fmt_m2(totals.conflict_m2[i])} = {100 * conflict_share[i]:.1f} % of the parcel")
@@ -146,10 +147,10 @@ def evaluate_parcels(
         "conflict_m2": totals.conflict_m2,
         "conflict_share": conflict_share,
     })
-    for zi, zn in enumerate(zone_names):
-        df[f"zone_{zn}_m2"] = totals.zone_m2[:, zi]
+    for ci, col in enumerate(zone_columns):
+        df[f"zone_{col.name}_m2"] = totals.zone_m2[:, ci]
         with np.errstate(invalid="ignore", divide="ignore"):
-            df[f"zone_{zn}_share"] = np.where(cov > 0, totals.zone_m2[:, zi] / cov, np.nan)
+            df[f"zone_{col.name}_share"] = np.where(cov > 0, totals.zone_m2[:, ci] / cov, np.nan)
     df["verdict"] = verdict
     df["reasons"] = reasons
     return df

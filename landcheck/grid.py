@@ -19,6 +19,11 @@ from . import geodesy
 __all__ = ["GridSpec", "Window", "iter_windows", "grow_window"]
 
 
+def apply_transform(t: Affine, x, y):
+    """``t * (x, y)`` written out (affine 3 deprecates ``*`` on tuples; this works with every release)."""
+    return t.a * x + t.b * y + t.c, t.d * x + t.e * y + t.f
+
+
 def _compose(a: Affine, b: Affine) -> Affine:
     """a then b composed (``a @ b``; older affine releases only know ``*``)."""
     return a @ b if hasattr(Affine, "__matmul__") else a * b
@@ -62,7 +67,7 @@ class GridSpec:
         """(xmin, ymin, xmax, ymax) in CRS units."""
         t = self.transform
         x0, y0 = t.c, t.f
-        x1, y1 = t * (self.width, self.height)
+        x1, y1 = apply_transform(t, self.width, self.height)
         return (min(x0, x1), min(y0, y1), max(x0, x1), max(y0, y1))
 
     def row_centre_lat(self, rows: np.ndarray) -> np.ndarray:
@@ -103,7 +108,7 @@ class GridSpec:
     def window_bounds(self, win: "Window") -> tuple[float, float, float, float]:
         t = self.window_transform(win)
         x0, y0 = t.c, t.f
-        x1, y1 = t * (win.width, win.height)
+        x1, y1 = apply_transform(t, win.width, win.height)
         return (min(x0, x1), min(y0, y1), max(x0, x1), max(y0, y1))
 
 

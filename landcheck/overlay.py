@@ -81,39 +81,59 @@ def _coverage_exactextract(geoms, window_transform, height, width):
     return fi[keep], (cell[keep] // width).astype(np.int32), (cell[keep] % width).astype(np.int32), frac[keep]
 
 
+#: role of a geometry in the coverage step: the parcel itself
+ROLE_PARCEL = -2
+#: role of the piece of a parcel inside the union of the vector zones its class forbids
+ROLE_FORBIDDEN_PIECE = -1
+
+
 @dataclass(frozen=True)
 class OverlayPlan:
-    """Per-parcel rule parameters the window pass needs (picklable, sent to workers).
+    """Everything the window pass needs besides the rasters (picklable, sent to workers).
+
+    Geometries are the parcels followed by their vector-zone pieces
+    (:func:`landcheck.zones.vector_pieces`); ``geom_parcel`` and ``geom_role``
+    say whose piece each geometry is.
 
     Attributes
     ----------
     thresholds_pct : ndarray
         Sorted slope thresholds whose over-area is accumulated (class limits,
         limits minus review bands, and the sensitivity range).
-    limit_index, near_index : ndarray of int
-        Per parcel, index into ``thresholds_pct`` of its class limit and of
-        limit - review band; -1 when the class has no slope limit.
-    forbid_bits : ndarray of uint32
-        Per parcel, bit k set when its class forbids zone k.
-    area_factor : ndarray of float
-        Per parcel, factor turning map-plane cell area into ground area
-        (1 / areal scale of the projection at the parcel; 1 on geographic grids).
-    class_index : ndarray of int
-        Per parcel, index of its class (-1 for no rule).
-    n_classes, n_zones : int
-    capability_limit_pct : float or None
+    limit_index, near_index : ndarray of int, per parcel
+        Index into ``thresholds_pct`` of the class limit and of limit - review band; -1 without a limit.
+    raster_forbid_bits : ndarray of uint32, per parcel
+        Raster-zone channels (bits of the zone mask) the parcel's class forbids.
+    zone_forbid_bits : ndarray of uint32, per parcel
+        Rulebook zones (bit k = zone k) the class forbids; for the conflict raster.
+    area_factor : ndarray of float, per parcel
+        Map-plane to ground area factor (1 / areal scale; 1 on geographic grids).
+    class_index : ndarray of int, per parcel
+        Index of its class (-1 for no rule).
+    geom_parcel, geom_role : ndarray of int, per geometry
+        Parcel index and role (ROLE_PARCEL, ROLE_FORBIDDEN_PIECE or a zone-column index).
+    col_channel, col_zone : ndarray of int, per zone column
+        Raster channel (-1 for vector columns) and rulebook zone index (-1 for report-only columns).
     """
 
     thresholds_pct: np.ndarray
     limit_index: np.ndarray
     near_index: np.ndarray
-    forbid_bits: np.ndarray
+    raster_forbid_bits: np.ndarray
+    zone_forbid_bits: np.ndarray
     area_factor: np.ndarray
     class_index: np.ndarray
     n_classes: int
-    n_zones: int
+    geom_parcel: np.ndarray
+    geom_role: np.ndarray
+    col_channel: np.ndarray
+    col_zone: np.ndarray
     capability_limit_pct: float | None
     ground_factor: float = 1.0
+
+    @property
+    def n_cols(self) -> int:
+        return len(self.col_channel)
 
 
 @dataclass
@@ -129,7 +149,7 @@ class WindowSums:
     conflict_m2: np.ndarray
     near_conflict_m2: np.ndarray
     slope_conflict_m2: np.ndarray
-    zone_m2: np.ndarray  # (k, n_zones)
+    zone_m2: np.ndarray  # (k, n_cols)
     class_hist_m2: np.ndarray  # (n_classes, n_bins)
     land_m2: float
     land_within_m2: float
@@ -141,7 +161,7 @@ class Totals:
 
     n_parcels: int
     n_thresholds: int
-    n_zones: int
+    n_cols: int
     n_classes: int
     covered_m2: np.ndarray = field(init=False)
     evaluated_m2: np.ndarray = field(init=False)
@@ -166,7 +186,7 @@ class Totals:
         self.conflict_m2 = np.zeros(n)
         self.near_conflict_m2 = np.zeros(n)
         self.slope_conflict_m2 = np.zeros(n)
-        self.zone_m2 = np.zeros((n, self.n_zones))
+        self.zone_m2 = np.zeros((n, self.n_cols))
         self.class_hist_m2 = np.zeros((self.n_classes, len(HIST_EDGES_PCT) - 1))
 
     def add(self, s: WindowSums) -> None:
@@ -201,14 +221,14 @@ def accumulate_window(
     slope_pct : ndarray (h, w)
         Slope in percent, NaN where undefined.
     zone_bits : ndarray (h, w) of uint32, or None
-        Bit k set where the cell lies in hazard zone k.
+        Raster-zone mask: bit c set where the cell lies in raster channel c.
     cell_area_m2 : ndarray (h,)
         Map-plane area of one cell of each window row (exact band area on geographic grids).
     candidates : ndarray of int
-        Global parcel indices passed to the coverage step, in the order of ``triplets[0]``.
+        Global geometry indices passed to the coverage step, in the order of ``triplets[0]``.
     triplets : tuple
-        ``(feature_index, row, col, fraction)`` from :func:`coverage_triplets`, feature_index
-        indexing ``candidates``.
+        ``(feature_index, row, col, fraction)`` from :func:`coverage_triplets`; feature_index
+        indexes ``candidates``.
     plan : OverlayPlan
     land_mask : ndarray (h, w) of bool, optional
         Cells that count as land for the capability figure (default: every cell with a slope).
@@ -221,87 +241,103 @@ def accumulate_window(
     h, w = slope_pct.shape
     fi, rr, cc, frac = triplets
     valid_cells = np.isfinite(slope_pct)
-    # whole-area capability (independent of parcels)
     land = valid_cells if land_mask is None else (valid_cells & land_mask)
     row_area = cell_area_m2[:, None] * plan.ground_factor
     land_m2 = float((row_area * land).sum())
+    land_within_m2 = 0.0
     if plan.capability_limit_pct is not None:
         within = land & (np.nan_to_num(slope_pct, nan=np.inf) < plan.capability_limit_pct)
         land_within_m2 = float((row_area * within).sum())
-    else:
-        land_within_m2 = 0.0
     conflict_tile = np.full((h, w), CONFLICT_OUTSIDE, np.uint8)
     n_t = len(plan.thresholds_pct)
+    nb = len(HIST_EDGES_PCT) - 1
     if fi.size == 0:
-        empty = np.empty(0)
-        return WindowSums(np.empty(0, np.int64), empty, empty, empty, empty, np.empty((0, n_t)), empty, empty, empty,
-                          np.empty((0, plan.n_zones)), np.zeros((plan.n_classes, len(HIST_EDGES_PCT) - 1)),
-                          land_m2, land_within_m2), conflict_tile
+        e = np.empty(0)
+        return WindowSums(np.empty(0, np.int64), e, e, e, e, np.empty((0, n_t)), e, e, e, np.empty((0, plan.n_cols)),
+                          np.zeros((plan.n_classes, nb)), land_m2, land_within_m2), conflict_tile
 
-    gp = candidates[fi]  # global parcel index per pair
+    gi = candidates[fi]
+    gp = plan.geom_parcel[gi]  # parcel of each pair
+    role = plan.geom_role[gi]
     local_ids, local = np.unique(gp, return_inverse=True)
     k = len(local_ids)
     s = slope_pct[rr, cc].astype(np.float64)
     valid = np.isfinite(s)
     a = frac * cell_area_m2[rr] * plan.area_factor[gp]
-    av = np.where(valid, a, 0.0)
-    s0 = np.where(valid, s, 0.0)
-
-    covered = np.bincount(local, weights=a, minlength=k)
-    evaluated = np.bincount(local, weights=av, minlength=k)
-    slope_sum = np.bincount(local, weights=av * s0, minlength=k)
-    smax = np.full(k, -np.inf)
-    np.maximum.at(smax, local[valid], s[valid])
-    smax[np.isneginf(smax)] = np.nan
-
-    # area over each threshold: sort thresholds once, count per pair how many it reaches
-    t = plan.thresholds_pct
-    reach = np.searchsorted(t, np.where(valid, s, -np.inf), side="right")  # thresholds <= s
-    over = np.zeros((k, n_t + 1))
-    np.add.at(over, (local, reach), av)
-    # over[:, j] = area with exactly j thresholds reached -> cumulative from the top
-    over_m2 = np.cumsum(over[:, ::-1], axis=1)[:, ::-1][:, 1:]
-
-    # per-pair breach of the parcel's own rule (slope over its limit, or inside a forbidden zone)
+    reach = np.searchsorted(plan.thresholds_pct, np.where(valid, s, -np.inf), side="right")  # thresholds <= s
     li = plan.limit_index[gp]
     ni = plan.near_index[gp]
     slope_breach = valid & (li >= 0) & (reach > li)
     slope_near = valid & (ni >= 0) & (reach > ni)
-    if zone_bits is not None and plan.n_zones:
-        zb = zone_bits[rr, cc]
-        zone_breach = (zb & plan.forbid_bits[gp]) != 0
-        zone_m2 = np.zeros((k, plan.n_zones))
-        for z in range(plan.n_zones):
-            inz = (zb >> np.uint32(z)) & np.uint32(1)
-            zone_m2[:, z] = np.bincount(local, weights=a * inz, minlength=k)
-    else:
-        zone_breach = np.zeros(fi.shape, bool)
-        zone_m2 = np.zeros((k, plan.n_zones))
-    # zone breaches count on covered area (zones do not need a slope); slope breaches on evaluated area
-    breach = slope_breach | zone_breach
-    near = slope_near | zone_breach
-    conflict = np.bincount(local, weights=a * breach, minlength=k)
-    near_conflict = np.bincount(local, weights=a * near, minlength=k)
-    slope_conflict = np.bincount(local, weights=av * slope_breach, minlength=k)
+    zb = zone_bits[rr, cc] if zone_bits is not None else np.zeros(fi.shape, np.uint32)
+    raster_breach = (zb & plan.raster_forbid_bits[gp]) != 0
+    cell_breach = slope_breach | raster_breach
+    cell_near = slope_near | raster_breach
+
+    is_p = role == ROLE_PARCEL
+    lp, ap, vp = local[is_p], a[is_p], valid[is_p]
+    avp = np.where(vp, ap, 0.0)
+    sp = np.where(vp, s[is_p], 0.0)
+    covered = np.bincount(lp, weights=ap, minlength=k)
+    evaluated = np.bincount(lp, weights=avp, minlength=k)
+    slope_sum = np.bincount(lp, weights=avp * sp, minlength=k)
+    smax = np.full(k, -np.inf)
+    np.maximum.at(smax, lp[vp], s[is_p][vp])
+    smax[np.isneginf(smax)] = np.nan
+    over = np.zeros((k, n_t + 1))
+    np.add.at(over, (lp, reach[is_p]), avp)
+    # over[:, j] = area reaching exactly j thresholds -> cumulative from the top
+    over_m2 = np.cumsum(over[:, ::-1], axis=1)[:, ::-1][:, 1:]
+
+    # breach of the parcel's own rule: cells over its slope limit or in a forbidden raster zone (exact
+    # coverage), plus the part of its forbidden vector-zone piece lying on cells not already counted
+    is_f = role == ROLE_FORBIDDEN_PIECE
+    conflict = np.bincount(lp, weights=ap * cell_breach[is_p], minlength=k)
+    conflict += np.bincount(local[is_f], weights=a[is_f] * ~cell_breach[is_f], minlength=k)
+    near_conflict = np.bincount(lp, weights=ap * cell_near[is_p], minlength=k)
+    near_conflict += np.bincount(local[is_f], weights=a[is_f] * ~cell_near[is_f], minlength=k)
+    slope_conflict = np.bincount(lp, weights=avp * slope_breach[is_p], minlength=k)
+
+    zone_m2 = np.zeros((k, plan.n_cols))
+    for c in range(plan.n_cols):
+        ch = plan.col_channel[c]
+        if ch >= 0:
+            inz = ((zb[is_p] >> np.uint32(ch)) & np.uint32(1)).astype(bool)
+            zone_m2[:, c] = np.bincount(lp, weights=ap * inz, minlength=k)
+        else:
+            sel = role == c
+            zone_m2[:, c] = np.bincount(local[sel], weights=a[sel], minlength=k)
 
     # per-class slope histogram of classified land
-    ci = plan.class_index[gp]
-    has_class = valid & (ci >= 0)
-    nb = len(HIST_EDGES_PCT) - 1
-    bins = np.clip(np.searchsorted(HIST_EDGES_PCT, s[has_class], side="right") - 1, 0, nb - 1)
-    hist = np.bincount(ci[has_class] * nb + bins, weights=a[has_class], minlength=plan.n_classes * nb)
+    ci = plan.class_index[gp[is_p]]
+    has_class = vp & (ci >= 0)
+    sv = s[is_p][has_class]
+    bins = np.clip(np.searchsorted(HIST_EDGES_PCT, sv, side="right") - 1, 0, nb - 1)
+    hist = np.bincount(ci[has_class] * nb + bins, weights=ap[has_class], minlength=plan.n_classes * nb)
     hist = hist.reshape(plan.n_classes, nb)
 
     # conflict raster: each cell shows the parcel covering most of it (ties: lower parcel index)
-    order = np.lexsort((gp, -frac))
+    pidx = np.flatnonzero(is_p)
+    order = pidx[np.lexsort((gp[pidx], -frac[pidx]))]
     cell = rr.astype(np.int64) * w + cc
     _, first = np.unique(cell[order], return_index=True)
     pick = order[first]
-    bits = slope_breach[pick].astype(np.uint8)
-    if zone_bits is not None and plan.n_zones:
-        zb_pick = (zone_bits[rr[pick], cc[pick]] & plan.forbid_bits[gp[pick]]).astype(np.uint32)
-        bits = bits | ((zb_pick << np.uint32(1)) & np.uint32(0xFE)).astype(np.uint8)
-    conflict_tile[rr[pick], cc[pick]] = bits
+    bits = slope_breach[pick].astype(np.uint32)
+    for c in range(plan.n_cols):
+        z = plan.col_zone[c]
+        if z < 0:
+            continue
+        forb = ((plan.zone_forbid_bits[gp] >> np.uint32(z)) & np.uint32(1)).astype(bool)
+        ch = plan.col_channel[c]
+        if ch >= 0:
+            hit = forb[pick] & (((zb[pick] >> np.uint32(ch)) & np.uint32(1)) == 1)
+            bits[hit] |= np.uint32(1 << (z + 1))
+        else:
+            sel = (role == c) & forb
+            pc = cell[sel]
+            hit = np.isin(cell[pick], pc)
+            bits[hit] |= np.uint32(1 << (z + 1))
+    conflict_tile[rr[pick], cc[pick]] = bits.astype(np.uint8)
 
     sums = WindowSums(local_ids, covered, evaluated, slope_sum, smax, over_m2, conflict, near_conflict, slope_conflict,
                       zone_m2, hist, land_m2, land_within_m2)

@@ -199,10 +199,11 @@ _SLOPE_KEYS = {"method"}
 _CLASS_KEYS = {"label", "values", "development", "context", "max_slope_pct", "max_slope_deg", "tolerance_pct",
                "min_breach_m2", "review_band_pct", "forbidden_zones", "designated_class"}
 _ZONE_KEYS = {
-    ZoneKind.EASEMENT: {"kind", "label", "layer", "width_m", "derive"},
+    ZoneKind.EASEMENT: {"kind", "label", "layer", "width_m", "derive", "channel_area_m2", "datum_m", "sea_point",
+                        "nodata_is_sea"},
     ZoneKind.FLOOD_POLYGONS: {"kind", "label", "layer", "level_field", "min_level"},
     ZoneKind.HAND: {"kind", "label", "max_hand_m", "channel_area_m2"},
-    ZoneKind.SEA_RISE: {"kind", "label", "datum_m", "rise_m", "surge_m", "sea_point", "nodata_is_sea"},
+    ZoneKind.SEA_RISE: {"kind", "label", "datum_m", "rise_m", "surge_m", "sea_point", "nodata_is_sea", "scenarios_m"},
 }
 _UNC_KEYS = {"rmse_m", "corr_length_m", "realizations", "seed"}
 MAX_REALIZATIONS = 10_000
@@ -422,7 +423,14 @@ def _zone_params(ctx: _Ctx, sec: str, kind: ZoneKind, z: Mapping, layers: Mappin
         if "derive" in z:
             if z["derive"] not in ("shoreline", "streams"):
                 raise ctx.error(sec, "derive", f"got {z['derive']!r}; choose \"shoreline\" or \"streams\".")
+            if "layer" in z:
+                raise ctx.error(sec, "derive", "give layer or derive, not both.")
             p["derive"] = z["derive"]
+            if z["derive"] == "streams":
+                p["channel_area_m2"] = _number(ctx, sec, "channel_area_m2", z.get("channel_area_m2", 1_000_000.0),
+                                               lo=0, lo_open=True, unit="m²")
+            else:
+                p.update(_sea_params(ctx, sec, z))
         w = z.get("width_m")
         if isinstance(w, dict):
             _unknown(ctx, sec, w, {x.value for x in LandContext})
@@ -440,16 +448,31 @@ def _zone_params(ctx: _Ctx, sec: str, kind: ZoneKind, z: Mapping, layers: Mappin
         p["max_hand_m"] = _number(ctx, sec, "max_hand_m", z.get("max_hand_m"), lo=0, hi=1000, lo_open=True, unit="m")
         p["channel_area_m2"] = _number(ctx, sec, "channel_area_m2", z.get("channel_area_m2", 1_000_000.0), lo=0, lo_open=True, unit="m²")
     elif kind is ZoneKind.SEA_RISE:
-        p["datum_m"] = _number(ctx, sec, "datum_m", z.get("datum_m", 0.0), unit="m")
+        p.update(_sea_params(ctx, sec, z))
         p["rise_m"] = _number(ctx, sec, "rise_m", z.get("rise_m"), lo=0, hi=100, unit="m")
         p["surge_m"] = _number(ctx, sec, "surge_m", z.get("surge_m", 0.0), lo=0, hi=100, unit="m")
-        if "sea_point" in z:
-            sp = z["sea_point"]
-            if not (isinstance(sp, list) and len(sp) == 2 and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in sp)):
-                raise ctx.error(sec, "sea_point", f"got {sp!r}; expected [x, y] in the DEM's CRS.")
-            p["sea_point"] = (float(sp[0]), float(sp[1]))
-        nis = z.get("nodata_is_sea", False)
-        if not isinstance(nis, bool):
-            raise ctx.error(sec, "nodata_is_sea", f"got {nis!r}; expected true or false.")
-        p["nodata_is_sea"] = nis
+        if "scenarios_m" in z:
+            sc = z["scenarios_m"]
+            if not isinstance(sc, list) or not sc:
+                raise ctx.error(sec, "scenarios_m", f"got {sc!r}; expected a list of rises in metres, e.g. [0.5, 1.0, 2.0].")
+            vals = [_number(ctx, sec, "scenarios_m", v, lo=0, hi=100, unit="m") for v in sc]
+            for a, b in zip(vals, vals[1:]):
+                if b <= a:
+                    raise ctx.error(sec, "scenarios_m", f"the scenario list {sc} is not increasing ({b:g} m after {a:g} m); "
+                                                        "list the rises from lowest to highest, each once.")
+            p["scenarios_m"] = tuple(vals)
+    return p
+
+
+def _sea_params(ctx: _Ctx, sec: str, z: Mapping) -> dict:
+    p: dict[str, Any] = {"datum_m": _number(ctx, sec, "datum_m", z.get("datum_m", 0.0), unit="m")}
+    if "sea_point" in z:
+        sp = z["sea_point"]
+        if not (isinstance(sp, list) and len(sp) == 2 and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in sp)):
+            raise ctx.error(sec, "sea_point", f"got {sp!r}; expected [x, y] in the DEM's CRS.")
+        p["sea_point"] = (float(sp[0]), float(sp[1]))
+    nis = z.get("nodata_is_sea", False)
+    if not isinstance(nis, bool):
+        raise ctx.error(sec, "nodata_is_sea", f"got {nis!r}; expected true or false.")
+    p["nodata_is_sea"] = nis
     return p
