@@ -200,7 +200,10 @@ def audit(
         warnings.simplefilter("always", LandcheckWarning)
         ps = read_parcels(parcels_path, class_field=rules.class_field, id_field=rules.id_field,
                           target_crs_wkt=g.crs_wkt, layer=parcels_layer, crs=parcels_crs)
-    collected += [str(w.message) for w in caught if issubclass(w.category, LandcheckWarning)]
+    for w in caught:
+        if issubclass(w.category, LandcheckWarning):
+            collected.append(str(w.message))
+            warnings.warn(str(w.message), LandcheckWarning, stacklevel=2)
     frame = ps.frame
     geoms = np.asarray(frame.geometry.values)
     import shapely
