@@ -91,18 +91,17 @@ def test_disk_full_mid_write_leaves_nothing(tmp_path, inputs, monkeypatch):
     assert sorted(os.listdir(out)) == before
 
 
-def test_permission_denied(tmp_path, inputs):
-    ro = tmp_path / "ro"
-    ro.mkdir()
-    ro.chmod(0o500)
-    try:
-        r = _audit(inputs, ro / "out")
-        if os.geteuid() == 0:  # root ignores directory modes; the run must then simply succeed
-            assert r.exit_code == 0
-        else:
-            assert r.exit_code == 3 and "cannot" in r.output
-    finally:
-        ro.chmod(0o700)
+def test_permission_denied(tmp_path, inputs, monkeypatch):
+    # Tests run as root in CI, where directory modes are not enforced: simulate the refusal instead.
+    import tempfile
+
+    def denied(*a, **k):
+        raise PermissionError(errno.EACCES, "Permission denied")
+
+    monkeypatch.setattr(tempfile, "mkdtemp", denied)
+    r = _audit(inputs, tmp_path / "out")
+    assert r.exit_code == 3 and "cannot create the output folder (Permission denied)" in r.output
+    assert not (tmp_path / "out").exists()
 
 
 def test_internal_error_exit_4(tmp_path, inputs, monkeypatch):
