@@ -185,7 +185,7 @@ class RasterSink:
             self._ds = rasterio.open(
                 self._scratch, "w", driver="GTiff", width=grid.width, height=grid.height, count=count, dtype=dtype,
                 crs=grid.crs_wkt, transform=grid.transform, nodata=nodata, tiled=True,
-                blockxsize=block, blockysize=block, compress="deflate", BIGTIFF="IF_SAFER",
+                blockxsize=block, blockysize=block, BIGTIFF="IF_SAFER",  # scratch: uncompressed, fast
             )
         except Exception as exc:
             self._scratch.unlink(missing_ok=True)
@@ -211,8 +211,8 @@ class RasterSink:
                     self._ds.set_band_description(i, name)
             self._ds.close()
             with atomic_file(self.final, overwrite=True, suffix=".tif") as tmp:
-                rasterio.shutil.copy(self._scratch, tmp, driver="COG", COMPRESS="DEFLATE", BLOCKSIZE=512,
-                                     OVERVIEWS="AUTO", BIGTIFF="IF_SAFER")
+                rasterio.shutil.copy(self._scratch, tmp, driver="COG", COMPRESS="DEFLATE", PREDICTOR="YES",
+                                     BLOCKSIZE=512, OVERVIEWS="AUTO", BIGTIFF="IF_SAFER", NUM_THREADS="ALL_CPUS")
         except Exception as exc:
             self.abort()
             if isinstance(exc, OutputWriteError):

@@ -105,42 +105,15 @@ def _gradient_numpy(elev: np.ndarray, hx: np.ndarray, hy: np.ndarray, method: Sl
     return g.astype(np.float32)
 
 
-_COMPILED: dict = {}
-
-
 def _compiled_kernel(method: SlopeMethod):
-    """Build (once) a compiled loop around the same formula function.
+    """The compiled loop for ``method`` (see :mod:`landcheck._compiled`).
 
-    The loop is serial and releases the GIL: parallelism comes from running
+    Loops are serial and release the GIL: parallelism comes from running
     several windows at once in worker threads (see :mod:`landcheck.tiling`).
     """
-    if method in _COMPILED:
-        return _COMPILED[method]
-    import numba
+    from . import _compiled
 
-    formula = numba.njit(inline="always")(_FORMULAS[method])
-
-    @numba.njit(cache=False, nogil=True)
-    def kernel(e, hx, hy, out):
-        rows, cols = out.shape
-        for i in range(rows):
-            bx = hx[i]
-            by = hy[i]
-            for j in range(cols):
-                z5 = e[i + 1, j + 1]
-                p, q = formula(
-                    e[i, j], e[i, j + 1], e[i, j + 2],
-                    e[i + 1, j], e[i + 1, j + 2],
-                    e[i + 2, j], e[i + 2, j + 1], e[i + 2, j + 2],
-                    bx, by,
-                )
-                g = np.hypot(p, q)
-                if np.isnan(z5):
-                    g = np.nan
-                out[i, j] = g
-
-    _COMPILED[method] = kernel
-    return kernel
+    return _compiled.horn_loop if method is SlopeMethod.HORN else _compiled.zt_loop
 
 
 def slope_gradient(

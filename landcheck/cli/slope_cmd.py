@@ -60,6 +60,6 @@ def slope(ctx, dem, out, unit, method, dem_band, dem_crs, z_unit, tile_cells, wo
                "min": info.min_value, "max": info.max_value, "unit": info.unit, "method": info.method}
     if as_json:
         click.echo(json.dumps(summary))
-    else:
+    elif not ctx.find_root().obj.get("quiet"):
         click.echo(f"slope ({info.method}, {info.unit}) written to {info.path}: {info.valid_cells} cells, "
                    f"{info.min_value:.2f}..{info.max_value:.2f}", err=True)
