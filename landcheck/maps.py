@@ -548,9 +548,9 @@ def _window_for(ds, bounds):
 
     if bounds is None:
         return Window(0, 0, ds.width, ds.height)
-    inv = ~ds.transform
-    xs, ys = (bounds[0], bounds[2]), (bounds[1], bounds[3])
-    cols, rows = zip(*(inv * (x, y) for x in xs for y in ys))
+    t = ds.transform  # north-up (checked by the caller): col = (x - c) / a, row = (y - f) / e
+    cols = [(x - t.c) / t.a for x in (bounds[0], bounds[2])]
+    rows = [(y - t.f) / t.e for y in (bounds[1], bounds[3])]
     c0, c1 = max(0, math.floor(min(cols))), min(ds.width, math.ceil(max(cols)))
     r0, r1 = max(0, math.floor(min(rows))), min(ds.height, math.ceil(max(rows)))
     if c1 <= c0 or r1 <= r0:
@@ -604,7 +604,7 @@ def _read_reduced(path: Path, bounds, max_px: int, kind: str) -> _Grid | None:
                 tot = np.where(ok, blocks, 0.0).sum(axis=(1, 3))
                 red = np.where(cnt > 0, tot / np.maximum(cnt, 1), np.nan)
             out[r // f: r // f + nb] = red
-        tr = t * Affine.translation(win.col_off, win.row_off) * Affine.scale(f)
+        tr = Affine(t.a * f, 0.0, t.c + t.a * win.col_off, 0.0, t.e * f, t.f + t.e * win.row_off)
         left, top = tr.c, tr.f
         right, bottom = left + out_w * tr.a, top + out_h * tr.e
         return _Grid(out, (left, right, bottom, top), tr, f, ds.crs)
@@ -614,6 +614,7 @@ def _read_relief(folder: AuditFolder, slope: _Grid) -> tuple[np.ndarray, str]:
     """Relief intensity 0-1 on the slope display grid: DEM hillshade, else shaded slope."""
     import rasterio
     from rasterio.enums import Resampling
+    from rasterio.windows import Window
 
     crs = _crs(slope.crs)
     lat_c = 0.5 * (slope.extent[2] + slope.extent[3])
@@ -633,13 +634,21 @@ def _read_relief(folder: AuditFolder, slope: _Grid) -> tuple[np.ndarray, str]:
     else:
         try:
             with rasterio.open(dem) as ds:
+                t = ds.transform
                 if ds.crs is None or _crs(ds.crs) != crs:
                     reason = "DEM on another CRS"
+                elif t.b != 0 or t.d != 0:
+                    reason = "DEM grid rotated"
                 else:
-                    left, right, bottom, top = slope.extent
-                    win = ds.window(min(left, right), min(bottom, top), max(left, right), max(bottom, top))
+                    left, right, y_last, y_first = slope.extent
+                    c0, c1 = sorted(((left - t.c) / t.a, (right - t.c) / t.a))
+                    r0, r1 = sorted(((y_first - t.f) / t.e, (y_last - t.f) / t.e))
+                    win = Window(c0, r0, c1 - c0, r1 - r0)
+                    eps = 1e-6
+                    inside = c0 >= -eps and r0 >= -eps and c1 <= ds.width + eps and r1 <= ds.height + eps
                     z = ds.read(1, window=win, out_shape=slope.data.shape, resampling=Resampling.average,
-                                boundless=True, masked=True, fill_value=ds.nodata if ds.nodata is not None else 0)
+                                boundless=not inside, masked=True,
+                                fill_value=ds.nodata if ds.nodata is not None else 0)
                     z = np.ma.filled(z.astype(np.float64), np.nan)
                     zunit = str(folder.section("manifest", "parameters", "z_unit", default="m")).lower()
                     z = z * {"ft": 0.3048, "us-ft": 1200.0 / 3937.0}.get(zunit, 1.0)
@@ -672,9 +681,8 @@ def _composite(slope_pct: np.ndarray, shade: np.ndarray, breaks: np.ndarray, col
     return np.dstack([rgb, alpha.astype(np.float64)])
 
 
-def _conflict_shapes(bits: _Grid, n_zone_bits: int):
-    """Polygons of display cells by conflict kind (1 slope, 2 zone, 3 both) as a GeoDataFrame."""
-    import geopandas as gpd
+def _conflict_shapes(bits: _Grid, n_zone_bits: int) -> list[tuple[object, int]]:
+    """Polygons of display cells by conflict kind (1 slope, 2 zone, 3 both)."""
     import rasterio.features
     from shapely.geometry import shape
 
@@ -684,12 +692,71 @@ def _conflict_shapes(bits: _Grid, n_zone_bits: int):
     zone_mask = (((1 << (1 + n_zone_bits)) - 1) & ~1) if n_zone_bits else 0
     zone_hit = inside & ((b & zone_mask) > 0)
     kind = (slope_hit.astype(np.uint8) + 2 * zone_hit.astype(np.uint8)).astype(np.uint8)
-    geoms, kinds = [], []
-    if kind.any():
-        for geom, val in rasterio.features.shapes(kind, mask=kind > 0, transform=bits.transform):
-            geoms.append(shape(geom))
-            kinds.append(int(val))
-    return gpd.GeoDataFrame({"kind": kinds}, geometry=geoms, crs=bits.crs)
+    if not kind.any():
+        return []
+    return [(shape(g), int(v)) for g, v in rasterio.features.shapes(kind, mask=kind > 0, transform=bits.transform)]
+
+
+def _simple_parts(geoms) -> list:
+    """Flatten multi-part geometries and collections into single parts, dropping empties."""
+    import shapely
+
+    out, todo = [], [g for g in geoms if g is not None]
+    while todo:
+        g = todo.pop(0)
+        if g.is_empty:
+            continue
+        if g.geom_type.startswith("Multi") or g.geom_type == "GeometryCollection":
+            todo[:0] = list(shapely.get_parts(g))
+        else:
+            out.append(g)
+    return out
+
+
+def _polygon_paths(geoms) -> list:
+    """matplotlib Paths (exterior and holes) of the polygon parts of ``geoms``."""
+    from matplotlib.path import Path as MPath
+
+    paths = []
+    for g in _simple_parts(geoms):
+        if g.geom_type != "Polygon":
+            continue
+        verts, codes = [], []
+        for ring in (g.exterior, *g.interiors):
+            xy = np.asarray(ring.coords, dtype=np.float64)[:, :2]
+            c = np.full(len(xy), MPath.LINETO, dtype=MPath.code_type)
+            c[0], c[-1] = MPath.MOVETO, MPath.CLOSEPOLY
+            verts.append(xy)
+            codes.append(c)
+        paths.append(MPath(np.concatenate(verts), np.concatenate(codes)))
+    return paths
+
+
+def _line_segments(geoms) -> list[np.ndarray]:
+    """Vertex arrays of line parts and of polygon rings (for outlines)."""
+    segs = []
+    for g in _simple_parts(geoms):
+        if g.geom_type == "Polygon":
+            segs += [np.asarray(r.coords, dtype=np.float64)[:, :2] for r in (g.exterior, *g.interiors)]
+        elif g.geom_type in ("LineString", "LinearRing"):
+            segs.append(np.asarray(g.coords, dtype=np.float64)[:, :2])
+    return segs
+
+
+def _add_polygons(ax, geoms, **kw) -> None:
+    from matplotlib.collections import PathCollection
+
+    paths = _polygon_paths(geoms)
+    if paths:
+        ax.add_collection(PathCollection(paths, transform=ax.transData, **kw), autolim=False)
+
+
+def _add_lines(ax, geoms, **kw) -> None:
+    from matplotlib.collections import LineCollection
+
+    segs = _line_segments(geoms)
+    if segs:
+        ax.add_collection(LineCollection(segs, **kw), autolim=False)
 
 
 # --------------------------------------------------------------------------- drawing
@@ -890,19 +957,20 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
         pretty = name.replace("_", " ")
         poly = gdf[gdf.geom_type.isin(["Polygon", "MultiPolygon"])]
         if not poly.empty:
-            poly.plot(ax=ax, facecolor="none", edgecolor=colour, hatch=hatch, lw=1.0, zorder=3, autolim=False)
+            _add_polygons(ax, poly.geometry, facecolors="none", edgecolors=colour, hatch=hatch, linewidths=1.0,
+                          zorder=3)
             zh.append(Patch(facecolor="none", edgecolor=colour, hatch=hatch, lw=1.0))
             zl.append(f"hazard zone: {pretty}")
             entries.append(LegendEntry("zone", name, zl[-1]))
         lines = gdf[gdf.geom_type.isin(["LineString", "MultiLineString"])]
         if not lines.empty:
-            lines.plot(ax=ax, color=_WATER_COLOUR, lw=1.8, zorder=3, autolim=False)
+            _add_lines(ax, lines.geometry, colors=_WATER_COLOUR, linewidths=1.8, zorder=3)
             zh.append(Line2D([0], [0], color=_WATER_COLOUR, lw=1.8))
             zl.append(f"water feature: {pretty}")
             entries.append(LegendEntry("zone", name, zl[-1]))
         if "Point" in kinds:
-            pts = gdf[gdf.geom_type.isin(["Point", "MultiPoint"])]
-            pts.plot(ax=ax, color=colour, markersize=8, zorder=3)
+            pts = [g for g in _simple_parts(gdf.geometry) if g.geom_type == "Point"]
+            ax.plot([g.x for g in pts], [g.y for g in pts], "o", color=colour, ms=3, zorder=3)
     groups.append(("Zones and water", zh, zl))
 
     # conflict cells, hatched
@@ -911,11 +979,11 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
         n_zone_bits = max(0, len(folder.section("conflict_raster_bits", default=["slope"]) or ["slope"]) - 1)
         shapes = _conflict_shapes(data.bits, n_zone_bits)
         for kind in (1, 2, 3):
-            sub = shapes[shapes["kind"] == kind]
-            if sub.empty:
+            sub = [g for g, k in shapes if k == kind]
+            if not sub:
                 continue
-            sub.plot(ax=ax, facecolor=(1, 1, 1, 0.28), edgecolor="#161616", hatch=_CONFLICT_HATCH[kind], lw=0.4,
-                     zorder=4, autolim=False)
+            _add_polygons(ax, sub, facecolors=[(1, 1, 1, 0.28)], edgecolors="#161616", hatch=_CONFLICT_HATCH[kind],
+                          linewidths=0.4, zorder=4)
             ch.append(Patch(facecolor=(1, 1, 1, 0.28), edgecolor="#161616", hatch=_CONFLICT_HATCH[kind], lw=0.4))
             cl.append(_CONFLICT_TEXT[kind])
             entries.append(LegendEntry("conflict", {1: "slope", 2: "zone", 3: "slope+zone"}[kind], cl[-1]))
@@ -934,8 +1002,8 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
     for v in reversed(present):  # conflict drawn last, on top
         colour, lw, ls = _VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))
         sub = gdf[gdf["verdict"] == v]
-        sub.boundary.plot(ax=ax, color=colour, lw=lw, linestyle=ls, zorder=5, autolim=False,
-                          path_effects=_halo(lw + 2.2))
+        _add_lines(ax, sub.geometry, colors=colour, linewidths=lw, linestyles=[ls], zorder=5,
+                   path_effects=_halo(lw + 2.2))
     for v in present:
         colour, lw, ls = _VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))
         n = int((gdf["verdict"] == v).sum())
@@ -1185,6 +1253,7 @@ def class_share_chart(out_dir, *, dest_dir=None, dpi: int = 200, formats: Sequen
                                                     if not math.isnan(limits.get(nm, math.nan)) else "")
                         for nm in names], fontsize=8)
     ax.set_xlim(0, 110)
+    ax.set_ylim(-0.7, len(names) - 0.3)
     ax.set_xticks([0, 20, 40, 60, 80, 100])
     ax.set_xlabel("share of evaluated area (%)")
     ax.grid(True, axis="x", color="#bbbbbb", lw=0.5)
@@ -1235,9 +1304,11 @@ def slope_distribution_chart(out_dir, *, dest_dir=None, dpi: int = 200, formats:
         limit = limits.get(name, math.nan)
         line = limit if not math.isnan(limit) else ref
         over = lo >= line if not math.isnan(line) else np.zeros(lo.shape, bool)
-        ax.bar(lo[~over], area_ha[~over], width=width[~over], align="edge", color="#a9c4e0", edgecolor="#24509a", lw=0.3)
-        ax.bar(lo[over], area_ha[over], width=width[over], align="edge", color="#3b3b3b", edgecolor="#161616",
-               hatch="////", lw=0.3)
+        step_edges = np.append(lo, lo[-1] + width[-1])
+        ax.stairs(np.where(over, 0.0, area_ha), step_edges, fill=True, facecolor="#a9c4e0", edgecolor="#24509a",
+                  lw=0.6)
+        ax.stairs(np.where(over, area_ha, 0.0), step_edges, fill=True, facecolor="#3b3b3b", edgecolor="#161616",
+                  hatch="////", lw=0.6)
         nz = np.nonzero(area_ha > 0)[0]
         xmax = min(float(lo[nz[-1]] + width[nz[-1]]) + 2, float(lo[-1] + width[-1])) if nz.size else 30.0
         if not math.isnan(line):

@@ -23,7 +23,7 @@ import numpy as np
 import rasterio
 import rasterio.features
 import rasterio.shutil
-from rasterio.transform import from_origin
+from affine import Affine
 from shapely.geometry import LineString, Polygon, box
 
 #: projected CRS of the fixture (UTM zone 51 north, metres)
@@ -81,6 +81,10 @@ class AuditFixture:
     zone_input_path: Path
 
 
+def _transform() -> Affine:
+    return Affine(CELL_M, 0.0, X0_M, 0.0, -CELL_M, Y0_M)
+
+
 def _sha256(path: Path) -> str:
     h = hashlib.sha256()
     with open(path, "rb") as f:
@@ -106,7 +110,7 @@ def _slope_pct(dem: np.ndarray) -> np.ndarray:
 
 def _write_tif(path: Path, arr: np.ndarray, nodata, cog: bool) -> None:
     profile = dict(driver="GTiff", height=arr.shape[0], width=arr.shape[1], count=1, dtype=arr.dtype.name,
-                   crs=f"EPSG:{FIXTURE_EPSG}", transform=from_origin(X0_M, Y0_M, CELL_M, CELL_M), nodata=nodata)
+                   crs=f"EPSG:{FIXTURE_EPSG}", transform=_transform(), nodata=nodata)
     if not cog:
         with rasterio.open(path, "w", **profile) as ds:
             ds.write(arr, 1)
@@ -155,7 +159,7 @@ def build_audit_folder(root: Path, *, with_zones: bool = True) -> AuditFixture:
         shutil.rmtree(out)
     out.mkdir(parents=True)
     crs = f"EPSG:{FIXTURE_EPSG}"
-    transform = from_origin(X0_M, Y0_M, CELL_M, CELL_M)
+    transform = _transform()
     cell_area_m2 = CELL_M * CELL_M
 
     dem = _dem()
