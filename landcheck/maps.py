@@ -26,11 +26,11 @@ import os
 import re
 import tempfile
 import textwrap
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from functools import cached_property
 from pathlib import Path
-from typing import Iterable, Sequence
 
 import numpy as np
 
@@ -1140,50 +1140,42 @@ def parcel_closeup_maps(out_dir, max_maps: int = 12, *, dest_dir=None,
     order = sorted(zip(cand["conflict_m2"], cand["parcel_id"]), key=lambda t: (-float(t[0]), t[1]))
     gdf = folder.parcels_gdf
     items = []
-    with _rasterio_res(folder) as cell:
-        for rank, (_, pid) in enumerate(order[: max(0, int(max_maps))], start=1):
-            rows = gdf[gdf["parcel_id"] == pid]
-            if rows.empty or rows.geometry.iloc[0] is None or rows.geometry.iloc[0].is_empty:
-                logger.warning("parcel %s has no geometry in parcels.gpkg; no close-up drawn", pid)
-                continue
-            view = _closeup_bounds(rows.geometry.iloc[0], cell)
-            data = _load_map_data(folder, view, max_px)
-            fig = _new_figure(figsize_in, dpi)
-            _, groups, entries = _draw_map(fig, [0.1, 0.12, 0.56, 0.77], data, breaks, view, focus_id=pid)
-            lax = fig.add_axes([0.7, 0.12, 0.29, 0.77])
-            lax.axis("off")
-            _legend_column(fig, lax, groups)
-            rec = df[df["parcel_id"] == pid].iloc[0]
-            limit = folder.class_limits_pct.get(rec["class_name"], math.nan)
-            lim_txt = f"slope limit {_fmt_num(limit)} %" if not math.isnan(limit) else "no slope limit"
-            share = float(rec["conflict_share"]) if not _isnan(rec["conflict_share"]) else math.nan
-            sub = (f"class {rec['class_name']} \u00b7 {lim_txt} \u00b7 conflict {float(rec['conflict_m2']):,.0f} m\u00b2"
-                   + (f" ({share:.1%} of evaluated area)" if not math.isnan(share) else "")
-                   + f" \u00b7 audit run {folder.run_date_text}")
-            _figure_frame(fig, f"Parcel {pid}: {_VERDICT_TEXT.get(rec['verdict'], rec['verdict'])}", sub,
-                          [_crs_note(data.slope.crs) + "."])
-            stem = f"closeup_{rank:02d}_{_safe_stem(pid)}"
-            paths = _save(fig, dest, stem, dpi, formats)
-            detail = sub.split(" \u00b7 audit")[0]
-            caption = f"Parcel {pid} ({rec['class_name']}, {rec['verdict']}): {detail}."
-            items.append(FigureItem(stem, caption, paths, entries, parcel_id=pid))
+    cell = _cell_width(folder)
+    for rank, (_, pid) in enumerate(order[: max(0, int(max_maps))], start=1):
+        rows = gdf[gdf["parcel_id"] == pid]
+        if rows.empty or rows.geometry.iloc[0] is None or rows.geometry.iloc[0].is_empty:
+            logger.warning("parcel %s has no geometry in parcels.gpkg; no close-up drawn", pid)
+            continue
+        view = _closeup_bounds(rows.geometry.iloc[0], cell)
+        data = _load_map_data(folder, view, max_px)
+        fig = _new_figure(figsize_in, dpi)
+        _, groups, entries = _draw_map(fig, [0.1, 0.12, 0.56, 0.77], data, breaks, view, focus_id=pid)
+        lax = fig.add_axes([0.7, 0.12, 0.29, 0.77])
+        lax.axis("off")
+        _legend_column(fig, lax, groups)
+        rec = df[df["parcel_id"] == pid].iloc[0]
+        limit = folder.class_limits_pct.get(rec["class_name"], math.nan)
+        lim_txt = f"slope limit {_fmt_num(limit)} %" if not math.isnan(limit) else "no slope limit"
+        share = float(rec["conflict_share"]) if not _isnan(rec["conflict_share"]) else math.nan
+        sub = (f"class {rec['class_name']} \u00b7 {lim_txt} \u00b7 conflict {float(rec['conflict_m2']):,.0f} m\u00b2"
+               + (f" ({share:.1%} of evaluated area)" if not math.isnan(share) else "")
+               + f" \u00b7 audit run {folder.run_date_text}")
+        _figure_frame(fig, f"Parcel {pid}: {_VERDICT_TEXT.get(rec['verdict'], rec['verdict'])}", sub,
+                      [_crs_note(data.slope.crs) + "."])
+        stem = f"closeup_{rank:02d}_{_safe_stem(pid)}"
+        paths = _save(fig, dest, stem, dpi, formats)
+        detail = sub.split(" \u00b7 audit")[0]
+        caption = f"Parcel {pid} ({rec['class_name']}, {rec['verdict']}): {detail}."
+        items.append(FigureItem(stem, caption, paths, entries, parcel_id=pid))
     return FigureFiles(items)
 
 
-class _rasterio_res:
-    """Context manager yielding the slope raster's cell width in map units."""
+def _cell_width(folder: AuditFolder) -> float:
+    """Cell width of slope_pct.tif in map units."""
+    import rasterio
 
-    def __init__(self, folder: AuditFolder):
-        self.path = folder.require("slope_pct.tif")
-
-    def __enter__(self) -> float:
-        import rasterio
-
-        with rasterio.open(self.path) as ds:
-            return abs(ds.transform.a)
-
-    def __exit__(self, *exc) -> None:
-        return None
+    with rasterio.open(folder.require("slope_pct.tif")) as ds:
+        return abs(ds.transform.a)
 
 
 def _isnan(v) -> bool:

@@ -21,9 +21,9 @@ import logging
 import math
 import os
 import tempfile
+from collections.abc import Iterable, Sequence
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Iterable, Sequence
 
 from . import CAUTION, __version__
 from .errors import OutputWriteError
@@ -162,7 +162,7 @@ def _table(table_id: str, columns: Sequence[tuple[str, str, str]], rows: Iterabl
             else:
                 dv = _data_value(v, kind)
             shown = _verdict_badge(str(v)) if kind == "verdict" else _e(_fmt(v, kind))
-            align = "" if kind in ("text", "verdict") else ' class="n"'
+            align = ' class="wide"' if key == "reasons" else ("" if kind in ("text", "verdict") else ' class="n"')
             out.append(f'<td{align} data-value="{_e(dv)}">{shown}</td>')
         out.append("</tr>")
     out.append("</tbody></table></div>")
@@ -433,6 +433,7 @@ nav a{color:#1d4f91}
 table{border-collapse:collapse;margin:10px 0;font-size:.9em}
 caption{text-align:left;color:var(--muted);padding:4px 0;caption-side:top}
 th,td{border-bottom:1px solid var(--line);padding:4px 8px;text-align:left;vertical-align:top}
+td.wide{min-width:18em}
 td.n{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}
 thead th{background:var(--band);position:sticky;top:0}
 .table-wrap{max-height:640px;overflow:auto;border:1px solid var(--line)}

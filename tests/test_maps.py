@@ -9,11 +9,10 @@ import xml.etree.ElementTree as ET
 
 import numpy as np
 import pytest
+from report_fixture import build_audit_folder
 
 from landcheck import maps
 from landcheck.errors import InputDataError
-
-from report_fixture import build_audit_folder
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
@@ -126,7 +125,8 @@ def test_charts_written(audit, tmp_path):
         files = fn(audit.out_dir, dest_dir=tmp_path, dpi=200, formats=("png",))
         assert list(files) == [tmp_path / f"{stem}.png"]
         w, h = png_size(tmp_path / f"{stem}.png")
-        assert w == 200 * 8 or w == 200 * 7  # charts are 8 in (or 7 in for one column) wide
+        # Source: PNG spec IHDR; charts are 8 in wide (7 in for a single column) at 200 dpi
+        assert w == 200 * 8 or w == 200 * 7
         assert h > 400
 
 
@@ -205,5 +205,6 @@ def test_true_north_matches_meridian_convergence():
 
 
 def test_missing_folder_is_input_error(tmp_path):
+    # error contract: STYLE.md section 3 (InputDataError naming the missing file)
     with pytest.raises(InputDataError, match="summary.json"):
         maps.overview_map(tmp_path)
