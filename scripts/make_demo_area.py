@@ -72,6 +72,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
 import sys
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -991,8 +992,8 @@ flood = "flood_hazard.gpkg"        # flood polygons with an integer hazard_level
 #                    ("or over": exactly 18.0 % is over the limit).
 #   tolerance_pct    share of the parcel's evaluated area that may be over the
 #                    limit before the parcel is a conflict.
-#   min_breach_m2    over-limit (or forbidden-zone) area below this size is
-#                    not a conflict, so single cells of DEM noise do not count.
+#   min_breach_m2    a breach smaller than this area is not a conflict, so a
+#                    few cells of DEM noise do not condemn a parcel.
 #   review_band_pct  slopes within this many percentage points below the limit
 #                    (here 15 % to 18 %) make the parcel "review" instead of
 #                    "consistent".
@@ -1242,10 +1243,23 @@ def summarise(terrain: Terrain, layers: Layers, parcels: list[Parcel]) -> dict:
 # --------------------------------------------------------------------------
 
 
+#: fixed timestamp for GeoPackage metadata, so reruns give byte-identical files
+GPKG_TIMESTAMP = "2026-01-01T00:00:00.000Z"
+
+
 def _write_gpkg(gdf: gpd.GeoDataFrame, path: Path, layer: str) -> None:
     if path.exists():
         path.unlink()
-    gdf.to_file(path, layer=layer, driver="GPKG", engine="pyogrio")
+    # GDAL reads its configuration options from the environment as a fallback
+    previous = os.environ.get("OGR_CURRENT_DATE")
+    os.environ["OGR_CURRENT_DATE"] = GPKG_TIMESTAMP
+    try:
+        gdf.to_file(path, layer=layer, driver="GPKG", engine="pyogrio")
+    finally:
+        if previous is None:
+            del os.environ["OGR_CURRENT_DATE"]
+        else:
+            os.environ["OGR_CURRENT_DATE"] = previous
 
 
 def write_outputs(out: Path, terrain: Terrain, layers: Layers, parcels: list[Parcel], seed: int) -> None:
