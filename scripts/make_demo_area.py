@@ -740,22 +740,28 @@ def make_parcels(terrain: Terrain, layers: Layers, seed: int) -> list[Parcel]:
                     town.append((_rect(cx, cy, lw, lh, -7.0), r))
     town_hull = unary_union([t[0] for t in town]).convex_hull.buffer(street_w)
 
-    # choose the planted shore and river conflicts among the candidate rectangles
+    # choose the planted shore and river conflicts among the candidate rectangles:
+    # whole-block waterfront lots (long frontage, so their share of a 3 m strip is
+    # well above min_breach_m2) and lots laid across the river channel
     shore45 = shore.buffer(45.0)
     near_shore = [k for k, (g, _) in enumerate(town) if g.intersects(shore45) and not g.intersects(corridor(60.0))]
-    shore_pick = set(near_shore[:: max(len(near_shore) // 3, 1)][:3]) if near_shore else set()
-    near_river = [k for k, (g, _) in enumerate(town) if g.intersects(corridor_town) and not g.intersects(river)
-                  and g.distance(river) < WIDTH_LOWER_M / 2 and k not in shore_pick]
-    river_pick = set(near_river[:: max(len(near_river) // 4, 1)][:4]) if near_river else set()
+    widest = max((town[k][0].area for k in near_shore), default=0.0)
+    near_shore = [k for k in near_shore if town[k][0].area > 0.9 * widest]
+    shore_pick = set(near_shore[:: max(len(near_shore) // 3, 1)][:3])
+    near_river = [k for k, (g, _) in enumerate(town) if g.intersects(river) and k not in shore_pick]
+    river_pick = set(near_river[1:: max(len(near_river) // 3, 1)][:3])
     flood_pool = []
     cands = []
     for k, (g, r) in enumerate(town):
         tags = set()
         if k in shore_pick:
-            geom = g.intersection(land)
+            # run the lot down to the shoreline across its whole width
+            seaward = affinity.translate(g, 80.0 * math.sin(theta), -80.0 * math.cos(theta))
+            others = unary_union([t[0] for j, t in enumerate(town) if j != k])
+            geom = _largest_part(_polygonal(g.union(seaward).intersection(land).difference(others)))
             tags.add("shore")
         elif k in river_pick:
-            geom = _largest_part(_polygonal(g.difference(river.buffer(1.0)).intersection(setback_town)))
+            geom = _largest_part(_polygonal(g.intersection(setback_town)))
             tags.add("river")
         else:
             geom = g.intersection(setback_town)
@@ -845,7 +851,7 @@ def make_parcels(terrain: Terrain, layers: Layers, seed: int) -> list[Parcel]:
         if geom.is_empty:
             continue
         if k in farm_river_pick:
-            geom = _polygonal(geom.difference(corridor(6.0)))
+            geom = _polygonal(geom.difference(corridor(2.0)))
             tags.add("river")
         elif geom.intersects(corridor_farm):
             geom = _polygonal(geom.difference(corridor_farm))
@@ -1168,6 +1174,17 @@ def summarise(terrain: Terrain, layers: Layers, parcels: list[Parcel]) -> dict:
     over_by_limit: dict = {}
     hits_by_parcel = []
     kinds = {"slope": 0, "shore_easement": 0, "river_easement": 0, "flood_high": 0, "sea_rise_1m": 0}
+    kinds_large = dict.fromkeys(kinds, 0)  # zone breaches of at least min_breach_m2 only
+    strips: dict = {}
+
+    def strip_for(zname: str, width_m: float):
+        if (zname, width_m) not in strips:
+            if zname == "shore_easement":
+                strips[zname, width_m] = layers.shoreline.buffer(width_m)
+            else:
+                strips[zname, width_m] = unary_union([layers.river_upper.buffer(WIDTH_UPPER_M / 2 + width_m),
+                                                      layers.river_lower.buffer(WIDTH_LOWER_M / 2 + width_m)])
+        return strips[zname, width_m]
     per_class_conflict = {}
     enclosed_only = 0
     partly_outside = 0
@@ -1177,6 +1194,7 @@ def summarise(terrain: Terrain, layers: Layers, parcels: list[Parcel]) -> dict:
         if not frame.contains(g):
             partly_outside += 1
         hit = set()
+        breach_m2 = {}
         if cls.get("development") and "max_slope_pct" in cls:
             limit = cls["max_slope_pct"]
             if limit not in over_by_limit:
@@ -1185,23 +1203,25 @@ def summarise(terrain: Terrain, layers: Layers, parcels: list[Parcel]) -> dict:
             over = over_by_limit[limit][k]
             if valid[k] and over / valid[k] * 100 > cls["tolerance_pct"] and over * cell_area >= cls["min_breach_m2"]:
                 hit.add("slope")
+                breach_m2["slope"] = over * cell_area
         forb = set(cls.get("forbidden_zones", []))
         ctx = cls.get("context", "urban")
         for zname in ("shore_easement", "river_easement"):
             if zname not in forb:
                 continue
-            w = rules["zones"][zname]["width_m"][ctx]
-            if zname == "shore_easement":
-                strip = layers.shoreline.buffer(w)
-            else:
-                strip = unary_union([layers.river_upper.buffer(WIDTH_UPPER_M / 2 + w),
-                                     layers.river_lower.buffer(WIDTH_LOWER_M / 2 + w)])
-            if g.intersection(strip).area > 1.0:
+            breach_m2[zname] = g.intersection(strip_for(zname, rules["zones"][zname]["width_m"][ctx])).area
+            if breach_m2[zname] > 1.0:
                 hit.add(zname)
-        if "flood_high" in forb and g.intersection(flood3).area > 1.0:
-            hit.add("flood_high")
+        if "flood_high" in forb:
+            breach_m2["flood_high"] = g.intersection(flood3).area
+            if breach_m2["flood_high"] > 1.0:
+                hit.add("flood_high")
         if "sea_rise_1m" in forb and n_connected[k] > 0:
             hit.add("sea_rise_1m")
+            breach_m2["sea_rise_1m"] = n_connected[k] * cell_area
+        for h in hit:
+            if breach_m2[h] >= cls.get("min_breach_m2", 0.0):
+                kinds_large[h] += 1
         if n_enclosed[k] > 0 and n_connected[k] == 0:
             enclosed_only += 1
         hits_by_parcel.append(sorted(hit))
@@ -1224,6 +1244,7 @@ def summarise(terrain: Terrain, layers: Layers, parcels: list[Parcel]) -> dict:
         "partly_outside_dem": partly_outside,
         "zoning": dict(sorted(zoning_counts.items())),
         "parcels_in_conflict_by_kind": kinds,
+        "parcels_in_conflict_by_kind_min_breach": kinds_large,
         "parcels_in_conflict_by_class": dict(sorted(per_class_conflict.items())),
         "parcels_with_conflicts": int(sum(per_class_conflict.values())),
         "parcels_low_but_enclosed": enclosed_only,
