@@ -529,7 +529,7 @@ def _atomic_write_text(path: Path, text: str) -> None:
 def build_report(out_dir, *, report_path=None, figures_dir=None,
                  slope_breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT, max_closeups: int = 12,
                  max_table_rows: int = 5000, dpi: int = 200, figure_formats: Sequence[str] = ("png", "svg"),
-                 verify_inputs: bool = True) -> Path:
+                 closeup_formats: Sequence[str] = ("png",), verify_inputs: bool = True) -> Path:
     """Write a self-contained HTML report of an audit output folder.
 
     Parameters
@@ -549,6 +549,8 @@ def build_report(out_dir, *, report_path=None, figures_dir=None,
         Most rows in the per-parcel table (largest conflict first when cut).
     dpi : int
         Resolution of the figures (200-300 for print).
+    closeup_formats : sequence of {"png", "svg"}
+        Formats of the per-parcel close-ups (PNG always; default PNG only).
     figure_formats : sequence of {"png", "svg"}
         Files written per figure; PNG is always written (it is inlined).
     verify_inputs : bool
@@ -577,7 +579,9 @@ def build_report(out_dir, *, report_path=None, figures_dir=None,
     _ = folder.parcels, folder.classes
     kw = dict(dest_dir=figures_dir, dpi=dpi, formats=formats)
     overview = overview_map(folder, slope_breaks_pct=slope_breaks_pct, **kw)
-    closeups = parcel_closeup_maps(folder, max_closeups, slope_breaks_pct=slope_breaks_pct, **kw)
+    # close-ups are many: PNG by default (SVG on request) to keep the audit quick
+    closeups = parcel_closeup_maps(folder, max_closeups, slope_breaks_pct=slope_breaks_pct, dest_dir=figures_dir,
+                                   dpi=dpi, formats=tuple(dict.fromkeys(("png", *closeup_formats))))
     charts = [class_share_chart(folder, **kw), slope_distribution_chart(folder, **kw), sensitivity_chart(folder, **kw)]
 
     extra_warnings: list[str] = []
