@@ -200,7 +200,7 @@ _CLASS_KEYS = {"label", "values", "development", "context", "max_slope_pct", "ma
                "min_breach_m2", "review_band_pct", "forbidden_zones", "designated_class"}
 _ZONE_KEYS = {
     ZoneKind.EASEMENT: {"kind", "label", "layer", "width_m", "derive", "channel_area_m2", "datum_m", "sea_point",
-                        "nodata_is_sea"},
+                        "nodata_is_sea", "channel_width_field"},
     ZoneKind.FLOOD_POLYGONS: {"kind", "label", "layer", "level_field", "min_level"},
     ZoneKind.HAND: {"kind", "label", "max_hand_m", "channel_area_m2"},
     ZoneKind.SEA_RISE: {"kind", "label", "datum_m", "rise_m", "surge_m", "sea_point", "nodata_is_sea", "scenarios_m"},
@@ -420,6 +420,10 @@ def _zone_params(ctx: _Ctx, sec: str, kind: ZoneKind, z: Mapping, layers: Mappin
     if kind is ZoneKind.EASEMENT:
         if "layer" not in z and "derive" not in z:
             raise ctx.error(sec, None, "an easement needs layer = \"<name in [layers]>\" or derive = \"shoreline\" / \"streams\".")
+        if "channel_width_field" in z:
+            if "layer" not in z:
+                raise ctx.error(sec, "channel_width_field", "only a line layer can carry channel widths; add layer = ...")
+            p["channel_width_field"] = _string(ctx, sec, "channel_width_field", z["channel_width_field"])
         if "derive" in z:
             if z["derive"] not in ("shoreline", "streams"):
                 raise ctx.error(sec, "derive", f"got {z['derive']!r}; choose \"shoreline\" or \"streams\".")

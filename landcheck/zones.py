@@ -104,21 +104,23 @@ def _local_metric_crs(geoms_ll):
     return pyproj.CRS.from_epsg(info[0].code)
 
 
-def buffer_ground(geoms: np.ndarray, width_m: float, grid: GridSpec) -> "object":
+def buffer_ground(geoms: np.ndarray, width_m, grid: GridSpec) -> "object":
     """Union of the geometries buffered by ``width_m`` metres on the ground, in the grid's CRS.
 
     Parameters
     ----------
     geoms : array of shapely geometries in the grid's CRS (lines or polygons)
-    width_m : float
-        Easement width in metres, measured on the ground from the line or polygon edge.
+    width_m : float or array of float (one per geometry)
+        Buffer distance in metres, measured on the ground from the line or polygon edge.
     grid : GridSpec
     """
     import pyproj
     import shapely
 
     geoms = np.asarray(geoms, dtype=object)
-    geoms = geoms[~shapely.is_empty(geoms)]
+    width_m = np.broadcast_to(np.asarray(width_m, dtype=np.float64), geoms.shape)
+    keep = ~shapely.is_empty(geoms)
+    geoms, width_m = geoms[keep], width_m[keep]
     if len(geoms) == 0:
         return shapely.Polygon()
     crs = pyproj.CRS.from_user_input(grid.crs_wkt)
@@ -213,12 +215,28 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
 
     for zi, z in enumerate(rules.zones):
         if z.kind is ZoneKind.EASEMENT:
+            half_channel = 0.0
             if "layer" in z.params:
                 gdf, where = _layer_geoms(rules, z.params["layer"], g, f"easement layer {z.params['layer']!r}")
                 src_geoms = np.asarray(gdf.geometry.values)
                 types = set(shapely.get_type_id(src_geoms[~shapely.is_empty(src_geoms)]).tolist())
                 if not types <= {1, 2, 3, 5, 6}:
                     raise InputDataError(f"{where}: an easement layer must hold lines or polygons.")
+                wf = z.params.get("channel_width_field")
+                if wf is not None:
+                    # centrelines with a channel width: the easement is measured from the bank
+                    if wf not in gdf.columns:
+                        raise InputDataError(f"{where}: no attribute {wf!r} (the rulebook's [zones.{z.name}].channel_width_field); "
+                                             f"attributes here: {', '.join(c for c in gdf.columns if c != gdf.geometry.name)}.")
+                    import pandas as pd
+
+                    cw = pd.to_numeric(gdf[wf], errors="coerce").to_numpy(float)
+                    bad = ~np.isfinite(cw) | (cw < 0)
+                    if bad.any():
+                        rows = (np.flatnonzero(bad) + 1)[:10].tolist()
+                        raise InputDataError(f"{where}: attribute {wf!r} must be a width in metres >= 0; features (rows) {rows} hold "
+                                             f"{gdf[wf].iloc[rows[0] - 1]!r}.")
+                    half_channel = cw / 2.0
             elif z.params["derive"] == "shoreline":
                 lines = hydrology.mask_boundary_lines(sea, g.transform, g.crs_wkt)
                 layers["derived_shoreline"] = lines
@@ -231,7 +249,7 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
                 lines = hydrology.streams_to_lines(r, streams, g.crs_wkt, upstream_area_m2=area)
                 layers["derived_streams"] = lines
                 src_geoms = np.asarray(lines.geometry.values)
-            variants = {ctx: buffer_ground(src_geoms, w, g) for ctx, w in _widths(z).items()}
+            variants = {ctx: buffer_ground(src_geoms, half_channel + w, g) for ctx, w in _widths(z).items()}
             columns.append(ZoneColumn(z.name, z.label, zi, -1, variants))
             layers[f"zone_{z.name}"] = gpd.GeoDataFrame(
                 {"context": [c.value if c is not None else "all" for c in variants],

@@ -1096,6 +1096,7 @@ width_m = { urban = 3.0, agricultural = 20.0, forest = 40.0 }   # per land-use c
 [zones.river_easement]
 kind = "easement"
 layer = "rivers"
+channel_width_field = "width_m"    # the layer holds centrelines: measure the strip from the banks
 width_m = { urban = 3.0, agricultural = 20.0, forest = 40.0 }
 
 # Mapped flood hazard: polygons whose hazard_level is at least min_level.
