@@ -31,7 +31,8 @@ from .outputs import RasterSink, check_output_path, staged_folder, write_csv, wr
 from .overlay import CONFLICT_OUTSIDE, ROLE_PARCEL, OverlayPlan, Totals, accumulate_window, coverage_triplets
 from .rules import Rulebook, load_rules
 from .terrain import SlopeMethod, gradient_to_unit
-from .tiling import progress_bar, run_windows, slope_window
+from .engines import map_windows
+from .tiling import progress_bar, slope_window
 
 __all__ = ["audit", "AuditResult", "AuditSettings"]
 
@@ -156,7 +157,7 @@ class _WindowJob:
         trip = coverage_triplets(self.geoms[cand], g.window_transform(win), win.height, win.width)
         rows = np.arange(win.row_off, win.row_off + win.height)
         sums, conflict = accumulate_window(slope_pct, zone_bits, g.cell_area_m2(rows), cand, trip, self.plan, land_mask)
-        return sums, slope_pct, conflict, zone_bits
+        return sums, slope_pct, conflict
 
 
 def audit(
@@ -177,6 +178,8 @@ def audit(
     show_progress: bool | None = None,
     make_report: bool = True,
     on_step: Callable[[str], None] | None = None,
+    engine: str = "threads",
+    scheduler_address: str | None = None,
 ) -> AuditResult:
     """Run the audit and write its output folder (docs/outputs.md).
 
@@ -258,7 +261,8 @@ def audit(
                 RasterSink(stage / "conflict.tif", g, dtype="uint8", nodata=CONFLICT_OUTSIDE,
                            band_names=["conflict bits: 1=slope" + "".join(f", {1 << (i + 1)}={z}" for i, z in enumerate(zone_names))]) as conflict_sink, \
                 progress_bar(len(windows), "audit", enabled=show_progress) as bar:
-            for win, (sums, slope_pct, conflict, _zb) in run_windows(job, windows, workers=workers, progress=bar):
+            for win, (sums, slope_pct, conflict) in map_windows(job, windows, engine=engine, workers=workers,
+                                                                      scheduler_address=scheduler_address, progress=bar):
                 totals.add(sums)
                 slope_sink.write(win, slope_pct)
                 conflict_sink.write(win, conflict)
@@ -269,7 +273,7 @@ def audit(
         classes = summarise_classes(parcels, rules)
         counted = (parcels["verdict"] != Verdict.NO_DATA).to_numpy() & (parcels["verdict"] != Verdict.NO_RULE).to_numpy()
         summary = _summary(rules, parcels, classes, totals, plan, pr, counted, zone_names, collected, columns)
-        summary["manifest"] = _manifest(started, dem, parcels_path, rules, settings, workers, g)
+        summary["manifest"] = _manifest(started, dem, parcels_path, rules, settings, workers, g, engine)
         if zones is not None:
             summary["zones"] = zones.describe()
             zones.write_layers(stage)
@@ -343,7 +347,8 @@ def _zone_shares_by_class(parcels: pd.DataFrame, rules: Rulebook, columns) -> di
     return out
 
 
-def _manifest(started, dem: DemSource, parcels_path, rules: Rulebook, settings: AuditSettings, workers, g) -> dict:
+def _manifest(started, dem: DemSource, parcels_path, rules: Rulebook, settings: AuditSettings, workers, g,
+              engine: str = "threads") -> dict:
     from .versions import show_versions
 
     inputs = [{"role": "dem", "path": str(Path(dem.path).resolve()), "sha256": sha256_file(dem.path)}]
@@ -366,6 +371,7 @@ def _manifest(started, dem: DemSource, parcels_path, rules: Rulebook, settings: 
             "parcels_layer": settings.parcels_layer,
             "parcels_crs_override": settings.parcels_crs,
             "workers": workers,
+            "engine": engine,
             "edge_policy": "strict window: no slope where the cell or a neighbour the method reads is invalid",
             "coverage": "exact cell-coverage fractions",
         },

@@ -74,14 +74,20 @@ Examples:
 @method_option
 @dem_options
 @run_options
+@click.option("--engine", type=click.Choice(["threads", "dask"]), default="threads", show_default=True,
+              help="Run windows on local threads, or on a Dask cluster (a local one unless --scheduler is given).")
+@click.option("--scheduler", "scheduler_address", default=None, metavar="ADDRESS",
+              help="Dask scheduler address, e.g. tcp://10.0.0.5:8786 (implies --engine dask). Workers must read "
+                   "the inputs by the same paths.")
 @click.option("--no-report", is_flag=True, help="Skip the HTML report and maps.")
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary on stdout.")
 @click.option("--fail-on-conflict", is_flag=True, help="Exit with status 1 when any parcel is in conflict.")
 @click.pass_context
 @handle_errors
 def command(ctx, dem, parcels, parcels_layer, parcels_crs, rulebook, out_dir, method, dem_band, dem_crs, z_unit,
-            tile_cells, workers, overwrite, no_report, as_json, fail_on_conflict):
+            tile_cells, workers, overwrite, engine, scheduler_address, no_report, as_json, fail_on_conflict):
     run_audit_and_report(ctx, as_json=as_json, fail_on_conflict=fail_on_conflict, dem_path=dem, parcels_path=parcels,
                          rulebook_path=rulebook, out_dir=out_dir, parcels_layer=parcels_layer, parcels_crs=parcels_crs,
                          dem_band=dem_band, dem_crs=dem_crs, z_unit=z_unit, method=method, tile_cells=tile_cells,
-                         workers=workers, overwrite=overwrite, make_report=not no_report)
+                         workers=workers, overwrite=overwrite, make_report=not no_report,
+                         engine="dask" if scheduler_address else engine, scheduler_address=scheduler_address)
