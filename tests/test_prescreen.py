@@ -414,3 +414,11 @@ def test_existing_output_and_self_intersecting_polygon(inputs):
     # usage errors (exit 2): no parcel, or both forms
     assert _run(tmp, dem, rules, "x").exit_code == 2
     assert _run(tmp, dem, rules, "x", "--parcels", str(one), "--polygon", RECT_TEXT).exit_code == 2
+
+
+def test_help_carries_caution_and_examples():
+    # common practice (STYLE.md 7): every command's --help has the caution and runnable examples
+    r = CliRunner().invoke(cli, ["prescreen", "--help"])
+    assert r.exit_code == 0
+    assert "not a survey or legal determination" in r.output and "Examples" in r.output
+    assert "--polygon" in r.output and "--parcel-id" in r.output
