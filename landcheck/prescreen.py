@@ -43,7 +43,8 @@ from . import CAUTION, __version__
 from .errors import InputDataError, LandcheckWarning
 from .grid import GridSpec, Window
 from .inputs import DemSource, ZUnit, open_dem
-from .rules import ClassRule, Rulebook, ZoneKind, load_rules
+from .rules import ClassRule, LandContext, Rulebook, ZoneKind, load_rules
+from .zones import pick_variant
 
 __all__ = ["CONNECTIVITIES", "PrescreenResult", "largest_patch", "parse_polygon", "prescreen"]
 
@@ -616,8 +617,7 @@ def _forbidden_vector_union(audit_dir: Path, rules: Rulebook, cls: ClassRule):
     """Union of the vector zones (easement strips, flood polygons) the class forbids, as the audit built them.
 
     Read from the audit's ``zones/zone_<name>.gpkg``; for per-context easement
-    widths the strip is chosen as in :func:`landcheck.zones.vector_pieces`:
-    the one for all contexts, else the class's context, else the widest.
+    widths the strip is chosen by :func:`landcheck.zones.pick_variant`, as in the audit.
     """
     import geopandas as gpd
     import shapely
@@ -629,15 +629,11 @@ def _forbidden_vector_union(audit_dir: Path, rules: Rulebook, cls: ClassRule):
             continue
         p = audit_dir / "zones" / f"zone_{zname}.gpkg"
         gdf = gpd.read_file(p)
-        geoms = list(gdf.geometry.values)
-        if "context" in gdf.columns and len(gdf) > 1:
-            ctx = list(gdf["context"])
-            if "all" in ctx:
-                geoms = [geoms[ctx.index("all")]]
-            elif cls.context is not None and cls.context.value in ctx:
-                geoms = [geoms[ctx.index(cls.context.value)]]
-            else:
-                geoms = [max(geoms, key=lambda gg: gg.area)]
+        if "context" in gdf.columns:
+            variants = {None if c == "all" else LandContext(c): g for c, g in zip(gdf["context"], gdf.geometry.values)}
+            geoms = [pick_variant(variants, cls.context)]
+        else:
+            geoms = list(gdf.geometry.values)
         parts += [gg for gg in geoms if gg is not None and not gg.is_empty]
     return _polygonal(shapely.union_all(parts)) if parts else shapely.Polygon()
 

@@ -32,7 +32,7 @@ from .errors import InputDataError
 from .grid import GridSpec, Window, apply_transform
 from .rules import LandContext, Rulebook, ZoneKind, ZoneRule
 
-__all__ = ["ZoneColumn", "ZoneSet", "prepare_zones", "buffer_ground"]
+__all__ = ["ZoneColumn", "ZoneSet", "prepare_zones", "buffer_ground", "pick_variant", "vector_pieces"]
 
 logger = logging.getLogger(__name__)
 
@@ -327,6 +327,20 @@ def _polygonal(geom):
     return shapely.union_all(parts) if parts else shapely.Polygon()
 
 
+def pick_variant(variants: dict, ctx):
+    """The zone geometry that applies to a class of land-use context ``ctx``.
+
+    ``variants`` maps a context (or None for "all contexts") to a geometry: the
+    all-contexts one wins, else the class's own context, else the widest strip
+    (a class without a context is held to the most cautious width).
+    """
+    if None in variants:
+        return variants[None]
+    if ctx in variants:
+        return variants[ctx]
+    return max(variants.values(), key=lambda gg: gg.area)
+
+
 def vector_pieces(zones: ZoneSet, rules: Rulebook, parcel_geoms: np.ndarray, class_names: np.ndarray):
     """Exact intersection pieces of parcels with vector zones.
 
@@ -342,11 +356,7 @@ def vector_pieces(zones: ZoneSet, rules: Rulebook, parcel_geoms: np.ndarray, cla
     out_g, out_p, out_r = [], [], []
 
     def variant(col: ZoneColumn, ctx):
-        if None in col.variants:
-            return col.variants[None]
-        if ctx in col.variants:
-            return col.variants[ctx]
-        return max(col.variants.values(), key=lambda gg: gg.area)  # no context: the widest strip
+        return pick_variant(col.variants, ctx)
 
     def add_pieces(target, sel_idx, role):
         parts = shapely.get_parts(target)
