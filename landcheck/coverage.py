@@ -506,33 +506,44 @@ def _coverage_kernel(x, y, ring_offsets, ring_is_hole, feature_ring_start, featu
             if lo_j > top:  # only pieces right of the box: nothing inside it on this row
                 full[base + nc] = 0.0
                 continue
-            # right to left: cell j receives every piece in a column right of j
+            # right to left: cell j receives every piece in a column right of j; the row's
+            # cells are emitted east to west, then that stretch is reversed
+            out_f, out_r, out_c, out_x = _grow(out_f, out_r, out_c, out_x, n_out + (top - lo_j + 1))
+            row_start = n_out
             acc = 0.0
             for j in range(top, lo_j - 1, -1):
                 acc += full[base + j + 1]
                 full[base + j + 1] = 0.0
                 val = cov[base + j] + acc
+                cov[base + j] = 0.0
                 if touched[base + j]:
+                    touched[base + j] = 0
                     if val > 1.0:
                         val = 1.0
                 elif val > 0.5:  # no boundary inside the cell: exactly in or out
                     val = 1.0
                 else:
                     val = 0.0
-                cov[base + j] = val
-            full[base + lo_j] = 0.0
-            # left to right: emit and clear
-            out_f, out_r, out_c, out_x = _grow(out_f, out_r, out_c, out_x, n_out + (top - lo_j + 1))
-            for j in range(lo_j, top + 1):
-                val = cov[base + j]
-                cov[base + j] = 0.0
-                touched[base + j] = 0
                 if val > min_fraction:
-                    out_f[n_out] = feat
-                    out_r[n_out] = r0 + i
                     out_c[n_out] = c0 + j
                     out_x[n_out] = val
                     n_out += 1
+            full[base + lo_j] = 0.0
+            row = r0 + i
+            lo_o = row_start
+            hi_o = n_out - 1
+            while lo_o < hi_o:
+                tc = out_c[lo_o]
+                out_c[lo_o] = out_c[hi_o]
+                out_c[hi_o] = tc
+                tx = out_x[lo_o]
+                out_x[lo_o] = out_x[hi_o]
+                out_x[hi_o] = tx
+                lo_o += 1
+                hi_o -= 1
+            for o in range(row_start, n_out):
+                out_f[o] = feat
+                out_r[o] = row
     return out_f, out_r, out_c, out_x, n_out
 
 
