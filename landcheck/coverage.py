@@ -4,8 +4,8 @@ For every polygon and every raster cell this module computes the *coverage
 fraction*: the share of the cell's planar area (in the raster CRS) that lies
 inside the polygon, a number in (0, 1].  Weighting cell values by these
 fractions gives exact per-parcel area shares for straight-edged polygons, up
-to floating-point rounding; the cell-centre rule does not (see
-``/work/shared/REFERENCES.md`` section 6.2).
+to floating-point rounding; the cell-centre rule does not (REFERENCES.md
+section 6.2: a 1.5 x 1.5-cell square counts 1 to 4 cells under it).
 
 Method (Green's theorem, derived here)
 --------------------------------------
@@ -43,8 +43,12 @@ lines into sub-pieces lying in one column ``j``; along a straight sub-piece
 
 The "every column to the left" part is kept as one number per sub-piece in a
 difference array and turned into per-cell values by one suffix sum per row.
-The cost per polygon is proportional to the number of boundary/grid-line
-crossings plus the cells of its bounding box inside the window.
+Within a row, cells left of the first and right of the last sub-piece get
+the sum of all the row's ``dv``, which is 0 because the clipped boundary is
+closed; so only the stretch between them is read (pieces left of the window,
+see below, extend that stretch to the window's first column).  The cost per
+polygon is proportional to its boundary/grid-line crossings plus its covered
+cells, not to its bounding box.
 
 Orientation and holes.  The signed area ``A`` of each ring is computed with
 the shoelace formula in CRS units.  An exterior ring's contributions are
@@ -73,8 +77,9 @@ checked where parcels are read, not here.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import NamedTuple, Sequence
+from typing import NamedTuple
 
 import numpy as np
 import shapely
@@ -83,10 +88,10 @@ from .errors import InputDataError
 
 __all__ = [
     "MIN_FRACTION",
-    "PreparedPolygons",
     "CoverageTriplets",
-    "prepare_polygons",
+    "PreparedPolygons",
     "coverage_triplets",
+    "prepare_polygons",
 ]
 
 #: coverage fractions at or below this (in cells) are treated as rounding noise and not reported
@@ -344,10 +349,10 @@ def _coverage_kernel(x, y, ring_offsets, ring_is_hole, feature_ring_start, featu
             vmax = max(vmax, v)
         if not (umax > umin and vmax > vmin):  # zero width/height or NaN: no area
             continue
-        c0 = max(int(math.floor(max(umin, -1.0))), 0)
-        c1 = min(int(math.ceil(min(umax, width + 1.0))), width)
-        r0 = max(int(math.floor(max(vmin, -1.0))), 0)
-        r1 = min(int(math.ceil(min(vmax, height + 1.0))), height)
+        c0 = max(math.floor(max(umin, -1.0)), 0)
+        c1 = min(math.ceil(min(umax, width + 1.0)), width)
+        r0 = max(math.floor(max(vmin, -1.0)), 0)
+        r1 = min(math.ceil(min(vmax, height + 1.0)), height)
         if c0 >= c1 or r0 >= r1:
             continue
         nr = r1 - r0
@@ -398,9 +403,9 @@ def _coverage_kernel(x, y, ring_offsets, ring_is_hole, feature_ring_start, featu
                     # horizontal: no dv, but it cuts the cells it runs through (unless on a grid line)
                     if v0 < r0 or v0 >= r1 or v0 == math.floor(v0):
                         continue
-                    il = int(math.floor(v0)) - r0
-                    ja = max(int(math.floor(min(max(min(u0, u1), u_lo_lim), u_hi_lim))), c0)
-                    jb = min(int(math.ceil(min(max(max(u0, u1), u_lo_lim), u_hi_lim))) - 1, c1 - 1)
+                    il = math.floor(v0) - r0
+                    ja = max(math.floor(min(max(min(u0, u1), u_lo_lim), u_hi_lim)), c0)
+                    jb = min(math.ceil(min(max(max(u0, u1), u_lo_lim), u_hi_lim)) - 1, c1 - 1)
                     if jb >= ja:
                         base = il * stride
                         for j in range(ja, jb + 1):
@@ -414,8 +419,8 @@ def _coverage_kernel(x, y, ring_offsets, ring_is_hole, feature_ring_start, featu
                     w = -w
                 if v1 <= r0 or v0 >= r1:
                     continue
-                i_first = max(int(math.floor(max(v0, r0 - 1.0))), r0)
-                i_last = min(int(math.ceil(min(v1, r1 + 1.0))) - 1, r1 - 1)
+                i_first = max(math.floor(max(v0, r0 - 1.0)), r0)
+                i_last = min(math.ceil(min(v1, r1 + 1.0)) - 1, r1 - 1)
                 du_dv = (u1 - u0) / (v1 - v0)
                 for i in range(i_first, i_last + 1):
                     # ---- the edge's piece in row strip i: (ua, va) -> (ub, vb) ----
@@ -441,14 +446,14 @@ def _coverage_kernel(x, y, ring_offsets, ring_is_hole, feature_ring_start, featu
                     step = 1
                     dv_du = 0.0
                     if ub > ua:
-                        k_first = max(int(math.floor(min(max(ua, u_lo_lim), u_hi_lim))) + 1, c0)
-                        k_last = min(int(math.ceil(min(max(ub, u_lo_lim), u_hi_lim))) - 1, c1)
+                        k_first = max(math.floor(min(max(ua, u_lo_lim), u_hi_lim)) + 1, c0)
+                        k_last = min(math.ceil(min(max(ub, u_lo_lim), u_hi_lim)) - 1, c1)
                         n_cross = max(k_last - k_first + 1, 0)
                         dv_du = (vb - va) / (ub - ua)
                     elif ub < ua:
                         step = -1
-                        k_first = min(int(math.ceil(min(max(ua, u_lo_lim), u_hi_lim))) - 1, c1)
-                        k_last = max(int(math.floor(min(max(ub, u_lo_lim), u_hi_lim))) + 1, c0)
+                        k_first = min(math.ceil(min(max(ua, u_lo_lim), u_hi_lim)) - 1, c1)
+                        k_last = max(math.floor(min(max(ub, u_lo_lim), u_hi_lim)) + 1, c0)
                         n_cross = max(k_first - k_last + 1, 0)
                         dv_du = (vb - va) / (ub - ua)
                     pa = ua
@@ -473,10 +478,8 @@ def _coverage_kernel(x, y, ring_offsets, ring_is_hole, feature_ring_start, featu
                             span_hi[il] = nc
                         else:
                             jl = min(max(int(lo) - c0, 0), nc - 1)  # lo >= c0 >= 0 here
-                            if jl < span_lo[il]:
-                                span_lo[il] = jl
-                            if jl > span_hi[il]:
-                                span_hi[il] = jl
+                            span_lo[il] = min(span_lo[il], jl)
+                            span_hi[il] = max(span_hi[il], jl)
                             k = base + jl
                             # the piece cuts the cell's interior unless it runs along a
                             # vertical grid line (u = j), a horizontal one, or is a point
@@ -518,8 +521,7 @@ def _coverage_kernel(x, y, ring_offsets, ring_is_hole, feature_ring_start, featu
                 cov[base + j] = 0.0
                 if touched[base + j]:
                     touched[base + j] = 0
-                    if val > 1.0:
-                        val = 1.0
+                    val = min(val, 1.0)
                 elif val > 0.5:  # no boundary inside the cell: exactly in or out
                     val = 1.0
                 else:

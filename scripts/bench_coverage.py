@@ -41,7 +41,7 @@ def random_parcels(n: int, seed: int) -> tuple[np.ndarray, int]:
     """``n`` parcels of 0.1-13 ha and the side (cells) of a square grid they cover about once."""
     rng = np.random.default_rng(seed)
     area_m2 = rng.uniform(0.1e4, 13e4, n)
-    side = int(math.ceil(math.sqrt(area_m2.sum()) / CELL_M))
+    side = math.ceil(math.sqrt(area_m2.sum()) / CELL_M)
     n_vert = rng.choice([4, 6], n)
     aspect = rng.uniform(1.0, 3.0, n)
     angle = rng.uniform(0, np.pi, n)
@@ -129,9 +129,9 @@ def main() -> None:
 
         if args.no_exactextract:
             continue
+        import exactextract
         import geopandas as gpd
         import pyproj
-        import exactextract
         from exactextract.raster import NumPyRasterSource
 
         gdf = gpd.GeoDataFrame(geometry=geoms, crs=CRS)

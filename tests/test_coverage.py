@@ -437,7 +437,7 @@ def test_plain_python_kernel_matches_compiled():
     sel = np.arange(len(feats), dtype=np.int64)
     args = (p.x, p.y, p.ring_offsets, p.ring_is_hole, p.feature_ring_start, p.feature_ring_stop, sel,
             t.a, t.c, t.e, t.f, 6, 7, MIN_FRACTION)
-    bufs = lambda: (np.empty(16, np.int64), np.empty(16, np.int32), np.empty(16, np.int32), np.empty(16))  # noqa: E731
+    bufs = lambda: (np.empty(16, np.int64), np.empty(16, np.int32), np.empty(16, np.int32), np.empty(16))
     compiled = _coverage_kernel(*args, *bufs())
     python = getattr(_coverage_kernel, "py_func", _coverage_kernel)(*args, *bufs())
     n = compiled[4]
