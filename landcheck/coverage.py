@@ -192,7 +192,10 @@ def _areal_parts(geoms: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return parts[keep], index[keep]
 
 
-def _as_geometry_array(geoms) -> np.ndarray:
+def _as_geometry_array(geoms) -> tuple[np.ndarray, np.ndarray]:
+    """Geometries as a 1-D object array, and their shapely type ids (-1 for None)."""
+    if hasattr(geoms, "geometry") and hasattr(geoms, "columns"):  # GeoDataFrame: its active geometry
+        geoms = geoms.geometry
     values = getattr(geoms, "values", geoms)  # GeoSeries -> GeometryArray
     try:
         arr = np.asarray(values, dtype=object).reshape(-1)
@@ -210,8 +213,8 @@ def prepare_polygons(geoms: Sequence) -> PreparedPolygons:
 
     Parameters
     ----------
-    geoms : sequence of shapely geometries (list, ndarray, GeoSeries)
-        Polygons or MultiPolygons in the raster CRS.  ``None``, empty and
+    geoms : sequence of shapely geometries (list, ndarray, GeoSeries, GeoDataFrame)
+        Polygons or MultiPolygons in the raster CRS (no reprojection here).  ``None``, empty and
         non-areal geometries (points, lines) are kept as features with no
         rings, so they never produce a covered cell; a GeometryCollection
         contributes its polygon members.  Z values are ignored.

@@ -405,15 +405,20 @@ def test_non_geometry_input_is_rejected():
         coverage_triplets(["not a polygon"], _transform(), 4, 4)
 
 
-def test_geoseries_input_and_threads_match_serial():
-    # Invariant: a GeoSeries is read like a list; windows computed in threads (the kernel releases
-    # the GIL) give the same triplets as a serial run.
+def test_geopandas_input_and_threads_match_serial():
+    # Invariant: a GeoSeries or GeoDataFrame is read like a list; windows computed in threads (the
+    # kernel releases the GIL) give the same triplets as a serial run.
     import geopandas as gpd
 
     rng = np.random.default_rng(8)
     t = _transform()
     feats = _random_features(rng, t, 30, 30, 40)
     prepared = prepare_polygons(gpd.GeoSeries(feats, crs=CRS))
+    from_frame = prepare_polygons(gpd.GeoDataFrame({"parcel_id": np.arange(40)}, geometry=feats, crs=CRS))
+    from_list = prepare_polygons(feats)
+    for name in ("x", "y", "ring_offsets", "ring_is_hole", "feature_ring_start", "feature_ring_stop"):
+        assert np.array_equal(getattr(prepared, name), getattr(from_list, name))
+        assert np.array_equal(getattr(from_frame, name), getattr(from_list, name))
     wins = list(iter_windows(30, 30, 8))
 
     def run(win):
