@@ -28,7 +28,8 @@ from .grid import Window, iter_windows
 from .inputs import DemSource, ZUnit, open_dem
 from .layers import ground_areas, read_parcels
 from .outputs import RasterSink, check_output_path, staged_folder, write_csv, write_gpkg, write_json
-from .overlay import CONFLICT_OUTSIDE, ROLE_PARCEL, OverlayPlan, Totals, accumulate_window, coverage_triplets
+from .coverage import coverage_triplets, prepare_polygons
+from .overlay import CONFLICT_OUTSIDE, ROLE_PARCEL, OverlayPlan, Totals, accumulate_window
 from .rules import Rulebook, load_rules
 from .terrain import SlopeMethod, gradient_to_unit
 from .engines import map_windows
@@ -132,31 +133,24 @@ def _build_plan(rules: Rulebook, class_names: np.ndarray, area_factor: np.ndarra
 class _WindowJob:
     """The per-window task: slope, zone bits, exact coverage, sums.  Picklable for Dask."""
 
-    def __init__(self, dem: DemSource, method: SlopeMethod, geoms: np.ndarray, plan: OverlayPlan,
-                 zones=None):
-        import shapely
-
+    def __init__(self, dem: DemSource, method: SlopeMethod, geoms: np.ndarray, plan: OverlayPlan, zones=None):
         self.dem = dem
         self.method = method
-        self.geoms = geoms
+        self.polygons = prepare_polygons(geoms)  # flattened once; each window picks what meets it
+        self.all_index = np.arange(len(geoms), dtype=np.int64)
         self.plan = plan
         self.zones = zones
-        self.tree = shapely.STRtree(geoms)
 
     def __call__(self, win: Window):
-        import shapely
-
         g = self.dem.grid
         grad = slope_window(self.dem, win, self.method)
         slope_pct = gradient_to_unit(grad, "percent")
         zone_bits = self.zones.bits(win) if self.zones is not None else None
         land_mask = self.zones.land(win) if self.zones is not None else None
-        box = shapely.box(*g.window_bounds(win))
-        cand = self.tree.query(box, predicate="intersects")
-        cand.sort()
-        trip = coverage_triplets(self.geoms[cand], g.window_transform(win), win.height, win.width)
+        trip = coverage_triplets(self.polygons, g.window_transform(win), win.height, win.width)
         rows = np.arange(win.row_off, win.row_off + win.height)
-        sums, conflict = accumulate_window(slope_pct, zone_bits, g.cell_area_m2(rows), cand, trip, self.plan, land_mask)
+        sums, conflict = accumulate_window(slope_pct, zone_bits, g.cell_area_m2(rows), self.all_index, tuple(trip),
+                                           self.plan, land_mask)
         return sums, slope_pct, conflict
 
 

@@ -8,8 +8,8 @@ area, area over each threshold, zone areas, conflict area — that merge across
 windows by plain addition (maximum for the slope maximum).  A parcel spanning
 many windows therefore gets the same numbers as in one whole-raster pass.
 
-Coverage fractions come from :func:`coverage_triplets` (exact polygon/cell
-intersection areas, never cell centres).
+Coverage fractions come from :func:`landcheck.coverage.coverage_triplets`
+(exact polygon/cell intersection areas, never cell centres).
 """
 
 from __future__ import annotations
@@ -18,67 +18,12 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["OverlayPlan", "WindowSums", "Totals", "coverage_triplets", "accumulate_window", "CONFLICT_OUTSIDE"]
+__all__ = ["OverlayPlan", "WindowSums", "Totals", "accumulate_window", "CONFLICT_OUTSIDE"]
 
 #: conflict-raster value for cells outside every parcel
 CONFLICT_OUTSIDE = 255
 #: slope-histogram bin edges (percent) used for charts: 1-point bins to 100 %, then one open bin
 HIST_EDGES_PCT = np.concatenate([np.arange(0.0, 101.0, 1.0), [np.inf]])
-
-
-def coverage_triplets(geoms, window_transform, height: int, width: int):
-    """Exact coverage of each polygon over the cells of one window.
-
-    Returns ``(feature_index, row, col, fraction)`` for every pair with a
-    fraction > 0; rows and cols are relative to the window.
-    """
-    try:
-        from .coverage import coverage_triplets as _fast
-    except ImportError:
-        _fast = None
-    if _fast is not None:
-        return _fast(geoms, window_transform, height, width)
-    return _coverage_exactextract(geoms, window_transform, height, width)
-
-
-_DUMMY_CRS = "EPSG:3857"
-_DUMMY_WKT = None
-
-
-def _coverage_exactextract(geoms, window_transform, height, width):
-    global _DUMMY_WKT
-    if _DUMMY_WKT is None:
-        import pyproj
-
-        _DUMMY_WKT = pyproj.CRS(_DUMMY_CRS).to_wkt()
-    import geopandas as gpd
-    from exactextract import exact_extract
-    from exactextract.raster import NumPyRasterSource
-
-    empty = (np.empty(0, np.int64), np.empty(0, np.int32), np.empty(0, np.int32), np.empty(0, np.float64))
-    if len(geoms) == 0:
-        return empty
-    t = window_transform
-    xmin, ymax = t.c, t.f
-    xmax, ymin = t.c + t.a * width, t.f + t.e * height
-    # coverage is pure geometry: any CRS will do as long as raster and vector carry the same one
-    src = NumPyRasterSource(np.zeros((height, width), np.uint8), xmin, ymin, xmax, ymax, srs_wkt=_DUMMY_WKT)
-    gdf = gpd.GeoDataFrame({"fi": np.arange(len(geoms))}, geometry=list(geoms), crs=_DUMMY_CRS)
-    import warnings
-
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        res = exact_extract(src, gdf, ["cell_id", "coverage"], output="pandas", include_cols=["fi"])
-    if len(res) == 0:
-        return empty
-    counts = np.array([len(c) for c in res["coverage"]], dtype=np.int64)
-    if counts.sum() == 0:
-        return empty
-    fi = np.repeat(res["fi"].to_numpy(np.int64), counts)
-    cell = np.concatenate([np.asarray(c, np.int64) for c in res["cell_id"]])
-    frac = np.concatenate([np.asarray(c, np.float64) for c in res["coverage"]])
-    keep = frac > 0
-    return fi[keep], (cell[keep] // width).astype(np.int32), (cell[keep] % width).astype(np.int32), frac[keep]
 
 
 #: role of a geometry in the coverage step: the parcel itself
@@ -227,8 +172,8 @@ def accumulate_window(
     candidates : ndarray of int
         Global geometry indices passed to the coverage step, in the order of ``triplets[0]``.
     triplets : tuple
-        ``(feature_index, row, col, fraction)`` from :func:`coverage_triplets`; feature_index
-        indexes ``candidates``.
+        ``(feature_index, row, col, fraction)`` from :func:`landcheck.coverage.coverage_triplets`;
+        feature_index indexes ``candidates``.
     plan : OverlayPlan
     land_mask : ndarray (h, w) of bool, optional
         Cells that count as land for the capability figure (default: every cell with a slope).

@@ -648,7 +648,7 @@ def _raster_forbidden_bits(rules: Rulebook, cls: ClassRule) -> int:
 
 
 def _coverage_grid(geom, grid: GridSpec, win: Window) -> np.ndarray:
-    from .overlay import coverage_triplets
+    from .coverage import coverage_triplets
 
     frac = np.zeros((win.height, win.width))
     if geom is None or geom.is_empty:
