@@ -29,7 +29,7 @@ from .inputs import DemSource, ZUnit, open_dem
 from .layers import ground_areas, read_parcels
 from .outputs import RasterSink, check_output_path, staged_folder, write_csv, write_gpkg, write_json
 from .coverage import coverage_triplets, prepare_polygons
-from .overlay import CONFLICT_OUTSIDE, ROLE_PARCEL, OverlayPlan, Totals, accumulate_window
+from .overlay import CONFLICT_OUTSIDE, ROLE_PARCEL, OverlayPlan, Totals, accumulate_window_compiled
 from .rules import Rulebook, load_rules
 from .terrain import SlopeMethod, gradient_to_unit
 from .engines import map_windows
@@ -149,8 +149,8 @@ class _WindowJob:
         land_mask = self.zones.land(win) if self.zones is not None else None
         trip = coverage_triplets(self.polygons, g.window_transform(win), win.height, win.width)
         rows = np.arange(win.row_off, win.row_off + win.height)
-        sums, conflict = accumulate_window(slope_pct, zone_bits, g.cell_area_m2(rows), self.all_index, tuple(trip),
-                                           self.plan, land_mask)
+        sums, conflict = accumulate_window_compiled(slope_pct, zone_bits, g.cell_area_m2(rows), self.all_index,
+                                                    tuple(trip), self.plan, land_mask)
         return sums, slope_pct, conflict
 
 

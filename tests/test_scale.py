@@ -1,0 +1,162 @@
+"""Invariants of the fast paths: compiled window reduction == NumPy reference, float32 reads == float64 reads.
+
+Speed itself is measured by scripts/benchmark.py, never here.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+import pytest
+import shapely
+from affine import Affine
+from shapely import affinity
+
+from landcheck.coverage import coverage_triplets, prepare_polygons
+from landcheck.overlay import (CONFLICT_OUTSIDE, ROLE_FORBIDDEN_PIECE, ROLE_PARCEL, OverlayPlan,
+                               accumulate_window, accumulate_window_compiled)
+
+CELL_M = 10.0
+
+
+def _lots(rng, n, size_cells, extent_cells):
+    """``n`` rotated rectangles (they may overlap: the reduction must not care) in a grid of ``extent_cells``."""
+    out = []
+    for _ in range(n):
+        x, y = rng.uniform(-2, extent_cells - 2, 2) * CELL_M
+        w, h = rng.uniform(0.3, size_cells, 2) * CELL_M
+        out.append(affinity.rotate(shapely.box(x, -y - h, x + w, -y), rng.uniform(0, 90), origin="centroid"))
+    return out
+
+
+def _plan_with_zones(rng, parcels, zone_polys):
+    """Parcels + their pieces in two vector zone columns and one forbidden-piece role; two raster channels."""
+    n = len(parcels)
+    pieces, piece_parcel, piece_role = [], [], []
+    for i, p in enumerate(parcels):
+        for role, z in ((0, zone_polys[0]), (1, zone_polys[1]), (ROLE_FORBIDDEN_PIECE, zone_polys[0])):
+            inter = p.intersection(z)
+            if not inter.is_empty and inter.area > 0:
+                pieces.append(inter)
+                piece_parcel.append(i)
+                piece_role.append(role)
+    thresholds = np.array([5.0, 10.0, 15.0, 18.0, 25.0, 40.0])
+    plan = OverlayPlan(
+        thresholds_pct=thresholds,
+        limit_index=rng.integers(-1, len(thresholds), n),
+        near_index=rng.integers(-1, len(thresholds), n),
+        raster_forbid_bits=rng.integers(0, 4, n).astype(np.uint32),
+        zone_forbid_bits=rng.integers(0, 16, n).astype(np.uint32),
+        area_factor=rng.uniform(0.999, 1.001, n),
+        class_index=rng.integers(-1, 3, n),
+        n_classes=3,
+        geom_parcel=np.concatenate([np.arange(n), piece_parcel]).astype(np.int64),
+        geom_role=np.concatenate([np.full(n, ROLE_PARCEL), piece_role]).astype(np.int64),
+        # columns: two vector columns (zones 0 and 1), two raster channels (zones 2 and 3), one report-only raster
+        col_channel=np.array([-1, -1, 0, 1, 1], np.int64),
+        col_zone=np.array([0, 1, 2, 3, -1], np.int64),
+        capability_limit_pct=18.0,
+        ground_factor=1.0002,
+    )
+    return plan, list(parcels) + pieces
+
+
+def _assert_same(a, b):
+    for f in dataclasses.fields(a):
+        np.testing.assert_array_equal(getattr(a, f.name), getattr(b, f.name), err_msg=f.name)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_compiled_reduction_equals_reference_bit_for_bit(seed):
+    # Invariant: the compiled loop adds the same terms in the same order as np.bincount / np.add.at in the
+    # NumPy reference, so every sum is bit-identical, with raster zones, vector pieces, NaN slopes and
+    # overlapping parcels (the conflict-raster pick then decides by largest fraction, then lower index).
+    rng = np.random.default_rng(seed)
+    h, w = 37, 53
+    parcels = _lots(rng, 40, 9, 50)
+    zones = [shapely.box(0, -200, 300, 0), affinity.rotate(shapely.box(150, -370, 420, -120), 30)]
+    plan, geoms = _plan_with_zones(rng, parcels, zones)
+    prepared = prepare_polygons(np.array(geoms, dtype=object))
+    slope = rng.gamma(2.0, 8.0, (h, w)).astype(np.float32)
+    slope[rng.random((h, w)) < 0.08] = np.nan
+    slope[:, 20] = 18.0  # exactly on a threshold: "at or over" must agree
+    bits = rng.integers(0, 4, (h, w)).astype(np.uint32)
+    land = rng.random((h, w)) < 0.9
+    cell_area = np.full(h, CELL_M * CELL_M) * rng.uniform(0.99, 1.01, h)
+    for win_transform, hh, ww, sl in [(Affine(CELL_M, 0, 0, 0, -CELL_M, 0), h, w, np.s_[:, :]),
+                                      (Affine(CELL_M, 0, 100, 0, -CELL_M, -50), 20, 30, np.s_[5:25, 10:40])]:
+        trip = tuple(coverage_triplets(prepared, win_transform, hh, ww))
+        cand = np.arange(len(geoms), dtype=np.int64)
+        ref, ref_tile = accumulate_window(slope[sl], bits[sl], cell_area[sl[0]], cand, trip, plan, land[sl])
+        got, got_tile = accumulate_window_compiled(slope[sl], bits[sl], cell_area[sl[0]], cand, trip, plan, land[sl])
+        assert len(ref.parcels) > 5
+        _assert_same(ref, got)
+        np.testing.assert_array_equal(ref_tile, got_tile)
+        # and without raster zones / land mask
+        ref, ref_tile = accumulate_window(slope[sl], None, cell_area[sl[0]], cand, trip, plan)
+        got, got_tile = accumulate_window_compiled(slope[sl], None, cell_area[sl[0]], cand, trip, plan)
+        _assert_same(ref, got)
+        np.testing.assert_array_equal(ref_tile, got_tile)
+
+
+def test_compiled_reduction_closed_form_values():
+    # Source: closed form. One 2 x 3-cell parcel on a 10 m grid; slope 10 % on the west column, 20 % in the
+    # middle, NaN on the east: covered = 6 cells x 100 m2, evaluated = 4 cells, area >= 18 % = 2 cells,
+    # area-weighted mean slope = 15 %, maximum 20 %; with an 18 % limit the conflict raster flags the middle
+    # column (bit 1) and leaves cells outside the parcel at 255.
+    parcel = shapely.box(0, -20, 30, 0)
+    plan = OverlayPlan(np.array([18.0]), np.array([0]), np.array([-1]), np.zeros(1, np.uint32),
+                       np.zeros(1, np.uint32), np.ones(1), np.array([0]), 1, np.array([0]), np.array([ROLE_PARCEL]),
+                       np.empty(0, np.int64), np.empty(0, np.int64), None)
+    slope = np.array([[10, 20, np.nan, 5], [10, 20, np.nan, 5], [1, 1, 1, 1]], np.float32)
+    trip = tuple(coverage_triplets([parcel], Affine(CELL_M, 0, 0, 0, -CELL_M, 0), 3, 4))
+    s, tile = accumulate_window_compiled(slope, None, np.full(3, 100.0), np.array([0]), trip, plan)
+    assert s.covered_m2.tolist() == [600.0]
+    assert s.evaluated_m2.tolist() == [400.0]
+    assert s.over_m2.tolist() == [[200.0]]
+    assert s.slope_area_sum[0] / s.evaluated_m2[0] == pytest.approx(15.0)
+    assert s.slope_max_pct.tolist() == [20.0]
+    assert s.conflict_m2.tolist() == [200.0]
+    np.testing.assert_array_equal(tile, [[0, 1, 0, CONFLICT_OUTSIDE], [0, 1, 0, CONFLICT_OUTSIDE],
+                                         [CONFLICT_OUTSIDE] * 4])
+
+
+def test_compiled_reduction_empty_window():
+    # Common practice: a window no parcel touches gives no per-parcel sums and an all-"outside" tile.
+    plan = OverlayPlan(np.array([18.0]), np.array([0]), np.array([-1]), np.zeros(1, np.uint32),
+                       np.zeros(1, np.uint32), np.ones(1), np.array([0]), 1, np.array([0]), np.array([ROLE_PARCEL]),
+                       np.empty(0, np.int64), np.empty(0, np.int64), None)
+    empty = (np.empty(0, np.int64), np.empty(0, np.int32), np.empty(0, np.int32), np.empty(0))
+    s, tile = accumulate_window_compiled(np.ones((4, 5), np.float32), None, np.full(4, 100.0), np.array([0]), empty, plan)
+    assert s.parcels.size == 0 and s.land_m2 == pytest.approx(2000.0)
+    assert (tile == CONFLICT_OUTSIDE).all()
+
+
+@pytest.mark.parametrize("dtype,nodata", [("float32", -9999.0), ("int16", -32768), ("float64", -9999.0)])
+def test_float32_reads_hold_the_same_numbers(tmp_path, dtype, nodata):
+    # Invariant: reading a window as float32 (when exact) gives the very numbers of the float64 read,
+    # so slopes computed from either are bit-identical (the compiled loop widens each value to float64).
+    from landcheck.grid import Window
+    from landcheck.inputs import open_dem
+    from landcheck.terrain import slope_gradient
+
+    from _support import write_raster
+
+    rng = np.random.default_rng(5)
+    z = (rng.normal(0, 30, (60, 70)).cumsum(axis=1) + 500).astype(dtype)
+    z[10:13, 20:24] = nodata
+    dem = open_dem(write_raster(tmp_path / "d.tif", z, nodata=nodata, dtype=dtype))
+    win = Window(3, 4, 50, 60)
+    a64 = dem.read_with_halo(win, 1)
+    a32 = dem.read_with_halo(win, 1, np.float32)
+    assert a32.dtype == (np.float64 if dtype == "float64" else np.float32)
+    np.testing.assert_array_equal(a64, a32.astype(np.float64))
+    assert np.isnan(a32[10 - 3 + 1, 20 - 4 + 1])  # the nodata block is NaN in both
+    hx = hy = np.full(win.height, 10.0)
+    for method in ("horn", "zevenbergen-thorne"):
+        g64 = slope_gradient(a64, hx, hy, method, backend="compiled")
+        g32 = slope_gradient(a32, hx, hy, method, backend="compiled")
+        ref = slope_gradient(a64, hx, hy, method, backend="numpy")
+        np.testing.assert_array_equal(g64, g32)
+        np.testing.assert_array_equal(g64, ref)
