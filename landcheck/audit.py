@@ -27,7 +27,7 @@ from .evaluate import (SENSITIVITY_LIMITS_PCT, Verdict, evaluate_parcels, parcel
 from .grid import Window, iter_windows
 from .inputs import DemSource, ZUnit, open_dem
 from .layers import ground_areas, read_parcels
-from .outputs import RasterSink, check_output_path, staged_folder, write_csv, write_gpkg, write_json
+from .outputs import RasterFormat, RasterSink, check_output_path, staged_folder, write_csv, write_gpkg, write_json
 from .coverage import coverage_triplets, prepare_polygons
 from .overlay import CONFLICT_OUTSIDE, ROLE_PARCEL, OverlayPlan, Totals, accumulate_window_compiled
 from .rules import Rulebook, load_rules
@@ -174,6 +174,7 @@ def audit(
     on_step: Callable[[str], None] | None = None,
     engine: str = "threads",
     scheduler_address: str | None = None,
+    rasters: str = "cog",
 ) -> AuditResult:
     """Run the audit and write its output folder (docs/outputs.md).
 
@@ -250,9 +251,15 @@ def audit(
     totals = Totals(len(frame), len(plan.thresholds_pct), plan.n_cols, plan.n_classes)
     zone_names = [z.name for z in rules.zones]
     columns = zones.columns if zones is not None else []
+    raster_format = RasterFormat.from_user(rasters)  # cog | gtiff | none (docs/scale.md)
+    if raster_format is RasterFormat.NONE and make_report:
+        raise InputDataError("rasters='none' writes no slope or conflict raster, and the report maps need them; "
+                             "turn the report off (--no-report) or choose rasters 'cog' or 'gtiff'.")
     with staged_folder(out, overwrite=overwrite) as stage:
-        with RasterSink(stage / "slope_pct.tif", g, dtype="float32", nodata=np.nan, band_names=["slope_pct"]) as slope_sink, \
-                RasterSink(stage / "conflict.tif", g, dtype="uint8", nodata=CONFLICT_OUTSIDE,
+        with RasterSink(stage / "slope_pct.tif", g, dtype="float32", nodata=np.nan, band_names=["slope_pct"],
+                        fmt=raster_format) as slope_sink, \
+                RasterSink(stage / "conflict.tif", g, dtype="uint8", nodata=CONFLICT_OUTSIDE, fmt=raster_format,
+                           categorical=True,
                            band_names=["conflict bits: 1=slope" + "".join(f", {1 << (i + 1)}={z}" for i, z in enumerate(zone_names))]) as conflict_sink, \
                 progress_bar(len(windows), "audit", enabled=show_progress) as bar:
             for win, (sums, slope_pct, conflict) in map_windows(job, windows, engine=engine, workers=workers,

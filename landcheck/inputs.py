@@ -85,6 +85,9 @@ class DemSource:
         if ds is None or ds.closed:
             import rasterio
 
+            from .gdalcache import cap_gdal_cache
+
+            cap_gdal_cache()  # every DEM block passes GDAL's cache: keep it well below GDAL's 5 %-of-RAM default
             ds = rasterio.open(self.path)
             self._local.ds = ds
         return ds

@@ -160,3 +160,77 @@ def test_float32_reads_hold_the_same_numbers(tmp_path, dtype, nodata):
         ref = slope_gradient(a64, hx, hy, method, backend="numpy")
         np.testing.assert_array_equal(g64, g32)
         np.testing.assert_array_equal(g64, ref)
+
+
+def test_raster_formats_hold_the_same_cells(tmp_path):
+    # Invariant: the audit's numbers and raster cells do not depend on the raster format; "none" writes
+    # no raster.  Closed form too: on the ramp (slope 0.04 x %) the share over 18 % is the area share east
+    # of x = 450 m (see tests/test_audit.py).
+    import rasterio
+
+    from landcheck.audit import audit
+
+    from _support import ramp_dem, write_parcels, write_rules
+
+    x0, y0 = 400000.0, 1600000.0
+    dem = ramp_dem(tmp_path / "dem.tif")
+    rules = write_rules(tmp_path / "r.toml")
+    geoms = [affinity.rotate(shapely.box(x0 + 380, y0 - 500, x0 + 540, y0 - 430), 27, origin="centroid"),
+             shapely.box(x0 + 420, y0 - 700, x0 + 520, y0 - 600)]
+    parcels = write_parcels(tmp_path / "p.gpkg", geoms, pid=[1, 2], zoning=["R", "R"])
+    runs = {f: audit(dem, parcels, rules, tmp_path / f, make_report=False, rasters=f, tile_cells=50, workers=2)
+            for f in ("cog", "gtiff", "none")}
+    num = [c for c in runs["cog"].parcels.columns if runs["cog"].parcels[c].dtype.kind == "f"]
+    for f in ("gtiff", "none"):
+        np.testing.assert_array_equal(runs["cog"].parcels[num].to_numpy(), runs[f].parcels[num].to_numpy())
+    truth = [g.intersection(shapely.box(x0 + 450, y0 - 1e4, x0 + 1e4, y0 + 1e4)).area / g.area for g in geoms]
+    np.testing.assert_allclose(runs["gtiff"].parcels["over_limit_share"], truth, atol=1e-9)
+    for name in ("slope_pct.tif", "conflict.tif"):
+        with rasterio.open(tmp_path / "cog" / name) as a, rasterio.open(tmp_path / "gtiff" / name) as b:
+            np.testing.assert_array_equal(a.read(1), b.read(1))
+            assert b.profile["tiled"] and b.compression.name.lower() == "zstd"
+            assert a.overviews(1) or max(a.shape) <= 512  # COG: overviews once larger than a tile
+        assert not (tmp_path / "none" / name).exists()
+    assert not list((tmp_path / "gtiff").glob(".*"))  # no scratch left behind
+    with pytest.raises(Exception, match="report"):
+        audit(dem, parcels, rules, tmp_path / "r2", make_report=True, rasters="none")
+
+
+def test_categorical_cog_overviews_keep_codes(tmp_path):
+    # Common practice: overviews of a bit-flag raster are built by nearest neighbour, so every overview
+    # cell holds a code that occurs in the full-resolution raster (averaging would invent codes).
+    import rasterio
+    from rasterio.transform import from_origin
+
+    from landcheck.grid import GridSpec, Window
+    from landcheck.outputs import RasterSink
+
+    n = 1500
+    rng = np.random.default_rng(2)
+    codes = rng.choice(np.array([0, 1, 4, 255], np.uint8), (n, n))
+    grid = GridSpec(from_origin(400000, 1600000, 10, 10), "EPSG:32651", n, n, False)
+    with RasterSink(tmp_path / "c.tif", grid, dtype="uint8", nodata=255, categorical=True) as sink:
+        sink.write(Window(0, 0, n, n), codes)
+    with rasterio.open(tmp_path / "c.tif") as ds:
+        assert ds.overviews(1)
+        ov = ds.read(1, out_shape=(n // ds.overviews(1)[0], n // ds.overviews(1)[0]))
+    assert set(np.unique(ov)) <= {0, 1, 4, 255}
+
+
+def test_gdal_cache_is_capped_but_user_setting_wins(monkeypatch):
+    # Common practice (GDAL docs, GDAL_CACHEMAX): the block cache defaults to 5 % of RAM; streamed runs cap it.
+    from rasterio._env import get_gdal_config, set_gdal_config
+
+    from landcheck.gdalcache import GDAL_CACHE_CAP_BYTES, cap_gdal_cache
+
+    monkeypatch.delenv("GDAL_CACHEMAX", raising=False)
+    before = get_gdal_config("GDAL_CACHEMAX")
+    try:
+        set_gdal_config("GDAL_CACHEMAX", 2 * GDAL_CACHE_CAP_BYTES)
+        cap_gdal_cache()
+        assert int(get_gdal_config("GDAL_CACHEMAX")) == GDAL_CACHE_CAP_BYTES
+        set_gdal_config("GDAL_CACHEMAX", GDAL_CACHE_CAP_BYTES // 4)
+        cap_gdal_cache()  # never raises a smaller limit
+        assert int(get_gdal_config("GDAL_CACHEMAX")) == GDAL_CACHE_CAP_BYTES // 4
+    finally:
+        set_gdal_config("GDAL_CACHEMAX", int(before))
