@@ -49,8 +49,13 @@ def _hist_bin(edges, x, nb):
 def accumulate_pairs(slope_pct, zone_bits, has_zones, cell_area_m2, candidates, fi, rr, cc, frac,
                      geom_parcel, geom_role, thresholds_pct, limit_index, near_index, raster_forbid_bits,
                      zone_forbid_bits, area_factor, class_index, n_classes, col_channel, col_zone, hist_edges_pct,
-                     conflict_tile):
+                     conflict_tile, best_frac, best_parcel, vector_bits):
     """Per-parcel sums of one window; fills ``conflict_tile`` (h, w) in place (it must hold 255 on entry).
+
+    ``best_frac`` (-inf), ``best_parcel`` (-1) and ``vector_bits`` (0) are (h, w) scratch arrays
+    with those values on entry; the caller allocates them with NumPy, whose large allocations
+    get transparent huge pages (an allocation inside the compiled code page-faults 4 KiB at a
+    time, which costs more than the whole reduction of a window).
 
     Triplets ``fi, rr, cc, frac`` are grouped by feature (runs of equal ``fi``), as the coverage
     kernel emits them.  Returns ``(parcels, covered, evaluated, slope_sum, slope_max, over_m2,
@@ -92,9 +97,6 @@ def accumulate_pairs(slope_pct, zone_bits, has_zones, cell_area_m2, candidates, 
     slope_conflict = np.zeros(k)
     zone_m2 = np.zeros((k, n_cols))
     hist = np.zeros((n_classes, nb))
-    best_frac = np.full((h, w), -np.inf)
-    best_parcel = np.full((h, w), -1, np.int64)
-    vector_bits = np.zeros((h, w), np.uint32)
 
     r = -1
     for i in range(n):
@@ -188,3 +190,25 @@ def accumulate_pairs(slope_pct, zone_bits, has_zones, cell_area_m2, candidates, 
     near_conflict = near_p + near_f
     return (parcels, covered, evaluated, slope_sum, slope_max, over_m2, conflict, near_conflict, slope_conflict,
             zone_m2, hist)
+
+
+@numba.njit(cache=True, nogil=True)
+def land_counts(slope_pct, land_mask, has_land_mask, limit_pct):
+    """Per row: cells with a slope (inside ``land_mask`` when given) and those of them under ``limit_pct``.
+
+    Returns a (2, h) float64 array of exact counts (see ``overlay._land_counts``).
+    """
+    h, w = slope_pct.shape
+    out = np.zeros((2, h))
+    for row in range(h):
+        n_land = 0
+        n_within = 0
+        for col in range(w):
+            s = slope_pct[row, col]
+            if np.isfinite(s) and (not has_land_mask or land_mask[row, col]):
+                n_land += 1
+                if s < limit_pct:
+                    n_within += 1
+        out[0, row] = n_land
+        out[1, row] = n_within
+    return out

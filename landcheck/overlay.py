@@ -191,14 +191,7 @@ def accumulate_window(
     """
     h, w = slope_pct.shape
     fi, rr, cc, frac = triplets
-    valid_cells = np.isfinite(slope_pct)
-    land = valid_cells if land_mask is None else (valid_cells & land_mask)
-    row_area = cell_area_m2[:, None] * plan.ground_factor
-    land_m2 = float((row_area * land).sum())
-    land_within_m2 = 0.0
-    if plan.capability_limit_pct is not None:
-        within = land & (np.nan_to_num(slope_pct, nan=np.inf) < plan.capability_limit_pct)
-        land_within_m2 = float((row_area * within).sum())
+    land_m2, land_within_m2 = _land_sums(slope_pct, cell_area_m2, plan, land_mask)
     conflict_tile = np.full((h, w), CONFLICT_OUTSIDE, np.uint8)
     n_t = len(plan.thresholds_pct)
     nb = len(HIST_EDGES_PCT) - 1
@@ -295,16 +288,22 @@ def accumulate_window(
     return sums, conflict_tile
 
 
-def _land_sums(slope_pct, cell_area_m2, plan: OverlayPlan, land_mask):
-    valid_cells = np.isfinite(slope_pct)
-    land = valid_cells if land_mask is None else (valid_cells & land_mask)
-    row_area = cell_area_m2[:, None] * plan.ground_factor
-    land_m2 = float((row_area * land).sum())
-    land_within_m2 = 0.0
-    if plan.capability_limit_pct is not None:
-        within = land & (np.nan_to_num(slope_pct, nan=np.inf) < plan.capability_limit_pct)
-        land_within_m2 = float((row_area * within).sum())
+def _land_sums(slope_pct, cell_area_m2, plan: OverlayPlan, land_mask, counts=None):
+    """Land area of the window (cells with a slope, inside ``land_mask``) and the part under the
+    capability limit, in m2: exact per-row cell counts times the row's ground cell area."""
+    if counts is None:
+        counts = _land_counts(slope_pct, land_mask, plan.capability_limit_pct)
+    row_area = cell_area_m2 * plan.ground_factor
+    land_m2 = float((row_area * counts[0]).sum())
+    land_within_m2 = float((row_area * counts[1]).sum()) if plan.capability_limit_pct is not None else 0.0
     return land_m2, land_within_m2
+
+
+def _land_counts(slope_pct, land_mask, limit_pct):
+    land = np.isfinite(slope_pct) if land_mask is None else (np.isfinite(slope_pct) & land_mask)
+    # compared in float64, as the compiled loop does (a float32 comparison would round the limit first)
+    within = land & (slope_pct < np.float64(limit_pct)) if limit_pct is not None else np.zeros_like(land)
+    return np.stack([np.count_nonzero(land, axis=1), np.count_nonzero(within, axis=1)]).astype(np.float64)
 
 
 def accumulate_window_compiled(
@@ -326,7 +325,12 @@ def accumulate_window_compiled(
 
     h, w = slope_pct.shape
     fi, rr, cc, frac = triplets
-    land_m2, land_within_m2 = _land_sums(slope_pct, cell_area_m2, plan, land_mask)
+    slope_pct = np.ascontiguousarray(slope_pct, dtype=np.float32)
+    has_land_mask = land_mask is not None
+    lm = np.ascontiguousarray(land_mask, dtype=np.bool_) if has_land_mask else np.zeros((1, 1), np.bool_)
+    limit = plan.capability_limit_pct
+    counts = _overlay_compiled.land_counts(slope_pct, lm, has_land_mask, np.inf if limit is None else float(limit))
+    land_m2, land_within_m2 = _land_sums(slope_pct, cell_area_m2, plan, land_mask, counts)
     conflict_tile = np.full((h, w), CONFLICT_OUTSIDE, np.uint8)
     n_t = len(plan.thresholds_pct)
     nb = len(HIST_EDGES_PCT) - 1
@@ -337,7 +341,7 @@ def accumulate_window_compiled(
     has_zones = zone_bits is not None
     zb = np.ascontiguousarray(zone_bits, dtype=np.uint32) if has_zones else np.zeros((1, 1), np.uint32)
     out = _overlay_compiled.accumulate_pairs(
-        np.ascontiguousarray(slope_pct, dtype=np.float32), zb, has_zones,
+        slope_pct, zb, has_zones,
         np.ascontiguousarray(cell_area_m2, dtype=np.float64), np.asarray(candidates, dtype=np.int64),
         np.asarray(fi, dtype=np.int64), np.asarray(rr, dtype=np.int32), np.asarray(cc, dtype=np.int32),
         np.asarray(frac, dtype=np.float64), plan.geom_parcel.astype(np.int64, copy=False),
@@ -346,6 +350,7 @@ def accumulate_window_compiled(
         plan.raster_forbid_bits.astype(np.uint32, copy=False), plan.zone_forbid_bits.astype(np.uint32, copy=False),
         np.asarray(plan.area_factor, dtype=np.float64), plan.class_index.astype(np.int64, copy=False),
         int(plan.n_classes), plan.col_channel.astype(np.int64, copy=False), plan.col_zone.astype(np.int64, copy=False),
-        HIST_EDGES_PCT, conflict_tile)
+        HIST_EDGES_PCT, conflict_tile, np.full((h, w), -np.inf), np.full((h, w), -1, np.int64),
+        np.zeros((h, w), np.uint32))
     sums = WindowSums(*out, land_m2, land_within_m2)
     return sums, conflict_tile

@@ -56,7 +56,7 @@ def _plan_with_zones(rng, parcels, zone_polys):
         # columns: two vector columns (zones 0 and 1), two raster channels (zones 2 and 3), one report-only raster
         col_channel=np.array([-1, -1, 0, 1, 1], np.int64),
         col_zone=np.array([0, 1, 2, 3, -1], np.int64),
-        capability_limit_pct=18.0,
+        capability_limit_pct=10.2,  # float32(10.2) < 10.2: both paths must compare in float64
         ground_factor=1.0002,
     )
     return plan, list(parcels) + pieces
@@ -81,6 +81,7 @@ def test_compiled_reduction_equals_reference_bit_for_bit(seed):
     slope = rng.gamma(2.0, 8.0, (h, w)).astype(np.float32)
     slope[rng.random((h, w)) < 0.08] = np.nan
     slope[:, 20] = 18.0  # exactly on a threshold: "at or over" must agree
+    slope[:, 21] = np.float32(10.2)  # under the limit in float64, equal to it in float32
     bits = rng.integers(0, 4, (h, w)).astype(np.uint32)
     land = rng.random((h, w)) < 0.9
     cell_area = np.full(h, CELL_M * CELL_M) * rng.uniform(0.99, 1.01, h)
