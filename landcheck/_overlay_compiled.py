@@ -72,15 +72,18 @@ def accumulate_pairs(slope_pct, zone_bits, has_zones, cell_area_m2, candidates, 
     for i in range(n):
         if i == 0 or fi[i] != fi[i - 1]:
             n_runs += 1
+    run_start = np.empty(n_runs + 1, np.int64)
     run_parcel = np.empty(n_runs, np.int64)
     run_role = np.empty(n_runs, np.int64)
     r = -1
     for i in range(n):
         if i == 0 or fi[i] != fi[i - 1]:
             r += 1
+            run_start[r] = i
             g = candidates[fi[i]]
             run_parcel[r] = geom_parcel[g]
             run_role[r] = geom_role[g]
+    run_start[n_runs] = n
     parcels = np.unique(run_parcel)
     run_local = np.searchsorted(parcels, run_parcel)
     k = parcels.shape[0]
@@ -98,63 +101,93 @@ def accumulate_pairs(slope_pct, zone_bits, has_zones, cell_area_m2, candidates, 
     zone_m2 = np.zeros((k, n_cols))
     hist = np.zeros((n_classes, nb))
 
-    r = -1
-    for i in range(n):
-        if i == 0 or fi[i] != fi[i - 1]:
-            r += 1
+    # Every sum below adds its terms in triplet order, as the reference's np.bincount does; a parcel's
+    # own geometry is one run, so its sums can live in local variables for the length of the run.
+    for r in range(n_runs):
         gp = run_parcel[r]
         loc = run_local[r]
         role = run_role[r]
-        row = rr[i]
-        col = cc[i]
-        s = np.float64(slope_pct[row, col])
-        valid = np.isfinite(s)
-        a = frac[i] * cell_area_m2[row] * area_factor[gp]
-        reach = _count_le(thresholds_pct, s) if valid else 0
+        af = area_factor[gp]
         li = limit_index[gp]
         ni = near_index[gp]
-        slope_breach = valid and li >= 0 and reach > li
-        slope_near = valid and ni >= 0 and reach > ni
-        zb = zone_bits[row, col] if has_zones else np.uint32(0)
-        raster_breach = (zb & raster_forbid_bits[gp]) != 0
-        cell_breach = slope_breach or raster_breach
-        cell_near = slope_near or raster_breach
+        # "reach > li" (li thresholds or more are <= s) is "s >= thresholds[li]"
+        limit_s = thresholds_pct[li] if li >= 0 else np.inf
+        near_s = thresholds_pct[ni] if ni >= 0 else np.inf
+        rforbid = raster_forbid_bits[gp]
+        i0 = run_start[r]
+        i1 = run_start[r + 1]
         if role == _ROLE_PARCEL:
-            covered[loc] += a
-            if valid:
-                evaluated[loc] += a
-                slope_sum[loc] += a * s
-                if s > slope_max[loc]:
-                    slope_max[loc] = s
-                over[loc, reach] += a
-                if slope_breach:
-                    slope_conflict[loc] += a
-                ci = class_index[gp]
-                if ci >= 0:
-                    hist[ci, _hist_bin(hist_edges_pct, s, nb)] += a
-            if cell_breach:
-                conflict_p[loc] += a
-            if cell_near:
-                near_p[loc] += a
-            for c in range(n_cols):
-                ch = col_channel[c]
-                if ch >= 0 and ((zb >> ch) & 1) == 1:
-                    zone_m2[loc, c] += a
-            f = frac[i]
-            if f > best_frac[row, col] or (f == best_frac[row, col] and gp < best_parcel[row, col]):
-                best_frac[row, col] = f
-                best_parcel[row, col] = gp
+            ci = class_index[gp]
+            cov_acc = covered[loc]
+            eval_acc = evaluated[loc]
+            sum_acc = slope_sum[loc]
+            max_acc = slope_max[loc]
+            sc_acc = slope_conflict[loc]
+            cp_acc = conflict_p[loc]
+            np_acc = near_p[loc]
+            for i in range(i0, i1):
+                row = rr[i]
+                col = cc[i]
+                f = frac[i]
+                s = np.float64(slope_pct[row, col])
+                a = f * cell_area_m2[row] * af
+                valid = np.isfinite(s)
+                zb = zone_bits[row, col] if has_zones else np.uint32(0)
+                raster_breach = (zb & rforbid) != 0
+                slope_breach = valid and s >= limit_s
+                cov_acc += a
+                if valid:
+                    eval_acc += a
+                    sum_acc += a * s
+                    if s > max_acc:
+                        max_acc = s
+                    over[loc, _count_le(thresholds_pct, s)] += a
+                    if slope_breach:
+                        sc_acc += a
+                    if ci >= 0:
+                        hist[ci, _hist_bin(hist_edges_pct, s, nb)] += a
+                if slope_breach or raster_breach:
+                    cp_acc += a
+                if (valid and s >= near_s) or raster_breach:
+                    np_acc += a
+                if has_zones:
+                    for c in range(n_cols):
+                        ch = col_channel[c]
+                        if ch >= 0 and ((zb >> ch) & 1) == 1:
+                            zone_m2[loc, c] += a
+                if f > best_frac[row, col] or (f == best_frac[row, col] and gp < best_parcel[row, col]):
+                    best_frac[row, col] = f
+                    best_parcel[row, col] = gp
+            covered[loc] = cov_acc
+            evaluated[loc] = eval_acc
+            slope_sum[loc] = sum_acc
+            slope_max[loc] = max_acc
+            slope_conflict[loc] = sc_acc
+            conflict_p[loc] = cp_acc
+            near_p[loc] = np_acc
         elif role == _ROLE_FORBIDDEN_PIECE:
-            if not cell_breach:
-                conflict_f[loc] += a
-            if not cell_near:
-                near_f[loc] += a
+            for i in range(i0, i1):
+                row = rr[i]
+                col = cc[i]
+                s = np.float64(slope_pct[row, col])
+                a = frac[i] * cell_area_m2[row] * af
+                valid = np.isfinite(s)
+                zb = zone_bits[row, col] if has_zones else np.uint32(0)
+                raster_breach = (zb & rforbid) != 0
+                if not ((valid and s >= limit_s) or raster_breach):
+                    conflict_f[loc] += a
+                if not ((valid and s >= near_s) or raster_breach):
+                    near_f[loc] += a
         elif role >= 0:
-            if col_channel[role] < 0:
-                zone_m2[loc, role] += a
+            vector_column = col_channel[role] < 0
             z = col_zone[role]
-            if z >= 0 and ((zone_forbid_bits[gp] >> z) & 1) == 1:
-                vector_bits[row, col] |= np.uint32(1 << (z + 1))
+            bit = np.uint32(1 << (z + 1)) if z >= 0 and ((zone_forbid_bits[gp] >> z) & 1) == 1 else np.uint32(0)
+            for i in range(i0, i1):
+                row = rr[i]
+                col = cc[i]
+                if vector_column:
+                    zone_m2[loc, role] += frac[i] * cell_area_m2[row] * af
+                vector_bits[row, col] |= bit
 
     # ---- conflict raster: the parcel covering most of each cell (ties: lower parcel index)
     for row in range(h):
@@ -165,7 +198,7 @@ def accumulate_pairs(slope_pct, zone_bits, has_zones, cell_area_m2, candidates, 
             s = np.float64(slope_pct[row, col])
             bits = np.uint32(0)
             li = limit_index[p]
-            if np.isfinite(s) and li >= 0 and _count_le(thresholds_pct, s) > li:
+            if np.isfinite(s) and li >= 0 and s >= thresholds_pct[li]:
                 bits |= np.uint32(1)
             if has_zones:
                 zb = zone_bits[row, col]
