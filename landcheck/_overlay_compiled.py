@@ -52,10 +52,10 @@ def accumulate_pairs(slope_pct, zone_bits, has_zones, cell_area_m2, candidates, 
                      conflict_tile, best_frac, best_parcel, vector_bits):
     """Per-parcel sums of one window; fills ``conflict_tile`` (h, w) in place (it must hold 255 on entry).
 
-    ``best_frac`` (-inf), ``best_parcel`` (-1) and ``vector_bits`` (0) are (h, w) scratch arrays
-    with those values on entry; the caller allocates them with NumPy, whose large allocations
-    get transparent huge pages (an allocation inside the compiled code page-faults 4 KiB at a
-    time, which costs more than the whole reduction of a window).
+    ``best_frac`` (-inf), ``best_parcel`` (-1) and ``vector_bits`` (0) are flat scratch arrays of
+    at least h * w cells holding those values on entry; they are left holding them again on
+    return, so a worker thread keeps one set for all its windows (fresh allocations for every
+    window page-fault 4 KiB at a time, which costs more than the reduction itself).
 
     Triplets ``fi, rr, cc, frac`` are grouped by feature (runs of equal ``fi``), as the coverage
     kernel emits them.  Returns ``(parcels, covered, evaluated, slope_sum, slope_max, over_m2,
@@ -128,6 +128,7 @@ def accumulate_pairs(slope_pct, zone_bits, has_zones, cell_area_m2, candidates, 
             for i in range(i0, i1):
                 row = rr[i]
                 col = cc[i]
+                cell = row * w + col
                 f = frac[i]
                 s = np.float64(slope_pct[row, col])
                 a = f * cell_area_m2[row] * af
@@ -155,9 +156,9 @@ def accumulate_pairs(slope_pct, zone_bits, has_zones, cell_area_m2, candidates, 
                         ch = col_channel[c]
                         if ch >= 0 and ((zb >> ch) & 1) == 1:
                             zone_m2[loc, c] += a
-                if f > best_frac[row, col] or (f == best_frac[row, col] and gp < best_parcel[row, col]):
-                    best_frac[row, col] = f
-                    best_parcel[row, col] = gp
+                if f > best_frac[cell] or (f == best_frac[cell] and gp < best_parcel[cell]):
+                    best_frac[cell] = f
+                    best_parcel[cell] = gp
             covered[loc] = cov_acc
             evaluated[loc] = eval_acc
             slope_sum[loc] = sum_acc
@@ -185,16 +186,23 @@ def accumulate_pairs(slope_pct, zone_bits, has_zones, cell_area_m2, candidates, 
             for i in range(i0, i1):
                 row = rr[i]
                 col = cc[i]
+                cell = row * w + col
                 if vector_column:
                     zone_m2[loc, role] += frac[i] * cell_area_m2[row] * af
-                vector_bits[row, col] |= bit
+                vector_bits[cell] |= bit
 
     # ---- conflict raster: the parcel covering most of each cell (ties: lower parcel index)
     for row in range(h):
         for col in range(w):
-            p = best_parcel[row, col]
+            cell = row * w + col
+            p = best_parcel[cell]
+            vbits = vector_bits[cell]
+            if vbits != 0:
+                vector_bits[cell] = 0
             if p < 0:
                 continue
+            best_parcel[cell] = -1
+            best_frac[cell] = -np.inf
             s = np.float64(slope_pct[row, col])
             bits = np.uint32(0)
             li = limit_index[p]
@@ -207,7 +215,7 @@ def accumulate_pairs(slope_pct, zone_bits, has_zones, cell_area_m2, candidates, 
                     ch = col_channel[c]
                     if z >= 0 and ch >= 0 and ((zone_forbid_bits[p] >> z) & 1) == 1 and ((zb >> ch) & 1) == 1:
                         bits |= np.uint32(1 << (z + 1))
-            bits |= vector_bits[row, col]
+            bits |= vbits
             conflict_tile[row, col] = np.uint8(bits)
 
     # ---- cumulative over-areas from the top threshold down (the reference's reversed cumsum)

@@ -12,6 +12,7 @@ import datetime as _dt
 import hashlib
 import logging
 import os
+import threading
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -28,7 +29,7 @@ from .grid import Window, iter_windows
 from .inputs import DemSource, ZUnit, open_dem
 from .layers import ground_areas, read_parcels
 from .outputs import RasterFormat, RasterSink, check_output_path, staged_folder, write_csv, write_gpkg, write_json
-from .coverage import coverage_triplets, prepare_polygons
+from .coverage import CoverageBuffers, coverage_triplets, prepare_polygons
 from .overlay import CONFLICT_OUTSIDE, ROLE_PARCEL, OverlayPlan, Totals, accumulate_window_compiled
 from .rules import Rulebook, load_rules
 from .terrain import SlopeMethod, gradient_to_unit
@@ -140,6 +141,16 @@ class _WindowJob:
         self.all_index = np.arange(len(geoms), dtype=np.int64)
         self.plan = plan
         self.zones = zones
+        self._local = threading.local()  # per-thread reusable coverage buffers
+
+    def __getstate__(self):
+        state = self.__dict__.copy()
+        state.pop("_local", None)
+        return state
+
+    def __setstate__(self, state):
+        self.__dict__.update(state)
+        self._local = threading.local()
 
     def __call__(self, win: Window):
         g = self.dem.grid
@@ -147,7 +158,10 @@ class _WindowJob:
         slope_pct = gradient_to_unit(grad, "percent")
         zone_bits = self.zones.bits(win) if self.zones is not None else None
         land_mask = self.zones.land(win) if self.zones is not None else None
-        trip = coverage_triplets(self.polygons, g.window_transform(win), win.height, win.width)
+        buffers = getattr(self._local, "buffers", None)
+        if buffers is None:
+            buffers = self._local.buffers = CoverageBuffers()
+        trip = coverage_triplets(self.polygons, g.window_transform(win), win.height, win.width, buffers=buffers)
         rows = np.arange(win.row_off, win.row_off + win.height)
         sums, conflict = accumulate_window_compiled(slope_pct, zone_bits, g.cell_area_m2(rows), self.all_index,
                                                     tuple(trip), self.plan, land_mask)

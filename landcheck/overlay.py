@@ -20,6 +20,7 @@ GIL, and is what the audit uses.
 
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -306,6 +307,18 @@ def _land_counts(slope_pct, land_mask, limit_pct):
     return np.stack([np.count_nonzero(land, axis=1), np.count_nonzero(within, axis=1)]).astype(np.float64)
 
 
+_scratch = threading.local()
+
+
+def _thread_scratch(n_cells: int):
+    """This thread's per-cell scratch for the compiled reduction (the kernel leaves it reset)."""
+    have = getattr(_scratch, "arrays", None)
+    if have is None or have[0].shape[0] < n_cells:
+        have = (np.full(n_cells, -np.inf), np.full(n_cells, -1, np.int64), np.zeros(n_cells, np.uint32))
+        _scratch.arrays = have
+    return have
+
+
 def accumulate_window_compiled(
     slope_pct: np.ndarray,
     zone_bits: np.ndarray | None,
@@ -340,7 +353,19 @@ def accumulate_window_compiled(
                           np.zeros((plan.n_classes, nb)), land_m2, land_within_m2), conflict_tile
     has_zones = zone_bits is not None
     zb = np.ascontiguousarray(zone_bits, dtype=np.uint32) if has_zones else np.zeros((1, 1), np.uint32)
-    out = _overlay_compiled.accumulate_pairs(
+    try:
+        out = _accumulate(slope_pct, zb, has_zones, cell_area_m2, candidates, fi, rr, cc, frac, plan, conflict_tile, h * w)
+    except BaseException:
+        _scratch.arrays = None  # the kernel may have stopped before resetting it
+        raise
+    sums = WindowSums(*out, land_m2, land_within_m2)
+    return sums, conflict_tile
+
+
+def _accumulate(slope_pct, zb, has_zones, cell_area_m2, candidates, fi, rr, cc, frac, plan, conflict_tile, n_cells):
+    from . import _overlay_compiled
+
+    return _overlay_compiled.accumulate_pairs(
         slope_pct, zb, has_zones,
         np.ascontiguousarray(cell_area_m2, dtype=np.float64), np.asarray(candidates, dtype=np.int64),
         np.asarray(fi, dtype=np.int64), np.asarray(rr, dtype=np.int32), np.asarray(cc, dtype=np.int32),
@@ -350,7 +375,4 @@ def accumulate_window_compiled(
         plan.raster_forbid_bits.astype(np.uint32, copy=False), plan.zone_forbid_bits.astype(np.uint32, copy=False),
         np.asarray(plan.area_factor, dtype=np.float64), plan.class_index.astype(np.int64, copy=False),
         int(plan.n_classes), plan.col_channel.astype(np.int64, copy=False), plan.col_zone.astype(np.int64, copy=False),
-        HIST_EDGES_PCT, conflict_tile, np.full((h, w), -np.inf), np.full((h, w), -1, np.int64),
-        np.zeros((h, w), np.uint32))
-    sums = WindowSums(*out, land_m2, land_within_m2)
-    return sums, conflict_tile
+        HIST_EDGES_PCT, conflict_tile, *_thread_scratch(n_cells))

@@ -235,3 +235,19 @@ def test_gdal_cache_is_capped_but_user_setting_wins(monkeypatch):
         assert int(get_gdal_config("GDAL_CACHEMAX")) == GDAL_CACHE_CAP_BYTES // 4
     finally:
         set_gdal_config("GDAL_CACHEMAX", int(before))
+
+
+def test_reused_coverage_buffers_give_fresh_results():
+    # Invariant: triplets computed into reused (and grown) buffers equal those from fresh arrays.
+    from landcheck.coverage import CoverageBuffers
+
+    rng = np.random.default_rng(9)
+    prepared = prepare_polygons(np.array(_lots(rng, 60, 12, 80), dtype=object))
+    buffers = CoverageBuffers()
+    for x0, hh, ww in [(0, 10, 10), (0, 80, 80), (200, 30, 50)]:  # small, then grown, then reused
+        t = Affine(CELL_M, 0, x0, 0, -CELL_M, 0)
+        fresh = coverage_triplets(prepared, t, hh, ww)
+        reused = coverage_triplets(prepared, t, hh, ww, buffers=buffers)
+        assert len(fresh.fraction) > 0
+        for a, b in zip(fresh, reused):
+            np.testing.assert_array_equal(a, b)
