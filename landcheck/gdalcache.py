@@ -7,7 +7,7 @@ import os
 __all__ = ["GDAL_CACHE_CAP_BYTES", "cap_gdal_cache"]
 
 #: largest GDAL block cache landcheck lets its own runs use (bytes); GDAL's default is 5 % of RAM
-GDAL_CACHE_CAP_BYTES = 256 * 2**20
+GDAL_CACHE_CAP_BYTES = 64 * 2**20
 
 
 def cap_gdal_cache(max_bytes: int = GDAL_CACHE_CAP_BYTES) -> None:

@@ -170,7 +170,7 @@ class RasterFormat(str, enum.Enum):
     * ``cog`` (default): Cloud-Optimized GeoTIFF, DEFLATE level 1 with a predictor, 512-cell tiles
       and overviews; windows go to an uncompressed scratch file first, then one GDAL copy lays
       the COG out.
-    * ``gtiff``: a tiled GeoTIFF (ZSTD level 1 with a predictor, 512-cell tiles, no overviews)
+    * ``gtiff``: a tiled GeoTIFF (ZSTD level 1, 512-cell tiles, no overviews)
       written straight from the window stream, compressed on all cores: no scratch file and no
       second pass.  For large batch runs.
     * ``none``: no raster file at all (only the tables); the audit's HTML report needs the rasters.
@@ -233,7 +233,9 @@ class RasterSink:
         if self.fmt is RasterFormat.COG:
             options = {}  # scratch: uncompressed, fast
         else:
-            options = dict(COMPRESS="ZSTD", ZSTD_LEVEL=1, PREDICTOR=3 if self._float else 2, NUM_THREADS="ALL_CPUS")
+            # ZSTD level 1 without a predictor: the floating-point predictor saves ~11 % of the slope raster's
+            # size but costs a third more time (docs/scale.md); compression runs on all cores as tiles fill
+            options = dict(COMPRESS="ZSTD", ZSTD_LEVEL=1, NUM_THREADS="ALL_CPUS")
         try:
             self._ds = rasterio.open(
                 self._scratch, "w", driver="GTiff", width=grid.width, height=grid.height, count=count, dtype=dtype,
