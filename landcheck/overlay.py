@@ -376,4 +376,3 @@ def _accumulate(slope_pct, zb, has_zones, cell_area_m2, candidates, fi, rr, cc, 
         np.asarray(plan.area_factor, dtype=np.float64), plan.class_index.astype(np.int64, copy=False),
         int(plan.n_classes), plan.col_channel.astype(np.int64, copy=False), plan.col_zone.astype(np.int64, copy=False),
         HIST_EDGES_PCT, conflict_tile, *_thread_scratch(n_cells))
-
