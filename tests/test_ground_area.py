@@ -91,3 +91,12 @@ def test_spherical_zone_closed_form():
     got = polygon_areas_m2(lon, lat, np.zeros(5, np.int64), 1, r, 0.0)[0]
     want = r * r * np.radians(2.0) * (np.sin(np.radians(41.0)) - np.sin(np.radians(40.0)))
     assert got == pytest.approx(want, rel=1e-12)
+
+
+@pytest.mark.parametrize("lat0,want_m2", [(0.0, 12_308_463_893.975), (45.0, 8_686_494_956.670)])
+def test_degree_box_is_the_parallel_bounded_band(lat0, want_m2):
+    # Source: REFERENCES.md 5.3 (parallel-bounded cell areas on WGS 84, closed form of Snyder 1987):
+    # a 1 x 1 degree lon/lat box whose edges run along parallels and meridians has exactly the band area.
+    box = shapely.box(120.0, lat0, 121.0, lat0 + 1.0)
+    area, _ = ground_areas_fast(np.array([box], dtype=object), "EPSG:4326")
+    assert area[0] == pytest.approx(want_m2, rel=1e-9)
