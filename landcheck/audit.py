@@ -142,6 +142,7 @@ class _WindowJob:
         self.plan = plan
         self.zones = zones
         self._local = threading.local()  # per-thread reusable coverage buffers
+        self.keep_rasters = True  # False: hand back no slope/conflict tiles (nothing to write; less to ship from workers)
 
     def __getstate__(self):
         state = self.__dict__.copy()
@@ -165,6 +166,8 @@ class _WindowJob:
         rows = np.arange(win.row_off, win.row_off + win.height)
         sums, conflict = accumulate_window_compiled(slope_pct, zone_bits, g.cell_area_m2(rows), self.all_index,
                                                     tuple(trip), self.plan, land_mask)
+        if not self.keep_rasters:
+            return sums, None, None
         return sums, slope_pct, conflict
 
 
@@ -266,6 +269,7 @@ def audit(
     zone_names = [z.name for z in rules.zones]
     columns = zones.columns if zones is not None else []
     raster_format = RasterFormat.from_user(rasters)  # cog | gtiff | none (docs/scale.md)
+    job.keep_rasters = raster_format is not RasterFormat.NONE
     if raster_format is RasterFormat.NONE and make_report:
         raise InputDataError("rasters='none' writes no slope or conflict raster, and the report maps need them; "
                              "turn the report off (--no-report) or choose rasters 'cog' or 'gtiff'.")
