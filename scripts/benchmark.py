@@ -163,6 +163,7 @@ what, proposed = sys.argv[1], sys.argv[2] == "1"
 if proposed:
     import atexit, gc
     atexit.register(gc.freeze)  # proposed for the CLI: skip the final garbage collection of numba's objects
+if proposed and what == "audit":
     import landcheck.audit as _a
     from landcheck.ground_area import ground_areas_fast
     _a.ground_areas = lambda frame, crs_wkt: ground_areas_fast(frame, crs_wkt)
