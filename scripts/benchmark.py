@@ -23,8 +23,9 @@ Every measurement runs in a fresh child process (the interpreter itself, not a
 shell shim); peak RSS is that child's maximum resident set size (getrusage).
 Data are generated into a cache folder (--cache) and reused.  ``--memory-run N``
 also generates an N x N DEM (N = 30000 is 3.6 GB of float32: free disk space is
-checked first) and runs the audit on it for the peak-memory figure, then deletes
-it unless --keep-memory-dem.
+checked first), times the slope stage on it (against gdaldem unless
+--no-reference) and runs the audit on it for the peak-memory figure, then
+deletes it unless --keep-memory-dem.
 
 ``--with-proposed`` runs landcheck with changes proposed but not yet wired in
 (see docs/scale.md): ground areas from ``landcheck.ground_area.ground_areas_fast``
@@ -288,7 +289,7 @@ def main(argv=None) -> int:
 
 def _memory_run(args, work: Path, env, rules: Path, variants) -> list[dict]:
     n = args.memory_run
-    need = 4 * n * n * 2.2 + 2**30  # the DEM, the slope raster, the conflict raster, room to spare
+    need = 4 * n * n * 3.2 + 2**30  # the DEM, gdaldem's and landcheck's slope rasters, the conflict raster, spare
     free = shutil.disk_usage(args.cache).free
     if free < need:
         print(f"memory run skipped: {n}x{n} needs about {need / 2**30:.1f} GiB free in {args.cache}, "
@@ -299,6 +300,20 @@ def _memory_run(args, work: Path, env, rules: Path, variants) -> list[dict]:
     try:
         dem = make_dem(dem_path, n)
         parcels = make_parcels(args.cache / f"parcels_{n}_{args.memory_parcels}.gpkg", n, args.memory_parcels)
+        slope_fmt = "gtiff" if args.rasters == "none" else args.rasters
+        gd = None
+        if not args.no_reference:
+            gd = measure(["gdaldem", "slope", "-p", "-q", str(dem), str(work / "out_gd.tif")], env)
+            (work / "out_gd.tif").unlink(missing_ok=True)
+        for tag, flag in variants:
+            lc = measure([sys.executable, str(work / "runner.py"), "slope", flag, str(dem), str(work / "out_lc.tif"),
+                          slope_fmt], env)
+            (work / "out_lc.tif").unlink(missing_ok=True)
+            rows.append(dict(test="slope" + tag, size=n, parcels=0, lc_s=lc["wall_s"], lc_cpu_s=lc["cpu_s"],
+                             lc_mcells_s=n * n / lc["wall_s"] / 1e6, lc_peak_mib=lc["peak_mib"],
+                             ref_s=gd and gd["wall_s"], ref_cpu_s=gd and gd["cpu_s"],
+                             ref_mcells_s=gd and n * n / gd["wall_s"] / 1e6, ref_peak_mib=gd and gd["peak_mib"]))
+            print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
         for tag, flag in variants:
             lc = measure([sys.executable, str(work / "runner.py"), "audit", flag, str(dem), str(parcels), str(rules),
                           str(work / "out_audit"), args.rasters], env)

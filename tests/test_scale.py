@@ -251,3 +251,64 @@ def test_reused_coverage_buffers_give_fresh_results():
         assert len(fresh.fraction) > 0
         for a, b in zip(fresh, reused):
             np.testing.assert_array_equal(a, b)
+
+
+def test_audit_rasters_and_sums_do_not_depend_on_tiles_or_workers(tmp_path):
+    # Invariant: tile size (one that divides nothing) and worker count change no per-parcel number and no
+    # raster cell. Closed form too: the share over 18 % on the ramp is the area share east of x = 450 m.
+    import rasterio
+
+    from landcheck.audit import audit
+
+    from _support import ramp_dem, write_parcels, write_rules
+
+    x0, y0 = 400000.0, 1600000.0
+    dem = ramp_dem(tmp_path / "dem.tif")
+    rules = write_rules(tmp_path / "r.toml", band=3.0)
+    rng = np.random.default_rng(11)
+    geoms = [affinity.rotate(shapely.box(x0 + x, y0 - y, x0 + x + w, y0 - y + 60), a, origin="centroid")
+             for x, y, w, a in zip(rng.uniform(30, 900, 25), rng.uniform(80, 1150, 25), rng.uniform(20, 250, 25),
+                                   rng.uniform(0, 90, 25))]
+    parcels = write_parcels(tmp_path / "p.gpkg", geoms, pid=np.arange(1, 26), zoning=["R"] * 20 + ["F"] * 5)
+    a = audit(dem, parcels, rules, tmp_path / "a", make_report=False, rasters="gtiff", tile_cells=37, workers=1)
+    b = audit(dem, parcels, rules, tmp_path / "b", make_report=False, rasters="gtiff", tile_cells=37, workers=2)
+    c = audit(dem, parcels, rules, tmp_path / "c", make_report=False, rasters="gtiff", tile_cells=1024, workers=2)
+    num = [c for c in a.parcels.columns if a.parcels[c].dtype.kind == "f"]
+    # same windows, other worker count: bit for bit (results are merged in window order)
+    np.testing.assert_array_equal(a.parcels[num].to_numpy(), b.parcels[num].to_numpy())
+    assert a.summary["capability"] == b.summary["capability"]
+    # other windows: the same sums added in another order, equal to rounding
+    np.testing.assert_allclose(c.parcels[num].to_numpy(), b.parcels[num].to_numpy(), rtol=1e-12, atol=1e-9)
+    assert a.parcels["verdict"].tolist() == c.parcels["verdict"].tolist()
+    for name in ("slope_pct.tif", "conflict.tif"):
+        for other in ("b", "c"):
+            with rasterio.open(tmp_path / "a" / name) as ra, rasterio.open(tmp_path / other / name) as rb:
+                np.testing.assert_array_equal(ra.read(1), rb.read(1))
+    truth = [g.intersection(shapely.box(x0 + 450, y0 - 1e4, x0 + 1e4, y0 + 1e4)).area / g.area for g in geoms[:20]]
+    np.testing.assert_allclose(b.parcels["over_limit_share"][:20], truth, atol=1e-9)
+
+
+def test_slope_formats_hold_the_same_cells(tmp_path):
+    # Invariant: the slope command's raster format changes no cell (slope and class rasters).
+    # Source for the value: on the ramp z = g/2 x^2 every 3x3 kernel is exact at the centre (REFERENCES.md 1.2),
+    # so the slope of the cell centred at x is 100 g x percent.
+    import rasterio
+
+    from landcheck.pipeline import derive_slope
+
+    from _support import ramp_dem
+
+    dem = ramp_dem(tmp_path / "dem.tif", n=700)
+    for fmt in ("cog", "gtiff"):
+        derive_slope(dem, tmp_path / f"{fmt}.tif", raster_format=fmt, class_out=tmp_path / f"{fmt}_cls.tif",
+                     tile_cells=300, workers=2, show_progress=False)
+    with rasterio.open(tmp_path / "cog.tif") as a, rasterio.open(tmp_path / "gtiff.tif") as b:
+        sa, sb = a.read(1), b.read(1)
+        assert a.overviews(1) and not b.overviews(1)
+    np.testing.assert_array_equal(sa, sb)
+    x = (np.arange(700) + 0.5) * 10.0
+    np.testing.assert_allclose(sb[350, 1:-1], 100 * 0.0004 * x[1:-1], rtol=1e-6)
+    with rasterio.open(tmp_path / "cog_cls.tif") as a, rasterio.open(tmp_path / "gtiff_cls.tif") as b:
+        np.testing.assert_array_equal(a.read(1), b.read(1))
+    with pytest.raises(ValueError, match="cog"):
+        derive_slope(dem, tmp_path / "n.tif", raster_format="none")
