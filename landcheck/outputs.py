@@ -170,9 +170,10 @@ class RasterFormat(str, enum.Enum):
     * ``cog`` (default): Cloud-Optimized GeoTIFF, DEFLATE level 1 with a predictor, 512-cell tiles
       and overviews; windows go to an uncompressed scratch file first, then one GDAL copy lays
       the COG out.
-    * ``gtiff``: a tiled GeoTIFF (ZSTD level 1, 512-cell tiles, no overviews)
-      written straight from the window stream, compressed on all cores: no scratch file and no
-      second pass.  For large batch runs.
+    * ``gtiff``: a tiled GeoTIFF (512-cell tiles, no overviews) written straight from the
+      window stream: no scratch file and no second pass.  Integer rasters are ZSTD level 1
+      (compressed on all cores); float rasters are uncompressed, because full-precision slopes
+      hardly compress (measured in docs/scale.md).  For large batch runs.
     * ``none``: no raster file at all (only the tables); the audit's HTML report needs the rasters.
     """
 
@@ -233,9 +234,11 @@ class RasterSink:
         if self.fmt is RasterFormat.COG:
             options = {}  # scratch: uncompressed, fast
         else:
-            # ZSTD level 1 without a predictor: the floating-point predictor saves ~11 % of the slope raster's
-            # size but costs a third more time (docs/scale.md); compression runs on all cores as tiles fill
-            options = dict(COMPRESS="ZSTD", ZSTD_LEVEL=1, NUM_THREADS="ALL_CPUS")
+            # Integer rasters (bit flags, classes) compress ~50:1 with ZSTD level 1, cheaply, on all cores as
+            # tiles fill.  Full-precision float slopes hardly compress (ZSTD 1: 84 % of the size for ~25 % more
+            # time in the slope stage; with the floating-point predictor 74 % for ~45 % more; docs/scale.md),
+            # so float rasters are written uncompressed here; the COG format compresses them.
+            options = {} if self._float else dict(COMPRESS="ZSTD", ZSTD_LEVEL=1, NUM_THREADS="ALL_CPUS")
         try:
             self._ds = rasterio.open(
                 self._scratch, "w", driver="GTiff", width=grid.width, height=grid.height, count=count, dtype=dtype,

@@ -61,7 +61,8 @@ def derive_slope(
     written beside it, with the class labels in the band description.
 
     ``raster_format`` is ``cog`` (default: Cloud-Optimized GeoTIFF with overviews) or ``gtiff``
-    (tiled ZSTD GeoTIFF written straight from the windows, no overviews; faster, for batch runs);
+    (tiled GeoTIFF written straight from the windows, no overviews, the float slope uncompressed and
+    the class raster ZSTD; faster, for batch runs);
     see :class:`landcheck.outputs.RasterFormat` and docs/scale.md.
     """
     raster_format = RasterFormat.from_user(raster_format)

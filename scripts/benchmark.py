@@ -11,11 +11,12 @@ peak RSS and the ratios landcheck / reference.
 What each side writes (stated in the output too):
 
 * gdaldem slope: a GeoTIFF in its default layout (uncompressed, striped), float32.
-* landcheck slope: the same raster as ``--rasters`` says (default ``gtiff``: tiled,
-  ZSTD level 1; ``cog``: Cloud-Optimized GeoTIFF with overviews).
+* landcheck slope: the same raster as ``--rasters`` says (default ``gtiff``: 512-cell
+  tiles, float32 uncompressed; ``cog``: Cloud-Optimized GeoTIFF, DEFLATE, overviews).
 * by-hand audit: the slope GeoTIFF above, an uncompressed uint8 0/1 raster, a CSV of
   per-parcel means (one number per parcel: the share over 18 %).
-* landcheck audit: the slope and conflict rasters (``--rasters``), parcels.gpkg,
+* landcheck audit: the slope and conflict rasters (``--rasters``; with ``gtiff`` the
+  conflict raster is ZSTD level 1), parcels.gpkg,
   parcels.csv, classes.csv and summary.json (with SHA-256 of every input); every
   share exact; no HTML report.
 
@@ -278,7 +279,7 @@ def main(argv=None) -> int:
     print(_fmt_table(rows))
     print(f"ratio = landcheck wall time / reference wall time, both measured in this run. slope: reference "
           f"`gdaldem slope -p` writing its default GeoTIFF (uncompressed strips); landcheck writes {slope_fmt} "
-          f"({'tiled ZSTD level 1' if slope_fmt == 'gtiff' else 'COG, DEFLATE level 1, overviews'}). audit: reference "
+          f"({'512-cell tiles, uncompressed' if slope_fmt == 'gtiff' else 'COG, DEFLATE level 1, overviews'}). audit: reference "
           f"gdaldem + 0/1 threshold raster + exactextract raster-sequential mean per parcel (CSV); landcheck "
           f"writes rasters={args.rasters}, parcels.gpkg/.csv, classes.csv, summary.json, exact shares, no report. "
           f"'lc cpu' = user + system CPU seconds; 'read s' = reading the whole DEM once with rasterio.")
