@@ -19,14 +19,12 @@ import html
 import json
 import logging
 import math
-import os
-import tempfile
 from collections.abc import Iterable, Sequence
 from datetime import datetime, timezone
 from pathlib import Path
 
 from . import CAUTION, __version__
-from .errors import OutputWriteError
+from .outputs import write_bytes
 from .maps import (
     DEFAULT_SLOPE_BREAKS_PCT,
     VERDICTS,
@@ -49,7 +47,6 @@ _OUTPUT_FILES = ("parcels.gpkg", "parcels.csv", "classes.csv", "summary.json", "
 _CSP = ("default-src 'none'; img-src data:; style-src 'unsafe-inline'; script-src 'unsafe-inline'; "
         "base-uri 'none'; form-action 'none'")
 _HASH_CHUNK_BYTES = 1 << 20
-_FILE_MODE = 0o644
 _M2_PER_HA = 10_000.0
 
 # per-parcel table: (column, header, kind) ; kind: text | m2 | share | pct
@@ -509,23 +506,6 @@ _JS = """
 """
 
 
-def _atomic_write_text(path: Path, text: str) -> None:
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    except OSError as exc:
-        raise OutputWriteError(f"{path}: cannot create the report there ({exc}); choose another report_path.") from exc
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as f:
-            f.write(text)
-        os.chmod(tmp, _FILE_MODE)
-        os.replace(tmp, path)
-    except OSError as exc:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise OutputWriteError(f"{path}: cannot be written ({exc}); check permissions and free space.") from exc
-
-
 def build_report(out_dir, *, report_path=None, figures_dir=None,
                  slope_breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT, max_closeups: int = 12,
                  max_table_rows: int = 5000, dpi: int = 200, figure_formats: Sequence[str] = ("png", "svg"),
@@ -645,6 +625,6 @@ def build_report(out_dir, *, report_path=None, figures_dir=None,
                  f'<p class="muted">Written by landcheck {_e(__version__)} from the files of one audit output '
                  "folder; no network resource is used.</p></footer>")
     parts.append(f"<script>{_JS}</script></body></html>\n")
-    _atomic_write_text(report_path, "\n".join(parts))
+    write_bytes(report_path, "\n".join(parts).encode("utf-8"))
     logger.info("report written: %s (%d close-ups)", report_path, len(closeups.items))
     return report_path
