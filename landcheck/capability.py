@@ -45,22 +45,28 @@ from .errors import RuleFileError
 from .grid import GridSpec, Window
 from .overlay import ROLE_PARCEL, OverlayPlan, coverage_triplets
 from .rules import NO_RULE, Rulebook
-from .slope_classes import NO_CLASS, SlopeClassScheme, classify_slope, get_scheme, scheme_from_breaks
+from .slope_classes import (
+    NO_CLASS,
+    SlopeClassScheme,
+    classify_slope,
+    get_scheme,
+    scheme_from_breaks,
+)
 
 __all__ = [
+    "HAZARD_FLAG",
+    "NO_VALUE",
+    "N_CODES",
+    "SEA",
     "CapabilitySpec",
     "CapabilityTotals",
-    "capability_spec",
-    "classify_capability",
     "accumulate_capability",
-    "capability_table",
     "capability_sink",
-    "write_capability_legend",
+    "capability_spec",
+    "capability_table",
+    "classify_capability",
     "run_capability",
-    "NO_VALUE",
-    "HAZARD_FLAG",
-    "SEA",
-    "N_CODES",
+    "write_capability_legend",
 ]
 
 #: code of cells without a slope (the raster's nodata)

@@ -65,6 +65,7 @@ statistics, Hyndman & Fan 1996 type 7).
 from __future__ import annotations
 
 import dataclasses
+import itertools
 import logging
 import math
 import multiprocessing
@@ -72,24 +73,39 @@ import numbers
 from collections import deque
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from .errors import InputDataError, RuleFileError
 from .grid import GridSpec, Window
-from .overlay import ROLE_FORBIDDEN_PIECE, ROLE_PARCEL, OverlayPlan, accumulate_window, coverage_triplets
+from .overlay import (
+    ROLE_FORBIDDEN_PIECE,
+    ROLE_PARCEL,
+    OverlayPlan,
+    accumulate_window,
+    coverage_triplets,
+)
 from .rules import NO_RULE, Rulebook
 from .terrain import HALO_CELLS, SlopeMethod, gradient_to_unit, slope_gradient
-from .uncertainty import ErrorModel, check_realizations, error_field_with_halo, probability_standard_error
+from .uncertainty import (
+    ErrorModel,
+    check_realizations,
+    error_field_with_halo,
+    probability_standard_error,
+)
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 __all__ = [
+    "PERCENTILES",
+    "ROBUST_CLEAR_P",
+    "ROBUST_CONFLICT_P",
     "ConfidenceLabel",
     "ConfidenceSettings",
     "confidence_settings",
     "run_confidence",
-    "ROBUST_CONFLICT_P",
-    "ROBUST_CLEAR_P",
-    "PERCENTILES",
 ]
 
 logger = logging.getLogger(__name__)
@@ -318,7 +334,7 @@ def _worker_task(wd: _WindowData, r0: int, r1: int) -> _TaskResult:
 def _chunks(n: int, parts: int) -> list[tuple[int, int]]:
     parts = max(1, min(parts, n))
     edges = [round(i * n / parts) for i in range(parts + 1)]
-    return [(a, b) for a, b in zip(edges[:-1], edges[1:]) if b > a]
+    return [(a, b) for a, b in itertools.pairwise(edges) if b > a]
 
 
 # --------------------------------------------------------------------------- driver
@@ -479,7 +495,6 @@ def _tables(rules, pr, baseline, counted, varies, n, seed, conf, method, over, c
 
     from .evaluate import _is_breach  # the audit's verdict test, shared
 
-    n_parcels = len(counted)
     fixed = counted & ~varies
     base_cov = baseline["covered_m2"].to_numpy(float)
     base_cf = baseline["conflict_m2"].to_numpy(float)

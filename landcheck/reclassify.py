@@ -45,7 +45,7 @@ from .grid import GridSpec, Window
 from .overlay import ROLE_FORBIDDEN_PIECE, OverlayPlan
 from .rules import Rulebook
 
-__all__ = ["draft_reclassification", "breach_mask", "PART_COMPLIANT", "PART_NON_COMPLIANT"]
+__all__ = ["PART_COMPLIANT", "PART_NON_COMPLIANT", "breach_mask", "draft_reclassification"]
 
 logger = logging.getLogger(__name__)
 
@@ -90,10 +90,10 @@ def _cell_window(grid: GridSpec, bounds) -> Window | None:
     """The smallest window of whole cells covering ``bounds`` (clipped to the raster); None when outside."""
     t = grid.transform
     xmin, ymin, xmax, ymax = bounds
-    c0 = int(math.floor((xmin - t.c) / t.a))
-    c1 = int(math.ceil((xmax - t.c) / t.a))
-    r0 = int(math.floor((ymax - t.f) / t.e))
-    r1 = int(math.ceil((ymin - t.f) / t.e))
+    c0 = math.floor((xmin - t.c) / t.a)
+    c1 = math.ceil((xmax - t.c) / t.a)
+    r0 = math.floor((ymax - t.f) / t.e)
+    r1 = math.ceil((ymin - t.f) / t.e)
     c0, r0 = max(c0, 0), max(r0, 0)
     c1, r1 = min(c1, grid.width), min(r1, grid.height)
     if c1 <= c0 or r1 <= r0:

@@ -70,7 +70,7 @@ def make_inputs(folder: Path, size: int, n_parcels: int, seed: int = 7) -> tuple
     with rasterio.open(dem, "w", driver="GTiff", width=size, height=size, count=1, dtype="float32", crs=CRS,
                        transform=from_origin(*ORIGIN, CELL_M, CELL_M), nodata=-9999.0) as ds:
         ds.write(z.astype("float32"), 1)
-    per_side = int(round(np.sqrt(n_parcels)))
+    per_side = round(float(np.sqrt(n_parcels)))
     block = span / per_side
     geoms, zoning = [], []
     for i in range(per_side):
@@ -145,7 +145,7 @@ def main() -> None:
             conf = confidence_settings(rules, dem.grid, rmse_m=args.rmse, corr_length_m=args.corr_length,
                                        realizations=n, seed=args.seed)
             t = time.perf_counter()
-            parcels, _, summary = run_confidence(dem, windows, geoms, plan, rules, pr, rules.slope_method, base, conf,
+            _parcels, _, summary = run_confidence(dem, windows, geoms, plan, rules, pr, rules.slope_method, base, conf,
                                                  workers=args.workers)
             dt = time.perf_counter() - t
             c = summary["label_counts"]

@@ -91,8 +91,8 @@ def _prepare(tmp_path, geoms, zoning, rules_text=None, *, n=130, zones_fn=None):
     pr = parcel_rules(rules, frame["class_value"].to_numpy())
     zones = zones_fn(g) if zones_fn else None
     plan = _build_plan(rules, pr.class_name, factor, 1.0, zones)
-    return dict(dem=dem, dem_path=dem_path, parcels_path=parcels_path, rules_path=rules_path, rules=rules,
-                geoms=np.asarray(frame.geometry.values), plan=plan, pr=pr, zones=zones, area_m2=area_m2)
+    return {"dem": dem, "dem_path": dem_path, "parcels_path": parcels_path, "rules_path": rules_path, "rules": rules,
+            "geoms": np.asarray(frame.geometry.values), "plan": plan, "pr": pr, "zones": zones, "area_m2": area_m2}
 
 
 def _run(s, out, tile=1024, spec=None):
@@ -148,7 +148,7 @@ def test_hazard_flag_from_raster_and_vector_zones(tmp_path):
 
     s = _prepare(tmp_path, [shapely.box(X0 + 20, Y0 - 1000, X0 + 1000, Y0 - 20)], ["R"], RULES_WITH_ZONES,
                  n=110, zones_fn=zones_fn)
-    table, _, spec = _run(s, tmp_path / "cap.tif")
+    _table, _, spec = _run(s, tmp_path / "cap.tif")
     with rasterio.open(tmp_path / "cap.tif") as ds:
         codes = ds.read(1)
     flagged = (codes & HAZARD_FLAG) != 0

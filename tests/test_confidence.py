@@ -63,7 +63,7 @@ def _prepare(tmp_path, dem_path, geoms, zoning, rules_text, *, tile=1024):
         totals.add(job(win)[0])
     base = evaluate_parcels(totals, plan, rules, pr, area_m2, shapely.is_empty(geo), frame["class_value"].to_numpy())
     base.insert(0, "parcel_id", frame["parcel_id"].to_numpy())
-    return dict(dem=dem, geoms=geo, plan=plan, rules=rules, pr=pr, baseline=base)
+    return {"dem": dem, "geoms": geo, "plan": plan, "rules": rules, "pr": pr, "baseline": base}
 
 
 def _run(s, model, n, seed, windows=None, workers=1):
@@ -211,13 +211,13 @@ def test_worker_processes_give_identical_results(tmp_path):
 @pytest.mark.parametrize(
     "kw, pattern",
     [
-        (dict(rmse_m=0.0), r"rmse_m = 0.0; expected a finite number greater than 0"),
-        (dict(rmse_m=-1.0), r"greater than 0"),
-        (dict(rmse_m=2.0, corr_length_m=4.0), r"corr_length_m = 4 m is shorter than one cell \(10 m\)"),
-        (dict(rmse_m=2.0, realizations=9), r"realizations = 9 is too few.*at least 10"),
-        (dict(rmse_m=2.0, realizations=10_001), r"more than the limit of 10000"),
-        (dict(rmse_m=2.0, seed=-3), r"seed = -3; expected a whole number >= 0"),
-        (dict(corr_length_m=30.0), r"needs the DEM's vertical RMSE; give --dem-rmse"),
+        ({"rmse_m": 0.0}, r"rmse_m = 0.0; expected a finite number greater than 0"),
+        ({"rmse_m": -1.0}, r"greater than 0"),
+        ({"rmse_m": 2.0, "corr_length_m": 4.0}, r"corr_length_m = 4 m is shorter than one cell \(10 m\)"),
+        ({"rmse_m": 2.0, "realizations": 9}, r"realizations = 9 is too few.*at least 10"),
+        ({"rmse_m": 2.0, "realizations": 10_001}, r"more than the limit of 10000"),
+        ({"rmse_m": 2.0, "seed": -3}, r"seed = -3; expected a whole number >= 0"),
+        ({"corr_length_m": 30.0}, r"needs the DEM's vertical RMSE; give --dem-rmse"),
     ],
 )
 def test_bad_settings_raise_clear_errors(tmp_path, kw, pattern):

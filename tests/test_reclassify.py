@@ -14,7 +14,11 @@ from landcheck.grid import iter_windows
 from landcheck.inputs import open_dem
 from landcheck.layers import read_parcels
 from landcheck.overlay import ROLE_FORBIDDEN_PIECE, Totals
-from landcheck.reclassify import PART_COMPLIANT, PART_NON_COMPLIANT, draft_reclassification
+from landcheck.reclassify import (
+    PART_COMPLIANT,
+    PART_NON_COMPLIANT,
+    draft_reclassification,
+)
 from landcheck.rules import load_rules
 from landcheck.terrain import SlopeMethod
 from landcheck.zones import ZoneColumn, ZoneSet
@@ -86,7 +90,7 @@ def _setup(tmp_path, dem_path, geoms, zoning, *, rules_text=RULES, zones_fn=None
     cols = zones.columns if zones is not None else ()
     base = evaluate_parcels(totals, plan, rules, pr, area_m2, shapely.is_empty(geo), frame["class_value"].to_numpy(), cols)
     base.insert(0, "parcel_id", frame["parcel_id"].to_numpy())
-    return dict(dem=dem, geoms=all_geoms, plan=plan, rules=rules, pr=pr, zones=zones, base=base)
+    return {"dem": dem, "geoms": all_geoms, "plan": plan, "rules": rules, "pr": pr, "zones": zones, "base": base}
 
 
 def _draft(s, mmu=0.0):
