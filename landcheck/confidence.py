@@ -100,6 +100,7 @@ if TYPE_CHECKING:
 
 __all__ = [
     "PERCENTILES",
+    "PROCESS_MIN_CELL_REALIZATIONS",
     "ROBUST_CLEAR_P",
     "ROBUST_CONFLICT_P",
     "ConfidenceLabel",
@@ -114,6 +115,9 @@ logger = logging.getLogger(__name__)
 ROBUST_CONFLICT_P = 0.95
 #: P(conflict) at or below which a parcel is called robustly clear
 ROBUST_CLEAR_P = 0.05
+#: with ``workers=None``, smaller runs (cells x realizations) stay in this process: one realization
+#: costs about 0.3 s per million cells on one core, starting a worker process a few seconds
+PROCESS_MIN_CELL_REALIZATIONS = 20_000_000
 #: percentiles reported for every distribution (percent)
 PERCENTILES = (5, 50, 95)
 
@@ -379,7 +383,9 @@ def run_confidence(
     zones : landcheck.zones.ZoneSet, optional
         The audit's zones (raster zone bits per window).
     workers : int or None
-        Worker processes; 1 (default) runs in this process, None uses every core.
+        Worker processes; 1 (default) runs in this process.  None uses every core when the run has at
+        least ``PROCESS_MIN_CELL_REALIZATIONS`` cell-realizations (cells x N) and this process otherwise:
+        starting a worker costs a few seconds.
     progress : tqdm-like, optional
         ``update(n)`` is called with the number of window-realizations done.
 
@@ -425,7 +431,10 @@ def run_confidence(
     covered = np.zeros(n_parcels)
     evaluated = np.zeros(n_parcels)
     windows = list(windows)
-    workers = default_workers() if workers is None else max(1, int(workers))
+    if workers is None:  # automatic: processes only when the work outweighs starting them
+        cells = sum(w.height * w.width for w in windows)
+        workers = default_workers() if cells * n >= PROCESS_MIN_CELL_REALIZATIONS else 1
+    workers = max(1, int(workers))
 
     def merge(res: _TaskResult) -> None:
         p = res.parcels

@@ -4,7 +4,8 @@
 Builds a synthetic hilly DEM (default 1000 x 1000 cells of 10 m) around the fictional town of
 Alderwane and a grid of zoned parcels (default 400), runs the audit's own preparation and window
 pass once for the baseline verdicts, then times ``run_confidence`` for each N given (default 25,
-50, 100) and prints seconds and seconds per realization.  Data go to a temporary folder.
+50, 100) and prints wall seconds, seconds per realization and the CPU seconds used (this process
+plus its worker processes).  Data go to a temporary folder.
 
     python scripts/bench_confidence.py --workers 2
     python scripts/bench_confidence.py --size 2000 --parcels 1600 --realizations 10 20
@@ -14,6 +15,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import resource
 import sys
 import tempfile
 import time
@@ -118,6 +120,15 @@ def prepare(dem_path, parcels_path, rules_path, tile_cells: int):
     return dem, windows, geoms, plan, rules, pr, base
 
 
+def cpu_seconds() -> float:
+    """User + system CPU time of this process and its finished children (worker processes)."""
+    tot = 0.0
+    for who in (resource.RUSAGE_SELF, resource.RUSAGE_CHILDREN):
+        r = resource.getrusage(who)
+        tot += r.ru_utime + r.ru_stime
+    return tot
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--size", type=int, default=1000, help="DEM side in cells (10 m cells)")
@@ -140,17 +151,20 @@ def main() -> None:
               f"{args.workers} workers, {os.cpu_count()} CPUs; RMSE {args.rmse} m, L {args.corr_length} m")
         print(f"inputs + baseline audit pass: {time.perf_counter() - t0:.1f} s; "
               f"baseline conflicts {int((base['verdict'] == 'conflict').sum())}")
-        print(f"{'N':>6} {'seconds':>9} {'s/realization':>14} {'robust_conflict':>16} {'uncertain':>10} {'robust_clear':>13}")
+        print(f"{'N':>6} {'seconds':>9} {'s/realization':>14} {'cpu_s':>8} {'cpu_s/real.':>12} {'robust_conflict':>16} "
+              f"{'uncertain':>10} {'robust_clear':>13}")
         for n in args.realizations:
             conf = confidence_settings(rules, dem.grid, rmse_m=args.rmse, corr_length_m=args.corr_length,
                                        realizations=n, seed=args.seed)
-            t = time.perf_counter()
+            t, c0 = time.perf_counter(), cpu_seconds()
             _parcels, _, summary = run_confidence(dem, windows, geoms, plan, rules, pr, rules.slope_method, base, conf,
                                                  workers=args.workers)
-            dt = time.perf_counter() - t
+            dt, cpu = time.perf_counter() - t, cpu_seconds() - c0
             c = summary["label_counts"]
-            print(f"{n:>6} {dt:>9.1f} {dt / n:>14.3f} {c['robust_conflict']:>16} {c['uncertain']:>10} "
-                  f"{c['robust_clear']:>13}", flush=True)
+            print(f"{n:>6} {dt:>9.1f} {dt / n:>14.3f} {cpu:>8.1f} {cpu / n:>12.3f} {c['robust_conflict']:>16} "
+                  f"{c['uncertain']:>10} {c['robust_clear']:>13}", flush=True)
+        print(f"load average after the runs: {', '.join(f'{x:.1f}' for x in os.getloadavg())} "
+              "(wall times on a shared machine grow with other processes' load; CPU seconds do not)")
 
 
 if __name__ == "__main__":

@@ -182,6 +182,7 @@ def test_windowed_equals_whole_and_seed_reproducible(tmp_path):
     whole, wc, _ = _run(s, model, 12, seed=5)
     tiled, tc, _ = _run(s, model, 12, seed=5, windows=list(iter_windows(g.height, g.width, 7, 5)))
     again, _, _ = _run(s, model, 12, seed=5)
+    auto, _, _ = _run(s, model, 12, seed=5, workers=None)  # small run: stays in this process
     other, _, _ = _run(s, model, 12, seed=6)
     num = [c for c in whole.columns if c.startswith(("p_", "over_", "conflict_", "slope_"))]
     # Source: invariant (docs/design.md "tiled == untiled"): the realizations are window-consistent, so only
@@ -191,7 +192,7 @@ def test_windowed_equals_whole_and_seed_reproducible(tmp_path):
     np.testing.assert_allclose(tc.filter(like="share").to_numpy(float), wc.filter(like="share").to_numpy(float),
                                rtol=1e-12, equal_nan=True)
     # Source: reproducibility contract of landcheck.uncertainty: same seed, same numbers bit for bit.
-    assert again[num].equals(whole[num])
+    assert again[num].equals(whole[num]) and auto.equals(whole)
     assert not np.allclose(other["over_limit_share_p50"].iloc[:3], whole["over_limit_share_p50"].iloc[:3])
     # the forest parcel has no slope limit: fixed figures, the audit's verdict with P 0
     assert whole["p_conflict"].iloc[3] == 0.0 and np.isnan(whole["over_limit_share_p50"].iloc[3])
