@@ -43,7 +43,8 @@ import numpy as np
 
 from .errors import RuleFileError
 from .grid import GridSpec, Window
-from .overlay import ROLE_PARCEL, OverlayPlan, coverage_triplets
+from .coverage import coverage_triplets
+from .overlay import ROLE_PARCEL, OverlayPlan
 from .rules import NO_RULE, Rulebook
 from .slope_classes import (
     NO_CLASS,

@@ -79,12 +79,12 @@ import numpy as np
 
 from .errors import InputDataError, RuleFileError
 from .grid import GridSpec, Window
+from .coverage import coverage_triplets
 from .overlay import (
     ROLE_FORBIDDEN_PIECE,
     ROLE_PARCEL,
     OverlayPlan,
     accumulate_window,
-    coverage_triplets,
 )
 from .rules import NO_RULE, Rulebook
 from .terrain import HALO_CELLS, SlopeMethod, gradient_to_unit, slope_gradient
@@ -560,7 +560,7 @@ def _tables(rules, pr, baseline, counted, varies, n, seed, conf, method, over, c
         rows.append(row)
     classes = pd.DataFrame(rows)
     summary = {
-        "method": "Monte Carlo DEM error realizations (REFERENCES.md 4.2)",
+        "method": "Monte Carlo DEM error realizations (Hunter & Goodchild 1997; Fisher 1998; docs/references.md)",
         "slope_method": method.value,
         **conf.describe(),
         "realizations": int(n),
