@@ -20,7 +20,7 @@ For every realization ``k`` and every window of the audit:
    limits).  Exact coverage fractions depend on geometry only, so they are
    computed **once per window** and reused for every realization;
 5. the verdict test is evaluate's own breach rule
-   (:func:`landcheck.evaluate._is_breach`: breach area over the tolerance share
+   (:func:`landcheck.evaluate.is_breach`: breach area over the tolerance share
    of the covered area and at least ``min_breach_m2``).
 
 Reported per parcel: ``P(conflict)`` with its Monte Carlo standard error
@@ -502,7 +502,7 @@ def _tables(rules, pr, baseline, counted, varies, n, seed, conf, method, over, c
             evaluated):
     import pandas as pd
 
-    from .evaluate import _is_breach  # the audit's verdict test, shared
+    from .evaluate import is_breach  # the audit's verdict test, shared
 
     fixed = counted & ~varies
     base_cov = baseline["covered_m2"].to_numpy(float)
@@ -517,7 +517,7 @@ def _tables(rules, pr, baseline, counted, varies, n, seed, conf, method, over, c
         conflict_share = np.where(cov[None, :] > 0, conflict / cov[None, :], np.nan)
         slope_mean = np.where(varies[None, :], slope_sum / ev[None, :],
                               baseline["slope_mean_pct"].to_numpy(float)[None, :])
-    is_conflict = _is_breach(conflict, cov[None, :], pr.tol_share[None, :], pr.min_breach_m2[None, :])
+    is_conflict = is_breach(conflict, cov[None, :], pr.tol_share[None, :], pr.min_breach_m2[None, :])
     p = np.where(counted, is_conflict.mean(axis=0), np.nan)
     se = np.where(counted, probability_standard_error(np.nan_to_num(p), n), np.nan)
     label = np.where(~counted, ConfidenceLabel.NOT_EVALUATED,
