@@ -26,7 +26,7 @@ from .evaluate import (SENSITIVITY_LIMITS_PCT, Verdict, evaluate_parcels, parcel
                        slope_histogram, summarise_classes)
 from .grid import Window, iter_windows
 from .inputs import DemSource, ZUnit, open_dem
-from .layers import ground_areas, read_parcels
+from .layers import areal_factor_at, ground_areas, read_parcels
 from .outputs import RasterSink, check_output_path, staged_folder, write_csv, write_gpkg, write_json
 from .coverage import coverage_triplets, prepare_polygons
 from .overlay import CONFLICT_OUTSIDE, ROLE_PARCEL, OverlayPlan, Totals, accumulate_window
@@ -241,12 +241,9 @@ def audit(
                f"({', '.join(map(repr, unmatched[:10]))}); they are listed with verdict no_rule.")
         collected.append(msg)
         warnings.warn(msg, LandcheckWarning, stacklevel=2)
-    ground_factor = 1.0
-    if not g.geographic:
-        cx, cy = (g.bounds[0] + g.bounds[2]) / 2, (g.bounds[1] + g.bounds[3]) / 2
-        ground_factor = float(ground_areas(
-            __import__("geopandas").GeoDataFrame(geometry=[shapely.box(cx - 1, cy - 1, cx + 1, cy + 1)], crs=g.crs_wkt),
-            g.crs_wkt)[1][0])
+    # whole-area land figures use the map-to-ground factor at the DEM's centre (parcels use their own)
+    ground_factor = 1.0 if g.geographic else areal_factor_at(g.crs_wkt, (g.bounds[0] + g.bounds[2]) / 2,
+                                                               (g.bounds[1] + g.bounds[3]) / 2)
     step(f"{len(frame)} parcels, {len(rules.classes)} classes, {len(rules.zones)} zones")
 
     zones = None

@@ -231,7 +231,20 @@ def ground_areas(gdf, crs_wkt: str) -> tuple[np.ndarray, np.ndarray]:
         cent = shapely.centroid(geo_vals)
         ok = ~shapely.is_empty(cent)
         if ok.any():
-            lon, lat = shapely.get_x(cent[ok]), shapely.get_y(cent[ok])
-            scale = pyproj.Proj(crs).get_factors(lon, lat).areal_scale
-            factor[ok] = 1.0 / np.asarray(scale, dtype=float)
+            factor[ok] = _inverse_areal_scale(crs, shapely.get_x(cent[ok]), shapely.get_y(cent[ok]))
     return area, factor
+
+
+def _inverse_areal_scale(crs, lon, lat) -> np.ndarray:
+    import pyproj
+
+    return 1.0 / np.asarray(pyproj.Proj(crs).get_factors(lon, lat).areal_scale, dtype=float)
+
+
+def areal_factor_at(crs_wkt: str, x: float, y: float) -> float:
+    """Map-plane to ground area factor (1 / areal scale) of a projected CRS at the point (x, y) in that CRS."""
+    import pyproj
+
+    crs = pyproj.CRS.from_user_input(crs_wkt)
+    lon, lat = pyproj.Transformer.from_crs(crs, crs.geodetic_crs, always_xy=True).transform(x, y)
+    return float(_inverse_areal_scale(crs, lon, lat))
