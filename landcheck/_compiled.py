@@ -3,9 +3,15 @@
 Imported only when the compiled backend is used.  Functions are defined at
 module level so numba can cache the machine code on disk (``cache=True``):
 the second run of the program starts without compiling.
+
+The loops accept float64 or float32 elevations: each value is widened to
+float64 (exactly) before the formula, so both give bit-identical slopes and a
+float32 DEM need not be copied to float64 first.
 """
 
 from __future__ import annotations
+
+import math
 
 import numba
 import numpy as np
@@ -14,6 +20,7 @@ from .terrain import _horn_pq, _zt_pq
 
 _horn = numba.njit(inline="always", cache=True)(_horn_pq)
 _zt = numba.njit(inline="always", cache=True)(_zt_pq)
+f8 = np.float64  # elevations may arrive as float32 (exact widening); the formulas always run in float64
 
 
 @numba.njit(cache=True, nogil=True)
@@ -23,9 +30,9 @@ def horn_loop(e, hx, hy, out):
         bx = hx[i]
         by = hy[i]
         for j in range(cols):
-            p, q = _horn(e[i, j], e[i, j + 1], e[i, j + 2], e[i + 1, j], e[i + 1, j + 2],
-                         e[i + 2, j], e[i + 2, j + 1], e[i + 2, j + 2], bx, by)
-            g = np.hypot(p, q)
+            p, q = _horn(f8(e[i, j]), f8(e[i, j + 1]), f8(e[i, j + 2]), f8(e[i + 1, j]), f8(e[i + 1, j + 2]),
+                         f8(e[i + 2, j]), f8(e[i + 2, j + 1]), f8(e[i + 2, j + 2]), bx, by)
+            g = math.sqrt(p * p + q * q)
             if np.isnan(e[i + 1, j + 1]):
                 g = np.nan
             out[i, j] = g
@@ -38,9 +45,9 @@ def zt_loop(e, hx, hy, out):
         bx = hx[i]
         by = hy[i]
         for j in range(cols):
-            p, q = _zt(e[i, j], e[i, j + 1], e[i, j + 2], e[i + 1, j], e[i + 1, j + 2],
-                       e[i + 2, j], e[i + 2, j + 1], e[i + 2, j + 2], bx, by)
-            g = np.hypot(p, q)
+            p, q = _zt(f8(e[i, j]), f8(e[i, j + 1]), f8(e[i, j + 2]), f8(e[i + 1, j]), f8(e[i + 1, j + 2]),
+                       f8(e[i + 2, j]), f8(e[i + 2, j + 1]), f8(e[i + 2, j + 2]), bx, by)
+            g = math.sqrt(p * p + q * q)
             if np.isnan(e[i + 1, j + 1]):
                 g = np.nan
             out[i, j] = g

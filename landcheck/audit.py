@@ -12,6 +12,7 @@ import datetime as _dt
 import hashlib
 import logging
 import os
+import threading
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -27,9 +28,9 @@ from .evaluate import (SENSITIVITY_LIMITS_PCT, Verdict, evaluate_parcels, parcel
 from .grid import Window, iter_windows
 from .inputs import DemSource, ZUnit, open_dem
 from .layers import areal_factor_at, ground_areas, read_parcels
-from .outputs import RasterSink, check_output_path, staged_folder, write_csv, write_gpkg, write_json
-from .coverage import coverage_triplets, prepare_polygons
-from .overlay import CONFLICT_OUTSIDE, ROLE_PARCEL, OverlayPlan, Totals, accumulate_window
+from .outputs import RasterFormat, RasterSink, check_output_path, staged_folder, write_csv, write_gpkg, write_json
+from .coverage import CoverageBuffers, coverage_triplets, prepare_polygons
+from .overlay import CONFLICT_OUTSIDE, ROLE_PARCEL, OverlayPlan, Totals, accumulate_window_compiled
 from .rules import Rulebook, load_rules
 from .terrain import SlopeMethod, gradient_to_unit
 from .engines import map_windows
@@ -140,6 +141,17 @@ class _WindowJob:
         self.all_index = np.arange(len(geoms), dtype=np.int64)
         self.plan = plan
         self.zones = zones
+        self._local = threading.local()  # per-thread reusable coverage buffers
+        self.keep_rasters = True  # False: hand back no slope/conflict tiles (nothing to write; less to ship from workers)
+
+    def __getstate__(self):
+        state = self.__dict__.copy()
+        state.pop("_local", None)
+        return state
+
+    def __setstate__(self, state):
+        self.__dict__.update(state)
+        self._local = threading.local()
 
     def __call__(self, win: Window):
         g = self.dem.grid
@@ -147,10 +159,15 @@ class _WindowJob:
         slope_pct = gradient_to_unit(grad, "percent")
         zone_bits = self.zones.bits(win) if self.zones is not None else None
         land_mask = self.zones.land(win) if self.zones is not None else None
-        trip = coverage_triplets(self.polygons, g.window_transform(win), win.height, win.width)
+        buffers = getattr(self._local, "buffers", None)
+        if buffers is None:
+            buffers = self._local.buffers = CoverageBuffers()
+        trip = coverage_triplets(self.polygons, g.window_transform(win), win.height, win.width, buffers=buffers)
         rows = np.arange(win.row_off, win.row_off + win.height)
-        sums, conflict = accumulate_window(slope_pct, zone_bits, g.cell_area_m2(rows), self.all_index, tuple(trip),
-                                           self.plan, land_mask)
+        sums, conflict = accumulate_window_compiled(slope_pct, zone_bits, g.cell_area_m2(rows), self.all_index,
+                                                    tuple(trip), self.plan, land_mask)
+        if not self.keep_rasters:
+            return sums, None, None
         return sums, slope_pct, conflict
 
 
@@ -174,6 +191,7 @@ def audit(
     on_step: Callable[[str], None] | None = None,
     engine: str = "threads",
     scheduler_address: str | None = None,
+    rasters: str = "cog",
     dem_rmse_m: float | None = None,
     corr_length_m: float | None = None,
     realizations: int | None = None,
@@ -264,9 +282,16 @@ def audit(
     totals = Totals(len(frame), len(plan.thresholds_pct), plan.n_cols, plan.n_classes)
     zone_names = [z.name for z in rules.zones]
     columns = zones.columns if zones is not None else []
+    raster_format = RasterFormat.from_user(rasters)  # cog | gtiff | none (docs/scale.md)
+    job.keep_rasters = raster_format is not RasterFormat.NONE
+    if raster_format is RasterFormat.NONE and make_report:
+        raise InputDataError("rasters='none' writes no slope or conflict raster, and the report maps need them; "
+                             "turn the report off (--no-report) or choose rasters 'cog' or 'gtiff'.")
     with staged_folder(out, overwrite=overwrite) as stage:
-        with RasterSink(stage / "slope_pct.tif", g, dtype="float32", nodata=np.nan, band_names=["slope_pct"]) as slope_sink, \
-                RasterSink(stage / "conflict.tif", g, dtype="uint8", nodata=CONFLICT_OUTSIDE,
+        with RasterSink(stage / "slope_pct.tif", g, dtype="float32", nodata=np.nan, band_names=["slope_pct"],
+                        fmt=raster_format) as slope_sink, \
+                RasterSink(stage / "conflict.tif", g, dtype="uint8", nodata=CONFLICT_OUTSIDE, fmt=raster_format,
+                           categorical=True,
                            band_names=["conflict bits: 1=slope" + "".join(f", {1 << (i + 1)}={z}" for i, z in enumerate(zone_names))]) as conflict_sink, \
                 progress_bar(len(windows), "audit", enabled=show_progress) as bar:
             for win, (sums, slope_pct, conflict) in map_windows(job, windows, engine=engine, workers=workers,

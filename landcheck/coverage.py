@@ -88,6 +88,7 @@ from .errors import InputDataError
 
 __all__ = [
     "MIN_FRACTION",
+    "CoverageBuffers",
     "CoverageTriplets",
     "PreparedPolygons",
     "coverage_triplets",
@@ -570,11 +571,31 @@ def _transform_terms(window_transform) -> tuple[float, float, float, float]:
     return a, c, e, f
 
 
+class CoverageBuffers:
+    """Output buffers that :func:`coverage_triplets` reuses from call to call (one per thread).
+
+    Triplets returned with ``buffers=`` are views into these arrays: they stay valid only
+    until the next call with the same buffers.  Reuse saves the page faults of fresh
+    multi-megabyte arrays for every window.
+    """
+
+    def __init__(self):
+        self.arrays = (np.empty(0, np.int64), np.empty(0, np.int32), np.empty(0, np.int32), np.empty(0, np.float64))
+
+    def at_least(self, capacity: int):
+        if self.arrays[0].shape[0] < capacity:
+            self.arrays = (np.empty(capacity, np.int64), np.empty(capacity, np.int32), np.empty(capacity, np.int32),
+                           np.empty(capacity, np.float64))
+        return self.arrays
+
+
 def coverage_triplets(
     polygons: PreparedPolygons | Sequence,
     window_transform,
     height: int,
     width: int,
+    *,
+    buffers: CoverageBuffers | None = None,
 ) -> CoverageTriplets:
     """Exact coverage fraction of every cell of one window by every polygon.
 
@@ -598,6 +619,10 @@ def coverage_triplets(
         raster CRS) inside the feature; multiply by the cell area (m^2) for
         area.  Parts of a feature outside the window are not counted, so
         results of windows that tile a raster add up to the whole-raster result.
+
+    buffers : CoverageBuffers, optional
+        Reuse these output arrays (the result is then a view into them, valid until the
+        next call with the same buffers).
 
     Raises
     ------
@@ -639,11 +664,16 @@ def coverage_triplets(
     capacity = int(min(max(float(np.sum(n_cols * n_rows)), 1024.0), float(_INITIAL_CAPACITY_MAX)))
     # allocated by NumPy (large arrays get transparent huge pages on Linux: far fewer page faults);
     # pages never written stay virtual, so the over-allocation costs no memory
+    if buffers is not None:
+        out = buffers.at_least(capacity)
+    else:
+        out = (np.empty(capacity, np.int64), np.empty(capacity, np.int32), np.empty(capacity, np.int32),
+               np.empty(capacity, np.float64))
     fi, ro, co, fr, n = _coverage_kernel(
         polygons.x, polygons.y, polygons.ring_offsets, polygons.ring_is_hole,
         polygons.feature_ring_start, polygons.feature_ring_stop, selected.astype(np.int64),
-        a, c, e, f, height, width, MIN_FRACTION,
-        np.empty(capacity, np.int64), np.empty(capacity, np.int32), np.empty(capacity, np.int32),
-        np.empty(capacity, np.float64),
+        a, c, e, f, height, width, MIN_FRACTION, *out,
     )
+    if buffers is not None and fi is not out[0]:  # the kernel grew them: keep the larger arrays
+        buffers.arrays = (fi, ro, co, fr)
     return CoverageTriplets(fi[:n], ro[:n], co[:n], fr[:n])

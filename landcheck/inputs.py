@@ -85,17 +85,31 @@ class DemSource:
         if ds is None or ds.closed:
             import rasterio
 
+            from .gdalcache import cap_gdal_cache
+
+            cap_gdal_cache()  # every DEM block passes GDAL's cache: keep it well below GDAL's 5 %-of-RAM default
             ds = rasterio.open(self.path)
             self._local.ds = ds
         return ds
 
-    def read(self, win: Window) -> np.ndarray:
-        """Elevations of ``win`` in metres as float64, NaN where invalid."""
+    def read(self, win: Window, dtype=np.float64) -> np.ndarray:
+        """Elevations of ``win`` in metres, NaN where invalid.
+
+        Parameters
+        ----------
+        win : Window
+        dtype : float64 (default) or float32
+            float32 is honoured only when it holds every value exactly (a float32 or
+            8/16-bit integer band in metres); otherwise float64 is returned.  Either way
+            the values are the same numbers, so kernels that widen to float64 give
+            identical results from both.
+        """
         ds = self._dataset()
-        arr = ds.read(self.band, window=win.to_rasterio(), masked=False).astype(np.float64, copy=False)
+        out_dtype = np.float32 if np.dtype(dtype) == np.float32 and self._float32_exact(ds) else np.float64
+        arr = ds.read(self.band, window=win.to_rasterio(), masked=False).astype(out_dtype, copy=False)
         invalid = ~np.isfinite(arr)
-        if self.nodata is not None and not np.isnan(self.nodata):
-            invalid |= arr == self.nodata
+        if self.nodata is not None and not np.isnan(self.nodata) and out_dtype(self.nodata) == self.nodata:
+            invalid |= arr == out_dtype(self.nodata)
         if _has_mask_band(ds, self.band):
             invalid |= ds.read_masks(self.band, window=win.to_rasterio()) == 0
         if invalid.any():
@@ -105,10 +119,13 @@ class DemSource:
             arr = arr * self.z_unit.to_m
         return arr
 
-    def read_with_halo(self, win: Window, halo: int) -> np.ndarray:
-        """``win`` grown by ``halo`` cells on every side; cells outside the raster are NaN."""
+    def _float32_exact(self, ds) -> bool:
+        return self.z_unit is ZUnit.METRE and ds.dtypes[self.band - 1] in ("float32", "int8", "uint8", "int16", "uint16")
+
+    def read_with_halo(self, win: Window, halo: int, dtype=np.float64) -> np.ndarray:
+        """``win`` grown by ``halo`` cells on every side; cells outside the raster are NaN (``dtype`` as in :meth:`read`)."""
         inner, pad = grow_window(win, halo, self.grid.height, self.grid.width)
-        arr = self.read(inner)
+        arr = self.read(inner, dtype)
         if any(p for pair in pad for p in pair):
             arr = np.pad(arr, pad, mode="constant", constant_values=np.nan)
         return arr

@@ -1,4 +1,4 @@
-"""Atomic writers: rasters (Cloud-Optimized GeoTIFF), tables (CSV, GeoPackage), JSON.
+"""Atomic writers: rasters (Cloud-Optimized or tiled GeoTIFF), tables (CSV, GeoPackage), JSON.
 
 Every writer puts its bytes in a temporary file beside the target and renames
 it into place only when complete, so a crash, a full disk or a permission
@@ -9,6 +9,7 @@ the same way: a hidden sibling folder, renamed when every file is in it.
 from __future__ import annotations
 
 import contextlib
+import enum
 import json
 import logging
 import os
@@ -20,6 +21,7 @@ from typing import Callable, Iterable, Iterator
 import numpy as np
 
 from .errors import OutputExistsError, OutputWriteError
+from .gdalcache import GDAL_CACHE_CAP_BYTES, cap_gdal_cache
 from .grid import GridSpec, Window
 
 __all__ = [
@@ -29,6 +31,8 @@ __all__ = [
     "write_json",
     "write_csv",
     "RasterSink",
+    "RasterFormat",
+    "cap_gdal_cache",
 ]
 
 logger = logging.getLogger(__name__)
@@ -160,59 +164,124 @@ def write_gpkg(path: str | os.PathLike, gdf, layer: str, *, overwrite: bool = Tr
     return Path(path)
 
 
-class RasterSink:
-    """Streamed writer for one raster: windows in, a Cloud-Optimized GeoTIFF out.
+class RasterFormat(str, enum.Enum):
+    """How a streamed raster is written (see docs/scale.md for the measured costs).
 
-    Windows are written to a tiled, compressed scratch GeoTIFF as they arrive;
-    :meth:`close` converts it to a COG (with overviews) beside the target and
-    renames it into place.  Memory use is one window, whatever the raster size.
+    * ``cog`` (default): Cloud-Optimized GeoTIFF, DEFLATE level 1 with a predictor, 512-cell tiles
+      and overviews; windows go to an uncompressed scratch file first, then one GDAL copy lays
+      the COG out.
+    * ``gtiff``: a tiled GeoTIFF (ZSTD level 1, 512-cell tiles, no overviews)
+      written straight from the window stream, compressed on all cores: no scratch file and no
+      second pass.  For large batch runs.
+    * ``none``: no raster file at all (only the tables); the audit's HTML report needs the rasters.
+    """
+
+    COG = "cog"
+    GTIFF = "gtiff"
+    NONE = "none"
+
+    @classmethod
+    def from_user(cls, value: "str | RasterFormat") -> "RasterFormat":
+        if isinstance(value, cls):
+            return value
+        key = str(value).strip().lower()
+        aliases = {"geotiff": cls.GTIFF, "tif": cls.GTIFF, "tiff": cls.GTIFF}
+        if key in aliases:
+            return aliases[key]
+        for m in cls:
+            if m.value == key:
+                return m
+        raise ValueError(f"unknown raster format {value!r}; choose one of: {', '.join(m.value for m in cls)}")
+
+
+class RasterSink:
+    """Streamed writer for one raster: windows in, a GeoTIFF out (:class:`RasterFormat`).
+
+    ``cog``: windows are written to an uncompressed tiled scratch GeoTIFF as they arrive;
+    :meth:`close` converts it to a COG (with overviews) beside the target and renames it into
+    place.  ``gtiff``: windows go straight into a compressed tiled GeoTIFF beside the target,
+    renamed into place on close.  ``none``: writes are ignored.  Memory use is bounded by
+    one window plus GDAL's capped block cache, whatever the raster size.
+
+    ``categorical=True`` builds COG overviews by nearest neighbour (class codes, bit flags);
+    otherwise by averaging.
     """
 
     def __init__(self, final: str | os.PathLike, grid: GridSpec, *, dtype: str, nodata, overwrite: bool = False,
-                 block: int = 512, band_names: list[str] | None = None, count: int = 1):
+                 block: int = 512, band_names: list[str] | None = None, count: int = 1,
+                 fmt: "RasterFormat | str" = RasterFormat.COG, categorical: bool = False):
         import rasterio
 
         self.final = Path(final)
-        if self.final.exists() and not overwrite:
-            raise OutputExistsError(f"{self.final}: already exists; pass --overwrite to replace it.")
-        self.final.parent.mkdir(parents=True, exist_ok=True)
-        fd, scratch = tempfile.mkstemp(prefix=f".{self.final.name}.", suffix=".scratch.tif", dir=self.final.parent)
-        os.close(fd)
-        self._scratch = Path(scratch)
+        self.fmt = RasterFormat.from_user(fmt)
         self._count = count
         self._band_names = band_names
+        self._categorical = categorical
+        self._float = np.dtype(dtype).kind == "f"
+        self._ds = None
+        self._scratch = None
+        if self.final.exists() and not overwrite:
+            raise OutputExistsError(f"{self.final}: already exists; pass --overwrite to replace it.")
+        if self.fmt is RasterFormat.NONE:
+            return
+        cap_gdal_cache()
+        self.final.parent.mkdir(parents=True, exist_ok=True)
+        suffix = ".scratch.tif" if self.fmt is RasterFormat.COG else ".part.tif"
+        fd, scratch = tempfile.mkstemp(prefix=f".{self.final.name}.", suffix=suffix, dir=self.final.parent)
+        os.close(fd)
+        self._scratch = Path(scratch)
+        if self.fmt is RasterFormat.COG:
+            options = {}  # scratch: uncompressed, fast
+        else:
+            # ZSTD level 1 without a predictor: the floating-point predictor saves ~11 % of the slope raster's
+            # size but costs a third more time (docs/scale.md); compression runs on all cores as tiles fill
+            options = dict(COMPRESS="ZSTD", ZSTD_LEVEL=1, NUM_THREADS="ALL_CPUS")
         try:
             self._ds = rasterio.open(
                 self._scratch, "w", driver="GTiff", width=grid.width, height=grid.height, count=count, dtype=dtype,
                 crs=grid.crs_wkt, transform=grid.transform, nodata=nodata, tiled=True,
-                blockxsize=block, blockysize=block, BIGTIFF="IF_SAFER",  # scratch: uncompressed, fast
+                blockxsize=block, blockysize=block, BIGTIFF="IF_SAFER", **options,
             )
         except Exception as exc:
             self._scratch.unlink(missing_ok=True)
             raise OutputWriteError(f"{self.final}: cannot create raster ({exc}).") from exc
 
     def write(self, win: Window, data: np.ndarray) -> None:
+        if self._ds is None:
+            return
         if data.ndim == 2:
             self._ds.write(data, 1, window=win.to_rasterio())
         else:
             self._ds.write(data, window=win.to_rasterio())
 
     def abort(self) -> None:
-        with contextlib.suppress(Exception):
-            self._ds.close()
-        self._scratch.unlink(missing_ok=True)
+        if self._ds is not None:
+            with contextlib.suppress(Exception):
+                self._ds.close()
+        if self._scratch is not None:
+            self._scratch.unlink(missing_ok=True)
 
-    def close(self) -> Path:
+    def close(self) -> Path | None:
+        """Finish the file and rename it into place; returns its path (None for ``none``)."""
         import rasterio.shutil
 
+        if self.fmt is RasterFormat.NONE:
+            return None
         try:
             if self._band_names:
                 for i, name in enumerate(self._band_names, start=1):
                     self._ds.set_band_description(i, name)
             self._ds.close()
+            if self.fmt is RasterFormat.GTIFF:
+                if self.final.exists():
+                    self.final.unlink()
+                os.chmod(self._scratch, 0o666 & ~_umask())
+                os.replace(self._scratch, self.final)
+                return self.final
             with atomic_file(self.final, overwrite=True, suffix=".tif") as tmp:
-                rasterio.shutil.copy(self._scratch, tmp, driver="COG", COMPRESS="DEFLATE", PREDICTOR="YES",
-                                     BLOCKSIZE=512, OVERVIEWS="AUTO", BIGTIFF="IF_SAFER", NUM_THREADS="ALL_CPUS")
+                rasterio.shutil.copy(self._scratch, tmp, driver="COG", COMPRESS="DEFLATE", LEVEL=1, PREDICTOR="YES",
+                                     BLOCKSIZE=512, OVERVIEWS="AUTO", BIGTIFF="IF_SAFER", NUM_THREADS="ALL_CPUS",
+                                     RESAMPLING="NEAREST" if self._categorical else "AVERAGE")
         except Exception as exc:
             self.abort()
             if isinstance(exc, OutputWriteError):

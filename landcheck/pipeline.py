@@ -12,7 +12,7 @@ import numpy as np
 
 from .grid import iter_windows
 from .inputs import ZUnit, open_dem
-from .outputs import RasterSink
+from .outputs import RasterFormat, RasterSink
 from .slope_classes import NO_CLASS, SlopeClassScheme, classify_slope, get_scheme
 from .terrain import SlopeMethod, SlopeUnit, gradient_to_unit
 from .tiling import progress_bar, run_windows, slope_window
@@ -51,6 +51,7 @@ def derive_slope(
     show_progress: bool | None = None,
     class_out: str | os.PathLike | None = None,
     class_scheme: "SlopeClassScheme | None" = None,
+    raster_format: RasterFormat | str = RasterFormat.COG,
 ) -> SlopeRunInfo:
     """Compute a slope raster from a DEM, window by window, and write it as a COG.
 
@@ -58,7 +59,14 @@ def derive_slope(
     for every tile size and worker count (tests check this).  With ``class_out``
     a uint8 slope-class raster (``class_scheme``, default the planning scheme) is
     written beside it, with the class labels in the band description.
+
+    ``raster_format`` is ``cog`` (default: Cloud-Optimized GeoTIFF with overviews) or ``gtiff``
+    (tiled ZSTD GeoTIFF written straight from the windows, no overviews; faster, for batch runs);
+    see :class:`landcheck.outputs.RasterFormat` and docs/scale.md.
     """
+    raster_format = RasterFormat.from_user(raster_format)
+    if raster_format is RasterFormat.NONE:
+        raise ValueError("the slope command writes a raster: choose raster_format 'cog' or 'gtiff'")
     method = SlopeMethod.from_user(method)
     unit = SlopeUnit.from_user(unit)
     dem = open_dem(dem_path, band=band, crs=dem_crs, z_unit=z_unit)
@@ -69,23 +77,29 @@ def derive_slope(
     scheme = class_scheme or get_scheme("planning-6")
     with contextlib.ExitStack() as stack:
         sink = stack.enter_context(RasterSink(out_path, g, dtype="float32", nodata=np.nan, overwrite=overwrite,
-                                              band_names=[f"slope_{unit.value}"]))
+                                              band_names=[f"slope_{unit.value}"], fmt=raster_format))
         class_sink = None
         if class_out is not None:
             class_sink = stack.enter_context(RasterSink(
-                class_out, g, dtype="uint8", nodata=NO_CLASS, overwrite=overwrite,
+                class_out, g, dtype="uint8", nodata=NO_CLASS, overwrite=overwrite, fmt=raster_format, categorical=True,
                 band_names=["slope class: " + "; ".join(f"{i}={lab}" for i, lab in enumerate(scheme.labels))]))
         bar = stack.enter_context(progress_bar(len(windows), "slope", enabled=show_progress))
-        for win, grad in run_windows(lambda w: slope_window(dem, w, method), windows, workers=workers, progress=bar):
+        want_classes = class_sink is not None
+
+        def task(w):  # runs in a worker thread: everything but the writes
+            grad = slope_window(dem, w, method)
             out = gradient_to_unit(grad, unit)
+            classes = classify_slope(gradient_to_unit(grad, SlopeUnit.PERCENT), scheme) if want_classes else None
+            n = int(np.count_nonzero(~np.isnan(out)))
+            lo, hi = (float(np.nanmin(out)), float(np.nanmax(out))) if n else (np.inf, -np.inf)
+            return out, classes, n, lo, hi
+
+        for win, (out, classes, n, lo, hi) in run_windows(task, windows, workers=workers, progress=bar):
             sink.write(win, out)
             if class_sink is not None:
-                class_sink.write(win, classify_slope(gradient_to_unit(grad, SlopeUnit.PERCENT), scheme))
-            finite = np.isfinite(out)
-            n = int(finite.sum())
-            if n:
-                valid += n
-                vmin = min(vmin, float(out[finite].min()))
-                vmax = max(vmax, float(out[finite].max()))
+                class_sink.write(win, classes)
+            valid += n
+            vmin = min(vmin, lo)
+            vmax = max(vmax, hi)
     logger.info("slope written to %s: %d valid cells, %.3f..%.3f %s", out_path, valid, vmin, vmax, unit.value)
     return SlopeRunInfo(Path(out_path), g.width, g.height, valid, vmin, vmax, unit.value, method.value)

@@ -1,16 +1,38 @@
 #!/usr/bin/env python3
 """Benchmark landcheck against reference tools measured in the same run.
 
-Prints, per DEM size: landcheck's slope throughput (cells/s) and peak RSS next
-to `gdaldem slope` on the same file, and (with --parcels) the full audit next to
-the by-hand pipeline (gdaldem slope -p, threshold to 0/1, exactextract
-coverage-weighted mean with its raster-sequential strategy).
+Per DEM size it times landcheck's slope stage next to `gdaldem slope -p` on the
+same file, and (with --parcels) the full audit next to the by-hand pipeline:
+gdaldem slope -p, threshold to 0/1 block by block with rasterio, then
+exactextract's coverage-weighted mean per parcel with its raster-sequential
+strategy.  It prints wall time, CPU time (user + system), cells/s, parcels/s,
+peak RSS and the ratios landcheck / reference.
 
-Every measurement runs in a fresh child process; peak RSS is that child's
-maximum resident set size (getrusage).  Data are generated into a cache folder
-(--cache, default .bench_cache/) and reused.
+What each side writes (stated in the output too):
 
-    python scripts/benchmark.py --sizes 2000 5000 --parcels 1000 10000
+* gdaldem slope: a GeoTIFF in its default layout (uncompressed, striped), float32.
+* landcheck slope: the same raster as ``--rasters`` says (default ``gtiff``: tiled,
+  ZSTD level 1; ``cog``: Cloud-Optimized GeoTIFF with overviews).
+* by-hand audit: the slope GeoTIFF above, an uncompressed uint8 0/1 raster, a CSV of
+  per-parcel means (one number per parcel: the share over 18 %).
+* landcheck audit: the slope and conflict rasters (``--rasters``), parcels.gpkg,
+  parcels.csv, classes.csv and summary.json (with SHA-256 of every input); every
+  share exact; no HTML report.
+
+Every measurement runs in a fresh child process (the interpreter itself, not a
+shell shim); peak RSS is that child's maximum resident set size (getrusage).
+Data are generated into a cache folder (--cache) and reused.  ``--memory-run N``
+also generates an N x N DEM (N = 30000 is 3.6 GB of float32: free disk space is
+checked first), times the slope stage on it (against gdaldem unless
+--no-reference) and runs the audit on it for the peak-memory figure, then
+deletes it unless --keep-memory-dem.
+
+``--with-proposed`` runs landcheck with changes proposed but not yet wired in
+(see docs/scale.md): ground areas from ``landcheck.ground_area.ground_areas_fast``
+and ``gc.freeze()`` at interpreter exit.  Rows are marked ``+p``.
+
+    python scripts/benchmark.py --sizes 2000 5000 10000 --parcels 1000 10000 100000
+    python scripts/benchmark.py --sizes 10000 --parcels 100000 --memory-run 30000
 """
 
 from __future__ import annotations
@@ -18,41 +40,40 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import resource
 import shutil
 import subprocess
 import sys
 import tempfile
-import time
 from pathlib import Path
 
 import numpy as np
 
 HERE = Path(__file__).resolve().parent
+REPO = HERE.parent
 CELL_M = 10.0
 ORIGIN = (400000.0, 1700000.0)
 CRS = "EPSG:32651"
 
 
 def measure(cmd: list[str], env=None) -> dict:
-    """Run ``cmd`` in a wrapper child; return wall seconds and the command's peak RSS in MiB."""
+    """Run ``cmd`` in a wrapper child; wall seconds, CPU seconds and the command's peak RSS in MiB."""
     wrapper = (
         "import json,resource,subprocess,sys,time;t=time.perf_counter();"
-        "r=subprocess.run(sys.argv[1:],stdout=subprocess.DEVNULL);"
-        "print(json.dumps({'wall_s':time.perf_counter()-t,'rc':r.returncode,"
-        "'peak_mib':resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss/1024}))"
+        "r=subprocess.run(sys.argv[1:],stdout=subprocess.DEVNULL);w=time.perf_counter()-t;"
+        "u=resource.getrusage(resource.RUSAGE_CHILDREN);"
+        "print(json.dumps({'wall_s':w,'rc':r.returncode,'cpu_s':u.ru_utime+u.ru_stime,'peak_mib':u.ru_maxrss/1024}))"
     )
     out = subprocess.run([sys.executable, "-c", wrapper, *cmd], capture_output=True, text=True, env=env)
     if out.returncode != 0 or not out.stdout.strip():
         raise RuntimeError(f"{cmd}: {out.stderr[-2000:]}")
     res = json.loads(out.stdout.strip().splitlines()[-1])
     if res["rc"] != 0:
-        raise RuntimeError(f"{' '.join(cmd)} exited {res['rc']}")
+        raise RuntimeError(f"{' '.join(cmd)} exited {res['rc']}: {out.stderr[-2000:]}")
     return res
 
 
 def make_dem(path: Path, n: int, seed: int = 1) -> Path:
-    """A hilly float32 DEM, written in strips so generating it needs little memory."""
+    """A hilly float32 DEM in 512-cell tiles, written in strips so generating it needs little memory."""
     import rasterio
     from rasterio.transform import from_origin
 
@@ -64,8 +85,8 @@ def make_dem(path: Path, n: int, seed: int = 1) -> Path:
                 transform=from_origin(ORIGIN[0], ORIGIN[1], CELL_M, CELL_M), nodata=-9999.0, tiled=True,
                 blockxsize=512, blockysize=512, BIGTIFF="IF_SAFER")
     tmp = path.with_suffix(".part.tif")
-    with rasterio.open(tmp, "w", **prof) as ds:
-        step = 512
+    step = 512 if n <= 10000 else 128
+    with rasterio.Env(GDAL_CACHEMAX=256 * 2**20), rasterio.open(tmp, "w", **prof) as ds:
         x = np.arange(n)[None, :] * CELL_M
         for r0 in range(0, n, step):
             y = np.arange(r0, min(n, r0 + step))[:, None] * CELL_M
@@ -80,27 +101,29 @@ def make_parcels(path: Path, n_dem: int, count: int, seed: int = 2) -> Path:
     """``count`` non-overlapping rotated lots of 0.1-13 ha spread over the DEM (GeoPackage)."""
     import geopandas as gpd
     import shapely
-    from shapely import affinity
 
     if path.exists():
         return path
     rng = np.random.default_rng(seed)
     extent = n_dem * CELL_M
-    side = extent / np.ceil(np.sqrt(count))
     k = int(np.ceil(np.sqrt(count)))
-    geoms, ids = [], []
-    for i in range(count):
-        r, c = divmod(i, k)
-        area = rng.uniform(1_000, 130_000)
-        w = min(np.sqrt(area) * rng.uniform(0.7, 1.4), side * 0.7)
-        h = min(area / w, side * 0.7)
-        cx = ORIGIN[0] + (c + 0.5) * side
-        cy = ORIGIN[1] - (r + 0.5) * side
-        g = shapely.box(cx - w / 2, cy - h / 2, cx + w / 2, cy + h / 2)
-        geoms.append(affinity.rotate(g, rng.uniform(0, 90), origin="centroid"))
-        ids.append(i + 1)
+    side = extent / k
+    i = np.arange(count)
+    r, c = np.divmod(i, k)
+    area = rng.uniform(1_000, 130_000, count)
+    w = np.minimum(np.sqrt(area) * rng.uniform(0.7, 1.4, count), side * 0.7)
+    h = np.minimum(area / w, side * 0.7)
+    cx = ORIGIN[0] + (c + 0.5) * side
+    cy = ORIGIN[1] - (r + 0.5) * side
+    ang = np.radians(rng.uniform(0, 90, count))
+    # corners of each rotated rectangle, vectorised
+    dx = np.array([-1, 1, 1, -1, -1])[None, :] * (w / 2)[:, None]
+    dy = np.array([-1, -1, 1, 1, -1])[None, :] * (h / 2)[:, None]
+    xs = cx[:, None] + dx * np.cos(ang)[:, None] - dy * np.sin(ang)[:, None]
+    ys = cy[:, None] + dx * np.sin(ang)[:, None] + dy * np.cos(ang)[:, None]
+    geoms = shapely.polygons(np.stack([xs, ys], axis=-1))
     zoning = rng.choice(["RES", "COM", "AGR"], size=count)
-    gpd.GeoDataFrame({"pid": ids, "zoning": zoning}, geometry=geoms, crs=CRS).to_file(path, layer="parcels")
+    gpd.GeoDataFrame({"pid": i + 1, "zoning": zoning}, geometry=geoms, crs=CRS).to_file(path, layer="parcels")
     return path
 
 
@@ -134,67 +157,175 @@ with rasterio.open(tmp) as r:
 res.to_csv(out_csv)
 """
 
+# landcheck through its Python API (the same functions the CLI calls), so the raster format can be chosen
+RUNNER = r"""
+import sys
+what, proposed = sys.argv[1], sys.argv[2] == "1"
+if proposed:
+    import atexit, gc
+    atexit.register(gc.freeze)  # proposed for the CLI: skip the final garbage collection of numba's objects
+if proposed and what == "audit":
+    import landcheck.audit as _a
+    from landcheck.ground_area import ground_areas_fast
+    _a.ground_areas = lambda frame, crs_wkt: ground_areas_fast(frame, crs_wkt)
+if what == "slope":
+    from landcheck.pipeline import derive_slope
+    derive_slope(sys.argv[3], sys.argv[4], raster_format=sys.argv[5], show_progress=False)
+else:
+    from landcheck.audit import audit
+    audit(sys.argv[3], sys.argv[4], sys.argv[5], sys.argv[6], rasters=sys.argv[7], make_report=False,
+          show_progress=False)
+"""
+
+
+def _fmt_table(rows: list[dict]) -> str:
+    hdr = (f"{'test':6} {'size':>6} {'parcels':>8} {'lc s':>7} {'lc cpu':>7} {'ref s':>7} {'ratio':>6} "
+           f"{'lc Mcell/s':>10} {'ref Mcell/s':>11} {'lc parcel/s':>11} {'lc MiB':>7} {'ref MiB':>7} {'read s':>6}")
+    lines = [hdr]
+    for r in rows:
+        ref = r.get("ref_s")
+        lines.append(
+            f"{r['test']:6} {r['size']:>6} {r['parcels']:>8} {r['lc_s']:>7.2f} {r['lc_cpu_s']:>7.2f} "
+            f"{(ref if ref else float('nan')):>7.2f} {(r['lc_s'] / ref if ref else float('nan')):>6.2f} "
+            f"{r['lc_mcells_s']:>10.1f} {(r.get('ref_mcells_s') or float('nan')):>11.1f} "
+            f"{(r.get('lc_parcels_s') or float('nan')):>11.0f} {r['lc_peak_mib']:>7.0f} "
+            f"{(r.get('ref_peak_mib') or float('nan')):>7.0f} {(r.get('read_floor_s') or float('nan')):>6.2f}")
+    return "\n".join(lines)
+
 
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    ap.add_argument("--sizes", type=int, nargs="+", default=[2000, 5000])
+    ap.add_argument("--sizes", type=int, nargs="*", default=[2000, 5000], help="DEM sizes (cells per side)")
     ap.add_argument("--parcels", type=int, nargs="*", default=[], help="parcel counts for the audit comparison")
-    ap.add_argument("--cache", type=Path, default=Path(".bench_cache"))
+    ap.add_argument("--cache", type=Path, default=Path(".bench_cache"), help="folder for generated inputs")
     ap.add_argument("--repeat", type=int, default=1, help="repeat each timing, keep the fastest")
+    ap.add_argument("--rasters", choices=["cog", "gtiff", "none"], default="gtiff",
+                    help="landcheck's raster output (slope: cog or gtiff)")
+    ap.add_argument("--no-reference", action="store_true", help="time landcheck only (no gdaldem / by-hand runs)")
+    ap.add_argument("--with-proposed", action="store_true",
+                    help="also time landcheck with the proposed, not yet wired changes (rows marked +p)")
+    ap.add_argument("--memory-run", type=int, default=None, metavar="N",
+                    help="also run the audit on a generated N x N DEM for its peak memory (e.g. 30000)")
+    ap.add_argument("--memory-parcels", type=int, default=100_000)
+    ap.add_argument("--keep-memory-dem", action="store_true")
+    ap.add_argument("--json", type=Path, default=None, help="also write the rows as JSON here")
     args = ap.parse_args(argv)
-    if shutil.which("gdaldem") is None:
-        print("gdaldem not found: install Debian's gdal-bin for the reference timings", file=sys.stderr)
+    if not args.no_reference and shutil.which("gdaldem") is None:
+        print("gdaldem not found: install Debian's gdal-bin for the reference timings (or --no-reference)",
+              file=sys.stderr)
         return 2
     args.cache.mkdir(parents=True, exist_ok=True)
-    work = Path(tempfile.mkdtemp(prefix="lc-bench-"))
+    work = Path(tempfile.mkdtemp(prefix="lc-bench-", dir=args.cache))
+    env = dict(os.environ, PYTHONPATH=str(REPO) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    rules = work / "rules.toml"
+    rules.write_text(RULEBOOK)
+    (work / "byhand.py").write_text(BY_HAND)
+    (work / "runner.py").write_text(RUNNER)
+    slope_fmt = "gtiff" if args.rasters == "none" else args.rasters
+    variants = [("", "0")] + ([("+p", "1")] if args.with_proposed else [])
     rows = []
+
+    def clean():
+        for f in work.glob("out*"):
+            shutil.rmtree(f) if f.is_dir() else f.unlink()
+
+    def best(cmd):
+        runs = []
+        for _ in range(args.repeat):
+            clean()
+            runs.append(measure(cmd, env))
+        clean()
+        return min(runs, key=lambda r: r["wall_s"])
+
     try:
         for n in args.sizes:
             dem = make_dem(args.cache / f"dem_{n}.tif", n)
-
-            def best(cmd):
-                runs = []
-                for _ in range(args.repeat):
-                    for f in work.glob("*"):
-                        shutil.rmtree(f) if f.is_dir() else f.unlink()
-                    runs.append(measure(cmd))
-                return min(runs, key=lambda r: r["wall_s"])
-
-            read = best([sys.executable, "-c", "import rasterio,sys; rasterio.open(sys.argv[1]).read(1)", str(dem)])
-            gd = best(["gdaldem", "slope", "-p", "-q", str(dem), str(work / "gd.tif")])
-            lc = best([sys.executable, "-m", "landcheck", "-q", "slope", str(dem), str(work / "lc.tif")])
             cells = n * n
-            rows.append(dict(test="slope", size=n, parcels=0, lc_s=lc["wall_s"], ref_s=gd["wall_s"],
-                             lc_mcells_s=cells / lc["wall_s"] / 1e6, ref_mcells_s=cells / gd["wall_s"] / 1e6,
-                             lc_peak_mib=lc["peak_mib"], ref_peak_mib=gd["peak_mib"], read_floor_s=read["wall_s"]))
+            read = gd = None
+            if not args.no_reference:
+                read = best([sys.executable, "-c", "import rasterio,sys; rasterio.open(sys.argv[1]).read(1)", str(dem)])
+                gd = best(["gdaldem", "slope", "-p", "-q", str(dem), str(work / "out_gd.tif")])
+            for tag, flag in variants:
+                lc = best([sys.executable, str(work / "runner.py"), "slope", flag, str(dem), str(work / "out_lc.tif"),
+                           slope_fmt])
+                rows.append(dict(test="slope" + tag, size=n, parcels=0, lc_s=lc["wall_s"], lc_cpu_s=lc["cpu_s"],
+                                 lc_mcells_s=cells / lc["wall_s"] / 1e6, lc_peak_mib=lc["peak_mib"],
+                                 ref_s=gd and gd["wall_s"], ref_cpu_s=gd and gd["cpu_s"],
+                                 ref_mcells_s=gd and cells / gd["wall_s"] / 1e6, ref_peak_mib=gd and gd["peak_mib"],
+                                 read_floor_s=read and read["wall_s"]))
+                print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
             for count in args.parcels:
                 parcels = make_parcels(args.cache / f"parcels_{n}_{count}.gpkg", n, count)
-                rules = work.parent / f"lc-bench-rules-{os.getpid()}.toml"
-                rules.write_text(RULEBOOK)
-                script = work.parent / f"lc-bench-byhand-{os.getpid()}.py"
-                script.write_text(BY_HAND)
-                hand = best([sys.executable, str(script), str(work / "s.tif"), str(parcels), str(work / "h.csv"),
-                             str(work / "t.tif"), str(dem)])
-                lc = best([sys.executable, "-m", "landcheck", "-q", "audit", "--dem", str(dem), "--parcels", str(parcels),
-                           "--rulebook", str(rules), "--out", str(work / "audit"), "--no-report"])
-                rows.append(dict(test="audit", size=n, parcels=count, lc_s=lc["wall_s"], ref_s=hand["wall_s"],
-                                 lc_mcells_s=cells / lc["wall_s"] / 1e6, ref_mcells_s=cells / hand["wall_s"] / 1e6,
-                                 lc_peak_mib=lc["peak_mib"], ref_peak_mib=hand["peak_mib"], read_floor_s=read["wall_s"],
-                                 lc_parcels_s=count / lc["wall_s"]))
+                hand = None
+                if not args.no_reference:
+                    hand = best([sys.executable, str(work / "byhand.py"), str(work / "out_s.tif"), str(parcels),
+                                 str(work / "out_h.csv"), str(work / "out_t.tif"), str(dem)])
+                for tag, flag in variants:
+                    lc = best([sys.executable, str(work / "runner.py"), "audit", flag, str(dem), str(parcels), str(rules),
+                               str(work / "out_audit"), args.rasters])
+                    rows.append(dict(test="audit" + tag, size=n, parcels=count, lc_s=lc["wall_s"], lc_cpu_s=lc["cpu_s"],
+                                     lc_mcells_s=cells / lc["wall_s"] / 1e6, lc_parcels_s=count / lc["wall_s"],
+                                     lc_peak_mib=lc["peak_mib"], ref_s=hand and hand["wall_s"],
+                                     ref_cpu_s=hand and hand["cpu_s"],
+                                     ref_mcells_s=hand and cells / hand["wall_s"] / 1e6,
+                                     ref_peak_mib=hand and hand["peak_mib"], read_floor_s=read and read["wall_s"]))
+                    print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
+        if args.memory_run:
+            rows += _memory_run(args, work, env, rules, variants)
     finally:
         shutil.rmtree(work, ignore_errors=True)
-        for p in work.parent.glob(f"lc-bench-*-{os.getpid()}.*"):
-            p.unlink()
-    hdr = f"{'test':6} {'size':>6} {'parcels':>8} {'landcheck s':>12} {'ref s':>8} {'ratio':>6} {'lc Mcell/s':>10} " \
-          f"{'ref Mcell/s':>11} {'lc peak MiB':>11} {'ref peak MiB':>12} {'read s':>7}"
-    print(hdr)
-    for r in rows:
-        print(f"{r['test']:6} {r['size']:>6} {r['parcels']:>8} {r['lc_s']:>12.2f} {r['ref_s']:>8.2f} "
-              f"{r['lc_s'] / r['ref_s']:>6.2f} {r['lc_mcells_s']:>10.1f} {r['ref_mcells_s']:>11.1f} "
-              f"{r['lc_peak_mib']:>11.0f} {r['ref_peak_mib']:>12.0f} {r['read_floor_s']:>7.2f}")
-    print("ratio = landcheck wall time / reference wall time (slope: gdaldem slope -p; audit: gdaldem + threshold + "
-          "exactextract raster-sequential). Reference and landcheck measured in this run.")
+    print()
+    print(_fmt_table(rows))
+    print(f"ratio = landcheck wall time / reference wall time, both measured in this run. slope: reference "
+          f"`gdaldem slope -p` writing its default GeoTIFF (uncompressed strips); landcheck writes {slope_fmt} "
+          f"({'tiled ZSTD level 1' if slope_fmt == 'gtiff' else 'COG, DEFLATE level 1, overviews'}). audit: reference "
+          f"gdaldem + 0/1 threshold raster + exactextract raster-sequential mean per parcel (CSV); landcheck "
+          f"writes rasters={args.rasters}, parcels.gpkg/.csv, classes.csv, summary.json, exact shares, no report. "
+          f"'lc cpu' = user + system CPU seconds; 'read s' = reading the whole DEM once with rasterio.")
+    if args.json:
+        args.json.write_text(json.dumps(rows, indent=1))
     return 0
+
+
+def _memory_run(args, work: Path, env, rules: Path, variants) -> list[dict]:
+    n = args.memory_run
+    need = 4 * n * n * 3.2 + 2**30  # the DEM, gdaldem's and landcheck's slope rasters, the conflict raster, spare
+    free = shutil.disk_usage(args.cache).free
+    if free < need:
+        print(f"memory run skipped: {n}x{n} needs about {need / 2**30:.1f} GiB free in {args.cache}, "
+              f"{free / 2**30:.1f} GiB available", file=sys.stderr)
+        return []
+    dem_path = args.cache / f"dem_{n}.tif"
+    rows = []
+    try:
+        dem = make_dem(dem_path, n)
+        parcels = make_parcels(args.cache / f"parcels_{n}_{args.memory_parcels}.gpkg", n, args.memory_parcels)
+        slope_fmt = "gtiff" if args.rasters == "none" else args.rasters
+        gd = None
+        if not args.no_reference:
+            gd = measure(["gdaldem", "slope", "-p", "-q", str(dem), str(work / "out_gd.tif")], env)
+            (work / "out_gd.tif").unlink(missing_ok=True)
+        for tag, flag in variants:
+            lc = measure([sys.executable, str(work / "runner.py"), "slope", flag, str(dem), str(work / "out_lc.tif"),
+                          slope_fmt], env)
+            (work / "out_lc.tif").unlink(missing_ok=True)
+            rows.append(dict(test="slope" + tag, size=n, parcels=0, lc_s=lc["wall_s"], lc_cpu_s=lc["cpu_s"],
+                             lc_mcells_s=n * n / lc["wall_s"] / 1e6, lc_peak_mib=lc["peak_mib"],
+                             ref_s=gd and gd["wall_s"], ref_cpu_s=gd and gd["cpu_s"],
+                             ref_mcells_s=gd and n * n / gd["wall_s"] / 1e6, ref_peak_mib=gd and gd["peak_mib"]))
+            print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
+        for tag, flag in variants:
+            lc = measure([sys.executable, str(work / "runner.py"), "audit", flag, str(dem), str(parcels), str(rules),
+                          str(work / "out_audit"), args.rasters], env)
+            shutil.rmtree(work / "out_audit", ignore_errors=True)
+            rows.append(dict(test="memory" + tag, size=n, parcels=args.memory_parcels, lc_s=lc["wall_s"],
+                             lc_cpu_s=lc["cpu_s"], lc_mcells_s=n * n / lc["wall_s"] / 1e6,
+                             lc_parcels_s=args.memory_parcels / lc["wall_s"], lc_peak_mib=lc["peak_mib"]))
+            print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
+    finally:
+        if not args.keep_memory_dem:
+            dem_path.unlink(missing_ok=True)
+    return rows
 
 
 if __name__ == "__main__":
