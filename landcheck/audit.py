@@ -310,7 +310,7 @@ def audit(
         summary = _summary(rules, parcels, classes, totals, plan, pr, counted, zone_names, collected, columns)
         summary.update(extra)
         summary["manifest"] = _manifest(started, dem, parcels_path, rules, settings, workers, g, engine, conf,
-                                        capability_scheme, draft_mmu_m2)
+                                        capability_scheme, draft_mmu_m2, raster_format.value)
         if zones is not None:
             summary["zones"] = zones.describe()
             zones.write_layers(stage)
@@ -425,7 +425,8 @@ def _zone_shares_by_class(parcels: pd.DataFrame, rules: Rulebook, columns) -> di
 
 
 def _manifest(started, dem: DemSource, parcels_path, rules: Rulebook, settings: AuditSettings, workers, g,
-              engine: str = "threads", conf=None, capability_scheme=None, draft_mmu_m2=None) -> dict:
+              engine: str = "threads", conf=None, capability_scheme=None, draft_mmu_m2=None,
+              rasters: str = "cog") -> dict:
     from .versions import show_versions
 
     inputs = [{"role": "dem", "path": str(Path(dem.path).resolve()), "sha256": sha256_file(dem.path)}]
@@ -449,6 +450,7 @@ def _manifest(started, dem: DemSource, parcels_path, rules: Rulebook, settings: 
             "parcels_crs_override": settings.parcels_crs,
             "workers": workers,
             "engine": engine,
+            "rasters": str(rasters),
             "confidence": conf.describe() if conf is not None else None,
             "capability_scheme": str(capability_scheme) if capability_scheme is not None else None,
             "draft_mmu_m2": draft_mmu_m2,

@@ -90,6 +90,9 @@ Examples:
               help="Also write a land-capability map: planning-6, fao-2006 or breaks like 8,18,30.")
 @click.option("--draft-reclassification", "draft_mmu_m2", type=float, default=None, metavar="MMU_M2",
               help="Split conflicting parcels into compliant and non-compliant parts (minimum mapping unit in m²).")
+@click.option("--rasters", type=click.Choice(["cog", "gtiff", "none"]), default="cog", show_default=True,
+              help="Slope and conflict rasters as Cloud-Optimized GeoTIFF, plain tiled GeoTIFF (faster for big "
+                   "runs), or none (tables only; needs --no-report).")
 @click.option("--no-report", is_flag=True, help="Skip the HTML report and maps.")
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary on stdout.")
 @click.option("--fail-on-conflict", is_flag=True, help="Exit with status 1 when any parcel is in conflict.")
@@ -97,7 +100,7 @@ Examples:
 @handle_errors
 def command(ctx, dem, parcels, parcels_layer, parcels_crs, rulebook, out_dir, method, dem_band, dem_crs, z_unit,
             tile_cells, workers, overwrite, engine, scheduler_address, dem_rmse_m, corr_length_m, realizations, seed,
-            capability_scheme, draft_mmu_m2, no_report, as_json, fail_on_conflict):
+            capability_scheme, draft_mmu_m2, rasters, no_report, as_json, fail_on_conflict):
     if capability_scheme is not None and "," in capability_scheme:
         try:
             capability_scheme = [float(b) for b in capability_scheme.split(",")]
@@ -110,4 +113,4 @@ def command(ctx, dem, parcels, parcels_layer, parcels_crs, rulebook, out_dir, me
                          workers=workers, overwrite=overwrite, make_report=not no_report,
                          engine="dask" if scheduler_address else engine, scheduler_address=scheduler_address,
                          dem_rmse_m=dem_rmse_m, corr_length_m=corr_length_m, realizations=realizations, seed=seed,
-                         capability_scheme=capability_scheme, draft_mmu_m2=draft_mmu_m2)
+                         capability_scheme=capability_scheme, draft_mmu_m2=draft_mmu_m2, rasters=rasters)
