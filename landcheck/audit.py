@@ -27,7 +27,7 @@ from .evaluate import (SENSITIVITY_LIMITS_PCT, Verdict, evaluate_parcels, parcel
                        slope_histogram, summarise_classes)
 from .grid import Window, iter_windows
 from .inputs import DemSource, ZUnit, open_dem
-from .layers import ground_areas, read_parcels
+from .layers import areal_factor_at, ground_areas, read_parcels
 from .outputs import RasterFormat, RasterSink, check_output_path, staged_folder, write_csv, write_gpkg, write_json
 from .coverage import CoverageBuffers, coverage_triplets, prepare_polygons
 from .overlay import CONFLICT_OUTSIDE, ROLE_PARCEL, OverlayPlan, Totals, accumulate_window_compiled
@@ -192,8 +192,19 @@ def audit(
     engine: str = "threads",
     scheduler_address: str | None = None,
     rasters: str = "cog",
+    dem_rmse_m: float | None = None,
+    corr_length_m: float | None = None,
+    realizations: int | None = None,
+    seed: int | None = None,
+    capability_scheme=None,
+    draft_mmu_m2: float | None = None,
+    skip_confidence: bool = False,
 ) -> AuditResult:
     """Run the audit and write its output folder (docs/outputs.md).
+
+    Optional extras (docs/confidence.md): verdict confidence under DEM error (``dem_rmse_m`` or the
+    rulebook's ``[uncertainty]``), a land-capability map (``capability_scheme``, e.g. ``"planning-6"``)
+    and a drafted reclassification of conflicting parcels (``draft_mmu_m2``, minimum mapping unit).
 
     Raises
     ------
@@ -209,6 +220,12 @@ def audit(
                              dem_crs, ZUnit.from_user(z_unit), parcels_layer, parcels_crs)
     dem = open_dem(dem_path, band=dem_band, crs=dem_crs, z_unit=settings.z_unit)
     g = dem.grid
+    from .confidence import confidence_settings
+
+    conf = None if skip_confidence else confidence_settings(rules, g, rmse_m=dem_rmse_m, corr_length_m=corr_length_m,
+                                                            realizations=realizations, seed=seed)
+    if draft_mmu_m2 is not None and draft_mmu_m2 < 0:
+        raise InputDataError(f"minimum mapping unit: got {draft_mmu_m2} m²; give 0 or a positive area.")
     step(f"DEM {g.width}x{g.height} cells, {'geographic' if g.geographic else 'projected'}")
     collected: list[str] = []
     with warnings.catch_warnings(record=True) as caught:
@@ -242,12 +259,9 @@ def audit(
                f"({', '.join(map(repr, unmatched[:10]))}); they are listed with verdict no_rule.")
         collected.append(msg)
         warnings.warn(msg, LandcheckWarning, stacklevel=2)
-    ground_factor = 1.0
-    if not g.geographic:
-        cx, cy = (g.bounds[0] + g.bounds[2]) / 2, (g.bounds[1] + g.bounds[3]) / 2
-        ground_factor = float(ground_areas(
-            __import__("geopandas").GeoDataFrame(geometry=[shapely.box(cx - 1, cy - 1, cx + 1, cy + 1)], crs=g.crs_wkt),
-            g.crs_wkt)[1][0])
+    # whole-area land figures use the map-to-ground factor at the DEM's centre (parcels use their own)
+    ground_factor = 1.0 if g.geographic else areal_factor_at(g.crs_wkt, (g.bounds[0] + g.bounds[2]) / 2,
+                                                               (g.bounds[1] + g.bounds[3]) / 2)
     step(f"{len(frame)} parcels, {len(rules.classes)} classes, {len(rules.zones)} zones")
 
     zones = None
@@ -290,9 +304,13 @@ def audit(
         parcels.insert(0, "parcel_id", frame["parcel_id"].to_numpy())
         parcels["geometry_note"] = frame["geometry_note"].to_numpy()
         classes = summarise_classes(parcels, rules)
+        extra = _extras(stage, dem, windows, all_geoms, plan, rules, pr, settings, parcels, zones, conf,
+                        capability_scheme, draft_mmu_m2, workers, show_progress, step)
         counted = (parcels["verdict"] != Verdict.NO_DATA).to_numpy() & (parcels["verdict"] != Verdict.NO_RULE).to_numpy()
         summary = _summary(rules, parcels, classes, totals, plan, pr, counted, zone_names, collected, columns)
-        summary["manifest"] = _manifest(started, dem, parcels_path, rules, settings, workers, g, engine)
+        summary.update(extra)
+        summary["manifest"] = _manifest(started, dem, parcels_path, rules, settings, workers, g, engine, conf,
+                                        capability_scheme, draft_mmu_m2, raster_format.value)
         if zones is not None:
             summary["zones"] = zones.describe()
             zones.write_layers(stage)
@@ -313,6 +331,46 @@ def audit(
                 build_report(stage)
     step(f"outputs in {out}")
     return AuditResult(out, summary, parcels, classes, collected)
+
+
+def _extras(stage, dem, windows, all_geoms, plan, rules, pr, settings, parcels, zones, conf, capability_scheme,
+            draft_mmu_m2, workers, show_progress, step) -> dict:
+    """Confidence under DEM error, capability map, drafted reclassification; writes their files, adds columns."""
+    extra: dict = {}
+    if conf is not None:
+        from .confidence import run_confidence
+
+        step(f"confidence: {conf.realizations} realizations of DEM error (RMSE {conf.model.rmse_m:g} m)")
+        with progress_bar(conf.realizations * len(windows), "confidence", enabled=show_progress) as cbar:
+            cparcels, cclasses, extra["confidence"] = run_confidence(
+                dem, windows, all_geoms, plan, rules, pr, settings, parcels, conf, zones=zones, workers=workers,
+                progress=cbar)
+        parcels["p_conflict"] = cparcels["p_conflict"].to_numpy()
+        parcels["confidence"] = cparcels["confidence"].to_numpy()
+        write_csv(stage / "confidence.csv", cparcels)
+        write_csv(stage / "confidence_classes.csv", cclasses)
+    if capability_scheme is not None:
+        from .capability import capability_spec, run_capability, write_capability_legend
+
+        step("land-capability map")
+        spec = capability_spec(rules, zones, scheme=capability_scheme)
+        table, _ = run_capability(dem, windows, all_geoms, plan, rules, spec, stage / "capability.tif",
+                                  method=settings.method, zones=zones, workers=workers)
+        write_csv(stage / "capability_by_class.csv", table)
+        write_capability_legend(stage, spec)
+        extra["capability_map"] = {"scheme": spec.scheme.key, "hazard_zones": list(spec.hazard_zones)}
+    if draft_mmu_m2 is not None:
+        from .reclassify import draft_reclassification
+
+        step("drafting the reclassification of conflicting parcels")
+        parts, moves = draft_reclassification(dem, settings, parcels, all_geoms, plan, rules, pr, zones=zones,
+                                              mmu_m2=draft_mmu_m2)
+        if len(parts):
+            write_gpkg(stage / "reclassification.gpkg", parts, layer="parts")
+        write_csv(stage / "reclassification_moves.csv", moves)
+        extra["reclassification"] = {"mmu_m2": draft_mmu_m2, "parts": int(len(parts)),
+                                     "moves": moves.to_dict(orient="records")}
+    return extra
 
 
 def _summary(rules, parcels, classes, totals, plan, pr, counted, zone_names, collected, columns) -> dict:
@@ -367,7 +425,8 @@ def _zone_shares_by_class(parcels: pd.DataFrame, rules: Rulebook, columns) -> di
 
 
 def _manifest(started, dem: DemSource, parcels_path, rules: Rulebook, settings: AuditSettings, workers, g,
-              engine: str = "threads") -> dict:
+              engine: str = "threads", conf=None, capability_scheme=None, draft_mmu_m2=None,
+              rasters: str = "cog") -> dict:
     from .versions import show_versions
 
     inputs = [{"role": "dem", "path": str(Path(dem.path).resolve()), "sha256": sha256_file(dem.path)}]
@@ -391,6 +450,10 @@ def _manifest(started, dem: DemSource, parcels_path, rules: Rulebook, settings: 
             "parcels_crs_override": settings.parcels_crs,
             "workers": workers,
             "engine": engine,
+            "rasters": str(rasters),
+            "confidence": conf.describe() if conf is not None else None,
+            "capability_scheme": str(capability_scheme) if capability_scheme is not None else None,
+            "draft_mmu_m2": draft_mmu_m2,
             "edge_policy": "strict window: no slope where the cell or a neighbour the method reads is invalid",
             "coverage": "exact cell-coverage fractions",
         },

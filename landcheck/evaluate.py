@@ -21,7 +21,7 @@ import pandas as pd
 from .overlay import HIST_EDGES_PCT, OverlayPlan, Totals
 from .rules import NO_RULE, Rulebook
 
-__all__ = ["Verdict", "evaluate_parcels", "summarise_classes", "sensitivity_table", "SENSITIVITY_LIMITS_PCT"]
+__all__ = ["Verdict", "is_breach", "evaluate_parcels", "summarise_classes", "sensitivity_table", "SENSITIVITY_LIMITS_PCT"]
 
 #: slope limits for the sensitivity curve, percent (10 to 30 in 1-point steps)
 SENSITIVITY_LIMITS_PCT = np.arange(10.0, 31.0, 1.0)
@@ -40,7 +40,8 @@ def _fmt_m2(v: float) -> str:
     return f"{v:,.0f} m²" if v >= 10 else f"{v:.1f} m²"
 
 
-def _is_breach(area_m2: np.ndarray, base_m2: np.ndarray, tol_share: np.ndarray, min_m2: np.ndarray) -> np.ndarray:
+def is_breach(area_m2: np.ndarray, base_m2: np.ndarray, tol_share: np.ndarray, min_m2: np.ndarray) -> np.ndarray:
+    """The class rule's breach test: more than the tolerance share of the base area, and at least ``min_m2``."""
     return (area_m2 > tol_share * base_m2) & (area_m2 >= min_m2) & (area_m2 > 0)
 
 
@@ -87,8 +88,8 @@ def evaluate_parcels(
         over_share = np.where(ev > 0, over / ev, np.nan)
         conflict_share = np.where(cov > 0, totals.conflict_m2 / cov, np.nan)
 
-    is_conflict = _is_breach(totals.conflict_m2, cov, pr.tol_share, pr.min_breach_m2)
-    is_near = _is_breach(totals.near_conflict_m2, cov, pr.tol_share, pr.min_breach_m2)
+    is_conflict = is_breach(totals.conflict_m2, cov, pr.tol_share, pr.min_breach_m2)
+    is_near = is_breach(totals.near_conflict_m2, cov, pr.tol_share, pr.min_breach_m2)
     no_rule = pr.class_name == NO_RULE
     no_data = ~no_rule & (empty | (eval_share < rules.min_evaluated_share))
     verdict = np.where(no_rule, Verdict.NO_RULE,

@@ -20,8 +20,7 @@ edges are straight in that map is the shoelace sum
 
     A = | sum_i (lambda_{i+1} - lambda_i) (F_i + F_{i+1}) / 2 |.
 
-Edges are first densified (``DENSIFY_M`` / ``DENSIFY_DEG``, as in
-:mod:`landcheck.layers`), so each piece is at most 20 m long; over such a piece
+Edges are first densified (``DENSIFY_M`` / ``DENSIFY_DEG``), so each piece is at most 20 m long; over such a piece
 a straight line of the layer's CRS, a geodesic and a straight line of the
 equal-area map part by micrometres, and the areas agree with
 ``pyproj.Geod.geometry_area_perimeter`` (Karney 2013) to about 1e-9 relative
@@ -45,7 +44,7 @@ import numpy as np
 
 __all__ = ["ground_areas_fast", "polygon_areas_m2"]
 
-#: longest edge piece when densifying before the area (metres / degrees); as in landcheck.layers
+#: longest edge piece when densifying parcel edges before the area (metres / degrees)
 DENSIFY_M = 20.0
 DENSIFY_DEG = 2e-4
 #: polygons of a projected layer at most this wide (m) take map-plane area x centroid factor

@@ -190,48 +190,35 @@ def _polygonal_part(g):
     return shapely.Polygon()
 
 
-#: longest edge piece when densifying parcel edges before a geodesic area (metres / degrees)
-DENSIFY_M = 20.0
-DENSIFY_DEG = 2e-4
-
-
 def ground_areas(gdf, crs_wkt: str) -> tuple[np.ndarray, np.ndarray]:
     """Ellipsoidal area of each geometry and the factor turning map-plane area into ground area.
 
     Returns
     -------
     area_m2 : ndarray
-        Geodesic area on the CRS's ellipsoid (pyproj.Geod, Karney 2013); 0 for empty geometries.
+        Area on the CRS's ellipsoid, edges taken as straight lines of the layer's CRS (GIS convention);
+        0 for empty geometries.  Agrees with pyproj.Geod (Karney 2013) on densified edges to ~1e-9.
     area_factor : ndarray
         1 / areal scale factor of the projection at each geometry's centroid (1 on geographic CRSs),
         so that map-plane cell areas times the factor are ground areas.
+
+    The work is vectorised over all vertices (:mod:`landcheck.ground_area`).
     """
+    from .ground_area import ground_areas_fast
+
+    return ground_areas_fast(gdf, crs_wkt)
+
+
+def _inverse_areal_scale(crs, lon, lat) -> np.ndarray:
     import pyproj
-    import shapely
+
+    return 1.0 / np.asarray(pyproj.Proj(crs).get_factors(lon, lat).areal_scale, dtype=float)
+
+
+def areal_factor_at(crs_wkt: str, x: float, y: float) -> float:
+    """Map-plane to ground area factor (1 / areal scale) of a projected CRS at the point (x, y) in that CRS."""
+    import pyproj
 
     crs = pyproj.CRS.from_user_input(crs_wkt)
-    geodetic = crs.geodetic_crs or pyproj.CRS("EPSG:4326")
-    ell = crs.ellipsoid
-    geod = pyproj.Geod(a=ell.semi_major_metre, rf=ell.inverse_flattening) if ell is not None and ell.inverse_flattening else pyproj.Geod(ellps="WGS84")
-    # Edges are straight lines in the layer's CRS (GIS convention), not geodesics: densify them first so
-    # the geodesic polygon follows the same edges (this matters at 1e-4 for km-sized parcels).
-    vals = np.asarray(gdf.geometry.values)
-    if not crs.is_geographic:
-        unit_m = crs.axis_info[0].unit_conversion_factor if crs.axis_info else 1.0
-        vals = shapely.segmentize(vals, DENSIFY_M / unit_m)
-        # pyproj.Geod wants x = longitude; geodetic CRSs list latitude first, so force lon/lat order
-        tr = pyproj.Transformer.from_crs(crs, geodetic, always_xy=True)
-        geo_vals = shapely.transform(vals, lambda xy: np.column_stack(tr.transform(xy[:, 0], xy[:, 1])))
-    else:
-        geo_vals = shapely.segmentize(vals, DENSIFY_DEG)
-    area = np.array([abs(geod.geometry_area_perimeter(g)[0]) if g is not None and not g.is_empty else 0.0
-                     for g in geo_vals])
-    factor = np.ones(len(gdf))
-    if not crs.is_geographic:
-        cent = shapely.centroid(geo_vals)
-        ok = ~shapely.is_empty(cent)
-        if ok.any():
-            lon, lat = shapely.get_x(cent[ok]), shapely.get_y(cent[ok])
-            scale = pyproj.Proj(crs).get_factors(lon, lat).areal_scale
-            factor[ok] = 1.0 / np.asarray(scale, dtype=float)
-    return area, factor
+    lon, lat = pyproj.Transformer.from_crs(crs, crs.geodetic_crs, always_xy=True).transform(x, y)
+    return float(_inverse_areal_scale(crs, lon, lat))

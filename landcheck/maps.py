@@ -22,9 +22,7 @@ import io
 import json
 import logging
 import math
-import os
 import re
-import tempfile
 import textwrap
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
@@ -35,7 +33,8 @@ from pathlib import Path
 import numpy as np
 
 from . import CAUTION
-from .errors import InputDataError, OutputWriteError
+from .errors import InputDataError
+from .outputs import write_bytes
 
 __all__ = [
     "DEFAULT_SLOPE_BREAKS_PCT",
@@ -96,7 +95,6 @@ _SERIES_STYLE = [  # (colour, marker, dash) for chart lines; marker + dash separ
 _NODATA_GREY = np.array([0.86, 0.86, 0.86])
 _PNG_METADATA = {"Software": None}
 #: permission bits of written figures (mkstemp creates 0600; common practice for shared outputs is 0644)
-_FILE_MODE = 0o644
 _WATER_COLOUR = "#1f5fa0"
 _LEGEND_WRAP_CHARS = 34
 _SVG_METADATA = {"Date": None}
@@ -777,20 +775,6 @@ def _halo(width: float):
     return [patheffects.withStroke(linewidth=width, foreground="white")]
 
 
-def _atomic_write(path: Path, data: bytes) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as f:
-            f.write(data)
-        os.chmod(tmp, _FILE_MODE)
-        os.replace(tmp, path)
-    except OSError as exc:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise OutputWriteError(f"{path}: cannot be written ({exc}); check the folder's permissions and free space.") from exc
-
-
 def _save(fig, dest: Path, stem: str, dpi: int, formats: Sequence[str]) -> list[Path]:
     import matplotlib
 
@@ -803,7 +787,7 @@ def _save(fig, dest: Path, stem: str, dpi: int, formats: Sequence[str]) -> list[
             meta = _PNG_METADATA if fmt == "png" else _SVG_METADATA
             fig.savefig(buf, format=fmt, dpi=dpi, metadata=meta)
             p = dest / f"{stem}.{fmt}"
-            _atomic_write(p, buf.getvalue())
+            write_bytes(p, buf.getvalue())
             paths.append(p)
     return paths
 

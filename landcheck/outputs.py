@@ -309,3 +309,10 @@ def write_with(path: str | os.PathLike, writer: Callable[[Path], None], *, overw
     with atomic_file(path, overwrite=overwrite) as tmp:
         writer(tmp)
     return Path(path)
+
+
+def write_bytes(path: str | os.PathLike, data: bytes, *, overwrite: bool = True) -> Path:
+    """Write ``data`` to ``path`` atomically (temporary sibling, then rename)."""
+    with atomic_file(path, overwrite=overwrite) as tmp:
+        tmp.write_bytes(data)
+    return Path(path)

@@ -19,14 +19,12 @@ import html
 import json
 import logging
 import math
-import os
-import tempfile
 from collections.abc import Iterable, Sequence
 from datetime import datetime, timezone
 from pathlib import Path
 
 from . import CAUTION, __version__
-from .errors import OutputWriteError
+from .outputs import write_bytes
 from .maps import (
     DEFAULT_SLOPE_BREAKS_PCT,
     VERDICTS,
@@ -45,11 +43,12 @@ __all__ = ["build_report", "sha256_file"]
 logger = logging.getLogger(__name__)
 
 #: files of the output contract whose SHA-256 the report lists (docs/outputs.md)
-_OUTPUT_FILES = ("parcels.gpkg", "parcels.csv", "classes.csv", "summary.json", "slope_pct.tif", "conflict.tif")
+_OUTPUT_FILES = ("parcels.gpkg", "parcels.csv", "classes.csv", "summary.json", "slope_pct.tif", "conflict.tif",
+                 "confidence.csv", "confidence_classes.csv", "capability.tif", "capability_by_class.csv",
+                 "capability_legend.csv", "reclassification.gpkg", "reclassification_moves.csv")
 _CSP = ("default-src 'none'; img-src data:; style-src 'unsafe-inline'; script-src 'unsafe-inline'; "
         "base-uri 'none'; form-action 'none'")
 _HASH_CHUNK_BYTES = 1 << 20
-_FILE_MODE = 0o644
 _M2_PER_HA = 10_000.0
 
 # per-parcel table: (column, header, kind) ; kind: text | m2 | share | pct
@@ -67,6 +66,8 @@ _PARCEL_COLUMNS = [
     ("near_limit_m2", "Near limit (m\u00b2)", "m2"),
     ("conflict_m2", "Conflict (m\u00b2)", "m2"),
     ("conflict_share", "Conflict share", "share"),
+    ("p_conflict", "P(conflict)", "share"),
+    ("confidence", "Confidence", "text"),
 ]
 _PARCEL_TAIL = [("reasons", "Reasons", "text"), ("geometry_note", "Geometry", "text")]
 _CLASS_COLUMNS = [
@@ -259,6 +260,74 @@ def _classes_section(folder: AuditFolder) -> str:
             + "</section>")
 
 
+_CONFIDENCE_COLUMNS = [
+    ("class_name", "Class", "text"), ("parcels_evaluated", "Parcels", "int"),
+    ("expected_conflicts", "Expected conflicts", "pct"), ("n_robust_conflict", "Robust conflict", "int"),
+    ("n_uncertain", "Uncertain", "int"), ("n_robust_clear", "Robust clear", "int"),
+    ("conflict_share_p05", "Conflict share p5", "share"), ("conflict_share_p50", "p50", "share"),
+    ("conflict_share_p95", "p95", "share"),
+]
+_MOVES_COLUMNS = [("from_class", "From class", "text"), ("to_class", "To class", "text"),
+                  ("parcels", "Parcels", "int"), ("area_m2", "Area (m\u00b2)", "m2")]
+
+
+def _final_name(out_dir: Path) -> str:
+    """The folder's name once the audit renames its staging folder (``.NAME.partial-XXXX`` -> ``NAME``)."""
+    name = out_dir.name
+    if name.startswith(".") and ".partial-" in name:
+        return name[1:].split(".partial-")[0]
+    return name
+
+
+def _optional_csv(folder: AuditFolder, name: str):
+    import pandas as pd
+
+    p = folder.out_dir / name
+    return pd.read_csv(p) if p.exists() else None
+
+
+def _extras_section(folder: AuditFolder) -> str:
+    """Verdict confidence, land capability and drafted reclassification, when the audit produced them."""
+    parts = []
+    conf = _optional_csv(folder, "confidence_classes.csv")
+    if conf is not None:
+        c = folder.section("confidence", default={}) or {}
+        model = (c.get("settings") or c) if isinstance(c, dict) else {}
+        rmse = model.get("rmse_m", "?")
+        corr = model.get("corr_length_m", "?")
+        n = model.get("realizations", "?")
+        parts.append('<section id="confidence"><h2>Confidence under DEM error</h2>'
+                     f"<p>{_e(n)} seeded realizations of a correlated DEM error field (RMSE {_e(rmse)} m, "
+                     f"correlation length {_e(corr)} m) were added to the DEM and every slope, share and verdict "
+                     "recomputed. <b>Robust conflict</b>: in conflict in at least 95 % of realizations; "
+                     "<b>robust clear</b>: in at most 5 %; otherwise <b>uncertain</b>. Per-parcel probabilities "
+                     "are in the parcel table (P(conflict)) and confidence.csv.</p>"
+                     + _table("confidence-table", _CONFIDENCE_COLUMNS, conf.to_dict("records"),
+                              "Per class: verdict stability and the 5-50-95 % range of the conflict share.")
+                     + "</section>")
+    cap = _optional_csv(folder, "capability_by_class.csv")
+    if cap is not None:
+        piv = cap.pivot_table(index="capability", columns="class_name", values="area_m2", aggfunc="sum", fill_value=0.0)
+        cols = [("capability", "Capability class", "text")] + [(c, f"{c} (ha)", "ha") for c in piv.columns]
+        rows = [{"capability": idx, **{c: piv.loc[idx, c] for c in piv.columns}} for idx in piv.index]
+        parts.append('<section id="capability-map"><h2>Land capability inside each class</h2>'
+                     "<p>Every cell is classed by slope (published planning classes) and downgraded where it lies "
+                     "in a hazard zone (capability.tif, legend in capability_legend.csv); areas are exact "
+                     "coverage-weighted areas inside the parcels of each class.</p>"
+                     + _table("capability-class-table", cols, rows, "Area of each capability class by zoning class.")
+                     + "</section>")
+    moves = _optional_csv(folder, "reclassification_moves.csv")
+    if moves is not None:
+        parts.append('<section id="reclassification"><h2>Drafted reclassification</h2>'
+                     "<p>Each conflicting parcel split along the cells that break its rule; the non-compliant part "
+                     "is proposed for the class the rulebook designates (reclassification.gpkg). A draft for "
+                     "discussion, not a decision.</p>"
+                     + _table("moves-table", _MOVES_COLUMNS, moves.to_dict("records"),
+                              "Area that would move between classes.")
+                     + "</section>")
+    return "".join(parts)
+
+
 def _warnings_section(recorded: Sequence[str], extra: Sequence[str]) -> str:
     parts = ['<section id="warnings"><h2>Warnings</h2>']
     if not recorded and not extra:
@@ -315,7 +384,7 @@ def _manifest_section(folder: AuditFolder, verify_inputs: bool, built_utc: str) 
              f'<tr><th scope="row">Audit tool</th><td>{_e(folder.summary.get("tool", "landcheck"))} '
              f'{_e(folder.summary.get("version", ""))}</td></tr>',
              f'<tr><th scope="row">Report tool</th><td>landcheck {_e(__version__)}</td></tr>',
-             f'<tr><th scope="row">Output folder</th><td><code>{_e(folder.out_dir)}</code></td></tr>',
+             f'<tr><th scope="row">Output folder</th><td><code>{_e(folder.out_dir.parent / _final_name(folder.out_dir))}</code></td></tr>',
              "</tbody></table>"]
 
     def check(path_text: str, recorded: str, what: str) -> str:
@@ -509,23 +578,6 @@ _JS = """
 """
 
 
-def _atomic_write_text(path: Path, text: str) -> None:
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    except OSError as exc:
-        raise OutputWriteError(f"{path}: cannot create the report there ({exc}); choose another report_path.") from exc
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as f:
-            f.write(text)
-        os.chmod(tmp, _FILE_MODE)
-        os.replace(tmp, path)
-    except OSError as exc:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise OutputWriteError(f"{path}: cannot be written ({exc}); check permissions and free space.") from exc
-
-
 def build_report(out_dir, *, report_path=None, figures_dir=None,
                  slope_breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT, max_closeups: int = 12,
                  max_table_rows: int = 5000, dpi: int = 200, figure_formats: Sequence[str] = ("png", "svg"),
@@ -611,7 +663,7 @@ def build_report(out_dir, *, report_path=None, figures_dir=None,
         f"<style>{_CSS}</style></head><body>",
         f"<header><h1>{_e(title)}</h1>",
         f'<p class="sub">Audit run {_e(folder.run_date_text)} \u00b7 output folder '
-        f"<code>{_e(folder.out_dir.name)}</code></p>",
+        f"<code>{_e(_final_name(folder.out_dir))}</code></p>",
         f'<div class="caution" role="note" id="caution"><span aria-hidden="true">\u26a0 </span>{_e(CAUTION)}</div>',
         '<nav aria-label="Sections"><ul><li><a href="#summary">Summary</a></li>'
         '<li><a href="#capability">Capability</a></li><li><a href="#classes">Per class</a></li>'
@@ -622,6 +674,7 @@ def build_report(out_dir, *, report_path=None, figures_dir=None,
         _warnings_section(recorded, extra_warnings),
         _capability_section(folder),
         _classes_section(folder),
+        _extras_section(folder),
         '<section id="charts"><h2>Charts</h2>',
     ]
     for ff in charts:
@@ -645,6 +698,6 @@ def build_report(out_dir, *, report_path=None, figures_dir=None,
                  f'<p class="muted">Written by landcheck {_e(__version__)} from the files of one audit output '
                  "folder; no network resource is used.</p></footer>")
     parts.append(f"<script>{_JS}</script></body></html>\n")
-    _atomic_write_text(report_path, "\n".join(parts))
+    write_bytes(report_path, "\n".join(parts).encode("utf-8"))
     logger.info("report written: %s (%d close-ups)", report_path, len(closeups.items))
     return report_path

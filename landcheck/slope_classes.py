@@ -38,7 +38,7 @@ BUILTIN_SCHEMES = {
         (0.0, 3.0, 8.0, 18.0, 30.0, 50.0),
         ("level to nearly level", "gently sloping to undulating", "undulating to rolling",
          "rolling to moderately steep", "steep", "very steep"),
-        "Land-use planning slope classes 0-3-8-18-30-50 % (REFERENCES.md 2.1, municipal planning "
+        "Land-use planning slope classes 0-3-8-18-30-50 % (docs/references.md; municipal planning "
         "guidebook classes; 18 % is the key threshold for urban suitability).",
     ),
     "fao-2006": SlopeClassScheme(
@@ -48,7 +48,7 @@ BUILTIN_SCHEMES = {
         ("flat", "level", "nearly level", "very gently sloping", "gently sloping", "sloping", "strongly sloping",
          "moderately steep", "steep", "very steep"),
         "FAO 2006, Guidelines for Soil Description, 4th ed., slope-gradient classes (table number from memory; "
-        "REFERENCES.md 2.1).",
+        "docs/references.md).",
     ),
 }
 

@@ -22,7 +22,6 @@ memory grows with the raster (about 150 bytes per cell), see docs/scale.md.
 from __future__ import annotations
 
 import logging
-import os
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -30,7 +29,7 @@ import numpy as np
 
 from .errors import InputDataError
 from .grid import GridSpec, Window, apply_transform
-from .rules import LandContext, Rulebook, ZoneKind, ZoneRule
+from .rules import Rulebook, ZoneKind, ZoneRule
 
 __all__ = ["ZoneColumn", "ZoneSet", "prepare_zones", "buffer_ground", "pick_variant", "vector_pieces"]
 

@@ -119,3 +119,26 @@ def test_internal_error_exit_4(tmp_path, inputs, monkeypatch):
 def test_show_versions():
     r = CliRunner().invoke(cli, ["--show-versions"])
     assert r.exit_code == 0 and "rasterio:" in r.output and "exactextract:" in r.output
+
+
+def test_confidence_capability_reclassification_flags(tmp_path, inputs):
+    # Common practice (wiring): the extras write their files; out-of-range settings are refused with exit 3.
+    rules = inputs[2]
+    rules.write_text(rules.read_text().replace('review_band_pct = 0.0', 'review_band_pct = 0.0\ndesignated_class = "forest"'))
+    out = tmp_path / "extras"
+    r = _audit(inputs, out, "--dem-rmse", "0.5", "--corr-length", "30", "--realizations", "10", "--seed", "3",
+               "--capability-map", "8,18,30", "--draft-reclassification", "100", "--json")
+    assert r.exit_code == 0, r.output
+    for name in ("confidence.csv", "confidence_classes.csv", "capability.tif", "capability_by_class.csv",
+                 "reclassification_moves.csv", "reclassification.gpkg"):
+        assert (out / name).exists(), name
+    import pandas as pd
+
+    p = pd.read_csv(out / "parcels.csv")
+    # Closed form on the ramp: parcel 2 (x 500..600 m) is far over the 18 % line, parcel 1 (x 100..200) far under
+    assert p.loc[1, "p_conflict"] == 1.0 and p.loc[0, "p_conflict"] == 0.0
+    bad = _audit(inputs, tmp_path / "bad", "--dem-rmse", "0.5", "--realizations", "5")
+    assert bad.exit_code == 3 and "10" in bad.output
+    bad = _audit(inputs, tmp_path / "bad2", "--dem-rmse", "-1")
+    assert bad.exit_code == 3
+    assert not (tmp_path / "bad").exists() and not (tmp_path / "bad2").exists()

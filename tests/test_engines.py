@@ -16,7 +16,8 @@ X0, Y0 = 400000.0, 1600000.0
 
 @pytest.mark.slow
 def test_dask_equals_threads(tmp_path):
-    # Closed-form check too: on the ramp (slope 0.04 x %) the share over 18 % is the area share east of x = 450 m.
+    # Reference: the local-threads engine (invariant); Source: closed form on the ramp (slope 0.04 x %): the share
+    # over 18 % is the area share east of x = 450 m.
     dem = ramp_dem(tmp_path / "dem.tif")
     rules = write_rules(tmp_path / "r.toml", tol=5.0, band=3.0)
     rng = np.random.default_rng(3)

@@ -79,15 +79,38 @@ Examples:
 @click.option("--scheduler", "scheduler_address", default=None, metavar="ADDRESS",
               help="Dask scheduler address, e.g. tcp://10.0.0.5:8786 (implies --engine dask). Workers must read "
                    "the inputs by the same paths.")
+@click.option("--dem-rmse", "dem_rmse_m", type=float, default=None, metavar="M",
+              help="Vertical RMSE of the DEM in metres: adds verdict confidence by Monte Carlo (overrides the "
+                   "rulebook's [uncertainty]).")
+@click.option("--corr-length", "corr_length_m", type=float, default=None, metavar="M",
+              help="Correlation length of the DEM error in metres (0 = independent cells).")
+@click.option("--realizations", type=int, default=None, help="Monte Carlo realizations (10..10000, default 100).")
+@click.option("--seed", type=int, default=None, help="Seed of the error fields (same seed, same numbers).")
+@click.option("--capability-map", "capability_scheme", default=None, metavar="SCHEME",
+              help="Also write a land-capability map: planning-6, fao-2006 or breaks like 8,18,30.")
+@click.option("--draft-reclassification", "draft_mmu_m2", type=float, default=None, metavar="MMU_M2",
+              help="Split conflicting parcels into compliant and non-compliant parts (minimum mapping unit in m²).")
+@click.option("--rasters", type=click.Choice(["cog", "gtiff", "none"]), default="cog", show_default=True,
+              help="Slope and conflict rasters as Cloud-Optimized GeoTIFF, plain tiled GeoTIFF (faster for big "
+                   "runs), or none (tables only; needs --no-report).")
 @click.option("--no-report", is_flag=True, help="Skip the HTML report and maps.")
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary on stdout.")
 @click.option("--fail-on-conflict", is_flag=True, help="Exit with status 1 when any parcel is in conflict.")
 @click.pass_context
 @handle_errors
 def command(ctx, dem, parcels, parcels_layer, parcels_crs, rulebook, out_dir, method, dem_band, dem_crs, z_unit,
-            tile_cells, workers, overwrite, engine, scheduler_address, no_report, as_json, fail_on_conflict):
+            tile_cells, workers, overwrite, engine, scheduler_address, dem_rmse_m, corr_length_m, realizations, seed,
+            capability_scheme, draft_mmu_m2, rasters, no_report, as_json, fail_on_conflict):
+    if capability_scheme is not None and "," in capability_scheme:
+        try:
+            capability_scheme = [float(b) for b in capability_scheme.split(",")]
+        except ValueError:
+            raise click.BadParameter(f"{capability_scheme!r}: give a scheme name or breaks like 8,18,30",
+                                     param_hint="--capability-map") from None
     run_audit_and_report(ctx, as_json=as_json, fail_on_conflict=fail_on_conflict, dem_path=dem, parcels_path=parcels,
                          rulebook_path=rulebook, out_dir=out_dir, parcels_layer=parcels_layer, parcels_crs=parcels_crs,
                          dem_band=dem_band, dem_crs=dem_crs, z_unit=z_unit, method=method, tile_cells=tile_cells,
                          workers=workers, overwrite=overwrite, make_report=not no_report,
-                         engine="dask" if scheduler_address else engine, scheduler_address=scheduler_address)
+                         engine="dask" if scheduler_address else engine, scheduler_address=scheduler_address,
+                         dem_rmse_m=dem_rmse_m, corr_length_m=corr_length_m, realizations=realizations, seed=seed,
+                         capability_scheme=capability_scheme, draft_mmu_m2=draft_mmu_m2, rasters=rasters)

@@ -22,7 +22,10 @@ def demo_area_dir() -> Path:
 
 The demo area is the invented coastal town of Alderwane: a 10 m DEM, a few
 hundred parcels, shoreline, river and flood-hazard layers and a demo rulebook
-(demo_area/). Outputs go to OUT (default landcheck-demo-output/).
+(demo_area/). Besides the audit it runs the verdict-confidence Monte Carlo
+(the rulebook's [uncertainty]), the land-capability map and a drafted
+reclassification (--quick skips them). Outputs go to OUT (default
+landcheck-demo-output/).
 
 {CAUTION_HELP}
 
@@ -34,10 +37,11 @@ Examples:
 @click.option("--out", "out_dir", default="landcheck-demo-output", show_default=True, type=click.Path(file_okay=False))
 @click.option("--overwrite/--no-overwrite", default=True, show_default=True, help="Replace an earlier demo output.")
 @click.option("--workers", type=click.IntRange(min=1), default=None, help="Worker threads (default: all cores).")
+@click.option("--quick", is_flag=True, help="Skip the confidence run, capability map and drafted reclassification.")
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary on stdout.")
 @click.pass_context
 @handle_errors
-def command(ctx, out_dir, overwrite, workers, as_json):
+def command(ctx, out_dir, overwrite, workers, quick, as_json):
     d = demo_area_dir()
     needed = [d / "dem.tif", d / "parcels.gpkg", d / "rulebook.toml"]
     missing = [str(p) for p in needed if not p.exists()]
@@ -46,4 +50,7 @@ def command(ctx, out_dir, overwrite, workers, as_json):
                              "or regenerate with `python scripts/make_demo_area.py --seed 7 --out demo_area`.")
     run_audit_and_report(ctx, as_json=as_json, fail_on_conflict=False, dem_path=str(needed[0]),
                          parcels_path=str(needed[1]), rulebook_path=str(needed[2]), out_dir=out_dir,
-                         overwrite=overwrite, workers=workers)
+                         overwrite=overwrite, workers=workers,
+                         # the demo rulebook's [uncertainty] section drives the confidence run
+                         capability_scheme=None if quick else "planning-6", draft_mmu_m2=None if quick else 500.0,
+                         skip_confidence=quick)

@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import atexit
 import functools
+import gc
 import logging
 import sys
 import traceback
@@ -77,6 +79,9 @@ Examples:
 @click.option("-q", "--quiet", is_flag=True, help="Only errors on stderr; no progress bars.")
 @click.pass_context
 def cli(ctx, verbose: int, quiet: bool):
+    # the final garbage collection at exit walks numba's large type registry (~0.5 s); freezing the
+    # heap first skips it (docs/scale.md)
+    atexit.register(gc.freeze)
     ctx.ensure_object(dict)
     ctx.obj["verbosity"] = verbose
     ctx.obj["quiet"] = quiet

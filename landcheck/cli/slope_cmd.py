@@ -35,11 +35,13 @@ Examples:
               help="Also write a uint8 slope-class raster here.")
 @click.option("--class-scheme", default="planning-6", show_default=True,
               help="Built-in scheme (planning-6, fao-2006) or comma-separated breaks in percent, e.g. 8,18,30.")
+@click.option("--raster-format", type=click.Choice(["cog", "gtiff"]), default="cog", show_default=True,
+              help="Cloud-Optimized GeoTIFF with overviews, or a plain tiled GeoTIFF written straight from the stream.")
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary on stdout.")
 @click.pass_context
 @handle_errors
 def slope(ctx, dem, out, unit, method, dem_band, dem_crs, z_unit, tile_cells, workers, overwrite, class_out,
-          class_scheme, as_json):
+          class_scheme, raster_format, as_json):
     from ..pipeline import derive_slope
     from ..slope_classes import BUILTIN_SCHEMES, get_scheme, scheme_from_breaks
 
@@ -55,7 +57,7 @@ def slope(ctx, dem, out, unit, method, dem_band, dem_crs, z_unit, tile_cells, wo
     info = derive_slope(dem, out, method=method or "horn", unit=unit, band=dem_band, dem_crs=dem_crs, z_unit=z_unit,
                         tile_cells=tile_cells, workers=workers, overwrite=overwrite,
                         show_progress=None if not ctx.find_root().obj.get("quiet") else False,
-                        class_out=class_out, class_scheme=scheme)
+                        class_out=class_out, class_scheme=scheme, raster_format=raster_format)
     summary = {"output": str(info.path), "width": info.width, "height": info.height, "valid_cells": info.valid_cells,
                "min": info.min_value, "max": info.max_value, "unit": info.unit, "method": info.method}
     if as_json:
