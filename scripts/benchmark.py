@@ -16,24 +16,21 @@ What each side writes (stated in the output too):
 * by-hand audit: the slope GeoTIFF above, an uncompressed uint8 0/1 raster, a CSV of
   per-parcel means (one number per parcel: the share over 18 %).
 * landcheck audit: the slope and conflict rasters (``--rasters``; with ``gtiff`` the
-  conflict raster is ZSTD level 1), parcels.gpkg,
-  parcels.csv, classes.csv and summary.json (with SHA-256 of every input); every
-  share exact; no HTML report.
+  conflict raster is ZSTD level 1), parcels.gpkg, parcels.csv, classes.csv and
+  summary.json (with SHA-256 of every input); every share exact; no HTML report.
 
-Every measurement runs in a fresh child process (the interpreter itself, not a
-shell shim); peak RSS is that child's maximum resident set size (getrusage).
+landcheck runs through its command line (``python -m landcheck -q slope
+--raster-format ...`` / ``audit --rasters ... --no-report``).  Every measurement
+runs in a fresh child process (the interpreter itself, not a shell shim); peak
+RSS is that child's maximum resident set size (getrusage).
 Data are generated into a cache folder (--cache) and reused.  ``--memory-run N``
 also generates an N x N DEM (N = 30000 is 3.6 GB of float32: free disk space is
 checked first), times the slope stage on it (against gdaldem unless
 --no-reference) and runs the audit on it for the peak-memory figure, then
 deletes it unless --keep-memory-dem.
 
-``--with-proposed`` runs landcheck with changes proposed but not yet wired in
-(see docs/scale.md): ground areas from ``landcheck.ground_area.ground_areas_fast``
-and ``gc.freeze()`` at interpreter exit.  Rows are marked ``+p``.
-
     python scripts/benchmark.py --sizes 2000 5000 10000 --parcels 1000 10000 100000
-    python scripts/benchmark.py --sizes 10000 --parcels 100000 --memory-run 30000
+    python scripts/benchmark.py --sizes --memory-run 30000                # 3.6 GB DEM, then deleted
 """
 
 from __future__ import annotations
@@ -158,27 +155,6 @@ with rasterio.open(tmp) as r:
 res.to_csv(out_csv)
 """
 
-# landcheck through its Python API (the same functions the CLI calls), so the raster format can be chosen
-RUNNER = r"""
-import sys
-what, proposed = sys.argv[1], sys.argv[2] == "1"
-if proposed:
-    import atexit, gc
-    atexit.register(gc.freeze)  # proposed for the CLI: skip the final garbage collection of numba's objects
-if proposed and what == "audit":
-    import landcheck.audit as _a
-    from landcheck.ground_area import ground_areas_fast
-    _a.ground_areas = lambda frame, crs_wkt: ground_areas_fast(frame, crs_wkt)
-if what == "slope":
-    from landcheck.pipeline import derive_slope
-    derive_slope(sys.argv[3], sys.argv[4], raster_format=sys.argv[5], show_progress=False)
-else:
-    from landcheck.audit import audit
-    audit(sys.argv[3], sys.argv[4], sys.argv[5], sys.argv[6], rasters=sys.argv[7], make_report=False,
-          show_progress=False)
-"""
-
-
 def _fmt_table(rows: list[dict]) -> str:
     hdr = (f"{'test':6} {'size':>6} {'parcels':>8} {'lc s':>7} {'lc cpu':>7} {'ref s':>7} {'ratio':>6} "
            f"{'lc Mcell/s':>10} {'ref Mcell/s':>11} {'lc parcel/s':>11} {'lc MiB':>7} {'ref MiB':>7} {'read s':>6}")
@@ -203,8 +179,6 @@ def main(argv=None) -> int:
     ap.add_argument("--rasters", choices=["cog", "gtiff", "none"], default="gtiff",
                     help="landcheck's raster output (slope: cog or gtiff)")
     ap.add_argument("--no-reference", action="store_true", help="time landcheck only (no gdaldem / by-hand runs)")
-    ap.add_argument("--with-proposed", action="store_true",
-                    help="also time landcheck with the proposed, not yet wired changes (rows marked +p)")
     ap.add_argument("--memory-run", type=int, default=None, metavar="N",
                     help="also run the audit on a generated N x N DEM for its peak memory (e.g. 30000)")
     ap.add_argument("--memory-parcels", type=int, default=100_000)
@@ -221,9 +195,8 @@ def main(argv=None) -> int:
     rules = work / "rules.toml"
     rules.write_text(RULEBOOK)
     (work / "byhand.py").write_text(BY_HAND)
-    (work / "runner.py").write_text(RUNNER)
     slope_fmt = "gtiff" if args.rasters == "none" else args.rasters
-    variants = [("", "0")] + ([("+p", "1")] if args.with_proposed else [])
+    lc_cmd = [sys.executable, "-m", "landcheck", "-q"]
     rows = []
 
     def clean():
@@ -246,33 +219,28 @@ def main(argv=None) -> int:
             if not args.no_reference:
                 read = best([sys.executable, "-c", "import rasterio,sys; rasterio.open(sys.argv[1]).read(1)", str(dem)])
                 gd = best(["gdaldem", "slope", "-p", "-q", str(dem), str(work / "out_gd.tif")])
-            for tag, flag in variants:
-                lc = best([sys.executable, str(work / "runner.py"), "slope", flag, str(dem), str(work / "out_lc.tif"),
-                           slope_fmt])
-                rows.append(dict(test="slope" + tag, size=n, parcels=0, lc_s=lc["wall_s"], lc_cpu_s=lc["cpu_s"],
-                                 lc_mcells_s=cells / lc["wall_s"] / 1e6, lc_peak_mib=lc["peak_mib"],
-                                 ref_s=gd and gd["wall_s"], ref_cpu_s=gd and gd["cpu_s"],
-                                 ref_mcells_s=gd and cells / gd["wall_s"] / 1e6, ref_peak_mib=gd and gd["peak_mib"],
-                                 read_floor_s=read and read["wall_s"]))
-                print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
+            lc = best([*lc_cmd, "slope", "--raster-format", slope_fmt, str(dem), str(work / "out_lc.tif")])
+            rows.append(dict(test="slope", size=n, parcels=0, lc_s=lc["wall_s"], lc_cpu_s=lc["cpu_s"],
+                             lc_mcells_s=cells / lc["wall_s"] / 1e6, lc_peak_mib=lc["peak_mib"],
+                             ref_s=gd and gd["wall_s"], ref_cpu_s=gd and gd["cpu_s"],
+                             ref_mcells_s=gd and cells / gd["wall_s"] / 1e6, ref_peak_mib=gd and gd["peak_mib"],
+                             read_floor_s=read and read["wall_s"]))
+            print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
             for count in args.parcels:
                 parcels = make_parcels(args.cache / f"parcels_{n}_{count}.gpkg", n, count)
                 hand = None
                 if not args.no_reference:
                     hand = best([sys.executable, str(work / "byhand.py"), str(work / "out_s.tif"), str(parcels),
                                  str(work / "out_h.csv"), str(work / "out_t.tif"), str(dem)])
-                for tag, flag in variants:
-                    lc = best([sys.executable, str(work / "runner.py"), "audit", flag, str(dem), str(parcels), str(rules),
-                               str(work / "out_audit"), args.rasters])
-                    rows.append(dict(test="audit" + tag, size=n, parcels=count, lc_s=lc["wall_s"], lc_cpu_s=lc["cpu_s"],
-                                     lc_mcells_s=cells / lc["wall_s"] / 1e6, lc_parcels_s=count / lc["wall_s"],
-                                     lc_peak_mib=lc["peak_mib"], ref_s=hand and hand["wall_s"],
-                                     ref_cpu_s=hand and hand["cpu_s"],
-                                     ref_mcells_s=hand and cells / hand["wall_s"] / 1e6,
-                                     ref_peak_mib=hand and hand["peak_mib"], read_floor_s=read and read["wall_s"]))
-                    print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
+                lc = best(_audit_cmd(lc_cmd, dem, parcels, rules, work, args.rasters))
+                rows.append(dict(test="audit", size=n, parcels=count, lc_s=lc["wall_s"], lc_cpu_s=lc["cpu_s"],
+                                 lc_mcells_s=cells / lc["wall_s"] / 1e6, lc_parcels_s=count / lc["wall_s"],
+                                 lc_peak_mib=lc["peak_mib"], ref_s=hand and hand["wall_s"],
+                                 ref_cpu_s=hand and hand["cpu_s"], ref_mcells_s=hand and cells / hand["wall_s"] / 1e6,
+                                 ref_peak_mib=hand and hand["peak_mib"], read_floor_s=read and read["wall_s"]))
+                print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
         if args.memory_run:
-            rows += _memory_run(args, work, env, rules, variants)
+            rows += _memory_run(args, work, env, rules, lc_cmd)
     finally:
         shutil.rmtree(work, ignore_errors=True)
     print()
@@ -288,7 +256,12 @@ def main(argv=None) -> int:
     return 0
 
 
-def _memory_run(args, work: Path, env, rules: Path, variants) -> list[dict]:
+def _audit_cmd(lc_cmd, dem, parcels, rules, work: Path, rasters: str) -> list[str]:
+    return [*lc_cmd, "audit", "--dem", str(dem), "--parcels", str(parcels), "--rulebook", str(rules),
+            "--out", str(work / "out_audit"), "--rasters", rasters, "--no-report"]
+
+
+def _memory_run(args, work: Path, env, rules: Path, lc_cmd) -> list[dict]:
     n = args.memory_run
     need = 4 * n * n * 3.2 + 2**30  # the DEM, gdaldem's and landcheck's slope rasters, the conflict raster, spare
     free = shutil.disk_usage(args.cache).free
@@ -306,23 +279,19 @@ def _memory_run(args, work: Path, env, rules: Path, variants) -> list[dict]:
         if not args.no_reference:
             gd = measure(["gdaldem", "slope", "-p", "-q", str(dem), str(work / "out_gd.tif")], env)
             (work / "out_gd.tif").unlink(missing_ok=True)
-        for tag, flag in variants:
-            lc = measure([sys.executable, str(work / "runner.py"), "slope", flag, str(dem), str(work / "out_lc.tif"),
-                          slope_fmt], env)
-            (work / "out_lc.tif").unlink(missing_ok=True)
-            rows.append(dict(test="slope" + tag, size=n, parcels=0, lc_s=lc["wall_s"], lc_cpu_s=lc["cpu_s"],
-                             lc_mcells_s=n * n / lc["wall_s"] / 1e6, lc_peak_mib=lc["peak_mib"],
-                             ref_s=gd and gd["wall_s"], ref_cpu_s=gd and gd["cpu_s"],
-                             ref_mcells_s=gd and n * n / gd["wall_s"] / 1e6, ref_peak_mib=gd and gd["peak_mib"]))
-            print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
-        for tag, flag in variants:
-            lc = measure([sys.executable, str(work / "runner.py"), "audit", flag, str(dem), str(parcels), str(rules),
-                          str(work / "out_audit"), args.rasters], env)
-            shutil.rmtree(work / "out_audit", ignore_errors=True)
-            rows.append(dict(test="memory" + tag, size=n, parcels=args.memory_parcels, lc_s=lc["wall_s"],
-                             lc_cpu_s=lc["cpu_s"], lc_mcells_s=n * n / lc["wall_s"] / 1e6,
-                             lc_parcels_s=args.memory_parcels / lc["wall_s"], lc_peak_mib=lc["peak_mib"]))
-            print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
+        lc = measure([*lc_cmd, "slope", "--raster-format", slope_fmt, str(dem), str(work / "out_lc.tif")], env)
+        (work / "out_lc.tif").unlink(missing_ok=True)
+        rows.append(dict(test="slope", size=n, parcels=0, lc_s=lc["wall_s"], lc_cpu_s=lc["cpu_s"],
+                         lc_mcells_s=n * n / lc["wall_s"] / 1e6, lc_peak_mib=lc["peak_mib"],
+                         ref_s=gd and gd["wall_s"], ref_cpu_s=gd and gd["cpu_s"],
+                         ref_mcells_s=gd and n * n / gd["wall_s"] / 1e6, ref_peak_mib=gd and gd["peak_mib"]))
+        print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
+        lc = measure(_audit_cmd(lc_cmd, dem, parcels, rules, work, args.rasters), env)
+        shutil.rmtree(work / "out_audit", ignore_errors=True)
+        rows.append(dict(test="memory", size=n, parcels=args.memory_parcels, lc_s=lc["wall_s"],
+                         lc_cpu_s=lc["cpu_s"], lc_mcells_s=n * n / lc["wall_s"] / 1e6,
+                         lc_parcels_s=args.memory_parcels / lc["wall_s"], lc_peak_mib=lc["peak_mib"]))
+        print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
     finally:
         if not args.keep_memory_dem:
             dem_path.unlink(missing_ok=True)
