@@ -140,8 +140,7 @@ def accumulate_pairs(slope_pct, zone_bits, has_zones, cell_area_m2, candidates, 
                 if valid:
                     eval_acc += a
                     sum_acc += a * s
-                    if s > max_acc:
-                        max_acc = s
+                    max_acc = max(max_acc, s)
                     over[loc, _count_le(thresholds_pct, s)] += a
                     if slope_breach:
                         sc_acc += a

@@ -21,7 +21,7 @@ from typing import Callable, Iterable, Iterator
 import numpy as np
 
 from .errors import OutputExistsError, OutputWriteError
-from .gdalcache import GDAL_CACHE_CAP_BYTES, cap_gdal_cache
+from .gdalcache import cap_gdal_cache
 from .grid import GridSpec, Window
 
 __all__ = [
@@ -238,7 +238,7 @@ class RasterSink:
             # tiles fill.  Full-precision float slopes hardly compress (ZSTD 1: 84 % of the size for ~25 % more
             # time in the slope stage; with the floating-point predictor 74 % for ~45 % more; docs/scale.md),
             # so float rasters are written uncompressed here; the COG format compresses them.
-            options = {} if self._float else dict(COMPRESS="ZSTD", ZSTD_LEVEL=1, NUM_THREADS="ALL_CPUS")
+            options = {} if self._float else {"COMPRESS": "ZSTD", "ZSTD_LEVEL": 1, "NUM_THREADS": "ALL_CPUS"}
         try:
             self._ds = rasterio.open(
                 self._scratch, "w", driver="GTiff", width=grid.width, height=grid.height, count=count, dtype=dtype,

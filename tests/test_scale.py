@@ -14,8 +14,14 @@ from affine import Affine
 from shapely import affinity
 
 from landcheck.coverage import coverage_triplets, prepare_polygons
-from landcheck.overlay import (CONFLICT_OUTSIDE, ROLE_FORBIDDEN_PIECE, ROLE_PARCEL, OverlayPlan,
-                               accumulate_window, accumulate_window_compiled)
+from landcheck.overlay import (
+    CONFLICT_OUTSIDE,
+    ROLE_FORBIDDEN_PIECE,
+    ROLE_PARCEL,
+    OverlayPlan,
+    accumulate_window,
+    accumulate_window_compiled,
+)
 
 CELL_M = 10.0
 
@@ -138,11 +144,11 @@ def test_compiled_reduction_empty_window():
 def test_float32_reads_hold_the_same_numbers(tmp_path, dtype, nodata):
     # Invariant: reading a window as float32 (when exact) gives the very numbers of the float64 read,
     # so slopes computed from either are bit-identical (the compiled loop widens each value to float64).
+    from _support import write_raster
+
     from landcheck.grid import Window
     from landcheck.inputs import open_dem
     from landcheck.terrain import slope_gradient
-
-    from _support import write_raster
 
     rng = np.random.default_rng(5)
     z = (rng.normal(0, 30, (60, 70)).cumsum(axis=1) + 500).astype(dtype)
@@ -168,10 +174,9 @@ def test_raster_formats_hold_the_same_cells(tmp_path):
     # no raster.  Closed form too: on the ramp (slope 0.04 x %) the share over 18 % is the area share east
     # of x = 450 m (see tests/test_audit.py).
     import rasterio
+    from _support import ramp_dem, write_parcels, write_rules
 
     from landcheck.audit import audit
-
-    from _support import ramp_dem, write_parcels, write_rules
 
     x0, y0 = 400000.0, 1600000.0
     dem = ramp_dem(tmp_path / "dem.tif")
@@ -260,10 +265,9 @@ def test_audit_rasters_and_sums_do_not_depend_on_tiles_or_workers(tmp_path):
     # Invariant: tile size (one that divides nothing) and worker count change no per-parcel number and no
     # raster cell. Closed form too: the share over 18 % on the ramp is the area share east of x = 450 m.
     import rasterio
+    from _support import ramp_dem, write_parcels, write_rules
 
     from landcheck.audit import audit
-
-    from _support import ramp_dem, write_parcels, write_rules
 
     x0, y0 = 400000.0, 1600000.0
     dem = ramp_dem(tmp_path / "dem.tif")
@@ -296,10 +300,9 @@ def test_slope_formats_hold_the_same_cells(tmp_path):
     # Source for the value: on the ramp z = g/2 x^2 every 3x3 kernel is exact at the centre (REFERENCES.md 1.2),
     # so the slope of the cell centred at x is 100 g x percent.
     import rasterio
+    from _support import ramp_dem
 
     from landcheck.pipeline import derive_slope
-
-    from _support import ramp_dem
 
     dem = ramp_dem(tmp_path / "dem.tif", n=700)
     for fmt in ("cog", "gtiff"):
