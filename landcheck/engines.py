@@ -17,11 +17,11 @@ count (tests check local threads == Dask).
 
 from __future__ import annotations
 
-import enum
 import logging
 from collections import deque
 from typing import Callable, Iterable, Iterator
 
+from .choices import UserChoice
 from .grid import Window
 from .tiling import default_workers, run_windows
 
@@ -30,18 +30,14 @@ __all__ = ["EngineKind", "map_windows"]
 logger = logging.getLogger(__name__)
 
 
-class EngineKind(str, enum.Enum):
+class EngineKind(UserChoice):
     THREADS = "threads"
     DASK = "dask"
 
     @classmethod
-    def from_user(cls, value: "str | EngineKind") -> "EngineKind":
-        if isinstance(value, cls):
-            return value
-        for m in cls:
-            if m.value == str(value).strip().lower():
-                return m
-        raise ValueError(f"unknown engine {value!r}; choose one of: {', '.join(m.value for m in cls)}")
+    def _noun(cls) -> str:
+        return "engine"
+
 
 
 def _call(task, win):

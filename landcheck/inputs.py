@@ -7,7 +7,6 @@ the problem and what to do.
 
 from __future__ import annotations
 
-import enum
 import logging
 import os
 import threading
@@ -15,6 +14,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .choices import UserChoice
 from .errors import InputDataError
 from .grid import GridSpec, Window, grow_window, iter_windows
 
@@ -28,7 +28,7 @@ FOOT_M = 0.3048
 US_SURVEY_FOOT_M = 1200.0 / 3937.0
 
 
-class ZUnit(str, enum.Enum):
+class ZUnit(UserChoice):
     """Unit of the DEM's elevation values."""
 
     METRE = "m"
@@ -40,18 +40,13 @@ class ZUnit(str, enum.Enum):
         return {ZUnit.METRE: 1.0, ZUnit.FOOT: FOOT_M, ZUnit.US_SURVEY_FOOT: US_SURVEY_FOOT_M}[self]
 
     @classmethod
-    def from_user(cls, value: "str | ZUnit") -> "ZUnit":
-        if isinstance(value, cls):
-            return value
-        key = str(value).strip().lower()
-        aliases = {"metre": cls.METRE, "meter": cls.METRE, "metres": cls.METRE, "meters": cls.METRE,
-                   "foot": cls.FOOT, "feet": cls.FOOT, "us-survey-foot": cls.US_SURVEY_FOOT}
-        if key in aliases:
-            return aliases[key]
-        for m in cls:
-            if m.value == key:
-                return m
-        raise ValueError(f"unknown elevation unit {value!r}; choose one of: {', '.join(m.value for m in cls)}")
+    def _aliases(cls) -> dict:
+        return {"metre": "m", "meter": "m", "metres": "m", "meters": "m", "foot": "ft", "feet": "ft", "us-survey-foot": "us-ft"}
+
+    @classmethod
+    def _noun(cls) -> str:
+        return "elevation unit"
+
 
 
 @dataclass

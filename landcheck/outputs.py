@@ -9,7 +9,6 @@ the same way: a hidden sibling folder, renamed when every file is in it.
 from __future__ import annotations
 
 import contextlib
-import enum
 import json
 import logging
 import os
@@ -20,6 +19,7 @@ from typing import Callable, Iterable, Iterator
 
 import numpy as np
 
+from .choices import UserChoice
 from .errors import OutputExistsError, OutputWriteError
 from .gdalcache import cap_gdal_cache
 from .grid import GridSpec, Window
@@ -164,7 +164,7 @@ def write_gpkg(path: str | os.PathLike, gdf, layer: str, *, overwrite: bool = Tr
     return Path(path)
 
 
-class RasterFormat(str, enum.Enum):
+class RasterFormat(UserChoice):
     """How a streamed raster is written (see docs/scale.md for the measured costs).
 
     * ``cog`` (default): Cloud-Optimized GeoTIFF, DEFLATE level 1 with a predictor, 512-cell tiles
@@ -182,17 +182,13 @@ class RasterFormat(str, enum.Enum):
     NONE = "none"
 
     @classmethod
-    def from_user(cls, value: "str | RasterFormat") -> "RasterFormat":
-        if isinstance(value, cls):
-            return value
-        key = str(value).strip().lower()
-        aliases = {"geotiff": cls.GTIFF, "tif": cls.GTIFF, "tiff": cls.GTIFF}
-        if key in aliases:
-            return aliases[key]
-        for m in cls:
-            if m.value == key:
-                return m
-        raise ValueError(f"unknown raster format {value!r}; choose one of: {', '.join(m.value for m in cls)}")
+    def _aliases(cls) -> dict:
+        return {"geotiff": "gtiff", "tif": "gtiff", "tiff": "gtiff"}
+
+    @classmethod
+    def _noun(cls) -> str:
+        return "raster format"
+
 
 
 class RasterSink:

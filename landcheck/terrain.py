@@ -28,9 +28,10 @@ Formulas (z1..z9 row by row from the north-west, p east, q north):
 
 from __future__ import annotations
 
-import enum
 
 import numpy as np
+
+from .choices import UserChoice
 
 __all__ = [
     "SlopeMethod",
@@ -44,42 +45,34 @@ __all__ = [
 HALO_CELLS = 1
 
 
-class SlopeMethod(str, enum.Enum):
+class SlopeMethod(UserChoice):
     """Finite-difference scheme for the surface gradient."""
 
     HORN = "horn"
     ZEVENBERGEN_THORNE = "zevenbergen-thorne"
 
     @classmethod
-    def from_user(cls, value: "str | SlopeMethod") -> "SlopeMethod":
-        if isinstance(value, cls):
-            return value
-        key = str(value).strip().lower().replace("_", "-")
-        aliases = {"zt": cls.ZEVENBERGEN_THORNE, "zevenbergenthorne": cls.ZEVENBERGEN_THORNE}
-        if key in aliases:
-            return aliases[key]
-        for m in cls:
-            if m.value == key:
-                return m
-        raise ValueError(f"unknown slope method {value!r}; choose one of: {', '.join(m.value for m in cls)}")
+    def _aliases(cls) -> dict:
+        return {"zt": "zevenbergen-thorne", "zevenbergenthorne": "zevenbergen-thorne", "zevenbergen_thorne": "zevenbergen-thorne"}
+
+    @classmethod
+    def _noun(cls) -> str:
+        return "slope method"
 
 
-class SlopeUnit(str, enum.Enum):
+
+class SlopeUnit(UserChoice):
     PERCENT = "percent"
     DEGREES = "degrees"
 
     @classmethod
-    def from_user(cls, value: "str | SlopeUnit") -> "SlopeUnit":
-        if isinstance(value, cls):
-            return value
-        key = str(value).strip().lower()
-        aliases = {"pct": cls.PERCENT, "%": cls.PERCENT, "deg": cls.DEGREES, "degree": cls.DEGREES}
-        if key in aliases:
-            return aliases[key]
-        for m in cls:
-            if m.value == key:
-                return m
-        raise ValueError(f"unknown slope unit {value!r}; choose one of: {', '.join(m.value for m in cls)}")
+    def _aliases(cls) -> dict:
+        return {"pct": "percent", "%": "percent", "deg": "degrees", "degree": "degrees"}
+
+    @classmethod
+    def _noun(cls) -> str:
+        return "slope unit"
+
 
 
 def _horn_pq(z1, z2, z3, z4, z6, z7, z8, z9, hx, hy):
