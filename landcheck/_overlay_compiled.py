@@ -20,7 +20,7 @@ _ROLE_PARCEL = -2
 _ROLE_FORBIDDEN_PIECE = -1
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@numba.njit(cache=True, nogil=True)
 def _count_le(sorted_values, x):
     """Number of entries of ``sorted_values`` that are <= x (``np.searchsorted(..., side="right")``)."""
     lo = 0
@@ -34,7 +34,7 @@ def _count_le(sorted_values, x):
     return lo
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@numba.njit(cache=True, nogil=True)
 def _hist_bin(edges, x, nb):
     """``clip(searchsorted(edges, x, "right") - 1, 0, nb - 1)``, starting from a guess for unit-wide bins."""
     b = min(max(int(x - edges[0]), 0), nb - 1) if x - edges[0] < nb else nb - 1
@@ -84,9 +84,35 @@ def accumulate_pairs(slope_pct, zone_bits, has_zones, cell_area_m2, candidates, 
             run_parcel[r] = geom_parcel[g]
             run_role[r] = geom_role[g]
     run_start[n_runs] = n
-    parcels = np.unique(run_parcel)
-    run_local = np.searchsorted(parcels, run_parcel)
-    k = parcels.shape[0]
+    # distinct parcels in ascending order, and each run's position among them (np.unique, np.sort
+    # and np.searchsorted written out: the generic versions more than double this function's compile
+    # time).  Insertion sort: runs arrive almost sorted (the parcels' own geometries come first, in
+    # parcel order), so it costs about one pass.
+    ordered = run_parcel.copy()
+    for r in range(1, n_runs):
+        v = ordered[r]
+        j = r - 1
+        while j >= 0 and ordered[j] > v:
+            ordered[j + 1] = ordered[j]
+            j -= 1
+        ordered[j + 1] = v
+    k = 0
+    for r in range(n_runs):
+        if r == 0 or ordered[r] != ordered[r - 1]:
+            ordered[k] = ordered[r]
+            k += 1
+    parcels = ordered[:k].copy()
+    run_local = np.empty(n_runs, np.int64)
+    for r in range(n_runs):
+        lo = 0
+        hi = k
+        while lo < hi:  # first position whose parcel is >= run_parcel[r] (it is equal: the parcel is there)
+            mid = (lo + hi) >> 1
+            if parcels[mid] < run_parcel[r]:
+                lo = mid + 1
+            else:
+                hi = mid
+        run_local[r] = lo
 
     covered = np.zeros(k)
     evaluated = np.zeros(k)

@@ -174,5 +174,5 @@ def gradient_to_unit(gradient: np.ndarray, unit: SlopeUnit | str) -> np.ndarray:
     unit = SlopeUnit.from_user(unit)
     g = np.asarray(gradient, dtype=np.float32)
     if unit is SlopeUnit.PERCENT:
-        return (g * np.float32(100.0)).astype(np.float32)
-    return np.degrees(np.arctan(g)).astype(np.float32)
+        return (g * np.float32(100.0)).astype(np.float32, copy=False)
+    return np.degrees(np.arctan(g)).astype(np.float32, copy=False)
