@@ -218,6 +218,10 @@ def audit(
     out = check_output_path(out_dir, [dem_path, parcels_path, rulebook_path, *layer_paths], overwrite=overwrite)
     settings = AuditSettings(SlopeMethod.from_user(method) if method else rules.slope_method, tile_cells, dem_band,
                              dem_crs, ZUnit.from_user(z_unit), parcels_layer, parcels_crs)
+    raster_format = RasterFormat.from_user(rasters)  # cog | gtiff | none (docs/scale.md)
+    if raster_format is RasterFormat.NONE and make_report:
+        raise InputDataError("rasters='none' writes no slope or conflict raster, and the report maps need them; "
+                             "turn the report off (--no-report) or choose rasters 'cog' or 'gtiff'.")
     dem = open_dem(dem_path, band=dem_band, crs=dem_crs, z_unit=settings.z_unit)
     g = dem.grid
     from .confidence import confidence_settings
@@ -282,11 +286,7 @@ def audit(
     totals = Totals(len(frame), len(plan.thresholds_pct), plan.n_cols, plan.n_classes)
     zone_names = [z.name for z in rules.zones]
     columns = zones.columns if zones is not None else []
-    raster_format = RasterFormat.from_user(rasters)  # cog | gtiff | none (docs/scale.md)
     job.keep_rasters = raster_format is not RasterFormat.NONE
-    if raster_format is RasterFormat.NONE and make_report:
-        raise InputDataError("rasters='none' writes no slope or conflict raster, and the report maps need them; "
-                             "turn the report off (--no-report) or choose rasters 'cog' or 'gtiff'.")
     with staged_folder(out, overwrite=overwrite) as stage:
         with RasterSink(stage / "slope_pct.tif", g, dtype="float32", nodata=np.nan, band_names=["slope_pct"],
                         fmt=raster_format) as slope_sink, \
