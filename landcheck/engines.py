@@ -18,12 +18,11 @@ count (tests check local threads == Dask).
 from __future__ import annotations
 
 import logging
-from collections import deque
 from typing import Callable, Iterable, Iterator
 
 from .choices import UserChoice
 from .grid import Window
-from .tiling import default_workers, run_windows
+from .tiling import default_workers, ordered_results, run_windows
 
 __all__ = ["EngineKind", "map_windows"]
 
@@ -76,19 +75,8 @@ def _dask_map(task, windows, *, workers, scheduler_address, progress):
         n_workers = max(1, len(client.scheduler_info().get("workers", {})) or (workers or 1))
         logger.info("dask: %d workers at %s", n_workers, client.scheduler.address)
         task_ref = client.scatter(task, broadcast=True)
-        pending: deque = deque()
-        for win in windows:
-            pending.append((win, client.submit(_call, task_ref, win, pure=False)))
-            if len(pending) >= 2 * n_workers:
-                w, fut = pending.popleft()
-                yield w, fut.result()
-                if progress is not None:
-                    progress.update(1)
-        while pending:
-            w, fut = pending.popleft()
-            yield w, fut.result()
-            if progress is not None:
-                progress.update(1)
+        yield from ordered_results(lambda w: client.submit(_call, task_ref, w, pure=False), windows,
+                                   2 * n_workers, progress)
     finally:
         client.close()
         if cluster is not None:

@@ -63,19 +63,28 @@ def run_windows(
             yield win, res
         return
     with ThreadPoolExecutor(max_workers=workers, thread_name_prefix="landcheck-window") as pool:
-        pending: deque = deque()
-        for win in wins:
-            pending.append((win, pool.submit(task, win)))
-            if len(pending) >= 2 * workers:
-                w, fut = pending.popleft()
-                yield w, fut.result()
-                if progress is not None:
-                    progress.update(1)
-        while pending:
+        yield from ordered_results(lambda w: pool.submit(task, w), wins, 2 * workers, progress)
+
+
+def ordered_results(submit, windows: Iterable[Window], in_flight: int, progress=None):
+    """Submit windows with ``submit(win) -> future``, keep at most ``in_flight`` pending, yield results in order.
+
+    Shared by the thread pool and the Dask engine: bounded look-ahead keeps memory flat, and the
+    window order of the results keeps every reduction deterministic.
+    """
+    pending: deque = deque()
+    for win in windows:
+        pending.append((win, submit(win)))
+        if len(pending) >= in_flight:
             w, fut = pending.popleft()
             yield w, fut.result()
             if progress is not None:
                 progress.update(1)
+    while pending:
+        w, fut = pending.popleft()
+        yield w, fut.result()
+        if progress is not None:
+            progress.update(1)
 
 
 def slope_window(dem: DemSource, win: Window, method: SlopeMethod | str = SlopeMethod.HORN) -> np.ndarray:
