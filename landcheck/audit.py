@@ -21,6 +21,7 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
+from ._local import ThreadLocalHandles
 from . import CAUTION, __version__
 from .errors import InputDataError, LandcheckWarning
 from .evaluate import (SENSITIVITY_LIMITS_PCT, Verdict, evaluate_parcels, parcel_rules, sensitivity_table,
@@ -131,7 +132,7 @@ def _build_plan(rules: Rulebook, class_names: np.ndarray, area_factor: np.ndarra
                        ground_factor)
 
 
-class _WindowJob:
+class _WindowJob(ThreadLocalHandles):
     """The per-window task: slope, zone bits, exact coverage, sums.  Picklable for Dask."""
 
     def __init__(self, dem: DemSource, method: SlopeMethod, geoms: np.ndarray, plan: OverlayPlan, zones=None):
@@ -143,15 +144,6 @@ class _WindowJob:
         self.zones = zones
         self._local = threading.local()  # per-thread reusable coverage buffers
         self.keep_rasters = True  # False: hand back no slope/conflict tiles (nothing to write; less to ship from workers)
-
-    def __getstate__(self):
-        state = self.__dict__.copy()
-        state.pop("_local", None)
-        return state
-
-    def __setstate__(self, state):
-        self.__dict__.update(state)
-        self._local = threading.local()
 
     def __call__(self, win: Window):
         g = self.dem.grid

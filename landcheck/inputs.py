@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ._local import ThreadLocalHandles
 from .choices import UserChoice
 from .errors import InputDataError
 from .grid import GridSpec, Window, grow_window, iter_windows
@@ -50,7 +51,7 @@ class ZUnit(UserChoice):
 
 
 @dataclass
-class DemSource:
+class DemSource(ThreadLocalHandles):
     """A validated DEM band: where it is, its grid, and how to read windows of it.
 
     Reading opens one dataset handle per thread (rasterio handles are not
@@ -65,15 +66,6 @@ class DemSource:
     z_unit: ZUnit = ZUnit.METRE
     crs_override: str | None = None
     _local: threading.local = field(default_factory=threading.local, repr=False, compare=False)
-
-    def __getstate__(self):
-        state = self.__dict__.copy()
-        state.pop("_local", None)
-        return state
-
-    def __setstate__(self, state):
-        self.__dict__.update(state)
-        self._local = threading.local()
 
     def _dataset(self):
         ds = getattr(self._local, "ds", None)

@@ -963,6 +963,7 @@ def _img(path: Path, alt: str) -> str:
 
 def _write_html(path: Path, figures: dict, map_png: Path, hist_png: Path) -> None:
     from .outputs import atomic_file
+    from .report import html_head
 
     p, b, lp, rule = figures["parcel"], figures["buildable"], figures["largest_patch"], figures["rule"]
     verdict = figures["verdict"]
@@ -996,14 +997,7 @@ def _write_html(path: Path, figures: dict, map_png: Path, hist_png: Path) -> Non
                           f"{_e(i['sha256'][:_SHA_SHORT])}\u2026" for i in figures["inputs"])
     badge_cls = verdict if verdict in ("conflict", "review", "consistent", "no_data") else "no_data"
     parts = [
-        "<!DOCTYPE html>",
-        '<html lang="en"><head><meta charset="utf-8">',
-        f'<meta http-equiv="Content-Security-Policy" content="{_CSP}">',
-        '<meta name="viewport" content="width=device-width, initial-scale=1">',
-        '<meta name="generator" content="landcheck">',
-        '<link rel="icon" href="data:,">',
-        f"<title>landcheck pre-screen - parcel {_e(p['id'])}</title>",
-        f"<style>{_CSS}</style></head><body>",
+        html_head(f"landcheck pre-screen - parcel {p['id']}", _CSS, _CSP),
         f"<header><h1>Pre-screen of parcel {_e(p['id'])}</h1>",
         (f'<p class="sub">{_e(p["source"])} \u00b7 run {_e(figures["started_utc"])} \u00b7 landcheck '
         f"{_e(figures['version'])}</p>"),

@@ -271,6 +271,18 @@ _MOVES_COLUMNS = [("from_class", "From class", "text"), ("to_class", "To class",
                   ("parcels", "Parcels", "int"), ("area_m2", "Area (m\u00b2)", "m2")]
 
 
+def html_head(title: str, css: str, csp: str) -> str:
+    """Opening of a self-contained page: a Content-Security-Policy that forbids every fetch, inline CSS."""
+    return ("<!DOCTYPE html>\n"
+            '<html lang="en"><head><meta charset="utf-8">\n'
+            f'<meta http-equiv="Content-Security-Policy" content="{csp}">\n'
+            '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
+            '<meta name="generator" content="landcheck">\n'
+            '<link rel="icon" href="data:,">\n'
+            f"<title>{_e(title)}</title>\n"
+            f"<style>{css}</style></head><body>")
+
+
 def _final_name(out_dir: Path) -> str:
     """The folder's name once the audit renames its staging folder (``.NAME.partial-XXXX`` -> ``NAME``)."""
     name = out_dir.name
@@ -653,14 +665,7 @@ def build_report(out_dir, *, report_path=None, figures_dir=None,
 
     title = "landcheck screening report"
     parts = [
-        "<!DOCTYPE html>",
-        '<html lang="en"><head><meta charset="utf-8">',
-        f'<meta http-equiv="Content-Security-Policy" content="{_CSP}">',
-        '<meta name="viewport" content="width=device-width, initial-scale=1">',
-        '<meta name="generator" content="landcheck">',
-        '<link rel="icon" href="data:,">',
-        f"<title>{_e(title)} - audit run {_e(folder.run_date_text)}</title>",
-        f"<style>{_CSS}</style></head><body>",
+        html_head(f"{title} - audit run {folder.run_date_text}", _CSS, _CSP),
         f"<header><h1>{_e(title)}</h1>",
         f'<p class="sub">Audit run {_e(folder.run_date_text)} \u00b7 output folder '
         f"<code>{_e(_final_name(folder.out_dir))}</code></p>",
