@@ -4,14 +4,9 @@ A screening aid, not a survey or legal determination: local codes, the mandated
 agency and licensed practitioners decide.
 """
 
-from .errors import InputDataError, LandcheckError, LandcheckWarning, OutputExistsError, RuleFileError
+from landcheck.errors import InputDataError, LandcheckError, LandcheckWarning, OutputExistsError, RuleFileError
 
-__version__ = "0.1.0"
-
-CAUTION = (
-    "Screening aid only - not a survey or legal determination. Local codes, "
-    "the mandated agency and licensed practitioners decide."
-)
+from landcheck.about import CAUTION, __version__
 
 __all__ = [
     "CAUTION",

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from . import __version__
+from landcheck.about import __version__
 
 
 def show_versions() -> dict:

@@ -1,5 +1,5 @@
 #!/usr/bin/env python3
-"""Time the Monte Carlo verdict confidence (landcheck.confidence) and check it scales linearly in N.
+"""Time the Monte Carlo verdict confidence (landcheck.verdicts.confidence) and check it scales linearly in N.
 
 Builds a synthetic hilly DEM (default 1000 x 1000 cells of 10 m) around the fictional town of
 Alderwane and a grid of zoned parcels (default 400), runs the audit's own preparation and window
@@ -93,13 +93,13 @@ def prepare(dem_path, parcels_path, rules_path, tile_cells: int):
     """The audit's own preparation and window pass (baseline verdicts), without writing outputs."""
     import shapely
 
-    from landcheck.audit import _build_plan, _WindowJob
-    from landcheck.evaluate import evaluate_parcels, parcel_rules
-    from landcheck.grid import iter_windows
-    from landcheck.inputs import open_dem
-    from landcheck.layers import ground_areas, read_parcels
-    from landcheck.overlay import Totals
-    from landcheck.rules import load_rules
+    from landcheck.core.audit import _build_plan, _WindowJob
+    from landcheck.verdicts.evaluate import evaluate_parcels, parcel_rules
+    from landcheck.geo.grid import iter_windows
+    from landcheck.inputs.dem import open_dem
+    from landcheck.inputs.layers import ground_areas, read_parcels
+    from landcheck.overlay.sums import Totals
+    from landcheck.inputs.rulebook import load_rules
 
     dem = open_dem(dem_path)
     g = dem.grid
@@ -141,7 +141,7 @@ def main() -> None:
     ap.add_argument("--seed", type=int, default=1)
     args = ap.parse_args()
 
-    from landcheck.confidence import confidence_settings, run_confidence
+    from landcheck.verdicts.confidence import confidence_settings, run_confidence
 
     with tempfile.TemporaryDirectory(prefix="bench_confidence_") as tmp:
         t0 = time.perf_counter()

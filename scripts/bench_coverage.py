@@ -28,8 +28,8 @@ import numpy as np
 import shapely
 from affine import Affine
 
-from landcheck.coverage import coverage_triplets, prepare_polygons
-from landcheck.grid import Window, iter_windows
+from landcheck.overlay.coverage import coverage_triplets, prepare_polygons
+from landcheck.geo.grid import Window, iter_windows
 
 CELL_M = 10.0
 ORIGIN_X_M = 500_000.0

@@ -10,7 +10,7 @@ import pytest
 import shapely
 from shapely import affinity
 
-from landcheck.audit import audit
+from landcheck.core.audit import audit
 
 from _support import ramp_dem, write_parcels, write_rules
 

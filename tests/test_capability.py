@@ -1,4 +1,4 @@
-"""Tests for landcheck.capability: slope-class x hazard capability map and its per-class areas."""
+"""Tests for landcheck.verdicts.capability: slope-class x hazard capability map and its per-class areas."""
 
 from __future__ import annotations
 
@@ -10,8 +10,8 @@ import pytest
 import rasterio
 import shapely
 
-from landcheck.audit import _build_plan, audit
-from landcheck.capability import (
+from landcheck.core.audit import _build_plan, audit
+from landcheck.verdicts.capability import (
     HAZARD_FLAG,
     NO_VALUE,
     SEA,
@@ -20,20 +20,20 @@ from landcheck.capability import (
     write_capability_legend,
 )
 from landcheck.errors import RuleFileError
-from landcheck.evaluate import parcel_rules
-from landcheck.grid import iter_windows
-from landcheck.inputs import open_dem
-from landcheck.layers import ground_areas, read_parcels
-from landcheck.rules import load_rules
-from landcheck.terrain import SlopeMethod
-from landcheck.zones import ZoneColumn, ZoneSet
+from landcheck.verdicts.evaluate import parcel_rules
+from landcheck.geo.grid import iter_windows
+from landcheck.inputs.dem import open_dem
+from landcheck.inputs.layers import ground_areas, read_parcels
+from landcheck.inputs.rulebook import load_rules
+from landcheck.terrain.slope import SlopeMethod
+from landcheck.zones.prepare import ZoneColumn, ZoneSet
 
 from _support import ramp_dem, write_parcels, write_rules
 
 X0, Y0 = 400000.0, 1600000.0
 H = 10.0
 # Source: land-use planning slope classes 0-3-8-18-30-50 % (REFERENCES.md 2.1), written out here
-# independently of landcheck.slope_classes; a class holds slopes from its lower edge ("or over").
+# independently of landcheck.terrain.slope_classes; a class holds slopes from its lower edge ("or over").
 PLANNING_LOWER_EDGES_PCT = [3.0, 8.0, 18.0, 30.0, 50.0]
 
 RULES_WITH_ZONES = """

@@ -70,7 +70,7 @@ def test_output_inside_input_refused(tmp_path, inputs):
 
 def test_disk_full_mid_write_leaves_nothing(tmp_path, inputs, monkeypatch):
     # Simulate ENOSPC while writing the CSV tables, after the rasters and the GeoPackage were written.
-    from landcheck import audit as audit_mod
+    from landcheck.core import audit as audit_mod
 
     def full_disk(*a, **k):
         raise OSError(errno.ENOSPC, "No space left on device")
@@ -105,7 +105,7 @@ def test_permission_denied(tmp_path, inputs, monkeypatch):
 
 
 def test_internal_error_exit_4(tmp_path, inputs, monkeypatch):
-    from landcheck import audit as audit_mod
+    from landcheck.core import audit as audit_mod
 
     def boom(*a, **k):
         raise ZeroDivisionError("bug")

@@ -1,4 +1,4 @@
-"""Tests for landcheck.confidence: Monte Carlo verdict confidence under DEM error.
+"""Tests for landcheck.verdicts.confidence: Monte Carlo verdict confidence under DEM error.
 
 Every statistical check uses a fixed seed (deterministic) and states its tolerance as a multiple of the
 Monte Carlo standard error (SE) of the statistic, so a correct driver passes for any seed while a wrong
@@ -15,8 +15,8 @@ import shapely
 from rasterio.transform import from_origin
 from scipy import stats
 
-from landcheck.audit import _build_plan, _WindowJob
-from landcheck.confidence import (
+from landcheck.core.audit import _build_plan, _WindowJob
+from landcheck.verdicts.confidence import (
     ROBUST_CLEAR_P,
     ROBUST_CONFLICT_P,
     ConfidenceLabel,
@@ -25,14 +25,14 @@ from landcheck.confidence import (
     run_confidence,
 )
 from landcheck.errors import RuleFileError
-from landcheck.evaluate import evaluate_parcels, parcel_rules
-from landcheck.grid import iter_windows
-from landcheck.inputs import open_dem
-from landcheck.layers import ground_areas, read_parcels
-from landcheck.overlay import Totals
-from landcheck.rules import load_rules
-from landcheck.terrain import SlopeMethod
-from landcheck.uncertainty import ErrorModel
+from landcheck.verdicts.evaluate import evaluate_parcels, parcel_rules
+from landcheck.geo.grid import iter_windows
+from landcheck.inputs.dem import open_dem
+from landcheck.inputs.layers import ground_areas, read_parcels
+from landcheck.overlay.sums import Totals
+from landcheck.inputs.rulebook import load_rules
+from landcheck.terrain.slope import SlopeMethod
+from landcheck.terrain.dem_error import ErrorModel
 
 from _support import ramp_dem, write_parcels, write_raster
 
@@ -191,7 +191,7 @@ def test_windowed_equals_whole_and_seed_reproducible(tmp_path):
     assert tiled["confidence"].tolist() == whole["confidence"].tolist()
     np.testing.assert_allclose(tc.filter(like="share").to_numpy(float), wc.filter(like="share").to_numpy(float),
                                rtol=1e-12, equal_nan=True)
-    # Source: reproducibility contract of landcheck.uncertainty: same seed, same numbers bit for bit.
+    # Source: reproducibility contract of landcheck.terrain.dem_error: same seed, same numbers bit for bit.
     assert again[num].equals(whole[num]) and auto.equals(whole)
     assert not np.allclose(other["over_limit_share_p50"].iloc[:3], whole["over_limit_share_p50"].iloc[:3])
     # the forest parcel has no slope limit: fixed figures, the audit's verdict with P 0

@@ -1,4 +1,4 @@
-"""Exact cell coverage (landcheck.coverage) against worked values, exactextract and shapely."""
+"""Exact cell coverage (landcheck.overlay.coverage) against worked values, exactextract and shapely."""
 
 from __future__ import annotations
 
@@ -12,14 +12,14 @@ from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 from shapely import affinity
 
-from landcheck.coverage import (
+from landcheck.overlay.coverage import (
     MIN_FRACTION,
     _coverage_kernel,
     coverage_triplets,
     prepare_polygons,
 )
 from landcheck.errors import InputDataError
-from landcheck.grid import GridSpec, iter_windows
+from landcheck.geo.grid import GridSpec, iter_windows
 
 CRS = "EPSG:32651"
 X0_M, Y0_M = 400_000.0, 1_600_000.0  # fictional grid origin (top-left corner)

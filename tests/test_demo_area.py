@@ -28,7 +28,7 @@ try:
 except ModuleNotFoundError:  # Python 3.10
     import tomli as tomllib
 
-from landcheck.terrain import slope_gradient
+from landcheck.terrain.slope import slope_gradient
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "demo_area"
@@ -346,7 +346,7 @@ def test_geometry_quirks_for_repair(parcels):
 def test_residential_parcels_on_steep_ground(parcels, dem, slope_pct):
     # Common practice check: the demo must contain residential land above an 18 %
     # slope limit, or the slope rule would have nothing to find.  Slope from
-    # landcheck.terrain.slope_gradient (Horn 1981), cell-centre membership.
+    # landcheck.terrain.slope.slope_gradient (Horn 1981), cell-centre membership.
     _, info = dem
     ids = _parcel_id_raster(parcels, info)
     valid = np.isfinite(slope_pct)

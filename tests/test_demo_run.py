@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from landcheck.audit import audit
+from landcheck.core.audit import audit
 
 DEMO = Path(__file__).resolve().parents[1] / "demo_area"
 
@@ -39,7 +39,7 @@ def generator_summary():
 
 
 def test_counts_per_rule_agree_with_generator(demo, generator_summary):
-    from landcheck.rules import load_rules
+    from landcheck.inputs.rulebook import load_rules
 
     rules = load_rules(DEMO / "rulebook.toml")
     by = {c.name: c for c in rules.classes}

@@ -15,9 +15,9 @@ from matplotlib import cbook
 from rasterio.transform import from_origin
 from rasterio.warp import Resampling, calculate_default_transform, reproject
 
-from landcheck.inputs import open_dem
-from landcheck.pipeline import derive_slope
-from landcheck.terrain import slope_gradient
+from landcheck.inputs.dem import open_dem
+from landcheck.core.slope_raster import derive_slope
+from landcheck.terrain.slope import slope_gradient
 
 from _support import write_raster
 
@@ -62,7 +62,7 @@ def test_geographic_slope_agrees_with_projected_copy(tmp_path, geo_dem):
     # Reference: the same DEM warped to UTM by GDAL (cubic, resolution matched to the source cells).
     with rasterio.open(geo_dem) as src:
         lat = (src.bounds.top + src.bounds.bottom) / 2
-        from landcheck import geodesy
+        from landcheck.geo import geodesy
 
         res = (src.res[0] * geodesy.metres_per_degree_lon(lat), src.res[1] * geodesy.metres_per_degree_lat(lat))
         tr, w, h = calculate_default_transform(src.crs, UTM_CRS, src.width, src.height, *src.bounds, resolution=res)

@@ -8,8 +8,8 @@ from affine import Affine
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from landcheck import geodesy
-from landcheck.grid import GridSpec, Window, grow_window, iter_windows
+from landcheck.geo import geodesy
+from landcheck.geo.grid import GridSpec, Window, grow_window, iter_windows
 
 WGS84_WKT = "EPSG:4326"
 
@@ -100,8 +100,8 @@ def test_tiled_slope_equals_untiled(tmp_path, raster_writer, method):
     # bit-identical results to one whole-array pass, nodata included.
     import rasterio
 
-    from landcheck.pipeline import derive_slope
-    from landcheck.terrain import slope_gradient
+    from landcheck.core.slope_raster import derive_slope
+    from landcheck.terrain.slope import slope_gradient
 
     rng = np.random.default_rng(11)
     z = (rng.normal(0, 2, (23, 31)).cumsum(0).cumsum(1) + 100).astype("float32")

@@ -8,7 +8,7 @@ import pytest
 import shapely
 from shapely import affinity
 
-from landcheck.ground_area import SMALL_EXTENT_M, ground_areas_fast, polygon_areas_m2
+from landcheck.geo.ground_area import SMALL_EXTENT_M, ground_areas_fast, polygon_areas_m2
 
 X0, Y0 = 400000.0, 1600000.0
 

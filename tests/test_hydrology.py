@@ -1,4 +1,4 @@
-"""Tests for landcheck.hydrology: sea mask, connected inundation, D8 routing, HAND, vector outputs.
+"""Tests for landcheck.terrain.hydrology: sea mask, connected inundation, D8 routing, HAND, vector outputs.
 
 Every check names where its expected value comes from.  REFERENCES.md is
 /work/shared/REFERENCES.md (section numbers given).
@@ -13,9 +13,9 @@ from affine import Affine
 from matplotlib import cbook
 from scipy import ndimage
 
-from landcheck import geodesy
+from landcheck.geo import geodesy
 from landcheck.errors import InputDataError, LandcheckError
-from landcheck.hydrology import (
+from landcheck.terrain.hydrology import (
     flow_directions,
     hand_m,
     inundation_masks,

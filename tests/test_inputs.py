@@ -10,7 +10,7 @@ from click.testing import CliRunner
 
 from landcheck.cli.main import cli
 from landcheck.errors import InputDataError
-from landcheck.inputs import open_dem
+from landcheck.inputs.dem import open_dem
 
 # All checks here are common practice (input validation), no outside values.
 
@@ -62,7 +62,7 @@ def test_multiband_needs_band_choice(tmp_path):
     with pytest.raises(InputDataError, match=r"two\.tif: the raster has 2 bands.*--dem-band"):
         open_dem(path)
     src = open_dem(path, band=2)
-    from landcheck.grid import Window
+    from landcheck.geo.grid import Window
 
     assert float(src.read(Window(0, 0, 4, 4))[0, 0]) == 2.0
     with pytest.raises(InputDataError, match="band 3"):
@@ -77,8 +77,8 @@ def test_all_nodata_refused(raster_writer):
 
 def test_feet_units(raster_writer):
     # Common practice: international foot = 0.3048 m. A 10 ft rise per 100 ft run is 10 % whatever the unit.
-    from landcheck.terrain import slope_gradient
-    from landcheck.grid import Window
+    from landcheck.terrain.slope import slope_gradient
+    from landcheck.geo.grid import Window
 
     x = np.arange(8) * 100.0
     z = np.tile(0.1 * x, (8, 1)).astype("float32")

@@ -1,4 +1,4 @@
-"""Tests of landcheck.maps on a synthetic audit output folder (tests/report_fixture.py)."""
+"""Tests of landcheck.evidence.maps on a synthetic audit output folder (tests/report_fixture.py)."""
 
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from report_fixture import build_audit_folder
 
-from landcheck import maps
+from landcheck.evidence import maps
 from landcheck.errors import InputDataError
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"

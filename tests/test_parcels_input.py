@@ -8,7 +8,7 @@ import pytest
 import shapely
 from click.testing import CliRunner
 
-from landcheck.audit import audit
+from landcheck.core.audit import audit
 from landcheck.cli.main import cli
 
 from _support import ramp_dem, write_parcels, write_rules

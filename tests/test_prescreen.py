@@ -15,11 +15,11 @@ import shapely
 from click.testing import CliRunner
 from scipy import ndimage
 
-from landcheck import CAUTION
-from landcheck.audit import audit
+from landcheck.about import CAUTION
+from landcheck.core.audit import audit
 from landcheck.cli.main import cli
 from landcheck.errors import InputDataError
-from landcheck.prescreen import MAP_SIZE_IN, largest_patch, parse_polygon, prescreen
+from landcheck.evidence.prescreen import MAP_SIZE_IN, largest_patch, parse_polygon, prescreen
 
 from _support import ramp_dem, require_tool, write_parcels, write_rules
 

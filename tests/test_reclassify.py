@@ -1,4 +1,4 @@
-"""Tests for landcheck.reclassify: drafted split of conflicting parcels into compliant and non-compliant parts."""
+"""Tests for landcheck.verdicts.reclassify: drafted split of conflicting parcels into compliant and non-compliant parts."""
 
 from __future__ import annotations
 
@@ -7,21 +7,21 @@ import pytest
 import shapely
 from rasterio.transform import from_origin
 
-from landcheck.audit import _build_plan, _WindowJob
+from landcheck.core.audit import _build_plan, _WindowJob
 from landcheck.errors import InputDataError, RuleFileError
-from landcheck.evaluate import evaluate_parcels, parcel_rules
-from landcheck.grid import iter_windows
-from landcheck.inputs import open_dem
-from landcheck.layers import read_parcels
-from landcheck.overlay import ROLE_FORBIDDEN_PIECE, Totals
-from landcheck.reclassify import (
+from landcheck.verdicts.evaluate import evaluate_parcels, parcel_rules
+from landcheck.geo.grid import iter_windows
+from landcheck.inputs.dem import open_dem
+from landcheck.inputs.layers import read_parcels
+from landcheck.overlay.sums import ROLE_FORBIDDEN_PIECE, Totals
+from landcheck.verdicts.reclassify import (
     PART_COMPLIANT,
     PART_NON_COMPLIANT,
     draft_reclassification,
 )
-from landcheck.rules import load_rules
-from landcheck.terrain import SlopeMethod
-from landcheck.zones import ZoneColumn, ZoneSet
+from landcheck.inputs.rulebook import load_rules
+from landcheck.terrain.slope import SlopeMethod
+from landcheck.zones.prepare import ZoneColumn, ZoneSet
 
 from _support import ramp_dem, write_parcels, write_raster
 
@@ -74,7 +74,7 @@ def _setup(tmp_path, dem_path, geoms, zoning, *, rules_text=RULES, zones_fn=None
     rules = load_rules(rp)
     frame = read_parcels(parcels_path, class_field=rules.class_field, id_field=rules.id_field,
                          target_crs_wkt=g.crs_wkt).frame
-    from landcheck.layers import ground_areas
+    from landcheck.inputs.layers import ground_areas
 
     area_m2, factor = ground_areas(frame, g.crs_wkt)
     pr = parcel_rules(rules, frame["class_value"].to_numpy())
@@ -136,7 +136,7 @@ def test_split_on_the_ramp_matches_the_closed_form(tmp_path):
     # the layer round-trips through a GeoPackage (open standard) with its columns and CRS
     import geopandas as gpd
 
-    from landcheck.outputs import write_gpkg
+    from landcheck.outputs.writers import write_gpkg
 
     write_gpkg(tmp_path / "reclassification.gpkg", parts, layer="parts")
     back = gpd.read_file(tmp_path / "reclassification.gpkg", layer="parts")

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 import rasterio
 
-from landcheck.pipeline import derive_slope
+from landcheck.core.slope_raster import derive_slope
 
 from _support import require_tool
 

@@ -1,4 +1,4 @@
-"""Tests of landcheck.report: a self-contained HTML page, checked as text and in a real browser."""
+"""Tests of landcheck.evidence.report: a self-contained HTML page, checked as text and in a real browser."""
 
 from __future__ import annotations
 
@@ -15,7 +15,7 @@ from report_fixture import build_audit_folder
 
 import landcheck
 from landcheck.errors import InputDataError
-from landcheck.report import build_report
+from landcheck.evidence.report import build_report
 
 # attributes that make a browser fetch or navigate (HTML Living Standard: src, href,
 # srcset, poster, data, action, formaction, xlink:href in inline SVG, background)

@@ -12,7 +12,7 @@ import re
 import numpy as np
 import shapely
 
-from landcheck.audit import audit
+from landcheck.core.audit import audit
 
 from _support import ramp_dem, write_parcels, write_rules
 

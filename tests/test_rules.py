@@ -7,7 +7,7 @@ import math
 import pytest
 
 from landcheck.errors import RuleFileError
-from landcheck.rules import load_rules, parse_rules
+from landcheck.inputs.rulebook import load_rules, parse_rules
 
 BASE = """[rulebook]
 class_field = "zoning"

@@ -13,8 +13,8 @@ import shapely
 from affine import Affine
 from shapely import affinity
 
-from landcheck.coverage import coverage_triplets, prepare_polygons
-from landcheck.overlay import (
+from landcheck.overlay.coverage import coverage_triplets, prepare_polygons
+from landcheck.overlay.sums import (
     CONFLICT_OUTSIDE,
     ROLE_FORBIDDEN_PIECE,
     ROLE_PARCEL,
@@ -146,9 +146,9 @@ def test_float32_reads_hold_the_same_numbers(tmp_path, dtype, nodata):
     # so slopes computed from either are bit-identical (the compiled loop widens each value to float64).
     from _support import write_raster
 
-    from landcheck.grid import Window
-    from landcheck.inputs import open_dem
-    from landcheck.terrain import slope_gradient
+    from landcheck.geo.grid import Window
+    from landcheck.inputs.dem import open_dem
+    from landcheck.terrain.slope import slope_gradient
 
     rng = np.random.default_rng(5)
     z = (rng.normal(0, 30, (60, 70)).cumsum(axis=1) + 500).astype(dtype)
@@ -176,7 +176,7 @@ def test_raster_formats_hold_the_same_cells(tmp_path):
     import rasterio
     from _support import ramp_dem, write_parcels, write_rules
 
-    from landcheck.audit import audit
+    from landcheck.core.audit import audit
 
     x0, y0 = 400000.0, 1600000.0
     dem = ramp_dem(tmp_path / "dem.tif")
@@ -211,8 +211,8 @@ def test_categorical_cog_overviews_keep_codes(tmp_path):
     import rasterio
     from rasterio.transform import from_origin
 
-    from landcheck.grid import GridSpec, Window
-    from landcheck.outputs import RasterSink
+    from landcheck.geo.grid import GridSpec, Window
+    from landcheck.outputs.writers import RasterSink
 
     n = 1500
     rng = np.random.default_rng(2)
@@ -230,7 +230,7 @@ def test_gdal_cache_is_capped_but_user_setting_wins(monkeypatch):
     # Common practice (GDAL docs, GDAL_CACHEMAX): the block cache defaults to 5 % of RAM; streamed runs cap it.
     from rasterio._env import get_gdal_config, set_gdal_config
 
-    from landcheck.gdalcache import GDAL_CACHE_CAP_BYTES, cap_gdal_cache
+    from landcheck.inputs.gdal_cache import GDAL_CACHE_CAP_BYTES, cap_gdal_cache
 
     monkeypatch.delenv("GDAL_CACHEMAX", raising=False)
     before = get_gdal_config("GDAL_CACHEMAX")
@@ -247,7 +247,7 @@ def test_gdal_cache_is_capped_but_user_setting_wins(monkeypatch):
 
 def test_reused_coverage_buffers_give_fresh_results():
     # Invariant: triplets computed into reused (and grown) buffers equal those from fresh arrays.
-    from landcheck.coverage import CoverageBuffers
+    from landcheck.overlay.coverage import CoverageBuffers
 
     rng = np.random.default_rng(9)
     prepared = prepare_polygons(np.array(_lots(rng, 60, 12, 80), dtype=object))
@@ -267,7 +267,7 @@ def test_audit_rasters_and_sums_do_not_depend_on_tiles_or_workers(tmp_path):
     import rasterio
     from _support import ramp_dem, write_parcels, write_rules
 
-    from landcheck.audit import audit
+    from landcheck.core.audit import audit
 
     x0, y0 = 400000.0, 1600000.0
     dem = ramp_dem(tmp_path / "dem.tif")
@@ -302,7 +302,7 @@ def test_slope_formats_hold_the_same_cells(tmp_path):
     import rasterio
     from _support import ramp_dem
 
-    from landcheck.pipeline import derive_slope
+    from landcheck.core.slope_raster import derive_slope
 
     dem = ramp_dem(tmp_path / "dem.tif", n=700)
     for fmt in ("cog", "gtiff"):

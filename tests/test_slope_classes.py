@@ -10,7 +10,7 @@ import rasterio
 from click.testing import CliRunner
 
 from landcheck.cli.main import cli
-from landcheck.slope_classes import classify_slope, get_scheme, scheme_from_breaks
+from landcheck.terrain.slope_classes import classify_slope, get_scheme, scheme_from_breaks
 
 
 def test_planning_scheme_breaks():

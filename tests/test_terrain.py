@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from landcheck.terrain import SlopeMethod, gradient_to_unit, slope_gradient, _horn_pq, _zt_pq
+from landcheck.terrain.slope import SlopeMethod, gradient_to_unit, slope_gradient, _horn_pq, _zt_pq
 
 H = 10.0
 

@@ -1,4 +1,4 @@
-"""Tests for landcheck.uncertainty: DEM error fields for Monte Carlo slope confidence.
+"""Tests for landcheck.terrain.dem_error: DEM error fields for Monte Carlo slope confidence.
 
 Monte Carlo tolerances: every statistical check uses a fixed seed, so the test
 is deterministic; each tolerance is stated beside the check as a multiple of
@@ -16,9 +16,9 @@ import pytest
 from affine import Affine
 
 from landcheck.errors import RuleFileError
-from landcheck.grid import GridSpec, Window, grow_window, iter_windows
-from landcheck.terrain import _horn_pq, _zt_pq, slope_gradient
-from landcheck.uncertainty import (
+from landcheck.geo.grid import GridSpec, Window, grow_window, iter_windows
+from landcheck.terrain.slope import _horn_pq, _zt_pq, slope_gradient
+from landcheck.terrain.dem_error import (
     MAX_REALIZATIONS,
     MIN_REALIZATIONS,
     NOISE_BLOCK_CELLS,

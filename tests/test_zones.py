@@ -9,11 +9,11 @@ from affine import Affine
 from click.testing import CliRunner
 from rasterio.transform import from_origin
 
-from landcheck.audit import audit
+from landcheck.core.audit import audit
 from landcheck.cli.main import cli
 from landcheck.errors import InputDataError, RuleFileError
-from landcheck.grid import GridSpec
-from landcheck.zones import buffer_ground
+from landcheck.geo.grid import GridSpec
+from landcheck.zones.prepare import buffer_ground
 
 from _support import write_parcels, write_raster
 

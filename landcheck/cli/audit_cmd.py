@@ -7,14 +7,14 @@ import warnings
 
 import click
 
-from ..errors import LandcheckWarning
+from landcheck.errors import LandcheckWarning
 from .main import handle_errors
 from .options import CAUTION_HELP, EXIT_CONFLICTS, dem_options, method_option, run_options
 
 
 def run_audit_and_report(ctx, *, as_json: bool, fail_on_conflict: bool, **kwargs):
     """Shared by ``audit`` and ``demo``: run, print the summary, set the exit code."""
-    from ..audit import audit
+    from landcheck.core.audit import audit
 
     quiet = ctx.find_root().obj.get("quiet")
 

@@ -6,7 +6,7 @@ from pathlib import Path
 
 import click
 
-from ..errors import InputDataError
+from landcheck.errors import InputDataError
 from .audit_cmd import run_audit_and_report
 from .main import handle_errors
 from .options import CAUTION_HELP

@@ -11,9 +11,9 @@ import traceback
 
 import click
 
-from .. import CAUTION, __version__
-from ..versions import show_versions
-from ..errors import LandcheckError
+from landcheck.about import CAUTION, __version__
+from landcheck.versions import show_versions
+from landcheck.errors import LandcheckError
 from .options import CAUTION_HELP, EXIT_INTERNAL
 
 logger = logging.getLogger("landcheck")

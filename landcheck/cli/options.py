@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import click
 
-from ..terrain import SlopeMethod
-from ..inputs import ZUnit
+from landcheck.terrain.slope import SlopeMethod
+from landcheck.inputs.dem import ZUnit
 
 EXIT_OK = 0
 EXIT_CONFLICTS = 1

@@ -7,7 +7,7 @@ import warnings
 
 import click
 
-from ..errors import LandcheckWarning
+from landcheck.errors import LandcheckWarning
 from .main import handle_errors
 from .options import CAUTION_HELP, dem_options, method_option
 
@@ -64,7 +64,7 @@ Examples:
 @handle_errors
 def command(ctx, dem, rulebook, parcels_path, parcel_id, id_field, parcels_layer, parcels_crs, polygon, polygon_crs,
             class_name, connectivity, out_dir, method, dem_band, dem_crs, z_unit, dpi, overwrite, as_json):
-    from ..prescreen import prescreen
+    from landcheck.evidence.prescreen import prescreen
 
     if (parcels_path is None) == (polygon is None):
         raise click.UsageError("give the parcel with --parcels FILE (and --parcel-id when it holds several) "

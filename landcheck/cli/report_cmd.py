@@ -6,7 +6,7 @@ from pathlib import Path
 
 import click
 
-from ..errors import InputDataError
+from landcheck.errors import InputDataError
 from .main import handle_errors
 from .options import CAUTION_HELP
 
@@ -32,7 +32,7 @@ Examples:
 @click.pass_context
 @handle_errors
 def command(ctx, out_dir, report_path, dpi, max_closeups):
-    from ..report import build_report
+    from landcheck.evidence.report import build_report
 
     d = Path(out_dir)
     if not (d / "summary.json").exists():

@@ -6,7 +6,7 @@ import json
 
 import click
 
-from ..terrain import SlopeUnit
+from landcheck.terrain.slope import SlopeUnit
 from .main import handle_errors
 from .options import CAUTION_HELP, dem_options, method_option, run_options
 
@@ -42,8 +42,8 @@ Examples:
 @handle_errors
 def slope(ctx, dem, out, unit, method, dem_band, dem_crs, z_unit, tile_cells, workers, overwrite, class_out,
           class_scheme, raster_format, as_json):
-    from ..pipeline import derive_slope
-    from ..slope_classes import BUILTIN_SCHEMES, get_scheme, scheme_from_breaks
+    from landcheck.core.slope_raster import derive_slope
+    from landcheck.terrain.slope_classes import BUILTIN_SCHEMES, get_scheme, scheme_from_breaks
 
     if class_scheme in BUILTIN_SCHEMES:
         scheme = get_scheme(class_scheme)

@@ -1,0 +1,1 @@
+"""Execution: window passes on threads, processes or Dask, with ordered, bounded results."""

@@ -1,0 +1,1 @@
+"""Evidence: maps, the HTML report and the one-parcel pre-screen."""

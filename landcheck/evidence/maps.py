@@ -1,0 +1,1367 @@
+"""Maps and charts of an audit output folder (matplotlib figures only).
+
+Everything here reads the folder written by ``landcheck audit`` (see
+docs/outputs.md) and nothing else, except the DEM named in the run manifest
+(role ``"dem"``), which is used only for relief shading.  When that DEM is
+missing or on another grid, the slope raster itself is shaded instead and the
+figure says so.
+
+Figures are deterministic: the date shown is the audit's start time from the
+manifest, not the time of drawing, and PNG/SVG metadata carry no timestamp, so
+redrawing from the same folder gives byte-identical files.
+
+Colour and symbols are chosen to survive colour-blind viewing and greyscale
+printing: slope classes get strictly decreasing CIE L* lightness (steeper is
+darker), parcel verdicts differ in line style and width as well as colour,
+and conflict cells are hatched rather than coloured.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import logging
+import math
+import re
+import textwrap
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from functools import cached_property
+from pathlib import Path
+
+import numpy as np
+
+from landcheck.about import CAUTION
+from landcheck.errors import InputDataError
+from landcheck.outputs.writers import write_bytes
+
+__all__ = [
+    "DEFAULT_SLOPE_BREAKS_PCT",
+    "VERDICTS",
+    "AuditFolder",
+    "FigureFiles",
+    "FigureItem",
+    "LegendEntry",
+    "ScaleBar",
+    "load_audit_folder",
+    "hillshade",
+    "classify_slope",
+    "slope_class_labels",
+    "slope_class_colours",
+    "choose_scale_bar",
+    "true_north_angle_deg",
+    "overview_map",
+    "parcel_closeup_maps",
+    "class_share_chart",
+    "slope_distribution_chart",
+    "sensitivity_chart",
+]
+
+logger = logging.getLogger(__name__)
+
+#: slope-class breaks in percent, land-use planning classes (docs/report.md):
+#: 0-3 level, 3-8 gently sloping, 8-18 undulating to rolling, 18-30 rolling to
+#: moderately steep, 30-50 steep, 50 and over very steep.
+DEFAULT_SLOPE_BREAKS_PCT: tuple[float, ...] = (0.0, 3.0, 8.0, 18.0, 30.0, 50.0, math.inf)
+
+#: verdict values of parcels.csv, in legend order
+VERDICTS: tuple[str, ...] = ("conflict", "review", "consistent", "no_data", "no_rule")
+
+_VERDICT_TEXT = {
+    "conflict": "conflict",
+    "review": "review (near a limit)",
+    "consistent": "consistent",
+    "no_data": "no data (outside DEM)",
+    "no_rule": "no rule for its class",
+}
+# colour, line width (pt), dash pattern; every verdict differs in dash or width,
+# so the map still reads in greyscale
+_VERDICT_STYLE = {
+    "conflict": ("#161616", 2.6, "solid"),
+    "review": ("#2a9fb8", 2.0, (0, (5.0, 2.0))),
+    "consistent": ("#24509a", 1.3, "solid"),
+    "no_data": ("#8f8f8f", 1.4, (0, (1.0, 1.6))),
+    "no_rule": ("#7a3d96", 1.6, (0, (6.0, 2.0, 1.2, 2.0))),
+}
+_CONFLICT_HATCH = {1: "////", 2: "\\\\\\\\", 3: "xxxx"}
+_CONFLICT_TEXT = {1: "slope at or over the class limit", 2: "inside a zone the class forbids",
+                  3: "both slope and forbidden zone"}
+_ZONE_STYLE = [("#0b5f8a", ".."), ("#2f7d4f", "oo"), ("#6a4c93", "++"), ("#8a5a0b", "--")]
+_SERIES_STYLE = [  # (colour, marker, dash) for chart lines; marker + dash separate them in greyscale
+    ("#1f4e8c", "o", "solid"), ("#c2571a", "s", (0, (5, 2))), ("#3a8a55", "^", (0, (1, 1.5))),
+    ("#7a3d96", "D", (0, (6, 2, 1, 2))), ("#8c6d1f", "v", (0, (3, 1))), ("#5c5c5c", "P", (0, (8, 3))),
+]
+_NODATA_GREY = np.array([0.86, 0.86, 0.86])
+_PNG_METADATA = {"Software": None}
+#: permission bits of written figures (mkstemp creates 0600; common practice for shared outputs is 0644)
+_WATER_COLOUR = "#1f5fa0"
+_LEGEND_WRAP_CHARS = 34
+_SVG_METADATA = {"Date": None}
+_RC = {"svg.hashsalt": "landcheck", "font.size": 9.0, "hatch.linewidth": 0.8, "axes.titlesize": 10.0}
+#: sun position for relief shading: azimuth clockwise from north, altitude above horizon (degrees)
+SUN_AZIMUTH_DEG = 315.0
+SUN_ALTITUDE_DEG = 45.0
+
+
+# --------------------------------------------------------------------------- results
+
+
+@dataclass(frozen=True)
+class LegendEntry:
+    """One legend row: ``group`` (slope_class, relief, verdict, conflict, zone), a stable ``key`` and the text shown."""
+
+    group: str
+    key: str
+    label: str
+
+
+@dataclass
+class FigureItem:
+    """One drawn figure: file stem, caption, written paths and legend rows."""
+
+    stem: str
+    caption: str
+    paths: list[Path]
+    legend_entries: list[LegendEntry] = field(default_factory=list)
+    parcel_id: str | None = None
+
+    @property
+    def png(self) -> Path | None:
+        return next((p for p in self.paths if p.suffix == ".png"), None)
+
+
+class FigureFiles(list):
+    """List of written paths (PNG and SVG of every figure), plus what was drawn.
+
+    Attributes
+    ----------
+    items : list of FigureItem
+        One per figure, in drawing order (closeups: largest conflict first).
+    legend_entries : list of LegendEntry
+        Legend rows of all figures, without duplicates, in order.
+    """
+
+    def __init__(self, items: Iterable[FigureItem] = ()):
+        items = list(items)
+        super().__init__(p for it in items for p in it.paths)
+        self.items = items
+        seen: dict[LegendEntry, None] = {}
+        for it in items:
+            for e in it.legend_entries:
+                seen.setdefault(e, None)
+        self.legend_entries = list(seen)
+
+
+@dataclass(frozen=True)
+class ScaleBar:
+    """A scale bar: its ground length, its length in map units, and its label."""
+
+    length_m: float
+    length_map: float
+    label: str
+
+
+# --------------------------------------------------------------------------- pure helpers
+
+
+def hillshade(elev: np.ndarray, dx_m: float, dy_m: float, *, azimuth_deg: float = SUN_AZIMUTH_DEG,
+              altitude_deg: float = SUN_ALTITUDE_DEG, north_up: bool = True) -> np.ndarray:
+    """Lambertian illumination of a gridded surface (relief shading).
+
+    The surface normal is (-p, -q, 1)/sqrt(1 + p^2 + q^2) with p = dz/dx (east)
+    and q = dz/dy (north) from central differences; the sun vector is
+    (sin A cos h, cos A cos h, sin h).  Their dot product, clipped at 0, is the
+    brightness (Horn 1981, "Hill shading and the reflectance map").
+
+    Parameters
+    ----------
+    elev : ndarray, 2-D
+        Elevations; NaN gives NaN.  Same linear unit as ``dx_m`` and ``dy_m``.
+    dx_m, dy_m : float
+        Cell width and height (m), positive.
+    azimuth_deg, altitude_deg : float
+        Sun direction, clockwise from north, and height above the horizon (degrees).
+    north_up : bool
+        True when row 0 is the northern edge (the usual GeoTIFF layout).
+
+    Returns
+    -------
+    ndarray, float32
+        Brightness 0-1; flat ground gives sin(altitude).
+    """
+    z = np.asarray(elev, dtype=np.float64)
+    alt, az = math.radians(altitude_deg), math.radians(azimuth_deg)
+    if z.ndim != 2 or min(z.shape) < 2:
+        return np.where(np.isnan(z), np.nan, math.sin(alt)).astype(np.float32)
+    d_row, d_col = np.gradient(z)
+    p = d_col / dx_m
+    q = (-d_row if north_up else d_row) / dy_m
+    num = math.sin(alt) - math.cos(alt) * (p * math.sin(az) + q * math.cos(az))
+    return np.clip(num / np.sqrt(1.0 + p * p + q * q), 0.0, 1.0).astype(np.float32)
+
+
+def _check_breaks(breaks_pct: Sequence[float]) -> np.ndarray:
+    b = np.asarray([float(v) for v in breaks_pct], dtype=np.float64)
+    if b.ndim != 1 or b.size < 2 or np.any(np.isnan(b)) or np.any(np.diff(b) <= 0) or b[0] < 0:
+        raise ValueError(f"slope_breaks_pct: got {list(breaks_pct)}; expected at least two strictly increasing "
+                         "percent values starting at 0 or more, e.g. [0, 3, 8, 18, 30, 50, inf]")
+    return b
+
+
+def classify_slope(slope_pct: np.ndarray, breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT) -> np.ndarray:
+    """Slope class index per cell: class i holds breaks[i] <= slope < breaks[i+1].
+
+    Parameters
+    ----------
+    slope_pct : ndarray
+        Slope in percent; NaN for no slope.
+    breaks_pct : sequence of float
+        Strictly increasing class breaks (%); the last may be ``inf``.
+
+    Returns
+    -------
+    ndarray, int16
+        Class index, -1 for NaN or values outside the breaks.
+    """
+    b = _check_breaks(breaks_pct)
+    s = np.asarray(slope_pct, dtype=np.float64)
+    idx = np.searchsorted(b, s, side="right") - 1
+    bad = np.isnan(s) | (s < b[0]) | (s >= b[-1]) | (idx >= b.size - 1)
+    return np.where(bad, -1, idx).astype(np.int16)
+
+
+def _fmt_num(v: float) -> str:
+    return f"{v:g}"
+
+
+def slope_class_labels(breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT) -> list[str]:
+    """Legend text per slope class, e.g. ``"3 to under 8 %"`` and ``"50 % and over"``."""
+    b = _check_breaks(breaks_pct)
+    out = []
+    for lo, hi in zip(b[:-1], b[1:]):
+        out.append(f"{_fmt_num(lo)} % and over" if math.isinf(hi) else f"{_fmt_num(lo)} to under {_fmt_num(hi)} %")
+    return out
+
+
+# Anchor colours in CIELAB (L*, a*, b*), pale straw to dark plum; L* falls
+# strictly, so the ramp reads in greyscale and for every colour-vision type.
+_SLOPE_RAMP_LAB = np.array([
+    [96.0, -5.0, 28.0],
+    [84.0, 4.0, 52.0],
+    [70.0, 22.0, 55.0],
+    [56.0, 38.0, 38.0],
+    [42.0, 40.0, 8.0],
+    [27.0, 24.0, -18.0],
+])
+_D65_WHITE = (0.95047, 1.0, 1.08883)
+
+
+def _lab_to_srgb(lab: np.ndarray) -> np.ndarray:
+    """CIELAB (D65) to gamma-encoded sRGB 0-1 (CIE 1976 L*a*b*; IEC 61966-2-1), clipped to gamut."""
+    lab = np.asarray(lab, dtype=np.float64)
+    fy = (lab[..., 0] + 16.0) / 116.0
+    fx = fy + lab[..., 1] / 500.0
+    fz = fy - lab[..., 2] / 200.0
+    delta = 6.0 / 29.0
+
+    def finv(t):
+        return np.where(t > delta, t**3, 3.0 * delta**2 * (t - 4.0 / 29.0))
+
+    xyz = np.stack([finv(fx) * _D65_WHITE[0], finv(fy) * _D65_WHITE[1], finv(fz) * _D65_WHITE[2]], axis=-1)
+    m = np.array([[3.2406, -1.5372, -0.4986], [-0.9689, 1.8758, 0.0415], [0.0557, -0.2040, 1.0570]])
+    lin = np.clip(xyz @ m.T, 0.0, 1.0)
+    return np.where(lin <= 0.0031308, 12.92 * lin, 1.055 * lin ** (1.0 / 2.4) - 0.055)
+
+
+def slope_class_colours(n_classes: int) -> list[str]:
+    """``n_classes`` hex colours from light (gentle) to dark (steep), evenly spaced along the ramp."""
+    if n_classes < 1:
+        raise ValueError(f"n_classes: got {n_classes}; expected 1 or more")
+    t = np.linspace(0.0, 1.0, n_classes) if n_classes > 1 else np.array([0.0])
+    pos = t * (len(_SLOPE_RAMP_LAB) - 1)
+    i0 = np.minimum(np.floor(pos).astype(int), len(_SLOPE_RAMP_LAB) - 2)
+    frac = (pos - i0)[:, None]
+    lab = _SLOPE_RAMP_LAB[i0] * (1 - frac) + _SLOPE_RAMP_LAB[i0 + 1] * frac
+    rgb = _lab_to_srgb(lab)
+    return ["#" + "".join(f"{int(round(c * 255)):02x}" for c in row) for row in rgb]
+
+
+def _nice_length(max_len: float) -> float:
+    """Largest 1, 2 or 5 x 10^k not above ``max_len`` (common practice for scale bars)."""
+    if not max_len > 0:
+        raise ValueError(f"scale bar: got span {max_len}; expected a positive length")
+    k = math.floor(math.log10(max_len))
+    for m in (5.0, 2.0, 1.0):
+        if m * 10**k <= max_len * (1 + 1e-12):
+            return m * 10**k
+    return 10 ** (k - 1) * 5.0
+
+
+def _crs(crs_like):
+    from pyproj import CRS
+
+    if isinstance(crs_like, CRS):
+        return crs_like
+    if hasattr(crs_like, "to_wkt"):
+        return CRS.from_wkt(crs_like.to_wkt())
+    return CRS.from_user_input(crs_like)
+
+
+def _metres_per_map_unit_x(crs, lat_deg: float) -> float:
+    crs = _crs(crs)
+    if crs.is_geographic:
+        from landcheck.geo.geodesy import metres_per_degree_lon
+
+        return float(metres_per_degree_lon(lat_deg))
+    return float(crs.axis_info[0].unit_conversion_factor)
+
+
+def choose_scale_bar(x_min: float, x_max: float, y_min: float, y_max: float, crs, *,
+                     fraction: float = 0.25) -> ScaleBar:
+    """Pick a round scale-bar length near ``fraction`` of the map width.
+
+    Parameters
+    ----------
+    x_min, x_max, y_min, y_max : float
+        Map extent in the CRS's units (degrees on geographic data).
+    crs : pyproj.CRS, rasterio CRS or user input
+        On geographic data the bar is measured along the central parallel
+        (ellipsoidal metres per degree of longitude); on projected data in the
+        CRS's linear unit converted to metres (grid distance).
+    fraction : float
+        Upper bound of the bar as a share of the map width.
+
+    Returns
+    -------
+    ScaleBar
+    """
+    lat_c = 0.5 * (y_min + y_max)
+    m_per_unit = _metres_per_map_unit_x(crs, lat_c)
+    length_m = _nice_length(abs(x_max - x_min) * m_per_unit * fraction)
+    label = f"{_fmt_num(length_m / 1000.0)} km" if length_m >= 1000.0 else f"{_fmt_num(length_m)} m"
+    return ScaleBar(length_m=length_m, length_map=length_m / m_per_unit, label=label)
+
+
+def true_north_angle_deg(x: float, y: float, crs) -> float:
+    """Angle of true north from the map's +y axis at (x, y), degrees, positive clockwise (towards +x)."""
+    crs = _crs(crs)
+    if crs.is_geographic:
+        return 0.0
+    from pyproj import Transformer
+
+    geo = crs.geodetic_crs
+    fwd = Transformer.from_crs(crs, geo, always_xy=True)
+    inv = Transformer.from_crs(geo, crs, always_xy=True)
+    lon, lat = fwd.transform(x, y)
+    step = 1e-3 if lat < 89.99 else -1e-3
+    x2, y2 = inv.transform(lon, lat + step)
+    ang = math.degrees(math.atan2(x2 - x, y2 - y))
+    return ang if step > 0 else ang - math.copysign(180.0, ang)
+
+
+# --------------------------------------------------------------------------- reading the folder
+
+
+def _read_json(path: Path) -> dict:
+    try:
+        with open(path, encoding="utf-8") as f:
+            return json.load(f)
+    except json.JSONDecodeError as exc:
+        raise InputDataError(f"{path}: not valid JSON at line {exc.lineno}, column {exc.colno} ({exc.msg}); "
+                             "rerun `landcheck audit` to write it again.") from exc
+
+
+_PARCEL_TEXT_COLUMNS = ("parcel_id", "class_value", "class_name", "verdict", "reasons", "geometry_note")
+_PARCEL_REQUIRED = ("parcel_id", "class_name", "area_m2", "evaluated_m2", "conflict_m2", "conflict_share", "verdict")
+_CLASS_REQUIRED = ("class_name", "evaluated_m2", "conflict_m2", "conflict_share", "over_limit_m2")
+
+
+def _read_csv(path: Path, required: Sequence[str], text_columns: Sequence[str]):
+    import pandas as pd
+
+    try:
+        df = pd.read_csv(path, dtype={c: str for c in text_columns}, keep_default_na=False, na_values=[""])
+    except (OSError, ValueError) as exc:
+        raise InputDataError(f"{path}: cannot be read as CSV ({exc}); rerun `landcheck audit`.") from exc
+    missing = [c for c in required if c not in df.columns]
+    if missing:
+        raise InputDataError(f"{path}: missing column(s) {', '.join(missing)}; expected the columns listed in "
+                             "docs/outputs.md. Was it written by an older or newer landcheck?")
+    for c in text_columns:
+        if c in df.columns:
+            df[c] = df[c].fillna("").astype(str)
+    return df
+
+
+def _parse_float(v) -> float:
+    if v is None:
+        return math.inf
+    if isinstance(v, str):
+        t = v.strip().lower()
+        return math.inf if t in ("inf", "+inf", "infinity", "") else float(t)
+    return float(v)
+
+
+@dataclass
+class AuditFolder:
+    """A validated audit output folder (docs/outputs.md); loads layers on first use."""
+
+    out_dir: Path
+    summary: dict
+
+    def path(self, name: str) -> Path:
+        return self.out_dir / name
+
+    def require(self, name: str) -> Path:
+        p = self.out_dir / name
+        if not p.exists():
+            raise InputDataError(f"{p}: not found; expected the output folder of `landcheck audit` "
+                                 "(docs/outputs.md). Rerun the audit or point to the right folder.")
+        return p
+
+    def section(self, *keys: str, default=None):
+        """``summary[k1][k2]...``, or ``default`` when any key is missing."""
+        node = self.summary
+        for k in keys:
+            if not isinstance(node, dict) or k not in node:
+                return default
+            node = node[k]
+        return node
+
+    @cached_property
+    def parcels(self):
+        """parcels.csv as a DataFrame (text columns as str, empty numbers as NaN)."""
+        return _read_csv(self.require("parcels.csv"), _PARCEL_REQUIRED, _PARCEL_TEXT_COLUMNS)
+
+    @cached_property
+    def classes(self):
+        """classes.csv as a DataFrame."""
+        return _read_csv(self.require("classes.csv"), _CLASS_REQUIRED, ("class_name", "label", "development"))
+
+    @cached_property
+    def parcels_gdf(self):
+        import geopandas as gpd
+
+        p = self.require("parcels.gpkg")
+        try:
+            gdf = gpd.read_file(p, layer="parcels")
+        except Exception as exc:  # pyogrio raises several unrelated classes; re-raise as ours
+            raise InputDataError(f"{p}, layer 'parcels': cannot be read ({exc}); rerun `landcheck audit`.") from exc
+        if "verdict" not in gdf.columns or "parcel_id" not in gdf.columns:
+            raise InputDataError(f"{p}, layer 'parcels': needs columns parcel_id and verdict (docs/outputs.md).")
+        gdf["parcel_id"] = gdf["parcel_id"].astype(str)
+        gdf["verdict"] = gdf["verdict"].fillna("").astype(str)
+        return gdf
+
+    @cached_property
+    def zone_layers(self) -> list[tuple[str, object]]:
+        """(name, GeoDataFrame) for every ``zones/*.gpkg``, sorted by name."""
+        import geopandas as gpd
+
+        zdir = self.out_dir / "zones"
+        out = []
+        if zdir.is_dir():
+            for p in sorted(zdir.glob("*.gpkg")):
+                try:
+                    out.append((p.stem, gpd.read_file(p)))
+                except Exception as exc:  # pyogrio raises several unrelated classes; re-raise as ours
+                    raise InputDataError(f"{p}: cannot be read ({exc}); rerun `landcheck audit`.") from exc
+        return out
+
+    @property
+    def run_started(self) -> datetime | None:
+        text = self.section("manifest", "started_utc")
+        if not text:
+            return None
+        try:
+            dt = datetime.fromisoformat(str(text).replace("Z", "+00:00"))
+        except ValueError:
+            return None
+        return dt.astimezone(timezone.utc) if dt.tzinfo else dt.replace(tzinfo=timezone.utc)
+
+    @property
+    def run_date_text(self) -> str:
+        dt = self.run_started
+        return dt.strftime("%Y-%m-%d %H:%M UTC") if dt else "run time not recorded"
+
+    @property
+    def dem_path(self) -> Path | None:
+        """The DEM named in the manifest (role "dem"), if recorded; may not exist on this machine."""
+        for item in self.section("manifest", "inputs", default=[]) or []:
+            if isinstance(item, dict) and item.get("role") == "dem" and item.get("path"):
+                return Path(item["path"])
+        return None
+
+    @cached_property
+    def class_limits_pct(self) -> dict[str, float]:
+        """Slope limit (%) per class, from parcels.csv ``max_slope_pct``; NaN when the class has none."""
+        limits: dict[str, float] = {}
+        df = self.parcels
+        if "max_slope_pct" in df.columns:
+            for name, val in zip(df["class_name"], df["max_slope_pct"]):
+                v = math.nan if _isnan(val) else float(val)
+                if name not in limits or (math.isnan(limits[name]) and not math.isnan(v)):
+                    limits[name] = v
+        return limits
+
+
+def load_audit_folder(out_dir) -> AuditFolder:
+    """Open an audit output folder and read ``summary.json``.
+
+    Raises
+    ------
+    InputDataError
+        The folder or summary.json is missing or unreadable.
+    """
+    if isinstance(out_dir, AuditFolder):
+        return out_dir
+    out_dir = Path(out_dir)
+    if not out_dir.is_dir():
+        raise InputDataError(f"{out_dir}: not a folder; expected the output folder of `landcheck audit`.")
+    p = out_dir / "summary.json"
+    if not p.exists():
+        raise InputDataError(f"{p}: not found; expected the output folder of `landcheck audit` "
+                             "(docs/outputs.md). Rerun the audit or point to the right folder.")
+    summary = _read_json(p)
+    if not isinstance(summary, dict):
+        raise InputDataError(f"{p}: expected a JSON object at the top level (docs/outputs.md).")
+    return AuditFolder(out_dir, summary)
+
+
+# --------------------------------------------------------------------------- raster reading
+
+
+@dataclass
+class _Grid:
+    data: np.ndarray
+    extent: tuple[float, float, float, float]  # left, right, y of last row edge, y of first row edge
+    transform: object
+    factor: int
+    crs: object
+
+
+def _window_for(ds, bounds):
+    from rasterio.windows import Window
+
+    if bounds is None:
+        return Window(0, 0, ds.width, ds.height)
+    t = ds.transform  # north-up (checked by the caller): col = (x - c) / a, row = (y - f) / e
+    cols = [(x - t.c) / t.a for x in (bounds[0], bounds[2])]
+    rows = [(y - t.f) / t.e for y in (bounds[1], bounds[3])]
+    c0, c1 = max(0, math.floor(min(cols))), min(ds.width, math.ceil(max(cols)))
+    r0, r1 = max(0, math.floor(min(rows))), min(ds.height, math.ceil(max(rows)))
+    if c1 <= c0 or r1 <= r0:
+        return None
+    return Window(c0, r0, c1 - c0, r1 - r0)
+
+
+def _read_reduced(path: Path, bounds, max_px: int, kind: str) -> _Grid | None:
+    """Read a window of band 1 reduced by an integer factor so neither side exceeds ``max_px``.
+
+    ``kind="mean"``: mean of valid cells per block (NaN when none).
+    ``kind="bits"``: bitwise OR of the cells inside parcels (value != 255); 255 when none.
+    """
+    import rasterio
+    from affine import Affine
+    from rasterio.windows import Window
+
+    with rasterio.open(path) as ds:
+        t = ds.transform
+        if t.b != 0 or t.d != 0:
+            raise InputDataError(f"{path}: rotated or sheared grids cannot be mapped; expected a north-up GeoTIFF.")
+        win = _window_for(ds, bounds)
+        if win is None:
+            return None
+        h, w = int(win.height), int(win.width)
+        f = max(1, math.ceil(max(h, w) / max_px))
+        out_h, out_w = math.ceil(h / f), math.ceil(w / f)
+        fill = 255 if kind == "bits" else np.nan
+        out = np.empty((out_h, out_w), dtype=np.uint8 if kind == "bits" else np.float32)
+        chunk = f * max(1, 4_000_000 // max(1, w * f))
+        nodata = ds.nodata
+        for r in range(0, h, chunk):
+            nr = min(chunk, h - r)
+            a = ds.read(1, window=Window(win.col_off, win.row_off + r, w, nr))
+            if kind == "mean":
+                a = a.astype(np.float64)
+                if nodata is not None and not np.isnan(nodata):
+                    a[a == nodata] = np.nan
+            nb = math.ceil(nr / f)
+            pad = np.full((nb * f, out_w * f), fill, dtype=a.dtype)
+            pad[:nr, :w] = a
+            blocks = pad.reshape(nb, f, out_w, f)
+            if kind == "bits":
+                inside = blocks != 255
+                vals = np.where(inside, blocks, 0).astype(np.uint8)
+                red = np.bitwise_or.reduce(np.bitwise_or.reduce(vals, axis=3), axis=1)
+                red[~inside.any(axis=(1, 3))] = 255
+            else:
+                ok = ~np.isnan(blocks)
+                cnt = ok.sum(axis=(1, 3))
+                tot = np.where(ok, blocks, 0.0).sum(axis=(1, 3))
+                red = np.where(cnt > 0, tot / np.maximum(cnt, 1), np.nan)
+            out[r // f: r // f + nb] = red
+        tr = Affine(t.a * f, 0.0, t.c + t.a * win.col_off, 0.0, t.e * f, t.f + t.e * win.row_off)
+        left, top = tr.c, tr.f
+        right, bottom = left + out_w * tr.a, top + out_h * tr.e
+        return _Grid(out, (left, right, bottom, top), tr, f, ds.crs)
+
+
+def _read_relief(folder: AuditFolder, slope: _Grid) -> tuple[np.ndarray, str]:
+    """Relief intensity 0-1 on the slope display grid: DEM hillshade, else shaded slope."""
+    import rasterio
+    from rasterio.enums import Resampling
+    from rasterio.windows import Window
+
+    crs = _crs(slope.crs)
+    lat_c = 0.5 * (slope.extent[2] + slope.extent[3])
+    dx_m = abs(slope.transform.a) * _metres_per_map_unit_x(crs, lat_c)
+    if crs.is_geographic:
+        from landcheck.geo.geodesy import metres_per_degree_lat
+
+        dy_m = abs(slope.transform.e) * float(metres_per_degree_lat(lat_c))
+    else:
+        dy_m = abs(slope.transform.e) * float(crs.axis_info[1].unit_conversion_factor)
+    dem = folder.dem_path
+    reason = ""
+    if dem is None:
+        reason = "no DEM recorded in the manifest"
+    elif not dem.exists():
+        reason = "DEM not found"
+    else:
+        try:
+            with rasterio.open(dem) as ds:
+                t = ds.transform
+                if ds.crs is None or _crs(ds.crs) != crs:
+                    reason = "DEM on another CRS"
+                elif t.b != 0 or t.d != 0:
+                    reason = "DEM grid rotated"
+                else:
+                    left, right, y_last, y_first = slope.extent
+                    c0, c1 = sorted(((left - t.c) / t.a, (right - t.c) / t.a))
+                    r0, r1 = sorted(((y_first - t.f) / t.e, (y_last - t.f) / t.e))
+                    win = Window(c0, r0, c1 - c0, r1 - r0)
+                    eps = 1e-6
+                    inside = c0 >= -eps and r0 >= -eps and c1 <= ds.width + eps and r1 <= ds.height + eps
+                    z = ds.read(1, window=win, out_shape=slope.data.shape, resampling=Resampling.average,
+                                boundless=not inside, masked=True,
+                                fill_value=ds.nodata if ds.nodata is not None else 0)
+                    z = np.ma.filled(z.astype(np.float64), np.nan)
+                    zunit = str(folder.section("manifest", "parameters", "z_unit", default="m")).lower()
+                    z = z * {"ft": 0.3048, "us-ft": 1200.0 / 3937.0}.get(zunit, 1.0)
+                    if np.isnan(z).all():
+                        reason = "DEM has no data here"
+                    else:
+                        filled = np.where(np.isnan(z), np.nanmean(z), z)
+                        shade = hillshade(filled, dx_m, dy_m, north_up=slope.transform.e < 0)
+                        shade = np.where(np.isnan(z), np.nan, shade)
+                        return shade, "hillshade of the DEM (sun from the north-west, 45\u00b0 up)"
+        except rasterio.errors.RasterioIOError:
+            reason = "DEM unreadable"
+    logger.info("relief from slope shading: %s", reason)
+    s = slope.data.astype(np.float64)
+    shade = math.sin(math.radians(SUN_ALTITUDE_DEG)) * (1.0 - 0.55 * np.clip(s / 60.0, 0.0, 1.0))
+    return shade, f"slope shading ({reason}; darker is steeper)"
+
+
+def _composite(slope_pct: np.ndarray, shade: np.ndarray, breaks: np.ndarray, colours: list[str]) -> np.ndarray:
+    """Slope-class colours modulated by relief; flat ground shows the exact legend colour."""
+    from matplotlib.colors import to_rgb
+
+    idx = classify_slope(slope_pct, breaks)
+    pal = np.array([to_rgb(c) for c in colours])
+    rgb = np.where((idx >= 0)[..., None], pal[np.clip(idx, 0, None)], _NODATA_GREY)
+    flat = math.sin(math.radians(SUN_ALTITUDE_DEG))
+    k = np.where(np.isnan(shade), 1.0, np.clip(0.62 + 0.38 * shade / flat, 0.0, 1.3))
+    rgb = np.clip(rgb * k[..., None], 0.0, 1.0)
+    alpha = ~(np.isnan(slope_pct) & np.isnan(shade))
+    return np.dstack([rgb, alpha.astype(np.float64)])
+
+
+def _conflict_shapes(bits: _Grid, n_zone_bits: int) -> list[tuple[object, int]]:
+    """Polygons of display cells by conflict kind (1 slope, 2 zone, 3 both)."""
+    import rasterio.features
+    from shapely.geometry import shape
+
+    b = bits.data
+    inside = b != 255
+    slope_hit = inside & ((b & 1) > 0)
+    zone_mask = (((1 << (1 + n_zone_bits)) - 1) & ~1) if n_zone_bits else 0
+    zone_hit = inside & ((b & zone_mask) > 0)
+    kind = (slope_hit.astype(np.uint8) + 2 * zone_hit.astype(np.uint8)).astype(np.uint8)
+    if not kind.any():
+        return []
+    return [(shape(g), int(v)) for g, v in rasterio.features.shapes(kind, mask=kind > 0, transform=bits.transform)]
+
+
+def _simple_parts(geoms) -> list:
+    """Flatten multi-part geometries and collections into single parts, dropping empties."""
+    import shapely
+
+    out, todo = [], [g for g in geoms if g is not None]
+    while todo:
+        g = todo.pop(0)
+        if g.is_empty:
+            continue
+        if g.geom_type.startswith("Multi") or g.geom_type == "GeometryCollection":
+            todo[:0] = list(shapely.get_parts(g))
+        else:
+            out.append(g)
+    return out
+
+
+def _polygon_paths(geoms) -> list:
+    """matplotlib Paths (exterior and holes) of the polygon parts of ``geoms``."""
+    from matplotlib.path import Path as MPath
+
+    paths = []
+    for g in _simple_parts(geoms):
+        if g.geom_type != "Polygon":
+            continue
+        verts, codes = [], []
+        for ring in (g.exterior, *g.interiors):
+            xy = np.asarray(ring.coords, dtype=np.float64)[:, :2]
+            c = np.full(len(xy), MPath.LINETO, dtype=MPath.code_type)
+            c[0], c[-1] = MPath.MOVETO, MPath.CLOSEPOLY
+            verts.append(xy)
+            codes.append(c)
+        paths.append(MPath(np.concatenate(verts), np.concatenate(codes)))
+    return paths
+
+
+def _line_segments(geoms) -> list[np.ndarray]:
+    """Vertex arrays of line parts and of polygon rings (for outlines)."""
+    segs = []
+    for g in _simple_parts(geoms):
+        if g.geom_type == "Polygon":
+            segs += [np.asarray(r.coords, dtype=np.float64)[:, :2] for r in (g.exterior, *g.interiors)]
+        elif g.geom_type in ("LineString", "LinearRing"):
+            segs.append(np.asarray(g.coords, dtype=np.float64)[:, :2])
+    return segs
+
+
+def _add_polygons(ax, geoms, **kw) -> None:
+    from matplotlib.collections import PathCollection
+
+    paths = _polygon_paths(geoms)
+    if paths:
+        ax.add_collection(PathCollection(paths, transform=ax.transData, **kw), autolim=False)
+
+
+def _add_lines(ax, geoms, **kw) -> None:
+    from matplotlib.collections import LineCollection
+
+    segs = _line_segments(geoms)
+    if segs:
+        ax.add_collection(LineCollection(segs, **kw), autolim=False)
+
+
+# --------------------------------------------------------------------------- drawing
+
+
+def _new_figure(figsize_in, dpi):
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=figsize_in, dpi=dpi)
+    FigureCanvasAgg(fig)
+    return fig
+
+
+def _halo(width: float):
+    from matplotlib import patheffects
+
+    return [patheffects.withStroke(linewidth=width, foreground="white")]
+
+
+def _save(fig, dest: Path, stem: str, dpi: int, formats: Sequence[str]) -> list[Path]:
+    import matplotlib
+
+    paths = []
+    with matplotlib.rc_context(_RC):
+        for fmt in formats:
+            if fmt not in ("png", "svg"):
+                raise ValueError(f"formats: got {fmt!r}; expected 'png' and/or 'svg'")
+            buf = io.BytesIO()
+            meta = _PNG_METADATA if fmt == "png" else _SVG_METADATA
+            fig.savefig(buf, format=fmt, dpi=dpi, metadata=meta)
+            p = dest / f"{stem}.{fmt}"
+            write_bytes(p, buf.getvalue())
+            paths.append(p)
+    return paths
+
+
+def _legend_column(fig, lax, groups) -> None:
+    """Stack one titled legend per group, top to bottom, in the axes ``lax``."""
+    renderer = fig.canvas.get_renderer()
+    y = 1.0
+    for title, handles, labels in groups:
+        if not handles:
+            continue
+        labels = [textwrap.fill(lab, _LEGEND_WRAP_CHARS, subsequent_indent="  ") for lab in labels]
+        leg = lax.legend(handles, labels, title=title, loc="upper left", bbox_to_anchor=(0.0, y), frameon=False,
+                         fontsize=7.5, title_fontsize=8.5, alignment="left", handlelength=2.6, borderaxespad=0.0,
+                         labelspacing=0.45)
+        lax.add_artist(leg)
+        bb = leg.get_window_extent(renderer).transformed(lax.transAxes.inverted())
+        y = bb.y0 - 0.035
+
+
+def _draw_scale_and_north(ax, crs, extent) -> None:
+    from matplotlib.patches import FancyArrow, Rectangle
+
+    x0, x1 = sorted(extent[:2])
+    y0, y1 = sorted(extent[2:])
+    bar = choose_scale_bar(x0, x1, y0, y1, crs, fraction=0.25)
+    w, h = x1 - x0, y1 - y0
+    bx, by = x0 + 0.04 * w, y0 + 0.05 * h
+    bh = 0.012 * h
+    ax.add_patch(Rectangle((bx - 0.015 * w, by - 0.025 * h), bar.length_map + 0.09 * w, 0.075 * h,
+                           facecolor="white", edgecolor="none", alpha=0.8, zorder=8))
+    half = bar.length_map / 2
+    for i, fc in enumerate(("#111111", "white")):
+        ax.add_patch(Rectangle((bx + i * half, by), half, bh, facecolor=fc, edgecolor="#111111", lw=0.7, zorder=9))
+    ax.text(bx, by + 1.8 * bh, "0", ha="center", va="bottom", fontsize=7, zorder=9)
+    ax.text(bx + bar.length_map, by + 1.8 * bh, bar.label, ha="center", va="bottom", fontsize=7, zorder=9)
+    # north arrow, rotated to true north at the map centre
+    ang = math.radians(true_north_angle_deg(0.5 * (x0 + x1), 0.5 * (y0 + y1), crs))
+    ax_pos = (0.93, 0.84)
+    length = 0.09
+    dx, dy = length * math.sin(ang), length * math.cos(ang)
+    ax.add_patch(FancyArrow(ax_pos[0] - dx / 2, ax_pos[1] - dy / 2, dx, dy, width=0.012, head_width=0.04,
+                            head_length=0.035, length_includes_head=True, transform=ax.transAxes,
+                            facecolor="#111111", edgecolor="white", lw=0.8, zorder=9))
+    ax.text(ax_pos[0] + 0.6 * dx, ax_pos[1] + 0.6 * dy + 0.02, "N", transform=ax.transAxes, ha="center",
+            va="bottom", fontsize=10, fontweight="bold", zorder=9, path_effects=_halo(2.5))
+
+
+def _crs_note(crs) -> str:
+    crs = _crs(crs)
+    epsg = crs.to_epsg()
+    unit = "degrees" if crs.is_geographic else (crs.axis_info[0].unit_name if crs.axis_info else "unknown unit")
+    return f"Coordinates: {crs.name}" + (f" (EPSG:{epsg})" if epsg else "") + f", in {unit}"
+
+
+def _format_axes(ax, crs, extent) -> None:
+    from matplotlib.ticker import FuncFormatter, MaxNLocator
+
+    crs = _crs(crs)
+    x0, x1 = sorted(extent[:2])
+    y0, y1 = sorted(extent[2:])
+    ax.set_xlim(x0, x1)
+    ax.set_ylim(y0, y1)
+    if crs.is_geographic:
+        ax.set_aspect(1.0 / max(0.01, math.cos(math.radians(0.5 * (y0 + y1)))), adjustable="box")
+        fmt = FuncFormatter(lambda v, _: f"{v:.4f}\u00b0")
+        ax.set_xlabel("Longitude")
+        ax.set_ylabel("Latitude")
+    else:
+        ax.set_aspect("equal", adjustable="box")
+        fmt = FuncFormatter(lambda v, _: f"{v:,.0f}")
+        names = [a.name for a in crs.axis_info] or ["x", "y"]
+        unit = crs.axis_info[0].unit_name if crs.axis_info else ""
+        ax.set_xlabel(f"{names[0]} ({unit})")
+        ax.set_ylabel(f"{names[1] if len(names) > 1 else 'y'} ({unit})")
+    ax.xaxis.set_major_locator(MaxNLocator(5))
+    ax.yaxis.set_major_locator(MaxNLocator(5, prune="lower"))
+    for axis in (ax.xaxis, ax.yaxis):
+        axis.set_major_formatter(fmt)
+    ax.tick_params(labelsize=7)
+    for lab in ax.get_yticklabels():
+        lab.set_rotation(90)
+        lab.set_va("center")
+    ax.grid(True, color="#202020", alpha=0.35, lw=0.4, ls=(0, (4, 3)), zorder=7)
+
+
+@dataclass
+class _MapData:
+    folder: AuditFolder
+    slope: _Grid
+    bits: _Grid | None
+    relief: np.ndarray
+    relief_note: str
+
+
+def _load_map_data(folder: AuditFolder, bounds, max_px: int) -> _MapData:
+    slope = _read_reduced(folder.require("slope_pct.tif"), bounds, max_px, "mean")
+    if slope is None:
+        raise InputDataError(f"{folder.path('slope_pct.tif')}: the requested map area lies outside the raster.")
+    bits = _read_reduced(folder.require("conflict.tif"), _grid_bounds(slope), max_px, "bits")
+    if bits is not None and bits.data.shape != slope.data.shape:
+        bits = None if bits.factor != slope.factor else bits
+    shade, note = _read_relief(folder, slope)
+    return _MapData(folder, slope, bits, shade, note)
+
+
+def _grid_bounds(g: _Grid) -> tuple[float, float, float, float]:
+    left, right, bottom, top = g.extent
+    return min(left, right), min(bottom, top), max(left, right), max(bottom, top)
+
+
+def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str | None = None):
+    """Draw the map layers into a new axes; return (axes, legend groups, legend entries)."""
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+
+    folder = data.folder
+    crs = _crs(data.slope.crs)
+    ax = fig.add_axes(rect)
+    colours = slope_class_colours(len(breaks) - 1)
+    ax.imshow(_composite(data.slope.data, data.relief, breaks, colours), extent=data.slope.extent,
+              origin="upper", interpolation="nearest", zorder=1)
+    groups, entries = [], []
+    labels = slope_class_labels(breaks)
+    idx = classify_slope(data.slope.data, breaks)
+    h = [Patch(facecolor=c, edgecolor="#555555", lw=0.5) for c in colours]
+    groups.append(("Slope class", h, labels))
+    entries += [LegendEntry("slope_class", f"{_fmt_num(lo)}-{_fmt_num(hi)}", lab)
+                for lo, hi, lab in zip(breaks[:-1], breaks[1:], labels)]
+    relief_h = [Patch(facecolor="#9a9a9a", edgecolor="#555555", lw=0.5)]
+    relief_l = [f"relief: {data.relief_note}"]
+    if (idx < 0).any() and (~np.isnan(data.relief)).any():
+        relief_h.append(Patch(facecolor=_NODATA_GREY, edgecolor="#555555", lw=0.5))
+        relief_l.append("no slope (raster edge or nodata)")
+    groups.append(("Background", relief_h, relief_l))
+    entries += [LegendEntry("relief", "relief", relief_l[0])]
+    if len(relief_l) > 1:
+        entries.append(LegendEntry("relief", "no_slope", relief_l[1]))
+
+    # hazard zones and water features
+    x0, y0, x1, y1 = view
+    zh, zl = [], []
+    for i, (name, gdf) in enumerate(folder.zone_layers):
+        if gdf.crs is not None and _crs(gdf.crs) != crs:
+            gdf = gdf.to_crs(crs.to_wkt())
+        gdf = gdf.cx[x0:x1, y0:y1]
+        if gdf.empty:
+            continue
+        colour, hatch = _ZONE_STYLE[i % len(_ZONE_STYLE)]
+        kinds = set(gdf.geom_type.str.replace("Multi", ""))
+        pretty = name.replace("_", " ")
+        poly = gdf[gdf.geom_type.isin(["Polygon", "MultiPolygon"])]
+        if not poly.empty:
+            _add_polygons(ax, poly.geometry, facecolors="none", edgecolors=colour, hatch=hatch, linewidths=1.0,
+                          zorder=3)
+            zh.append(Patch(facecolor="none", edgecolor=colour, hatch=hatch, lw=1.0))
+            zl.append(f"hazard zone: {pretty}")
+            entries.append(LegendEntry("zone", name, zl[-1]))
+        lines = gdf[gdf.geom_type.isin(["LineString", "MultiLineString"])]
+        if not lines.empty:
+            _add_lines(ax, lines.geometry, colors=_WATER_COLOUR, linewidths=1.8, zorder=3)
+            zh.append(Line2D([0], [0], color=_WATER_COLOUR, lw=1.8))
+            zl.append(f"water feature: {pretty}")
+            entries.append(LegendEntry("zone", name, zl[-1]))
+        if "Point" in kinds:
+            pts = [g for g in _simple_parts(gdf.geometry) if g.geom_type == "Point"]
+            ax.plot([g.x for g in pts], [g.y for g in pts], "o", color=colour, ms=3, zorder=3)
+    groups.append(("Zones and water", zh, zl))
+
+    # conflict cells, hatched
+    ch, cl = [], []
+    if data.bits is not None:
+        n_zone_bits = max(0, len(folder.section("conflict_raster_bits", default=["slope"]) or ["slope"]) - 1)
+        shapes = _conflict_shapes(data.bits, n_zone_bits)
+        for kind in (1, 2, 3):
+            sub = [g for g, k in shapes if k == kind]
+            if not sub:
+                continue
+            _add_polygons(ax, sub, facecolors=[(1, 1, 1, 0.28)], edgecolors="#161616", hatch=_CONFLICT_HATCH[kind],
+                          linewidths=0.4, zorder=4)
+            ch.append(Patch(facecolor=(1, 1, 1, 0.28), edgecolor="#161616", hatch=_CONFLICT_HATCH[kind], lw=0.4))
+            cl.append(_CONFLICT_TEXT[kind])
+            entries.append(LegendEntry("conflict", {1: "slope", 2: "zone", 3: "slope+zone"}[kind], cl[-1]))
+    title = "Conflict cells" + (f" (any conflict in {data.slope.factor}\u00d7{data.slope.factor} cells)"
+                                if data.slope.factor > 1 else "")
+    groups.append((title, ch, cl))
+
+    # parcels by verdict
+    gdf = folder.parcels_gdf
+    if gdf.crs is not None and _crs(gdf.crs) != crs:
+        gdf = gdf.to_crs(crs.to_wkt())
+    gdf = gdf.cx[x0:x1, y0:y1]
+    vh, vl = [], []
+    present = [v for v in VERDICTS if (gdf["verdict"] == v).any()]
+    present += sorted(set(gdf["verdict"]) - set(VERDICTS) - {""})
+    for v in reversed(present):  # conflict drawn last, on top
+        colour, lw, ls = _VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))
+        sub = gdf[gdf["verdict"] == v]
+        _add_lines(ax, sub.geometry, colors=colour, linewidths=lw, linestyles=[ls], zorder=5,
+                   path_effects=_halo(lw + 2.2))
+    for v in present:
+        colour, lw, ls = _VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))
+        n = int((gdf["verdict"] == v).sum())
+        vh.append(Line2D([0], [0], color=colour, lw=lw, linestyle=ls, path_effects=_halo(lw + 2.2)))
+        vl.append(f"{_VERDICT_TEXT.get(v, v)} ({n})")
+        entries.append(LegendEntry("verdict", v, vl[-1]))
+    groups.insert(0, ("Parcel verdict (parcels shown)", vh, vl))
+
+    in_view = gdf
+    if 0 < len(in_view) <= 60 or focus_id is not None:
+        for pid, geom in zip(in_view["parcel_id"], in_view.geometry):
+            if geom is None or geom.is_empty:
+                continue
+            pt = geom.representative_point()
+            bold = focus_id is not None and pid == focus_id
+            ax.text(pt.x, pt.y, pid, ha="center", va="center", fontsize=9 if bold else 6.5,
+                    fontweight="bold" if bold else "normal", zorder=6, path_effects=_halo(2.2))
+    extent = (x0, x1, y0, y1)
+    _format_axes(ax, crs, extent)
+    _draw_scale_and_north(ax, crs, extent)
+    return ax, groups, entries
+
+
+def _figure_frame(fig, title: str, subtitle: str, notes: Sequence[str]) -> None:
+    fig.text(0.03, 0.975, title, ha="left", va="top", fontsize=13, fontweight="bold")
+    fig.text(0.03, 0.938, subtitle, ha="left", va="top", fontsize=8.5, color="#333333")
+    y = 0.012
+    fig.text(0.03, y, CAUTION, ha="left", va="bottom", fontsize=6.8, color="#5a1a00", fontweight="bold")
+    for note in notes:
+        y += 0.024
+        fig.text(0.03, y, note, ha="left", va="bottom", fontsize=6.8, color="#333333")
+
+
+def _dest(folder: AuditFolder, dest_dir) -> Path:
+    return Path(dest_dir) if dest_dir is not None else folder.out_dir / "figures"
+
+
+def _breaks_note(breaks: np.ndarray) -> str:
+    return "Slope classes at " + ", ".join(_fmt_num(b) for b in breaks if not math.isinf(b)) + \
+        " % (land-use planning breaks); a cell at a break belongs to the steeper class."
+
+
+def overview_map(out_dir, *, dest_dir=None, slope_breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT,
+                 dpi: int = 200, figsize_in: tuple[float, float] = (10.0, 8.0), max_px: int = 1600,
+                 formats: Sequence[str] = ("png", "svg"), title: str | None = None) -> FigureFiles:
+    """Draw the whole audit area: slope classes over relief, parcels by verdict, conflict cells, zones.
+
+    Parameters
+    ----------
+    out_dir : path or AuditFolder
+        Output folder of ``landcheck audit``.
+    dest_dir : path, optional
+        Where to write ``overview.png``/``overview.svg``; default ``out_dir/figures``.
+    slope_breaks_pct : sequence of float
+        Slope-class breaks in percent (default 0, 3, 8, 18, 30, 50, inf).
+    dpi : int
+        PNG resolution; the PNG is ``figsize_in * dpi`` pixels exactly.
+    figsize_in : (float, float)
+        Figure width and height in inches.
+    max_px : int
+        Longest side of the displayed raster; larger rasters are reduced by an
+        integer factor (slope: block mean; conflict: any conflict in the block).
+    formats : sequence of {"png", "svg"}
+    title : str, optional
+
+    Returns
+    -------
+    FigureFiles
+        The written paths; ``.legend_entries`` lists the legend rows drawn.
+    """
+    folder = load_audit_folder(out_dir)
+    breaks = _check_breaks(slope_breaks_pct)
+    data = _load_map_data(folder, None, max_px)
+    fig = _new_figure(figsize_in, dpi)
+    view = _grid_bounds(data.slope)
+    ax, groups, entries = _draw_map(fig, [0.085, 0.115, 0.62, 0.79], data, breaks, view)
+    lax = fig.add_axes([0.74, 0.115, 0.25, 0.79])
+    lax.axis("off")
+    _legend_column(fig, lax, groups)
+    n = len(folder.parcels_gdf)
+    _figure_frame(fig, title or "Slope classes and parcel verdicts",
+                  f"landcheck screening map \u00b7 audit run {folder.run_date_text} \u00b7 {n} parcels",
+                  [_crs_note(data.slope.crs) + "; grid lines dashed.", _breaks_note(breaks)])
+    paths = _save(fig, _dest(folder, dest_dir), "overview", dpi, formats)
+    caption = (f"Whole audit area. Slope classes over {data.relief_note}; parcel outlines by verdict; "
+               "hatched cells breach a rule of their class.")
+    return FigureFiles([FigureItem("overview", caption, paths, entries)])
+
+
+def _closeup_bounds(geom, cell: float) -> tuple[float, float, float, float]:
+    x0, y0, x1, y1 = geom.bounds
+    cx, cy = 0.5 * (x0 + x1), 0.5 * (y0 + y1)
+    half = 0.5 * max(x1 - x0, y1 - y0)
+    half += max(0.3 * half, 4 * cell)
+    return cx - half, cy - half, cx + half, cy + half
+
+
+def _safe_stem(text: str) -> str:
+    return re.sub(r"[^A-Za-z0-9_.-]+", "_", text)[:40].strip("._") or "parcel"
+
+
+def parcel_closeup_maps(out_dir, max_maps: int = 12, *, dest_dir=None,
+                        slope_breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT, dpi: int = 200,
+                        figsize_in: tuple[float, float] = (8.0, 6.5), max_px: int = 1200,
+                        formats: Sequence[str] = ("png", "svg")) -> FigureFiles:
+    """One close-up map per parcel with conflict area, largest ``conflict_m2`` first.
+
+    Ties are ordered by ``parcel_id``.  Files are ``closeup_NN_<parcel_id>.{png,svg}``;
+    earlier close-ups in ``dest_dir`` are removed first so the set always
+    matches the folder.
+
+    Parameters
+    ----------
+    out_dir : path or AuditFolder
+    max_maps : int
+        Most close-ups to draw (0 draws none).
+    dest_dir, slope_breaks_pct, dpi, figsize_in, max_px, formats
+        As for :func:`overview_map`.
+
+    Returns
+    -------
+    FigureFiles
+        ``.items[i].parcel_id`` gives the parcel of each figure.
+    """
+    folder = load_audit_folder(out_dir)
+    breaks = _check_breaks(slope_breaks_pct)
+    dest = _dest(folder, dest_dir)
+    if dest.is_dir():
+        for old in dest.glob("closeup_*"):
+            if old.suffix in (".png", ".svg"):
+                old.unlink()
+    df = folder.parcels
+    cand = df[df["conflict_m2"].fillna(0) > 0]
+    order = sorted(zip(cand["conflict_m2"], cand["parcel_id"]), key=lambda t: (-float(t[0]), t[1]))
+    gdf = folder.parcels_gdf
+    items = []
+    cell = _cell_width(folder)
+    for rank, (_, pid) in enumerate(order[: max(0, int(max_maps))], start=1):
+        rows = gdf[gdf["parcel_id"] == pid]
+        if rows.empty or rows.geometry.iloc[0] is None or rows.geometry.iloc[0].is_empty:
+            logger.warning("parcel %s has no geometry in parcels.gpkg; no close-up drawn", pid)
+            continue
+        view = _closeup_bounds(rows.geometry.iloc[0], cell)
+        data = _load_map_data(folder, view, max_px)
+        fig = _new_figure(figsize_in, dpi)
+        _, groups, entries = _draw_map(fig, [0.1, 0.12, 0.56, 0.77], data, breaks, view, focus_id=pid)
+        lax = fig.add_axes([0.7, 0.12, 0.29, 0.77])
+        lax.axis("off")
+        _legend_column(fig, lax, groups)
+        rec = df[df["parcel_id"] == pid].iloc[0]
+        limit = folder.class_limits_pct.get(rec["class_name"], math.nan)
+        lim_txt = f"slope limit {_fmt_num(limit)} %" if not math.isnan(limit) else "no slope limit"
+        share = float(rec["conflict_share"]) if not _isnan(rec["conflict_share"]) else math.nan
+        sub = (f"class {rec['class_name']} \u00b7 {lim_txt} \u00b7 conflict {float(rec['conflict_m2']):,.0f} m\u00b2"
+               + (f" ({share:.1%} of evaluated area)" if not math.isnan(share) else "")
+               + f" \u00b7 audit run {folder.run_date_text}")
+        _figure_frame(fig, f"Parcel {pid}: {_VERDICT_TEXT.get(rec['verdict'], rec['verdict'])}", sub,
+                      [_crs_note(data.slope.crs) + "."])
+        stem = f"closeup_{rank:02d}_{_safe_stem(pid)}"
+        paths = _save(fig, dest, stem, dpi, formats)
+        detail = sub.split(" \u00b7 audit")[0]
+        caption = f"Parcel {pid} ({rec['class_name']}, {rec['verdict']}): {detail}."
+        items.append(FigureItem(stem, caption, paths, entries, parcel_id=pid))
+    return FigureFiles(items)
+
+
+def _cell_width(folder: AuditFolder) -> float:
+    """Cell width of slope_pct.tif in map units."""
+    import rasterio
+
+    with rasterio.open(folder.require("slope_pct.tif")) as ds:
+        return abs(ds.transform.a)
+
+
+def _isnan(v) -> bool:
+    try:
+        return math.isnan(float(v))
+    except (TypeError, ValueError):
+        return True
+
+
+# --------------------------------------------------------------------------- charts
+
+
+def _class_label(folder: AuditFolder, name: str) -> str:
+    df = folder.classes
+    if "label" in df.columns:
+        hit = df[df["class_name"] == name]
+        label = str(hit["label"].iloc[0]) if not hit.empty else ""
+        if label and label.strip().lower() == name.replace("_", " ").lower():
+            return label
+        if label:
+            return f"{label} ({name})"
+    return name
+
+
+def _chart_frame(fig, folder: AuditFolder, title: str) -> None:
+    fig.text(0.02, 0.985, title, ha="left", va="top", fontsize=11, fontweight="bold")
+    fig.text(0.98, 0.985, f"audit run {folder.run_date_text}", ha="right", va="top", fontsize=7.5, color="#444444")
+    fig.text(0.02, 0.008, CAUTION, ha="left", va="bottom", fontsize=6.5, color="#5a1a00")
+
+
+def class_share_chart(out_dir, *, dest_dir=None, dpi: int = 200, formats: Sequence[str] = ("png", "svg")
+                      ) -> FigureFiles:
+    """Horizontal bars per class: share of evaluated area over the slope limit, and in conflict.
+
+    Reads ``classes.csv`` (``over_limit_m2 / evaluated_m2`` and
+    ``conflict_share``).  Classes with no evaluated area are left out;
+    classes without a slope limit are marked so.  Writes ``chart_class_shares``.
+    """
+    from matplotlib.patches import Patch
+
+    folder = load_audit_folder(out_dir)
+    df = folder.classes
+    df = df[df["evaluated_m2"].fillna(0) > 0]
+    names = list(df["class_name"])
+    n = max(1, len(names))
+    fig = _new_figure((8.0, 1.6 + 0.62 * n), dpi)
+    ax = fig.add_axes([0.3, 0.9 / (1.6 + 0.62 * n) + 0.04, 0.62, 1 - (1.45 / (1.6 + 0.62 * n)) - 0.04])
+    y = np.arange(len(names))[::-1].astype(float)
+    limits = folder.class_limits_pct
+    over = [float(o) / float(e) for o, e in zip(df["over_limit_m2"].fillna(0), df["evaluated_m2"])]
+    conf = [float(c) if not _isnan(c) else 0.0 for c in df["conflict_share"]]
+    bh = 0.36
+    for yi, name, o, c in zip(y, names, over, conf):
+        if name == "no_rule":
+            ax.text(1, yi, "no rule: not checked", va="center", fontsize=7.5, color="#555555", style="italic")
+            continue
+        has_limit = not math.isnan(limits.get(name, math.nan))
+        if has_limit:
+            ax.barh(yi + bh / 2, 100 * o, height=bh, color="#a9c4e0", edgecolor="#24509a", lw=0.8)
+            ax.text(100 * o + 1, yi + bh / 2, f"{o:.1%}", va="center", fontsize=7.5)
+        else:
+            ax.text(1, yi + bh / 2, "no slope limit", va="center", fontsize=7.5, color="#555555", style="italic")
+        ax.barh(yi - bh / 2, 100 * c, height=bh, color="#3b3b3b", edgecolor="#161616", hatch="////", lw=0.8)
+        ax.text(100 * c + 1, yi - bh / 2, f"{c:.1%}", va="center", fontsize=7.5)
+    ax.set_yticks(y)
+    ax.set_yticklabels([_class_label(folder, nm) + (f"\nlimit {_fmt_num(limits[nm])} %"
+                                                    if not math.isnan(limits.get(nm, math.nan)) else "")
+                        for nm in names], fontsize=8)
+    ax.set_xlim(0, 110)
+    ax.set_ylim(-0.7, len(names) - 0.3)
+    ax.set_xticks([0, 20, 40, 60, 80, 100])
+    ax.set_xlabel("share of evaluated area (%)")
+    ax.grid(True, axis="x", color="#bbbbbb", lw=0.5)
+    ax.set_axisbelow(True)
+    ax.legend([Patch(facecolor="#a9c4e0", edgecolor="#24509a"),
+               Patch(facecolor="#3b3b3b", edgecolor="#161616", hatch="////")],
+              ["slope at or over the class limit", "breaching any rule of the class"],
+              loc="lower right", fontsize=7.5, framealpha=0.9)
+    _chart_frame(fig, folder, "Share of each class over its limit")
+    paths = _save(fig, _dest(folder, dest_dir), "chart_class_shares", dpi, formats)
+    return FigureFiles([FigureItem("chart_class_shares",
+                                   "Per class: share of the evaluated area with slope at or over the class limit, "
+                                   "and share breaching any rule (slope or forbidden zone).", paths)])
+
+
+def slope_distribution_chart(out_dir, *, dest_dir=None, dpi: int = 200, formats: Sequence[str] = ("png", "svg"),
+                             max_panels: int = 9) -> FigureFiles:
+    """Area of classified land per 1 % slope bin, one panel per class, with the class limit marked.
+
+    Reads ``summary.json`` → ``slope_histogram``.  Bins at or over the limit
+    are dark and hatched.  Up to ``max_panels`` classes with the most area are
+    shown.  Writes ``chart_slope_distribution``.
+    """
+    folder = load_audit_folder(out_dir)
+    hist = folder.section("slope_histogram", default={}) or {}
+    edges = [_parse_float(v) for v in hist.get("bin_edges_pct", [])]
+    classes = {k: [float(x) for x in v] for k, v in (hist.get("classes") or {}).items()
+               if len(v) == max(0, len(edges) - 1) and sum(float(x) for x in v) > 0}
+    order = [c for c in folder.classes["class_name"] if c in classes] + sorted(set(classes) - set(folder.classes["class_name"]))
+    order = sorted(order, key=lambda c: -sum(classes[c]))[:max_panels]
+    order = [c for c in folder.classes["class_name"] if c in order] + [c for c in order if c not in set(folder.classes["class_name"])]
+    n = max(1, len(order))
+    ncols = 1 if n <= 3 else 2
+    nrows = math.ceil(n / ncols)
+    fig = _new_figure((8.0 if ncols == 2 else 7.0, 1.2 + 1.9 * nrows), dpi)
+    ref = _parse_float(folder.section("capability", "reference_limit_pct", default=math.nan) or math.nan)
+    limits = folder.class_limits_pct
+    if not order:
+        fig.text(0.5, 0.5, "No slope histogram in summary.json", ha="center", va="center")
+    top, bottom = 1 - 0.75 / (1.2 + 1.9 * nrows), 0.55 / (1.2 + 1.9 * nrows) + 0.04
+    gs = fig.add_gridspec(nrows, ncols, left=0.09, right=0.97, top=top, bottom=bottom, hspace=0.55, wspace=0.2)
+    e = np.array(edges)
+    for i, name in enumerate(order):
+        ax = fig.add_subplot(gs[i // ncols, i % ncols])
+        area_ha = np.array(classes[name]) / 10_000.0
+        lo = e[:-1]
+        width = np.where(np.isinf(e[1:]), 1.0, e[1:] - e[:-1])
+        limit = limits.get(name, math.nan)
+        line = limit if not math.isnan(limit) else ref
+        over = lo >= line if not math.isnan(line) else np.zeros(lo.shape, bool)
+        step_edges = np.append(lo, lo[-1] + width[-1])
+        ax.stairs(np.where(over, 0.0, area_ha), step_edges, fill=True, facecolor="#a9c4e0", edgecolor="#24509a",
+                  lw=0.6)
+        ax.stairs(np.where(over, area_ha, 0.0), step_edges, fill=True, facecolor="#3b3b3b", edgecolor="#161616",
+                  hatch="////", lw=0.6)
+        nz = np.nonzero(area_ha > 0)[0]
+        xmax = min(float(lo[nz[-1]] + width[nz[-1]]) + 2, float(lo[-1] + width[-1])) if nz.size else 30.0
+        if not math.isnan(line):
+            xmax = max(xmax, line + 3)
+            ax.axvline(line, color="#161616", lw=1.2, ls=(0, (4, 2)))
+            txt = f"limit {_fmt_num(line)} %" if not math.isnan(limit) else f"reference {_fmt_num(line)} % (no class limit)"
+            share = area_ha[over].sum() / area_ha.sum() if area_ha.sum() else 0.0
+            ax.text(line, 0.97, f" {txt}\n {share:.1%} at or over", transform=ax.get_xaxis_transform(),
+                    va="top", ha="left", fontsize=7)
+        ax.set_xlim(0, xmax)
+        ax.set_title(_class_label(folder, name), fontsize=8.5, loc="left")
+        ax.tick_params(labelsize=7)
+        ax.set_ylabel("area (ha)", fontsize=7.5)
+        ax.grid(True, axis="y", color="#cccccc", lw=0.4)
+        ax.set_axisbelow(True)
+        if i // ncols == nrows - 1 or i + ncols >= n:
+            ax.set_xlabel("slope (%), 1 % bins", fontsize=7.5)
+    _chart_frame(fig, folder, "Slope distribution of classified land")
+    paths = _save(fig, _dest(folder, dest_dir), "chart_slope_distribution", dpi, formats)
+    return FigureFiles([FigureItem("chart_slope_distribution",
+                                   "Evaluated area per 1 % slope bin for each class; dark hatched bars lie at or "
+                                   "over the class limit (dashed line).", paths)])
+
+
+def sensitivity_chart(out_dir, *, dest_dir=None, dpi: int = 200, formats: Sequence[str] = ("png", "svg")
+                      ) -> FigureFiles:
+    """Share of evaluated area at or over a trial slope limit (10-30 %), per class and for all development land.
+
+    Reads ``summary.json`` → ``sensitivity``; marks each class's own limit
+    with a large marker.  Writes ``chart_sensitivity``.
+    """
+    from matplotlib.lines import Line2D
+
+    folder = load_audit_folder(out_dir)
+    sens = folder.section("sensitivity", default={}) or {}
+    lims = np.array([_parse_float(v) for v in sens.get("limits_pct", [])])
+    fig = _new_figure((8.0, 5.0), dpi)
+    ax = fig.add_axes([0.09, 0.13, 0.6, 0.75])
+    handles, labels = [], []
+    order = [c for c in folder.classes["class_name"] if c in (sens.get("classes") or {})]
+    order += sorted(set(sens.get("classes") or {}) - set(order))
+    limits = folder.class_limits_pct
+    for i, name in enumerate(order):
+        vals = np.array([_parse_float(v) if v is not None else math.nan for v in sens["classes"][name]])
+        if vals.shape != lims.shape:
+            continue
+        colour, marker, ls = _SERIES_STYLE[i % len(_SERIES_STYLE)]
+        ax.plot(lims, 100 * vals, color=colour, marker=marker, ms=3.5, lw=1.4, ls=ls)
+        lim = limits.get(name, math.nan)
+        if not math.isnan(lim) and lims.size and lims.min() <= lim <= lims.max():
+            ax.plot([lim], [100 * np.interp(lim, lims, vals)], marker=marker, ms=9, color=colour,
+                    markeredgecolor="white", ls="none")
+        handles.append(Line2D([0], [0], color=colour, marker=marker, ms=4, lw=1.4, ls=ls))
+        labels.append(_class_label(folder, name) + (f", limit {_fmt_num(lim)} %" if not math.isnan(lim) else ""))
+    alldev = sens.get("all_development")
+    if alldev is not None and len(alldev) == lims.size:
+        vals = np.array([_parse_float(v) if v is not None else math.nan for v in alldev])
+        ax.plot(lims, 100 * vals, color="#000000", lw=3.0)
+        handles.insert(0, Line2D([0], [0], color="#000000", lw=3.0))
+        labels.insert(0, "all land classified for development")
+    ref = _parse_float(folder.section("capability", "reference_limit_pct", default=math.nan) or math.nan)
+    if not math.isnan(ref):
+        ax.axvline(ref, color="#666666", lw=1.0, ls=(0, (2, 2)))
+        handles.append(Line2D([0], [0], color="#666666", lw=1.0, ls=(0, (2, 2))))
+        labels.append(f"reference limit {_fmt_num(ref)} %")
+    handles.append(Line2D([0], [0], color="#777777", marker="o", ms=8, ls="none", markeredgecolor="white"))
+    labels.append("class's own limit")
+    ax.set_xlabel("trial slope limit (%)")
+    ax.set_ylabel("share of evaluated area at or over the limit (%)")
+    if lims.size:
+        ax.set_xlim(lims.min(), lims.max())
+    ax.set_ylim(bottom=0)
+    ax.grid(True, color="#cccccc", lw=0.5)
+    fig.legend(handles, labels, loc="upper left", bbox_to_anchor=(0.71, 0.88), fontsize=7.5, frameon=False)
+    _chart_frame(fig, folder, "Sensitivity to the slope limit")
+    paths = _save(fig, _dest(folder, dest_dir), "chart_sensitivity", dpi, formats)
+    return FigureFiles([FigureItem("chart_sensitivity",
+                                   "How the share of land at or over a slope limit changes as the limit moves "
+                                   "from 10 % to 30 %.", paths)])
+

@@ -1,0 +1,1 @@
+"""Grid geometry shared by every stage: grids and windows, ellipsoid formulas, ground areas."""

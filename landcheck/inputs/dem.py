@@ -1,0 +1,241 @@
+"""Open and validate inputs: the DEM here; vector layers in :mod:`landcheck.inputs.layers`.
+
+Validation happens once, at this edge.  Every refusal raises
+:class:`~landcheck.errors.InputDataError` with a message that names the file,
+the problem and what to do.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import threading
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from landcheck.engine.handles import ThreadLocalHandles
+from landcheck.choices import UserChoice
+from landcheck.errors import InputDataError
+from landcheck.geo.grid import GridSpec, Window, grow_window, iter_windows
+
+__all__ = ["ZUnit", "DemSource", "open_dem"]
+
+logger = logging.getLogger(__name__)
+
+#: metres per international foot (exact by definition, 1959 agreement; common practice)
+FOOT_M = 0.3048
+#: metres per US survey foot (1200/3937 m by definition)
+US_SURVEY_FOOT_M = 1200.0 / 3937.0
+
+
+class ZUnit(UserChoice):
+    """Unit of the DEM's elevation values."""
+
+    METRE = "m"
+    FOOT = "ft"
+    US_SURVEY_FOOT = "us-ft"
+
+    @property
+    def to_m(self) -> float:
+        return {ZUnit.METRE: 1.0, ZUnit.FOOT: FOOT_M, ZUnit.US_SURVEY_FOOT: US_SURVEY_FOOT_M}[self]
+
+    @classmethod
+    def _aliases(cls) -> dict:
+        return {"metre": "m", "meter": "m", "metres": "m", "meters": "m", "foot": "ft", "feet": "ft", "us-survey-foot": "us-ft"}
+
+    @classmethod
+    def _noun(cls) -> str:
+        return "elevation unit"
+
+
+
+@dataclass
+class DemSource(ThreadLocalHandles):
+    """A validated DEM band: where it is, its grid, and how to read windows of it.
+
+    Reading opens one dataset handle per thread (rasterio handles are not
+    thread-safe), so one ``DemSource`` can feed several worker threads.  It
+    pickles to its path and settings, so Dask workers reopen the file.
+    """
+
+    path: str
+    band: int
+    grid: GridSpec
+    nodata: float | None
+    z_unit: ZUnit = ZUnit.METRE
+    crs_override: str | None = None
+    _local: threading.local = field(default_factory=threading.local, repr=False, compare=False)
+
+    def _dataset(self):
+        ds = getattr(self._local, "ds", None)
+        if ds is None or ds.closed:
+            import rasterio
+
+            from landcheck.inputs.gdal_cache import cap_gdal_cache
+
+            cap_gdal_cache()  # every DEM block passes GDAL's cache: keep it well below GDAL's 5 %-of-RAM default
+            ds = rasterio.open(self.path)
+            self._local.ds = ds
+        return ds
+
+    def read(self, win: Window, dtype=np.float64) -> np.ndarray:
+        """Elevations of ``win`` in metres, NaN where invalid.
+
+        Parameters
+        ----------
+        win : Window
+        dtype : float64 (default) or float32
+            float32 is honoured only when it holds every value exactly (a float32 or
+            8/16-bit integer band in metres); otherwise float64 is returned.  Either way
+            the values are the same numbers, so kernels that widen to float64 give
+            identical results from both.
+        """
+        ds = self._dataset()
+        out_dtype = np.float32 if np.dtype(dtype) == np.float32 and self._float32_exact(ds) else np.float64
+        arr = ds.read(self.band, window=win.to_rasterio(), masked=False).astype(out_dtype, copy=False)
+        invalid = ~np.isfinite(arr)
+        if self.nodata is not None and not np.isnan(self.nodata) and out_dtype(self.nodata) == self.nodata:
+            invalid |= arr == out_dtype(self.nodata)
+        if _has_mask_band(ds, self.band):
+            invalid |= ds.read_masks(self.band, window=win.to_rasterio()) == 0
+        if invalid.any():
+            arr = arr.copy() if not arr.flags.writeable else arr
+            arr[invalid] = np.nan
+        if self.z_unit is not ZUnit.METRE:
+            arr = arr * self.z_unit.to_m
+        return arr
+
+    def _float32_exact(self, ds) -> bool:
+        return self.z_unit is ZUnit.METRE and ds.dtypes[self.band - 1] in ("float32", "int8", "uint8", "int16", "uint16")
+
+    def read_with_halo(self, win: Window, halo: int, dtype=np.float64) -> np.ndarray:
+        """``win`` grown by ``halo`` cells on every side; cells outside the raster are NaN (``dtype`` as in :meth:`read`)."""
+        inner, pad = grow_window(win, halo, self.grid.height, self.grid.width)
+        arr = self.read(inner, dtype)
+        if any(p for pair in pad for p in pair):
+            arr = np.pad(arr, pad, mode="constant", constant_values=np.nan)
+        return arr
+
+
+def _has_mask_band(ds, band: int) -> bool:
+    """True when the band carries an internal mask (not nodata, not alpha, not all-valid)."""
+    from rasterio.enums import MaskFlags
+
+    flags = ds.mask_flag_enums[band - 1]
+    return MaskFlags.per_dataset in flags and MaskFlags.alpha not in flags
+
+
+def grid_from_dataset(ds, path: str, crs=None) -> GridSpec:
+    """Build and validate a :class:`GridSpec` from an open rasterio dataset."""
+    import pyproj
+
+    t = ds.transform
+    if t.b != 0 or t.d != 0:
+        raise InputDataError(
+            f"{path}: the raster is rotated or sheared (geotransform terms b={t.b}, d={t.d}); "
+            "landcheck needs a north-up grid. Warp it first, e.g. `gdalwarp in.tif north_up.tif`."
+        )
+    if ds.transform.is_identity and ds.crs is None:
+        raise InputDataError(
+            f"{path}: the raster has no georeferencing (no geotransform and no CRS); "
+            "give it both, e.g. with `gdal_translate -a_srs EPSG:xxxx -a_ullr ...`."
+        )
+    if t.e > 0:
+        raise InputDataError(f"{path}: rows run south to north (positive pixel height {t.e}); flip it to north-up first.")
+    the_crs = crs if crs is not None else ds.crs
+    if the_crs is None:
+        raise InputDataError(
+            f"{path}: the raster has no coordinate reference system; "
+            "give one with --dem-crs (e.g. --dem-crs EPSG:32651) or fix the file."
+        )
+    pcrs = pyproj.CRS.from_user_input(the_crs.to_wkt() if hasattr(the_crs, "to_wkt") else the_crs)
+    ell = pcrs.ellipsoid
+    a_m = ell.semi_major_metre if ell is not None else 6_378_137.0
+    inv_f = ell.inverse_flattening if ell is not None and ell.inverse_flattening else 0.0
+    f = 1.0 / inv_f if inv_f else 0.0
+    e2 = f * (2.0 - f)
+    if pcrs.is_geographic:
+        unit_name = pcrs.axis_info[0].unit_name if pcrs.axis_info else "degree"
+        if "degree" not in unit_name.lower():
+            raise InputDataError(f"{path}: geographic CRS with angular unit {unit_name!r}; only degrees are supported.")
+        return GridSpec(t, pcrs.to_wkt(), ds.width, ds.height, True, 1.0, a_m, e2)
+    if not pcrs.is_projected:
+        raise InputDataError(f"{path}: CRS {pcrs.name!r} is neither projected nor geographic; give a projected CRS in metres or feet.")
+    axis = pcrs.axis_info[0] if pcrs.axis_info else None
+    unit_m = axis.unit_conversion_factor if axis is not None else None
+    if not unit_m or unit_m <= 0:
+        raise InputDataError(f"{path}: cannot read the linear unit of CRS {pcrs.name!r}; give a CRS in metres or feet.")
+    return GridSpec(t, pcrs.to_wkt(), ds.width, ds.height, False, float(unit_m), a_m, e2)
+
+
+def open_dem(
+    path: str | os.PathLike,
+    *,
+    band: int | None = None,
+    crs: str | None = None,
+    z_unit: ZUnit | str = ZUnit.METRE,
+    check_data: bool = True,
+) -> DemSource:
+    """Open and validate a DEM.
+
+    Parameters
+    ----------
+    path : path
+        Any single- or multi-band raster GDAL reads.
+    band : int, optional
+        1-based band number; required when the raster has more than one band.
+    crs : str, optional
+        CRS to assume when the file has none (e.g. ``"EPSG:32651"``).
+    z_unit : ZUnit or str
+        Unit of the elevation values (``m``, ``ft``, ``us-ft``); converted to metres on read.
+    check_data : bool
+        Scan for at least one valid cell (stops at the first one found).
+
+    Raises
+    ------
+    InputDataError
+        Missing file, not a raster, no CRS, rotated grid, ambiguous band, all-nodata raster.
+    """
+    import rasterio
+    from rasterio.errors import RasterioIOError
+
+    path = os.fspath(path)
+    z_unit = ZUnit.from_user(z_unit)
+    if not os.path.exists(path) and "://" not in path and not path.startswith("/vsi"):
+        raise InputDataError(f"{path}: DEM file not found.")
+    try:
+        ds = rasterio.open(path)
+    except RasterioIOError as exc:
+        raise InputDataError(f"{path}: not a raster GDAL can open ({exc}). Give a GeoTIFF or another GDAL raster.") from exc
+    with ds:
+        if ds.count < 1:
+            raise InputDataError(f"{path}: the raster has no bands.")
+        if band is None:
+            if ds.count > 1:
+                raise InputDataError(
+                    f"{path}: the raster has {ds.count} bands; choose the elevation band with --dem-band N (1..{ds.count})."
+                )
+            band = 1
+        if not 1 <= band <= ds.count:
+            raise InputDataError(f"{path}: band {band} asked for, but the raster has bands 1..{ds.count}.")
+        from rasterio.crs import CRS as RioCRS
+
+        crs_obj = RioCRS.from_user_input(crs) if crs else None
+        grid = grid_from_dataset(ds, path, crs_obj)
+        nodata = ds.nodatavals[band - 1]
+    src = DemSource(path, band, grid, nodata, z_unit, crs)
+    if check_data and not _has_valid_cell(src):
+        raise InputDataError(f"{path}: every cell of band {band} is nodata or NaN; there is no elevation to work with.")
+    logger.info(
+        "DEM %s: %d x %d cells, %s, band %d, nodata=%s",
+        path, grid.width, grid.height, "geographic" if grid.geographic else f"projected ({grid.unit_m} m/unit)", band, nodata,
+    )
+    return src
+
+
+def _has_valid_cell(src: DemSource) -> bool:
+    for win in iter_windows(src.grid.height, src.grid.width, 1024):
+        if np.isfinite(src.read(win)).any():
+            return True
+    return False

@@ -1,0 +1,1 @@
+"""Outputs: atomic writers for tables, rasters and JSON."""

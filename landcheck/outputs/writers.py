@@ -1,0 +1,314 @@
+"""Atomic writers: rasters (Cloud-Optimized or tiled GeoTIFF), tables (CSV, GeoPackage), JSON.
+
+Every writer puts its bytes in a temporary file beside the target and renames
+it into place only when complete, so a crash, a full disk or a permission
+error never leaves a half-written result.  The audit's output folder is built
+the same way: a hidden sibling folder, renamed when every file is in it.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import logging
+import os
+import shutil
+import tempfile
+from pathlib import Path
+from typing import Callable, Iterable, Iterator
+
+import numpy as np
+
+from landcheck.choices import UserChoice
+from landcheck.errors import OutputExistsError, OutputWriteError
+from landcheck.inputs.gdal_cache import cap_gdal_cache
+from landcheck.geo.grid import GridSpec, Window
+
+__all__ = [
+    "atomic_file",
+    "staged_folder",
+    "check_output_path",
+    "write_json",
+    "write_csv",
+    "RasterSink",
+    "RasterFormat",
+    "cap_gdal_cache",
+]
+
+logger = logging.getLogger(__name__)
+
+
+@contextlib.contextmanager
+def atomic_file(final: str | os.PathLike, *, overwrite: bool = False, suffix: str = "") -> Iterator[Path]:
+    """Yield a temporary path next to ``final``; rename it to ``final`` on success only."""
+    final = Path(final)
+    if final.exists() and not overwrite:
+        raise OutputExistsError(f"{final}: already exists; pass --overwrite to replace it.")
+    try:
+        final.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{final.name}.", suffix=suffix or final.suffix + ".tmp", dir=final.parent)
+        os.close(fd)
+    except OSError as exc:
+        raise OutputWriteError(f"{final}: cannot write here ({exc.strerror or exc}); choose another output path.") from exc
+    tmp_path = Path(tmp)
+    try:
+        yield tmp_path
+        if tmp_path.exists():
+            os.chmod(tmp_path, 0o666 & ~_umask())  # mkstemp makes 0600; give the file normal permissions
+        os.replace(tmp_path, final)
+    except OSError as exc:
+        tmp_path.unlink(missing_ok=True)
+        if isinstance(exc, (OutputExistsError, OutputWriteError)):
+            raise
+        raise OutputWriteError(f"{final}: writing failed ({exc.strerror or exc}); nothing was left behind.") from exc
+    except BaseException:
+        tmp_path.unlink(missing_ok=True)
+        raise
+
+
+def check_output_path(out: str | os.PathLike, inputs: Iterable[str | os.PathLike], *, overwrite: bool) -> Path:
+    """Refuse an output folder that exists (without ``overwrite``) or that holds or is an input."""
+    out = Path(out).resolve()
+    for p in inputs:
+        if p is None:
+            continue
+        ip = Path(p).resolve()
+        if ip == out or out in ip.parents:
+            raise OutputWriteError(
+                f"{out}: the output folder would contain or replace the input {ip}; choose an output folder outside the inputs."
+            )
+    if out.exists() and not overwrite:
+        raise OutputExistsError(f"{out}: output folder already exists; pass --overwrite to replace it, or choose another.")
+    if out.exists() and not out.is_dir():
+        raise OutputWriteError(f"{out}: exists and is not a folder.")
+    return out
+
+
+@contextlib.contextmanager
+def staged_folder(final: str | os.PathLike, *, overwrite: bool = False) -> Iterator[Path]:
+    """Yield a hidden sibling folder; on success it replaces ``final`` in one rename.
+
+    On any error the staged folder is removed and an existing ``final`` is untouched.
+    """
+    final = Path(final)
+    if final.exists() and not overwrite:
+        raise OutputExistsError(f"{final}: output folder already exists; pass --overwrite to replace it, or choose another.")
+    try:
+        final.parent.mkdir(parents=True, exist_ok=True)
+        stage = Path(tempfile.mkdtemp(prefix=f".{final.name}.partial-", dir=final.parent))
+        os.chmod(stage, 0o777 & ~_umask())
+    except OSError as exc:
+        raise OutputWriteError(f"{final}: cannot create the output folder ({exc.strerror or exc}).") from exc
+    try:
+        yield stage
+        if final.exists():
+            old = final.with_name(f".{final.name}.old-{os.getpid()}")
+            os.replace(final, old)
+            os.replace(stage, final)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(stage, final)
+    except OSError as exc:
+        shutil.rmtree(stage, ignore_errors=True)
+        if isinstance(exc, (OutputExistsError, OutputWriteError)):
+            raise
+        raise OutputWriteError(f"{final}: writing the outputs failed ({exc.strerror or exc}); nothing was left behind.") from exc
+    except BaseException:
+        shutil.rmtree(stage, ignore_errors=True)
+        raise
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
+def _json_default(o):
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    if isinstance(o, Path):
+        return str(o)
+    raise TypeError(f"not JSON serialisable: {type(o).__name__}")
+
+
+def _clean_floats(o):
+    """Replace NaN/inf by None so the JSON is standard."""
+    if isinstance(o, float) or isinstance(o, np.floating):
+        return None if not np.isfinite(o) else float(o)
+    if isinstance(o, dict):
+        return {k: _clean_floats(v) for k, v in o.items()}
+    if isinstance(o, (list, tuple)):
+        return [_clean_floats(v) for v in o]
+    return o
+
+
+def write_json(path: str | os.PathLike, data, *, overwrite: bool = True) -> Path:
+    with atomic_file(path, overwrite=overwrite) as tmp:
+        tmp.write_text(json.dumps(_clean_floats(data), indent=2, default=_json_default, allow_nan=False) + "\n", encoding="utf-8")
+    return Path(path)
+
+
+def write_csv(path: str | os.PathLike, frame, *, overwrite: bool = True) -> Path:
+    with atomic_file(path, overwrite=overwrite) as tmp:
+        frame.to_csv(tmp, index=False, float_format="%.10g")
+    return Path(path)
+
+
+def write_gpkg(path: str | os.PathLike, gdf, layer: str, *, overwrite: bool = True) -> Path:
+    with atomic_file(path, overwrite=overwrite, suffix=".gpkg") as tmp:
+        tmp.unlink()  # GDAL wants to create the file itself
+        gdf.to_file(tmp, layer=layer, driver="GPKG")
+    return Path(path)
+
+
+class RasterFormat(UserChoice):
+    """How a streamed raster is written (see docs/scale.md for the measured costs).
+
+    * ``cog`` (default): Cloud-Optimized GeoTIFF, DEFLATE level 1 with a predictor, 512-cell tiles
+      and overviews; windows go to an uncompressed scratch file first, then one GDAL copy lays
+      the COG out.
+    * ``gtiff``: a tiled GeoTIFF (512-cell tiles, no overviews) written straight from the
+      window stream: no scratch file and no second pass.  Integer rasters are ZSTD level 1
+      (compressed on all cores); float rasters are uncompressed, because full-precision slopes
+      hardly compress (measured in docs/scale.md).  For large batch runs.
+    * ``none``: no raster file at all (only the tables); the audit's HTML report needs the rasters.
+    """
+
+    COG = "cog"
+    GTIFF = "gtiff"
+    NONE = "none"
+
+    @classmethod
+    def _aliases(cls) -> dict:
+        return {"geotiff": "gtiff", "tif": "gtiff", "tiff": "gtiff"}
+
+    @classmethod
+    def _noun(cls) -> str:
+        return "raster format"
+
+
+
+class RasterSink:
+    """Streamed writer for one raster: windows in, a GeoTIFF out (:class:`RasterFormat`).
+
+    ``cog``: windows are written to an uncompressed tiled scratch GeoTIFF as they arrive;
+    :meth:`close` converts it to a COG (with overviews) beside the target and renames it into
+    place.  ``gtiff``: windows go straight into a compressed tiled GeoTIFF beside the target,
+    renamed into place on close.  ``none``: writes are ignored.  Memory use is bounded by
+    one window plus GDAL's capped block cache, whatever the raster size.
+
+    ``categorical=True`` builds COG overviews by nearest neighbour (class codes, bit flags);
+    otherwise by averaging.
+    """
+
+    def __init__(self, final: str | os.PathLike, grid: GridSpec, *, dtype: str, nodata, overwrite: bool = False,
+                 block: int = 512, band_names: list[str] | None = None, count: int = 1,
+                 fmt: "RasterFormat | str" = RasterFormat.COG, categorical: bool = False):
+        import rasterio
+
+        self.final = Path(final)
+        self.fmt = RasterFormat.from_user(fmt)
+        self._count = count
+        self._band_names = band_names
+        self._categorical = categorical
+        self._float = np.dtype(dtype).kind == "f"
+        self._ds = None
+        self._scratch = None
+        if self.final.exists() and not overwrite:
+            raise OutputExistsError(f"{self.final}: already exists; pass --overwrite to replace it.")
+        if self.fmt is RasterFormat.NONE:
+            return
+        cap_gdal_cache()
+        self.final.parent.mkdir(parents=True, exist_ok=True)
+        suffix = ".scratch.tif" if self.fmt is RasterFormat.COG else ".part.tif"
+        fd, scratch = tempfile.mkstemp(prefix=f".{self.final.name}.", suffix=suffix, dir=self.final.parent)
+        os.close(fd)
+        self._scratch = Path(scratch)
+        if self.fmt is RasterFormat.COG:
+            options = {}  # scratch: uncompressed, fast
+        else:
+            # Integer rasters (bit flags, classes) compress ~50:1 with ZSTD level 1, cheaply, on all cores as
+            # tiles fill.  Full-precision float slopes hardly compress (ZSTD 1: 84 % of the size for ~25 % more
+            # time in the slope stage; with the floating-point predictor 74 % for ~45 % more; docs/scale.md),
+            # so float rasters are written uncompressed here; the COG format compresses them.
+            options = {} if self._float else {"COMPRESS": "ZSTD", "ZSTD_LEVEL": 1, "NUM_THREADS": "ALL_CPUS"}
+        try:
+            self._ds = rasterio.open(
+                self._scratch, "w", driver="GTiff", width=grid.width, height=grid.height, count=count, dtype=dtype,
+                crs=grid.crs_wkt, transform=grid.transform, nodata=nodata, tiled=True,
+                blockxsize=block, blockysize=block, BIGTIFF="IF_SAFER", **options,
+            )
+        except Exception as exc:
+            self._scratch.unlink(missing_ok=True)
+            raise OutputWriteError(f"{self.final}: cannot create raster ({exc}).") from exc
+
+    def write(self, win: Window, data: np.ndarray) -> None:
+        if self._ds is None:
+            return
+        if data.ndim == 2:
+            self._ds.write(data, 1, window=win.to_rasterio())
+        else:
+            self._ds.write(data, window=win.to_rasterio())
+
+    def abort(self) -> None:
+        if self._ds is not None:
+            with contextlib.suppress(Exception):
+                self._ds.close()
+        if self._scratch is not None:
+            self._scratch.unlink(missing_ok=True)
+
+    def close(self) -> Path | None:
+        """Finish the file and rename it into place; returns its path (None for ``none``)."""
+        import rasterio.shutil
+
+        if self.fmt is RasterFormat.NONE:
+            return None
+        try:
+            if self._band_names:
+                for i, name in enumerate(self._band_names, start=1):
+                    self._ds.set_band_description(i, name)
+            self._ds.close()
+            if self.fmt is RasterFormat.GTIFF:
+                if self.final.exists():
+                    self.final.unlink()
+                os.chmod(self._scratch, 0o666 & ~_umask())
+                os.replace(self._scratch, self.final)
+                return self.final
+            with atomic_file(self.final, overwrite=True, suffix=".tif") as tmp:
+                rasterio.shutil.copy(self._scratch, tmp, driver="COG", COMPRESS="DEFLATE", LEVEL=1, PREDICTOR="YES",
+                                     BLOCKSIZE=512, OVERVIEWS="AUTO", BIGTIFF="IF_SAFER", NUM_THREADS="ALL_CPUS",
+                                     RESAMPLING="NEAREST" if self._categorical else "AVERAGE")
+        except Exception as exc:
+            self.abort()
+            if isinstance(exc, OutputWriteError):
+                raise
+            raise OutputWriteError(f"{self.final}: writing the raster failed ({exc}); nothing was left behind.") from exc
+        self._scratch.unlink(missing_ok=True)
+        return self.final
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is None:
+            self.close()
+        else:
+            self.abort()
+        return False
+
+
+def write_with(path: str | os.PathLike, writer: Callable[[Path], None], *, overwrite: bool = True) -> Path:
+    """Run ``writer(tmp_path)`` and rename the result to ``path`` atomically."""
+    with atomic_file(path, overwrite=overwrite) as tmp:
+        writer(tmp)
+    return Path(path)
+
+
+def write_bytes(path: str | os.PathLike, data: bytes, *, overwrite: bool = True) -> Path:
+    """Write ``data`` to ``path`` atomically (temporary sibling, then rename)."""
+    with atomic_file(path, overwrite=overwrite) as tmp:
+        tmp.write_bytes(data)
+    return Path(path)

@@ -1,0 +1,1 @@
+"""Overlay: exact cell coverage of parcels, reduced to per-parcel sums."""

@@ -1,0 +1,1 @@
+"""Verdicts: per-parcel sums and rules to verdicts; confidence, capability and reclassification."""
