@@ -4,9 +4,8 @@ A screening aid, not a survey or legal determination: local codes, the mandated
 agency and licensed practitioners decide.
 """
 
-from landcheck.errors import InputDataError, LandcheckError, LandcheckWarning, OutputExistsError, RuleFileError
-
 from landcheck.about import CAUTION, __version__
+from landcheck.errors import InputDataError, LandcheckError, LandcheckWarning, OutputExistsError, RuleFileError
 
 __all__ = [
     "CAUTION",

@@ -11,8 +11,22 @@ def show_versions() -> dict:
     import platform
 
     out = {"landcheck": __version__, "python": platform.python_version()}
-    for pkg in ("numpy", "rasterio", "geopandas", "shapely", "pyproj", "exactextract", "pyflwdir", "numba", "scipy",
-                "matplotlib", "dask", "distributed", "pandas", "pyogrio"):
+    for pkg in (
+        "numpy",
+        "rasterio",
+        "geopandas",
+        "shapely",
+        "pyproj",
+        "exactextract",
+        "pyflwdir",
+        "numba",
+        "scipy",
+        "matplotlib",
+        "dask",
+        "distributed",
+        "pandas",
+        "pyogrio",
+    ):
         try:
             out[pkg] = md.version(pkg)
         except md.PackageNotFoundError:

@@ -69,8 +69,18 @@ def make_inputs(folder: Path, size: int, n_parcels: int, seed: int = 7) -> tuple
         amp = rng.uniform(0.15, 0.6) * s  # peak gradients of roughly 9-36 %
         z += amp * np.exp(-((x[None, :] - cx) ** 2 + (x[:, None] - cy) ** 2) / (2 * s * s))
     dem = folder / "alderwane_dem.tif"
-    with rasterio.open(dem, "w", driver="GTiff", width=size, height=size, count=1, dtype="float32", crs=CRS,
-                       transform=from_origin(*ORIGIN, CELL_M, CELL_M), nodata=-9999.0) as ds:
+    with rasterio.open(
+        dem,
+        "w",
+        driver="GTiff",
+        width=size,
+        height=size,
+        count=1,
+        dtype="float32",
+        crs=CRS,
+        transform=from_origin(*ORIGIN, CELL_M, CELL_M),
+        nodata=-9999.0,
+    ) as ds:
         ds.write(z.astype("float32"), 1)
     per_side = round(float(np.sqrt(n_parcels)))
     block = span / per_side
@@ -83,7 +93,8 @@ def make_inputs(folder: Path, size: int, n_parcels: int, seed: int = 7) -> tuple
             zoning.append(("RES", "AGR", "FOR")[(i + j) % 3])
     parcels = folder / "alderwane_parcels.gpkg"
     gpd.GeoDataFrame({"pid": np.arange(1, len(geoms) + 1), "zoning": zoning}, geometry=geoms, crs=CRS).to_file(
-        parcels, layer="parcels")
+        parcels, layer="parcels"
+    )
     rules = folder / "alderwane_rules.toml"
     rules.write_text(RULES)
     return dem, parcels, rules
@@ -94,18 +105,19 @@ def prepare(dem_path, parcels_path, rules_path, tile_cells: int):
     import shapely
 
     from landcheck.core.audit import _build_plan, _WindowJob
-    from landcheck.verdicts.evaluate import evaluate_parcels, parcel_rules
     from landcheck.geo.grid import iter_windows
     from landcheck.inputs.dem import open_dem
     from landcheck.inputs.layers import ground_areas, read_parcels
-    from landcheck.overlay.sums import Totals
     from landcheck.inputs.rulebook import load_rules
+    from landcheck.overlay.sums import Totals
+    from landcheck.verdicts.evaluate import evaluate_parcels, parcel_rules
 
     dem = open_dem(dem_path)
     g = dem.grid
     rules = load_rules(rules_path)
-    frame = read_parcels(parcels_path, class_field=rules.class_field, id_field=rules.id_field,
-                         target_crs_wkt=g.crs_wkt).frame
+    frame = read_parcels(
+        parcels_path, class_field=rules.class_field, id_field=rules.id_field, target_crs_wkt=g.crs_wkt
+    ).frame
     geoms = np.asarray(frame.geometry.values)
     area_m2, factor = ground_areas(frame, g.crs_wkt)
     pr = parcel_rules(rules, frame["class_value"].to_numpy())
@@ -147,24 +159,37 @@ def main() -> None:
         t0 = time.perf_counter()
         paths = make_inputs(Path(tmp), args.size, args.parcels)
         dem, windows, geoms, plan, rules, pr, base = prepare(*paths, args.tile_cells)
-        print(f"DEM {args.size}x{args.size} cells, {len(base)} parcels, {len(windows)} windows, "
-              f"{args.workers} workers, {os.cpu_count()} CPUs; RMSE {args.rmse} m, L {args.corr_length} m")
-        print(f"inputs + baseline audit pass: {time.perf_counter() - t0:.1f} s; "
-              f"baseline conflicts {int((base['verdict'] == 'conflict').sum())}")
-        print(f"{'N':>6} {'seconds':>9} {'s/realization':>14} {'cpu_s':>8} {'cpu_s/real.':>12} {'robust_conflict':>16} "
-              f"{'uncertain':>10} {'robust_clear':>13}")
+        print(
+            f"DEM {args.size}x{args.size} cells, {len(base)} parcels, {len(windows)} windows, "
+            f"{args.workers} workers, {os.cpu_count()} CPUs; RMSE {args.rmse} m, L {args.corr_length} m"
+        )
+        print(
+            f"inputs + baseline audit pass: {time.perf_counter() - t0:.1f} s; "
+            f"baseline conflicts {int((base['verdict'] == 'conflict').sum())}"
+        )
+        print(
+            f"{'N':>6} {'seconds':>9} {'s/realization':>14} {'cpu_s':>8} {'cpu_s/real.':>12} {'robust_conflict':>16} "
+            f"{'uncertain':>10} {'robust_clear':>13}"
+        )
         for n in args.realizations:
-            conf = confidence_settings(rules, dem.grid, rmse_m=args.rmse, corr_length_m=args.corr_length,
-                                       realizations=n, seed=args.seed)
+            conf = confidence_settings(
+                rules, dem.grid, rmse_m=args.rmse, corr_length_m=args.corr_length, realizations=n, seed=args.seed
+            )
             t, c0 = time.perf_counter(), cpu_seconds()
-            _parcels, _, summary = run_confidence(dem, windows, geoms, plan, rules, pr, rules.slope_method, base, conf,
-                                                 workers=args.workers)
+            _parcels, _, summary = run_confidence(
+                dem, windows, geoms, plan, rules, pr, rules.slope_method, base, conf, workers=args.workers
+            )
             dt, cpu = time.perf_counter() - t, cpu_seconds() - c0
             c = summary["label_counts"]
-            print(f"{n:>6} {dt:>9.1f} {dt / n:>14.3f} {cpu:>8.1f} {cpu / n:>12.3f} {c['robust_conflict']:>16} "
-                  f"{c['uncertain']:>10} {c['robust_clear']:>13}", flush=True)
-        print(f"load average after the runs: {', '.join(f'{x:.1f}' for x in os.getloadavg())} "
-              "(wall times on a shared machine grow with other processes' load; CPU seconds do not)")
+            print(
+                f"{n:>6} {dt:>9.1f} {dt / n:>14.3f} {cpu:>8.1f} {cpu / n:>12.3f} {c['robust_conflict']:>16} "
+                f"{c['uncertain']:>10} {c['robust_clear']:>13}",
+                flush=True,
+            )
+        print(
+            f"load average after the runs: {', '.join(f'{x:.1f}' for x in os.getloadavg())} "
+            "(wall times on a shared machine grow with other processes' load; CPU seconds do not)"
+        )
 
 
 if __name__ == "__main__":

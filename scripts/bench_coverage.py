@@ -28,8 +28,8 @@ import numpy as np
 import shapely
 from affine import Affine
 
-from landcheck.overlay.coverage import coverage_triplets, prepare_polygons
 from landcheck.geo.grid import Window, iter_windows
+from landcheck.overlay.coverage import coverage_triplets, prepare_polygons
 
 CELL_M = 10.0
 ORIGIN_X_M = 500_000.0
@@ -99,8 +99,10 @@ def main() -> None:
     for n in args.counts:
         geoms, side = random_parcels(n, seed=n)
         transform = Affine(CELL_M, 0, ORIGIN_X_M, 0, -CELL_M, ORIGIN_Y_M)
-        print(f"\n{n} parcels, 0.1-13 ha, on {side} x {side} cells of {CELL_M:g} m "
-              f"({side * side / 1e6:.1f} M cells), windows {args.window} x {args.window}")
+        print(
+            f"\n{n} parcels, 0.1-13 ha, on {side} x {side} cells of {CELL_M:g} m "
+            f"({side * side / 1e6:.1f} M cells), windows {args.window} x {args.window}"
+        )
 
         t0 = time.perf_counter()
         prepared = prepare_polygons(geoms)
@@ -120,10 +122,14 @@ def main() -> None:
             t_pool = min(t_pool, time.perf_counter() - t0)
 
         print(f"  prepare_polygons          {t_prep:8.3f} s  {n / t_prep:12,.0f} features/s")
-        print(f"  coverage, 1 thread        {t_one:8.3f} s  {n / t_one:12,.0f} features/s "
-              f"{n_trip / t_one:14,.0f} cells/s   ({n_trip:,} covered cells)")
-        print(f"  coverage, {args.threads} threads       {t_pool:8.3f} s  {n / t_pool:12,.0f} features/s "
-              f"{n_trip / t_pool:14,.0f} cells/s")
+        print(
+            f"  coverage, 1 thread        {t_one:8.3f} s  {n / t_one:12,.0f} features/s "
+            f"{n_trip / t_one:14,.0f} cells/s   ({n_trip:,} covered cells)"
+        )
+        print(
+            f"  coverage, {args.threads} threads       {t_pool:8.3f} s  {n / t_pool:12,.0f} features/s "
+            f"{n_trip / t_pool:14,.0f} cells/s"
+        )
         t_total = t_prep + t_one
         print(f"  prepare + 1 thread        {t_total:8.3f} s  {n / t_total:12,.0f} features/s")
 
@@ -135,19 +141,28 @@ def main() -> None:
         from exactextract.raster import NumPyRasterSource
 
         gdf = gpd.GeoDataFrame(geometry=geoms, crs=CRS)
-        src = NumPyRasterSource(np.zeros((side, side), dtype=np.float32), ORIGIN_X_M,
-                                ORIGIN_Y_M - side * CELL_M, ORIGIN_X_M + side * CELL_M, ORIGIN_Y_M,
-                                srs_wkt=pyproj.CRS(CRS).to_wkt())
+        src = NumPyRasterSource(
+            np.zeros((side, side), dtype=np.float32),
+            ORIGIN_X_M,
+            ORIGIN_Y_M - side * CELL_M,
+            ORIGIN_X_M + side * CELL_M,
+            ORIGIN_Y_M,
+            srs_wkt=pyproj.CRS(CRS).to_wkt(),
+        )
         t0 = time.perf_counter()
         ee = exactextract.exact_extract(src, gdf, ["cell_id", "coverage"], output="pandas")
         t_ee = time.perf_counter() - t0
         ee_cells = sum(len(c) for c in ee["coverage"])
-        print(f"  exactextract              {t_ee:8.3f} s  {n / t_ee:12,.0f} features/s "
-              f"{ee_cells / t_ee:14,.0f} cells/s   ({ee_cells:,} covered cells)")
+        print(
+            f"  exactextract              {t_ee:8.3f} s  {n / t_ee:12,.0f} features/s "
+            f"{ee_cells / t_ee:14,.0f} cells/s   ({ee_cells:,} covered cells)"
+        )
         ours = per_feature_cells(res, n)
         theirs = np.array([float(np.sum(c)) for c in ee["coverage"]])
-        print(f"  max |per-parcel covered cells difference| = {np.max(np.abs(ours - theirs)):.2e} cells "
-              f"(exactextract stores fractions as float32)")
+        print(
+            f"  max |per-parcel covered cells difference| = {np.max(np.abs(ours - theirs)):.2e} cells "
+            f"(exactextract stores fractions as float32)"
+        )
         print(f"  speed-up (1 thread vs exactextract): {t_ee / t_one:.1f}x")
 
 

@@ -79,17 +79,32 @@ def make_dem(path: Path, n: int, seed: int = 1) -> Path:
         return path
     rng = np.random.default_rng(seed)
     ph = rng.uniform(0, 2 * np.pi, 6)
-    prof = dict(driver="GTiff", width=n, height=n, count=1, dtype="float32", crs=CRS,
-                transform=from_origin(ORIGIN[0], ORIGIN[1], CELL_M, CELL_M), nodata=-9999.0, tiled=True,
-                blockxsize=512, blockysize=512, BIGTIFF="IF_SAFER")
+    prof = dict(
+        driver="GTiff",
+        width=n,
+        height=n,
+        count=1,
+        dtype="float32",
+        crs=CRS,
+        transform=from_origin(ORIGIN[0], ORIGIN[1], CELL_M, CELL_M),
+        nodata=-9999.0,
+        tiled=True,
+        blockxsize=512,
+        blockysize=512,
+        BIGTIFF="IF_SAFER",
+    )
     tmp = path.with_suffix(".part.tif")
     step = 512 if n <= 10000 else 128
     with rasterio.Env(GDAL_CACHEMAX=256 * 2**20), rasterio.open(tmp, "w", **prof) as ds:
         x = np.arange(n)[None, :] * CELL_M
         for r0 in range(0, n, step):
             y = np.arange(r0, min(n, r0 + step))[:, None] * CELL_M
-            z = (250 + 180 * np.sin(x / 2900 + ph[0]) * np.cos(y / 3700 + ph[1])
-                 + 40 * np.sin(x / 370 + y / 530 + ph[2]) + 8 * np.sin(x / 61 + ph[3]) * np.cos(y / 47 + ph[4]))
+            z = (
+                250
+                + 180 * np.sin(x / 2900 + ph[0]) * np.cos(y / 3700 + ph[1])
+                + 40 * np.sin(x / 370 + y / 530 + ph[2])
+                + 8 * np.sin(x / 61 + ph[3]) * np.cos(y / 47 + ph[4])
+            )
             ds.write(z.astype("float32"), 1, window=rasterio.windows.Window(0, r0, n, z.shape[0]))
     os.replace(tmp, path)
     return path
@@ -155,9 +170,12 @@ with rasterio.open(tmp) as r:
 res.to_csv(out_csv)
 """
 
+
 def _fmt_table(rows: list[dict]) -> str:
-    hdr = (f"{'test':6} {'size':>6} {'parcels':>8} {'lc s':>7} {'lc cpu':>7} {'ref s':>7} {'ratio':>6} "
-           f"{'lc Mcell/s':>10} {'ref Mcell/s':>11} {'lc parcel/s':>11} {'lc MiB':>7} {'ref MiB':>7} {'read s':>6}")
+    hdr = (
+        f"{'test':6} {'size':>6} {'parcels':>8} {'lc s':>7} {'lc cpu':>7} {'ref s':>7} {'ratio':>6} "
+        f"{'lc Mcell/s':>10} {'ref Mcell/s':>11} {'lc parcel/s':>11} {'lc MiB':>7} {'ref MiB':>7} {'read s':>6}"
+    )
     lines = [hdr]
     for r in rows:
         ref = r.get("ref_s")
@@ -166,7 +184,8 @@ def _fmt_table(rows: list[dict]) -> str:
             f"{(ref if ref else float('nan')):>7.2f} {(r['lc_s'] / ref if ref else float('nan')):>6.2f} "
             f"{r['lc_mcells_s']:>10.1f} {(r.get('ref_mcells_s') or float('nan')):>11.1f} "
             f"{(r.get('lc_parcels_s') or float('nan')):>11.0f} {r['lc_peak_mib']:>7.0f} "
-            f"{(r.get('ref_peak_mib') or float('nan')):>7.0f} {(r.get('read_floor_s') or float('nan')):>6.2f}")
+            f"{(r.get('ref_peak_mib') or float('nan')):>7.0f} {(r.get('read_floor_s') or float('nan')):>6.2f}"
+        )
     return "\n".join(lines)
 
 
@@ -176,18 +195,29 @@ def main(argv=None) -> int:
     ap.add_argument("--parcels", type=int, nargs="*", default=[], help="parcel counts for the audit comparison")
     ap.add_argument("--cache", type=Path, default=Path(".bench_cache"), help="folder for generated inputs")
     ap.add_argument("--repeat", type=int, default=1, help="repeat each timing, keep the fastest")
-    ap.add_argument("--rasters", choices=["cog", "gtiff", "none"], default="gtiff",
-                    help="landcheck's raster output (slope: cog or gtiff)")
+    ap.add_argument(
+        "--rasters",
+        choices=["cog", "gtiff", "none"],
+        default="gtiff",
+        help="landcheck's raster output (slope: cog or gtiff)",
+    )
     ap.add_argument("--no-reference", action="store_true", help="time landcheck only (no gdaldem / by-hand runs)")
-    ap.add_argument("--memory-run", type=int, default=None, metavar="N",
-                    help="also run the audit on a generated N x N DEM for its peak memory (e.g. 30000)")
+    ap.add_argument(
+        "--memory-run",
+        type=int,
+        default=None,
+        metavar="N",
+        help="also run the audit on a generated N x N DEM for its peak memory (e.g. 30000)",
+    )
     ap.add_argument("--memory-parcels", type=int, default=100_000)
     ap.add_argument("--keep-memory-dem", action="store_true")
     ap.add_argument("--json", type=Path, default=None, help="also write the rows as JSON here")
     args = ap.parse_args(argv)
     if not args.no_reference and shutil.which("gdaldem") is None:
-        print("gdaldem not found: install Debian's gdal-bin for the reference timings (or --no-reference)",
-              file=sys.stderr)
+        print(
+            "gdaldem not found: install Debian's gdal-bin for the reference timings (or --no-reference)",
+            file=sys.stderr,
+        )
         return 2
     args.cache.mkdir(parents=True, exist_ok=True)
     work = Path(tempfile.mkdtemp(prefix="lc-bench-", dir=args.cache))
@@ -220,24 +250,56 @@ def main(argv=None) -> int:
                 read = best([sys.executable, "-c", "import rasterio,sys; rasterio.open(sys.argv[1]).read(1)", str(dem)])
                 gd = best(["gdaldem", "slope", "-p", "-q", str(dem), str(work / "out_gd.tif")])
             lc = best([*lc_cmd, "slope", "--raster-format", slope_fmt, str(dem), str(work / "out_lc.tif")])
-            rows.append(dict(test="slope", size=n, parcels=0, lc_s=lc["wall_s"], lc_cpu_s=lc["cpu_s"],
-                             lc_mcells_s=cells / lc["wall_s"] / 1e6, lc_peak_mib=lc["peak_mib"],
-                             ref_s=gd and gd["wall_s"], ref_cpu_s=gd and gd["cpu_s"],
-                             ref_mcells_s=gd and cells / gd["wall_s"] / 1e6, ref_peak_mib=gd and gd["peak_mib"],
-                             read_floor_s=read and read["wall_s"]))
+            rows.append(
+                dict(
+                    test="slope",
+                    size=n,
+                    parcels=0,
+                    lc_s=lc["wall_s"],
+                    lc_cpu_s=lc["cpu_s"],
+                    lc_mcells_s=cells / lc["wall_s"] / 1e6,
+                    lc_peak_mib=lc["peak_mib"],
+                    ref_s=gd and gd["wall_s"],
+                    ref_cpu_s=gd and gd["cpu_s"],
+                    ref_mcells_s=gd and cells / gd["wall_s"] / 1e6,
+                    ref_peak_mib=gd and gd["peak_mib"],
+                    read_floor_s=read and read["wall_s"],
+                )
+            )
             print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
             for count in args.parcels:
                 parcels = make_parcels(args.cache / f"parcels_{n}_{count}.gpkg", n, count)
                 hand = None
                 if not args.no_reference:
-                    hand = best([sys.executable, str(work / "byhand.py"), str(work / "out_s.tif"), str(parcels),
-                                 str(work / "out_h.csv"), str(work / "out_t.tif"), str(dem)])
+                    hand = best(
+                        [
+                            sys.executable,
+                            str(work / "byhand.py"),
+                            str(work / "out_s.tif"),
+                            str(parcels),
+                            str(work / "out_h.csv"),
+                            str(work / "out_t.tif"),
+                            str(dem),
+                        ]
+                    )
                 lc = best(_audit_cmd(lc_cmd, dem, parcels, rules, work, args.rasters))
-                rows.append(dict(test="audit", size=n, parcels=count, lc_s=lc["wall_s"], lc_cpu_s=lc["cpu_s"],
-                                 lc_mcells_s=cells / lc["wall_s"] / 1e6, lc_parcels_s=count / lc["wall_s"],
-                                 lc_peak_mib=lc["peak_mib"], ref_s=hand and hand["wall_s"],
-                                 ref_cpu_s=hand and hand["cpu_s"], ref_mcells_s=hand and cells / hand["wall_s"] / 1e6,
-                                 ref_peak_mib=hand and hand["peak_mib"], read_floor_s=read and read["wall_s"]))
+                rows.append(
+                    dict(
+                        test="audit",
+                        size=n,
+                        parcels=count,
+                        lc_s=lc["wall_s"],
+                        lc_cpu_s=lc["cpu_s"],
+                        lc_mcells_s=cells / lc["wall_s"] / 1e6,
+                        lc_parcels_s=count / lc["wall_s"],
+                        lc_peak_mib=lc["peak_mib"],
+                        ref_s=hand and hand["wall_s"],
+                        ref_cpu_s=hand and hand["cpu_s"],
+                        ref_mcells_s=hand and cells / hand["wall_s"] / 1e6,
+                        ref_peak_mib=hand and hand["peak_mib"],
+                        read_floor_s=read and read["wall_s"],
+                    )
+                )
                 print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
         if args.memory_run:
             rows += _memory_run(args, work, env, rules, lc_cmd)
@@ -245,20 +307,35 @@ def main(argv=None) -> int:
         shutil.rmtree(work, ignore_errors=True)
     print()
     print(_fmt_table(rows))
-    print(f"ratio = landcheck wall time / reference wall time, both measured in this run. slope: reference "
-          f"`gdaldem slope -p` writing its default GeoTIFF (uncompressed strips); landcheck writes {slope_fmt} "
-          f"({'512-cell tiles, uncompressed' if slope_fmt == 'gtiff' else 'COG, DEFLATE level 1, overviews'}). audit: reference "
-          f"gdaldem + 0/1 threshold raster + exactextract raster-sequential mean per parcel (CSV); landcheck "
-          f"writes rasters={args.rasters}, parcels.gpkg/.csv, classes.csv, summary.json, exact shares, no report. "
-          f"'lc cpu' = user + system CPU seconds; 'read s' = reading the whole DEM once with rasterio.")
+    print(
+        f"ratio = landcheck wall time / reference wall time, both measured in this run. slope: reference "
+        f"`gdaldem slope -p` writing its default GeoTIFF (uncompressed strips); landcheck writes {slope_fmt} "
+        f"({'512-cell tiles, uncompressed' if slope_fmt == 'gtiff' else 'COG, DEFLATE level 1, overviews'}). audit: reference "
+        f"gdaldem + 0/1 threshold raster + exactextract raster-sequential mean per parcel (CSV); landcheck "
+        f"writes rasters={args.rasters}, parcels.gpkg/.csv, classes.csv, summary.json, exact shares, no report. "
+        f"'lc cpu' = user + system CPU seconds; 'read s' = reading the whole DEM once with rasterio."
+    )
     if args.json:
         args.json.write_text(json.dumps(rows, indent=1))
     return 0
 
 
 def _audit_cmd(lc_cmd, dem, parcels, rules, work: Path, rasters: str) -> list[str]:
-    return [*lc_cmd, "audit", "--dem", str(dem), "--parcels", str(parcels), "--rulebook", str(rules),
-            "--out", str(work / "out_audit"), "--rasters", rasters, "--no-report"]
+    return [
+        *lc_cmd,
+        "audit",
+        "--dem",
+        str(dem),
+        "--parcels",
+        str(parcels),
+        "--rulebook",
+        str(rules),
+        "--out",
+        str(work / "out_audit"),
+        "--rasters",
+        rasters,
+        "--no-report",
+    ]
 
 
 def _memory_run(args, work: Path, env, rules: Path, lc_cmd) -> list[dict]:
@@ -266,8 +343,11 @@ def _memory_run(args, work: Path, env, rules: Path, lc_cmd) -> list[dict]:
     need = 4 * n * n * 3.2 + 2**30  # the DEM, gdaldem's and landcheck's slope rasters, the conflict raster, spare
     free = shutil.disk_usage(args.cache).free
     if free < need:
-        print(f"memory run skipped: {n}x{n} needs about {need / 2**30:.1f} GiB free in {args.cache}, "
-              f"{free / 2**30:.1f} GiB available", file=sys.stderr)
+        print(
+            f"memory run skipped: {n}x{n} needs about {need / 2**30:.1f} GiB free in {args.cache}, "
+            f"{free / 2**30:.1f} GiB available",
+            file=sys.stderr,
+        )
         return []
     dem_path = args.cache / f"dem_{n}.tif"
     rows = []
@@ -281,16 +361,36 @@ def _memory_run(args, work: Path, env, rules: Path, lc_cmd) -> list[dict]:
             (work / "out_gd.tif").unlink(missing_ok=True)
         lc = measure([*lc_cmd, "slope", "--raster-format", slope_fmt, str(dem), str(work / "out_lc.tif")], env)
         (work / "out_lc.tif").unlink(missing_ok=True)
-        rows.append(dict(test="slope", size=n, parcels=0, lc_s=lc["wall_s"], lc_cpu_s=lc["cpu_s"],
-                         lc_mcells_s=n * n / lc["wall_s"] / 1e6, lc_peak_mib=lc["peak_mib"],
-                         ref_s=gd and gd["wall_s"], ref_cpu_s=gd and gd["cpu_s"],
-                         ref_mcells_s=gd and n * n / gd["wall_s"] / 1e6, ref_peak_mib=gd and gd["peak_mib"]))
+        rows.append(
+            dict(
+                test="slope",
+                size=n,
+                parcels=0,
+                lc_s=lc["wall_s"],
+                lc_cpu_s=lc["cpu_s"],
+                lc_mcells_s=n * n / lc["wall_s"] / 1e6,
+                lc_peak_mib=lc["peak_mib"],
+                ref_s=gd and gd["wall_s"],
+                ref_cpu_s=gd and gd["cpu_s"],
+                ref_mcells_s=gd and n * n / gd["wall_s"] / 1e6,
+                ref_peak_mib=gd and gd["peak_mib"],
+            )
+        )
         print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
         lc = measure(_audit_cmd(lc_cmd, dem, parcels, rules, work, args.rasters), env)
         shutil.rmtree(work / "out_audit", ignore_errors=True)
-        rows.append(dict(test="memory", size=n, parcels=args.memory_parcels, lc_s=lc["wall_s"],
-                         lc_cpu_s=lc["cpu_s"], lc_mcells_s=n * n / lc["wall_s"] / 1e6,
-                         lc_parcels_s=args.memory_parcels / lc["wall_s"], lc_peak_mib=lc["peak_mib"]))
+        rows.append(
+            dict(
+                test="memory",
+                size=n,
+                parcels=args.memory_parcels,
+                lc_s=lc["wall_s"],
+                lc_cpu_s=lc["cpu_s"],
+                lc_mcells_s=n * n / lc["wall_s"] / 1e6,
+                lc_parcels_s=args.memory_parcels / lc["wall_s"],
+                lc_peak_mib=lc["peak_mib"],
+            )
+        )
         print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
     finally:
         if not args.keep_memory_dem:

@@ -132,11 +132,7 @@ def coast_v(u: np.ndarray) -> np.ndarray:
 def hill_foot_v(u: np.ndarray) -> np.ndarray:
     """Northing where the hills start to rise out of the plain."""
     u = np.asarray(u, dtype=np.float64)
-    return (
-        5300.0
-        + 350.0 * np.sin(2 * np.pi * u / 6500.0 + 0.7)
-        - 1300.0 * np.exp(-(((u - 8900.0) / 800.0) ** 2))
-    )
+    return 5300.0 + 350.0 * np.sin(2 * np.pi * u / 6500.0 + 0.7) - 1300.0 * np.exp(-(((u - 8900.0) / 800.0) ** 2))
 
 
 def _smoothstep(x: np.ndarray, lo: float, hi: float) -> np.ndarray:
@@ -322,9 +318,9 @@ def make_terrain(seed: int, size: int) -> Terrain:
     cols = np.clip((line[:, 0] / cell).astype(int), 0, size - 1)
     # lowest ground within 250 m of each vertex, so the river never sits above its surroundings
     reach = max(int(250.0 / cell), 1)
-    base_on_line = np.array([
-        z[max(r - reach, 0): r + reach + 1, max(c - reach, 0): c + reach + 1].min() for r, c in zip(rows, cols)
-    ])
+    base_on_line = np.array(
+        [z[max(r - reach, 0) : r + reach + 1, max(c - reach, 0) : c + reach + 1].min() for r, c in zip(rows, cols)]
+    )
     e_line = line[:, 1] - hill_foot_v(line[:, 0])
     hill_line = _smoothstep(e_line, -500.0, 2500.0)
     floor_design = 0.6 + 0.0011 * from_mouth + 120.0 * hill_line**1.6
@@ -596,8 +592,15 @@ def make_parcels(terrain: Terrain, layers: Layers, seed: int) -> list[Parcel]:
     inner = box(20.0, 20.0, EXTENT_M - 20.0, EXTENT_M - 20.0)
     u_line = np.arange(0.0, EXTENT_M + 1e-9, 50.0)
     hill_line = np.column_stack([u_line, hill_foot_v(u_line) + 200.0])
-    below_hills = Polygon([(-500.0, -500.0), (EXTENT_M + 500.0, -500.0), (EXTENT_M + 500.0, hill_line[-1, 1]),
-                           *hill_line[::-1].tolist(), (-500.0, hill_line[0, 1])])
+    below_hills = Polygon(
+        [
+            (-500.0, -500.0),
+            (EXTENT_M + 500.0, -500.0),
+            (EXTENT_M + 500.0, hill_line[-1, 1]),
+            *hill_line[::-1].tolist(),
+            (-500.0, hill_line[0, 1]),
+        ]
+    )
     above_hills = inner.difference(below_hills)
 
     corridors: dict = {}
@@ -605,10 +608,12 @@ def make_parcels(terrain: Terrain, layers: Layers, seed: int) -> list[Parcel]:
     def corridor(buffer_from_bank_m: float):
         """River strip reaching ``buffer_from_bank_m`` beyond either bank."""
         if buffer_from_bank_m not in corridors:
-            corridors[buffer_from_bank_m] = unary_union([
-                upper.buffer(WIDTH_UPPER_M / 2 + buffer_from_bank_m),
-                lower.buffer(WIDTH_LOWER_M / 2 + buffer_from_bank_m),
-            ])
+            corridors[buffer_from_bank_m] = unary_union(
+                [
+                    upper.buffer(WIDTH_UPPER_M / 2 + buffer_from_bank_m),
+                    lower.buffer(WIDTH_LOWER_M / 2 + buffer_from_bank_m),
+                ]
+            )
             shapely.prepare(corridors[buffer_from_bank_m])
         return corridors[buffer_from_bank_m]
 
@@ -665,8 +670,12 @@ def make_parcels(terrain: Terrain, layers: Layers, seed: int) -> list[Parcel]:
 
     def window_sum(a):
         ii = np.pad(np.cumsum(np.cumsum(a.astype(np.int64), axis=0), axis=1), ((1, 0), (1, 0)))
-        return lambda r, c: ii[r + half + 1, c + half + 1] - ii[r - half, c + half + 1] \
-            - ii[r + half + 1, c - half] + ii[r - half, c - half]
+        return lambda r, c: (
+            ii[r + half + 1, c + half + 1]
+            - ii[r - half, c + half + 1]
+            - ii[r + half + 1, c - half]
+            + ii[r - half, c - half]
+        )
 
     s_valid, s18, s30 = window_sum(valid), window_sum(steep18), window_sum(steep30)
     cu_grid, cv_grid = np.meshgrid(np.arange(700.0, 9300.0, 100.0), np.arange(5200.0, 8500.0, 100.0))
@@ -725,7 +734,7 @@ def make_parcels(terrain: Terrain, layers: Layers, seed: int) -> list[Parcel]:
             by = bj * (block_h + street_w)
             bcx = town_c[0] + bx * math.cos(theta) - by * math.sin(theta)
             bcy = town_c[1] + bx * math.sin(theta) + by * math.cos(theta)
-            blk = _rect(bcx, bcy, block_w, block_h, -7.0)
+            _rect(bcx, bcy, block_w, block_h, -7.0)
             if not town_zone.contains(Point(bcx, bcy)):
                 continue
             r = math.hypot(bcx - town_c[0], bcy - town_c[1])
@@ -749,7 +758,7 @@ def make_parcels(terrain: Terrain, layers: Layers, seed: int) -> list[Parcel]:
     near_shore = [k for k in near_shore if town[k][0].area > 0.9 * widest]
     shore_pick = set(near_shore[:: max(len(near_shore) // 3, 1)][:3])
     near_river = [k for k, (g, _) in enumerate(town) if g.intersects(river) and k not in shore_pick]
-    river_pick = set(near_river[1:: max(len(near_river) // 3, 1)][:3])
+    river_pick = set(near_river[1 :: max(len(near_river) // 3, 1)][:3])
     flood_pool = []
     cands = []
     for k, (g, r) in enumerate(town):
@@ -810,8 +819,9 @@ def make_parcels(terrain: Terrain, layers: Layers, seed: int) -> list[Parcel]:
     bv = float(coast_v(np.array([2000.0]))[0]) + 720.0
     for i in range(3):
         for j in range(2):
-            hamlet.append(Parcel(_rect(2000.0 + (i - 1) * 85.0, bv + (j - 0.5) * 65.0, 75.0, 55.0, 0.0),
-                                 "RES-1", {"basin"}))
+            hamlet.append(
+                Parcel(_rect(2000.0 + (i - 1) * 85.0, bv + (j - 0.5) * 65.0, 75.0, 55.0, 0.0), "RES-1", {"basin"})
+            )
     commit(hamlet, exclusion=box(1850.0, bv - 80.0, 2150.0, bv + 80.0))
 
     # 8. farm fields on the plain west and east of the town
@@ -864,7 +874,7 @@ def make_parcels(terrain: Terrain, layers: Layers, seed: int) -> list[Parcel]:
             geom = _largest_part(geom)
         cands.append((geom, "AGR", tags))
     # a mill yard and a depot next to the town's east side
-    for i, (geom, zoning, tags) in enumerate(cands):
+    for i, (geom, _zoning, tags) in enumerate(cands):
         c = geom.centroid
         if 6150.0 < c.x < 6900.0 and c.distance(shore) < 900.0 and not tags:
             cands[i] = (geom, "IND", tags)
@@ -922,8 +932,11 @@ def make_parcels(terrain: Terrain, layers: Layers, seed: int) -> list[Parcel]:
     commit(_place(cands, occupied, 0.3))
 
     # 10. two lots held by one owner across a street become one multipolygon parcel
-    singles = [i for i, p in enumerate(parcels) if p.zoning == "RES-1" and isinstance(p.geom, Polygon)
-               and not p.tags and len(p.geom.exterior.coords) == 5]
+    singles = [
+        i
+        for i, p in enumerate(parcels)
+        if p.zoning == "RES-1" and isinstance(p.geom, Polygon) and not p.tags and len(p.geom.exterior.coords) == 5
+    ]
     merged = False
     for a in singles:
         for b in singles:
@@ -938,8 +951,11 @@ def make_parcels(terrain: Terrain, layers: Layers, seed: int) -> list[Parcel]:
             break
 
     # 11. self-intersecting ("bowtie") rings: corners in the order a, b, d, c
-    rect_idx = [i for i, p in enumerate(parcels) if isinstance(p.geom, Polygon) and not p.tags
-                and len(p.geom.exterior.coords) == 5 and not p.geom.interiors]
+    rect_idx = [
+        i
+        for i, p in enumerate(parcels)
+        if isinstance(p.geom, Polygon) and not p.tags and len(p.geom.exterior.coords) == 5 and not p.geom.interiors
+    ]
     for zoning in ("RES-1", "AGR"):
         pick = next(i for i in rect_idx if parcels[i].zoning == zoning)
         a, b, c, d = list(parcels[pick].geom.exterior.coords)[:4]
@@ -951,7 +967,7 @@ def make_parcels(terrain: Terrain, layers: Layers, seed: int) -> list[Parcel]:
 # rulebook (written verbatim to rulebook.toml)
 # --------------------------------------------------------------------------
 
-RULEBOOK_TOML = '''\
+RULEBOOK_TOML = """\
 # Alderwane demo rulebook
 # =======================
 #
@@ -1139,7 +1155,7 @@ rmse_m = 1.0
 corr_length_m = 40.0
 realizations = 50
 seed = 7
-'''
+"""
 
 
 def _load_rulebook() -> dict:
@@ -1169,8 +1185,9 @@ def summarise(terrain: Terrain, layers: Layers, parcels: list[Parcel]) -> dict:
     elev = np.where(terrain.void, np.nan, terrain.elev_m.astype(np.float64))
     slope = horn_slope_pct(elev, cell)
     geoms = [shapely.make_valid(p.geom) for p in parcels]
-    ids = features.rasterize([(g, k + 1) for k, g in enumerate(geoms)], out_shape=elev.shape, transform=tr,
-                             dtype=np.int32)
+    ids = features.rasterize(
+        [(g, k + 1) for k, g in enumerate(geoms)], out_shape=elev.shape, transform=tr, dtype=np.int32
+    )
     sea = terrain.elev_m < 0
     with np.errstate(invalid="ignore"):
         low = (elev <= 1.0) & ~terrain.void
@@ -1198,9 +1215,14 @@ def summarise(terrain: Terrain, layers: Layers, parcels: list[Parcel]) -> dict:
             if zname == "shore_easement":
                 strips[zname, width_m] = layers.shoreline.buffer(width_m)
             else:
-                strips[zname, width_m] = unary_union([layers.river_upper.buffer(WIDTH_UPPER_M / 2 + width_m),
-                                                      layers.river_lower.buffer(WIDTH_LOWER_M / 2 + width_m)])
+                strips[zname, width_m] = unary_union(
+                    [
+                        layers.river_upper.buffer(WIDTH_UPPER_M / 2 + width_m),
+                        layers.river_lower.buffer(WIDTH_LOWER_M / 2 + width_m),
+                    ]
+                )
         return strips[zname, width_m]
+
     per_class_conflict = {}
     enclosed_only = 0
     partly_outside = 0
@@ -1347,8 +1369,11 @@ def write_outputs(out: Path, terrain: Terrain, layers: Layers, parcels: list[Par
     _write_gpkg(shore, out / "shoreline.gpkg", "shoreline")
 
     rivers = gpd.GeoDataFrame(
-        {"name": ["Tamsel River", "Tamsel River"], "reach": ["upper", "lower"],
-         "width_m": [WIDTH_UPPER_M, WIDTH_LOWER_M]},
+        {
+            "name": ["Tamsel River", "Tamsel River"],
+            "reach": ["upper", "lower"],
+            "width_m": [WIDTH_UPPER_M, WIDTH_LOWER_M],
+        },
         geometry=[_to_world(layers.river_upper), _to_world(layers.river_lower)],
         crs=CRS,
     )
@@ -1379,10 +1404,15 @@ def main(argv: list[str] | None = None) -> int:
     )
     parser.add_argument("--seed", type=int, default=7, help="random seed (default: 7)")
     parser.add_argument("--out", type=Path, default=Path("demo_area"), help="output folder (default: demo_area)")
-    parser.add_argument("--size", type=int, default=1000,
-                        help="DEM cells per side over the fixed 10 km square (default: 1000 = 10 m cells)")
-    parser.add_argument("--summary", action="store_true",
-                        help="also print an approximate count of the planted conflicts as JSON")
+    parser.add_argument(
+        "--size",
+        type=int,
+        default=1000,
+        help="DEM cells per side over the fixed 10 km square (default: 1000 = 10 m cells)",
+    )
+    parser.add_argument(
+        "--summary", action="store_true", help="also print an approximate count of the planted conflicts as JSON"
+    )
     args = parser.parse_args(argv)
     if args.size < 100:
         parser.error("--size must be at least 100 cells")

@@ -34,8 +34,18 @@ def write_raster(path, array, *, transform=None, crs="EPSG:32651", nodata=-9999.
     """Write a single-band GeoTIFF for a test and return its path."""
     array = np.asarray(array)
     transform = transform if transform is not None else from_origin(400000.0, 1600000.0, 10.0, 10.0)
-    with rasterio.open(path, "w", driver="GTiff", width=array.shape[1], height=array.shape[0], count=1,
-                       dtype=dtype or array.dtype, crs=crs, transform=transform, nodata=nodata) as ds:
+    with rasterio.open(
+        path,
+        "w",
+        driver="GTiff",
+        width=array.shape[1],
+        height=array.shape[0],
+        count=1,
+        dtype=dtype or array.dtype,
+        crs=crs,
+        transform=transform,
+        nodata=nodata,
+    ) as ds:
         ds.write(array, 1)
     return path
 
@@ -77,7 +87,9 @@ development = false
 
 
 def write_rules(path, *, limit=18.0, tol=5.0, min_breach=0.0, band=0.0, text=None):
-    path.write_text(text if text is not None else RULES_SIMPLE.format(limit=limit, tol=tol, min_breach=min_breach, band=band))
+    path.write_text(
+        text if text is not None else RULES_SIMPLE.format(limit=limit, tol=tol, min_breach=min_breach, band=band)
+    )
     return path
 
 

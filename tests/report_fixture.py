@@ -109,8 +109,16 @@ def _slope_pct(dem: np.ndarray) -> np.ndarray:
 
 
 def _write_tif(path: Path, arr: np.ndarray, nodata, cog: bool) -> None:
-    profile = dict(driver="GTiff", height=arr.shape[0], width=arr.shape[1], count=1, dtype=arr.dtype.name,
-                   crs=f"EPSG:{FIXTURE_EPSG}", transform=_transform(), nodata=nodata)
+    profile = dict(
+        driver="GTiff",
+        height=arr.shape[0],
+        width=arr.shape[1],
+        count=1,
+        dtype=arr.dtype.name,
+        crs=f"EPSG:{FIXTURE_EPSG}",
+        transform=_transform(),
+        nodata=nodata,
+    )
     if not cog:
         with rasterio.open(path, "w", **profile) as ds:
             ds.write(arr, 1)
@@ -127,14 +135,19 @@ def _parcels() -> list[tuple[str, str, Polygon]]:
         return box(X0_M + c0 * CELL_M, Y0_M - r1 * CELL_M, X0_M + c1 * CELL_M, Y0_M - r0 * CELL_M)
 
     return [
-        ("101", "R1", cells(66, 22, 84, 40)),          # on the hill flank: steep
-        ("102", "R1", cells(4, 60, 24, 82)),           # low ground inside the flood-prone zone
-        ("103", "AG", cells(70, 4, 96, 20)),           # upper hill: near the 30 % limit
-        ("104", "R1", cells(40, 62, 58, 84)),          # flat and dry
-        ("105", "CN", cells(26, 10, 42, 34)),          # on the ridge, no slope limit
-        ("106", "X9", cells(90, 60, 106, 80)),         # class value with no rule
-        ("107", "AG", Polygon([(X0_M + 640, Y0_M - 640), (X0_M + 800, Y0_M - 600),
-                               (X0_M + 780, Y0_M - 830), (X0_M + 650, Y0_M - 820)])),
+        ("101", "R1", cells(66, 22, 84, 40)),  # on the hill flank: steep
+        ("102", "R1", cells(4, 60, 24, 82)),  # low ground inside the flood-prone zone
+        ("103", "AG", cells(70, 4, 96, 20)),  # upper hill: near the 30 % limit
+        ("104", "R1", cells(40, 62, 58, 84)),  # flat and dry
+        ("105", "CN", cells(26, 10, 42, 34)),  # on the ridge, no slope limit
+        ("106", "X9", cells(90, 60, 106, 80)),  # class value with no rule
+        (
+            "107",
+            "AG",
+            Polygon(
+                [(X0_M + 640, Y0_M - 640), (X0_M + 800, Y0_M - 600), (X0_M + 780, Y0_M - 830), (X0_M + 650, Y0_M - 820)]
+            ),
+        ),
     ]
 
 
@@ -171,8 +184,9 @@ def build_audit_folder(root: Path, *, with_zones: bool = True) -> AuditFixture:
     rulebook_path = inputs / "rules.toml"
     rulebook_path.write_text(RULEBOOK_TEXT, encoding="utf-8")
 
-    flood = Polygon([(X0_M, Y0_M - 560), (X0_M + 200, Y0_M - 560), (X0_M + 260, Y0_M - ROWS * CELL_M),
-                     (X0_M, Y0_M - ROWS * CELL_M)])
+    flood = Polygon(
+        [(X0_M, Y0_M - 560), (X0_M + 200, Y0_M - 560), (X0_M + 260, Y0_M - ROWS * CELL_M), (X0_M, Y0_M - ROWS * CELL_M)]
+    )
     river = LineString([(X0_M + 5, Y0_M - 420), (X0_M + 120, Y0_M - 610), (X0_M + 150, Y0_M - ROWS * CELL_M + 5)])
     zone_input_path = inputs / "corrin_bay_flood_prone.gpkg"
     gpd.GeoDataFrame({"name": ["flood_prone"]}, geometry=[flood], crs=crs).to_file(zone_input_path, layer="zones")
@@ -180,8 +194,11 @@ def build_audit_folder(root: Path, *, with_zones: bool = True) -> AuditFixture:
 
     parcels = _parcels()
     parcels_input_path = inputs / "alderwane_parcels.gpkg"
-    gpd.GeoDataFrame({"lot_no": [p[0] for p in parcels], "zone_code": [p[1] for p in parcels]},
-                     geometry=[p[2] for p in parcels], crs=crs).to_file(parcels_input_path, layer="parcels")
+    gpd.GeoDataFrame(
+        {"lot_no": [p[0] for p in parcels], "zone_code": [p[1] for p in parcels]},
+        geometry=[p[2] for p in parcels],
+        crs=crs,
+    ).to_file(parcels_input_path, layer="parcels")
 
     conflict = np.full((ROWS, COLS), 255, dtype=np.uint8)
     rows_out = []
@@ -222,15 +239,30 @@ def build_audit_folder(root: Path, *, with_zones: bool = True) -> AuditFixture:
         else:
             verdict = "consistent"
         area_m2 = float(geom.area)
-        rows_out.append({
-            "parcel_id": pid, "class_value": value, "class_name": cname, "area_m2": area_m2,
-            "covered_m2": area_m2, "evaluated_m2": evaluated_m2, "evaluated_share": evaluated_m2 / area_m2,
-            "slope_mean_pct": float(np.mean(s[valid])), "slope_max_pct": float(np.max(s[valid])),
-            "max_slope_pct": limit if limit is not None else "", "over_limit_m2": over_m2,
-            "over_limit_share": over_m2 / evaluated_m2, "near_limit_m2": near_m2, "conflict_m2": conflict_m2,
-            "conflict_share": share, "zone_flood_prone_m2": zone_m2, "zone_flood_prone_share": zone_m2 / area_m2,
-            "verdict": verdict, "reasons": " | ".join(reasons), "geometry_note": "",
-        })
+        rows_out.append(
+            {
+                "parcel_id": pid,
+                "class_value": value,
+                "class_name": cname,
+                "area_m2": area_m2,
+                "covered_m2": area_m2,
+                "evaluated_m2": evaluated_m2,
+                "evaluated_share": evaluated_m2 / area_m2,
+                "slope_mean_pct": float(np.mean(s[valid])),
+                "slope_max_pct": float(np.max(s[valid])),
+                "max_slope_pct": limit if limit is not None else "",
+                "over_limit_m2": over_m2,
+                "over_limit_share": over_m2 / evaluated_m2,
+                "near_limit_m2": near_m2,
+                "conflict_m2": conflict_m2,
+                "conflict_share": share,
+                "zone_flood_prone_m2": zone_m2,
+                "zone_flood_prone_share": zone_m2 / area_m2,
+                "verdict": verdict,
+                "reasons": " | ".join(reasons),
+                "geometry_note": "",
+            }
+        )
     _write_tif(out / "conflict.tif", conflict, 255, cog=True)
 
     columns = list(rows_out[0])
@@ -238,8 +270,7 @@ def build_audit_folder(root: Path, *, with_zones: bool = True) -> AuditFixture:
         w = csv.DictWriter(f, fieldnames=columns)
         w.writeheader()
         w.writerows(rows_out)
-    gdf = gpd.GeoDataFrame([{k: v for k, v in r.items()} for r in rows_out],
-                           geometry=[p[2] for p in parcels], crs=crs)
+    gdf = gpd.GeoDataFrame([{k: v for k, v in r.items()} for r in rows_out], geometry=[p[2] for p in parcels], crs=crs)
     gdf["max_slope_pct"] = [r["max_slope_pct"] if r["max_slope_pct"] != "" else np.nan for r in rows_out]
     gdf.to_file(out / "parcels.gpkg", layer="parcels")
 
@@ -249,16 +280,24 @@ def build_audit_folder(root: Path, *, with_zones: bool = True) -> AuditFixture:
         label, dev, limit, _ = CLASSES.get(cname, ("No rule", False, None, ()))
         ev = sum(r["evaluated_m2"] for r in rs)
         cf = sum(r["conflict_m2"] for r in rs)
-        class_rows.append({
-            "class_name": cname, "label": label, "development": str(dev).lower(), "parcels": len(rs),
-            "area_m2": sum(r["area_m2"] for r in rs), "evaluated_m2": ev, "compliant_m2": ev - cf,
-            "conflict_m2": cf, "conflict_share": cf / ev if ev else "",
-            "over_limit_m2": sum(r["over_limit_m2"] for r in rs),
-            "n_consistent": sum(r["verdict"] == "consistent" for r in rs),
-            "n_conflict": sum(r["verdict"] == "conflict" for r in rs),
-            "n_review": sum(r["verdict"] == "review" for r in rs),
-            "n_no_data": sum(r["verdict"] == "no_data" for r in rs),
-        })
+        class_rows.append(
+            {
+                "class_name": cname,
+                "label": label,
+                "development": str(dev).lower(),
+                "parcels": len(rs),
+                "area_m2": sum(r["area_m2"] for r in rs),
+                "evaluated_m2": ev,
+                "compliant_m2": ev - cf,
+                "conflict_m2": cf,
+                "conflict_share": cf / ev if ev else "",
+                "over_limit_m2": sum(r["over_limit_m2"] for r in rs),
+                "n_consistent": sum(r["verdict"] == "consistent" for r in rs),
+                "n_conflict": sum(r["verdict"] == "conflict" for r in rs),
+                "n_review": sum(r["verdict"] == "review" for r in rs),
+                "n_no_data": sum(r["verdict"] == "no_data" for r in rs),
+            }
+        )
     with open(out / "classes.csv", "w", newline="", encoding="utf-8") as f:
         w = csv.DictWriter(f, fieldnames=list(class_rows[0]))
         w.writeheader()
@@ -282,21 +321,33 @@ def build_audit_folder(root: Path, *, with_zones: bool = True) -> AuditFixture:
     total_ev = sum(r["evaluated_m2"] for r in rows_out if r["class_name"] != "no_rule")
     total_cf = sum(r["conflict_m2"] for r in rows_out)
     summary = {
-        "tool": "landcheck", "version": "0.1.0",
+        "tool": "landcheck",
+        "version": "0.1.0",
         "caution": "Screening aid only - not a survey or legal determination.",
         "totals": {
-            "parcels": len(rows_out), "area_m2": sum(r["area_m2"] for r in rows_out), "evaluated_m2": total_ev,
-            "conflict_m2": total_cf, "conflict_share": total_cf / total_ev,
-            "verdict_counts": {v: verdicts.count(v) for v in ("consistent", "conflict", "review", "no_data", "no_rule")},
+            "parcels": len(rows_out),
+            "area_m2": sum(r["area_m2"] for r in rows_out),
+            "evaluated_m2": total_ev,
+            "conflict_m2": total_cf,
+            "conflict_share": total_cf / total_ev,
+            "verdict_counts": {
+                v: verdicts.count(v) for v in ("consistent", "conflict", "review", "no_data", "no_rule")
+            },
         },
         "capability": {
-            "dem_land_m2": dem_land_m2, "land_within_limit_m2": within_m2,
-            "land_within_limit_share": within_m2 / dem_land_m2, "reference_limit_pct": REFERENCE_LIMIT_PCT,
-            "classified_development_m2": dev_m2, "classified_development_share": dev_m2 / dem_land_m2,
+            "dem_land_m2": dem_land_m2,
+            "land_within_limit_m2": within_m2,
+            "land_within_limit_share": within_m2 / dem_land_m2,
+            "reference_limit_pct": REFERENCE_LIMIT_PCT,
+            "classified_development_m2": dev_m2,
+            "classified_development_share": dev_m2 / dem_land_m2,
         },
         "classes": class_rows,
-        "sensitivity": {"limits_pct": limits, "classes": sens_classes,
-                        "all_development": [float((dev_vals >= lim).mean()) for lim in limits]},
+        "sensitivity": {
+            "limits_pct": limits,
+            "classes": sens_classes,
+            "all_development": [float((dev_vals >= lim).mean()) for lim in limits],
+        },
         "slope_histogram": {"bin_edges_pct": hist_edges, "classes": hist_classes},
         "conflict_raster_bits": ["slope", "flood_prone"],
         "warnings": ["parcel 106: class value 'X9' has no rule in rules.toml; it was not evaluated."],
@@ -308,11 +359,20 @@ def build_audit_folder(root: Path, *, with_zones: bool = True) -> AuditFixture:
                 {"role": "zone", "path": str(zone_input_path), "sha256": _sha256(zone_input_path)},
             ],
             "rulebook": {"path": str(rulebook_path), "sha256": _sha256(rulebook_path), "text": RULEBOOK_TEXT},
-            "parameters": {"slope_method": "horn", "review_band_pct": REVIEW_BAND_PCT,
-                           "reference_limit_pct": REFERENCE_LIMIT_PCT, "tile_size": 512, "z_unit": "m"},
+            "parameters": {
+                "slope_method": "horn",
+                "review_band_pct": REVIEW_BAND_PCT,
+                "reference_limit_pct": REFERENCE_LIMIT_PCT,
+                "tile_size": 512,
+                "z_unit": "m",
+            },
             "crs_wkt": rasterio.crs.CRS.from_epsg(FIXTURE_EPSG).to_wkt(),
-            "software": {"landcheck": "0.1.0", "numpy": np.__version__, "rasterio": rasterio.__version__,
-                         "geopandas": gpd.__version__},
+            "software": {
+                "landcheck": "0.1.0",
+                "numpy": np.__version__,
+                "rasterio": rasterio.__version__,
+                "geopandas": gpd.__version__,
+            },
         },
     }
     (out / "summary.json").write_text(json.dumps(summary, indent=2), encoding="utf-8")
@@ -320,9 +380,11 @@ def build_audit_folder(root: Path, *, with_zones: bool = True) -> AuditFixture:
     if with_zones:
         (out / "zones").mkdir()
         gpd.GeoDataFrame({"name": ["flood_prone"]}, geometry=[flood], crs=crs).to_file(
-            out / "zones" / "flood_prone.gpkg", layer="flood_prone")
+            out / "zones" / "flood_prone.gpkg", layer="flood_prone"
+        )
         gpd.GeoDataFrame({"name": ["Tamsel River"]}, geometry=[river], crs=crs).to_file(
-            out / "zones" / "tamsel_river.gpkg", layer="tamsel_river")
+            out / "zones" / "tamsel_river.gpkg", layer="tamsel_river"
+        )
     return AuditFixture(out, dem_path, parcels_input_path, rulebook_path, zone_input_path)
 
 

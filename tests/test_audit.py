@@ -8,11 +8,10 @@ import numpy as np
 import pandas as pd
 import pytest
 import shapely
+from _support import ramp_dem, write_parcels, write_rules
 from shapely import affinity
 
 from landcheck.core.audit import audit
-
-from _support import ramp_dem, write_parcels, write_rules
 
 X0, Y0 = 400000.0, 1600000.0
 # slope(x) = 0.04 x percent with x the distance east of the DEM's west edge (see ramp_dem): 18 % at x = 450 m,
@@ -53,9 +52,8 @@ def test_exact_shares_match_closed_form(tmp_path):
 
     # How far cell-centre zonal statistics (rasterstats, all_touched=False) land from the truth:
     # recorded here so the gap is visible; on the 0.05 ha parcel it is large.
-    from rasterstats import zonal_stats
-
     import rasterio
+    from rasterstats import zonal_stats
 
     with rasterio.open(res.out_dir / "slope_pct.tif") as ds:
         slope = ds.read(1)
@@ -89,16 +87,17 @@ def test_areas_match_geodesic_area_projected(tmp_path):
 def test_areas_on_geographic_raster(tmp_path):
     # Reference: pyproj.Geod polygon area; cell areas from the ellipsoid band formula (REFERENCES.md 5.2).
     import pyproj
-    from rasterio.transform import from_origin
-
     from _support import write_raster
+    from rasterio.transform import from_origin
 
     d = 1 / 3600
     n = 80
     z = np.tile(np.arange(n) * 2.0, (n, 1))  # ~6.5 % on 1" cells at 45 N east-west
     dem = write_raster(tmp_path / "geo.tif", z, transform=from_origin(10.0, 45.02, d, d), crs="EPSG:4326")
-    geoms = [affinity.rotate(shapely.box(10.005, 45.005, 10.015, 45.012), 20, origin="centroid"),
-             shapely.Polygon([(10.002, 45.001), (10.02, 45.003), (10.01, 45.018)])]
+    geoms = [
+        affinity.rotate(shapely.box(10.005, 45.005, 10.015, 45.012), 20, origin="centroid"),
+        shapely.Polygon([(10.002, 45.001), (10.02, 45.003), (10.01, 45.018)]),
+    ]
     parcels = write_parcels(tmp_path / "p.gpkg", geoms, crs="EPSG:4326", pid=[1, 2], zoning=["R", "R"])
     rules = write_rules(tmp_path / "r.toml")
     res = audit(dem, parcels, rules, tmp_path / "out", make_report=False)
@@ -137,8 +136,12 @@ def test_parcel_order_and_tiles_do_not_change_results(tmp_path):
     a = _run(tmp_path, geoms, ["R", "R", "F", "R"], name="a", tile_cells=1024, workers=1)
     order = [2, 0, 3, 1]
     dem = tmp_path / "dem.tif"
-    parcels = write_parcels(tmp_path / "b.gpkg", [geoms[i] for i in order], pid=np.array(order) + 1,
-                            zoning=[["R", "R", "F", "R"][i] for i in order])
+    parcels = write_parcels(
+        tmp_path / "b.gpkg",
+        [geoms[i] for i in order],
+        pid=np.array(order) + 1,
+        zoning=[["R", "R", "F", "R"][i] for i in order],
+    )
     b = audit(dem, parcels, tmp_path / "a.toml", tmp_path / "b", make_report=False, tile_cells=7, workers=2)
     cols = ["area_m2", "covered_m2", "evaluated_m2", "over_limit_m2", "slope_mean_pct", "conflict_m2"]
     bb = b.parcels.set_index("parcel_id").loc[a.parcels["parcel_id"]]
@@ -149,9 +152,12 @@ def test_parcel_order_and_tiles_do_not_change_results(tmp_path):
 def test_raising_limit_never_adds_conflicts(tmp_path):
     # Invariant (STYLE.md 6.4): a higher slope limit never adds conflicts or over-limit area.
     rng = np.random.default_rng(5)
-    geoms = [affinity.rotate(shapely.box(X0 + x, Y0 - y, X0 + x + w, Y0 - y + 60), a, origin="centroid")
-             for x, y, w, a in zip(rng.uniform(50, 900, 25), rng.uniform(100, 1100, 25), rng.uniform(30, 200, 25),
-                                   rng.uniform(0, 90, 25))]
+    geoms = [
+        affinity.rotate(shapely.box(X0 + x, Y0 - y, X0 + x + w, Y0 - y + 60), a, origin="centroid")
+        for x, y, w, a in zip(
+            rng.uniform(50, 900, 25), rng.uniform(100, 1100, 25), rng.uniform(30, 200, 25), rng.uniform(0, 90, 25)
+        )
+    ]
     prev = None
     for i, limit in enumerate((10.0, 18.0, 25.0, 35.0)):
         r = _run(tmp_path, geoms, ["R"] * 25, name=f"l{i}", rules_kw={"limit": limit})

@@ -9,8 +9,15 @@ import pandas as pd
 import pytest
 import rasterio
 import shapely
+from _support import ramp_dem, write_parcels, write_rules
 
 from landcheck.core.audit import _build_plan, audit
+from landcheck.errors import RuleFileError
+from landcheck.geo.grid import iter_windows
+from landcheck.inputs.dem import open_dem
+from landcheck.inputs.layers import ground_areas, read_parcels
+from landcheck.inputs.rulebook import load_rules
+from landcheck.terrain.slope import SlopeMethod
 from landcheck.verdicts.capability import (
     HAZARD_FLAG,
     NO_VALUE,
@@ -19,16 +26,8 @@ from landcheck.verdicts.capability import (
     run_capability,
     write_capability_legend,
 )
-from landcheck.errors import RuleFileError
 from landcheck.verdicts.evaluate import parcel_rules
-from landcheck.geo.grid import iter_windows
-from landcheck.inputs.dem import open_dem
-from landcheck.inputs.layers import ground_areas, read_parcels
-from landcheck.inputs.rulebook import load_rules
-from landcheck.terrain.slope import SlopeMethod
 from landcheck.zones.prepare import ZoneColumn, ZoneSet
-
-from _support import ramp_dem, write_parcels, write_rules
 
 X0, Y0 = 400000.0, 1600000.0
 H = 10.0
@@ -81,25 +80,48 @@ def _expected_class(slope_pct: np.ndarray) -> np.ndarray:
 def _prepare(tmp_path, geoms, zoning, rules_text=None, *, n=130, zones_fn=None):
     dem_path = ramp_dem(tmp_path / "ramp.tif", n=n)
     parcels_path = write_parcels(tmp_path / "p.gpkg", geoms, pid=np.arange(1, len(geoms) + 1), zoning=zoning)
-    rules_path = write_rules(tmp_path / "rules.toml", text=rules_text) if rules_text else write_rules(tmp_path / "rules.toml")
+    rules_path = (
+        write_rules(tmp_path / "rules.toml", text=rules_text) if rules_text else write_rules(tmp_path / "rules.toml")
+    )
     dem = open_dem(dem_path)
     g = dem.grid
     rules = load_rules(rules_path)
-    frame = read_parcels(parcels_path, class_field=rules.class_field, id_field=rules.id_field,
-                         target_crs_wkt=g.crs_wkt).frame
+    frame = read_parcels(
+        parcels_path, class_field=rules.class_field, id_field=rules.id_field, target_crs_wkt=g.crs_wkt
+    ).frame
     area_m2, factor = ground_areas(frame, g.crs_wkt)
     pr = parcel_rules(rules, frame["class_value"].to_numpy())
     zones = zones_fn(g) if zones_fn else None
     plan = _build_plan(rules, pr.class_name, factor, 1.0, zones)
-    return {"dem": dem, "dem_path": dem_path, "parcels_path": parcels_path, "rules_path": rules_path, "rules": rules,
-            "geoms": np.asarray(frame.geometry.values), "plan": plan, "pr": pr, "zones": zones, "area_m2": area_m2}
+    return {
+        "dem": dem,
+        "dem_path": dem_path,
+        "parcels_path": parcels_path,
+        "rules_path": rules_path,
+        "rules": rules,
+        "geoms": np.asarray(frame.geometry.values),
+        "plan": plan,
+        "pr": pr,
+        "zones": zones,
+        "area_m2": area_m2,
+    }
 
 
 def _run(s, out, tile=1024, spec=None):
     g = s["dem"].grid
     spec = spec or capability_spec(s["rules"], s["zones"])
-    table, totals = run_capability(s["dem"], list(iter_windows(g.height, g.width, tile)), s["geoms"], s["plan"],
-                                   s["rules"], spec, out, method=SlopeMethod.HORN, zones=s["zones"], workers=1)
+    table, totals = run_capability(
+        s["dem"],
+        list(iter_windows(g.height, g.width, tile)),
+        s["geoms"],
+        s["plan"],
+        s["rules"],
+        spec,
+        out,
+        method=SlopeMethod.HORN,
+        zones=s["zones"],
+        workers=1,
+    )
     return table, totals, spec
 
 
@@ -131,8 +153,11 @@ def test_classes_at_known_slopes_on_the_ramp(tmp_path):
     csv, js = write_capability_legend(tmp_path, spec)
     leg = pd.read_csv(csv)
     data = json.loads(js.read_text())
-    assert leg["code"].tolist() == [c["code"] for c in data["codes"]] == [0, 1, 2, 3, 4, 5, 6, 129, 130, 131, 132,
-                                                                           133, 134, SEA]
+    assert (
+        leg["code"].tolist()
+        == [c["code"] for c in data["codes"]]
+        == [0, 1, 2, 3, 4, 5, 6, 129, 130, 131, 132, 133, 134, SEA]
+    )
     assert data["scheme"] == "planning-6" and "18" in data["source"]
 
 
@@ -146,8 +171,14 @@ def test_hazard_flag_from_raster_and_vector_zones(tmp_path):
         cols = [ZoneColumn("wet", "wet", 0, 0), ZoneColumn("flood", "flood", 1, -1, {None: flood})]
         return ZoneSet(g, cols, bits, None, {}, [], {})
 
-    s = _prepare(tmp_path, [shapely.box(X0 + 20, Y0 - 1000, X0 + 1000, Y0 - 20)], ["R"], RULES_WITH_ZONES,
-                 n=110, zones_fn=zones_fn)
+    s = _prepare(
+        tmp_path,
+        [shapely.box(X0 + 20, Y0 - 1000, X0 + 1000, Y0 - 20)],
+        ["R"],
+        RULES_WITH_ZONES,
+        n=110,
+        zones_fn=zones_fn,
+    )
     _table, _, spec = _run(s, tmp_path / "cap.tif")
     with rasterio.open(tmp_path / "cap.tif") as ds:
         codes = ds.read(1)

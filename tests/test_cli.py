@@ -8,11 +8,10 @@ import os
 
 import pytest
 import shapely
+from _support import ramp_dem, write_parcels, write_rules
 from click.testing import CliRunner
 
 from landcheck.cli.main import cli
-
-from _support import ramp_dem, write_parcels, write_rules
 
 X0, Y0 = 400000.0, 1600000.0
 
@@ -21,16 +20,33 @@ X0, Y0 = 400000.0, 1600000.0
 def inputs(tmp_path):
     dem = ramp_dem(tmp_path / "dem.tif")
     rules = write_rules(tmp_path / "r.toml")
-    parcels = write_parcels(tmp_path / "p.gpkg", [shapely.box(X0 + 100, Y0 - 300, X0 + 200, Y0 - 200),
-                                                  shapely.box(X0 + 500, Y0 - 300, X0 + 600, Y0 - 200)],
-                            pid=[1, 2], zoning=["R", "R"])
+    parcels = write_parcels(
+        tmp_path / "p.gpkg",
+        [shapely.box(X0 + 100, Y0 - 300, X0 + 200, Y0 - 200), shapely.box(X0 + 500, Y0 - 300, X0 + 600, Y0 - 200)],
+        pid=[1, 2],
+        zoning=["R", "R"],
+    )
     return dem, parcels, rules
 
 
 def _audit(inputs, out, *extra):
     dem, parcels, rules = inputs
-    return CliRunner().invoke(cli, ["audit", "--dem", str(dem), "--parcels", str(parcels), "--rulebook", str(rules),
-                                    "--out", str(out), "--no-report", *extra])
+    return CliRunner().invoke(
+        cli,
+        [
+            "audit",
+            "--dem",
+            str(dem),
+            "--parcels",
+            str(parcels),
+            "--rulebook",
+            str(rules),
+            "--out",
+            str(out),
+            "--no-report",
+            *extra,
+        ],
+    )
 
 
 def test_help_carries_caution_and_examples():
@@ -124,13 +140,36 @@ def test_show_versions():
 def test_confidence_capability_reclassification_flags(tmp_path, inputs):
     # Common practice (wiring): the extras write their files; out-of-range settings are refused with exit 3.
     rules = inputs[2]
-    rules.write_text(rules.read_text().replace('review_band_pct = 0.0', 'review_band_pct = 0.0\ndesignated_class = "forest"'))
+    rules.write_text(
+        rules.read_text().replace("review_band_pct = 0.0", 'review_band_pct = 0.0\ndesignated_class = "forest"')
+    )
     out = tmp_path / "extras"
-    r = _audit(inputs, out, "--dem-rmse", "0.5", "--corr-length", "30", "--realizations", "10", "--seed", "3",
-               "--capability-map", "8,18,30", "--draft-reclassification", "100", "--json")
+    r = _audit(
+        inputs,
+        out,
+        "--dem-rmse",
+        "0.5",
+        "--corr-length",
+        "30",
+        "--realizations",
+        "10",
+        "--seed",
+        "3",
+        "--capability-map",
+        "8,18,30",
+        "--draft-reclassification",
+        "100",
+        "--json",
+    )
     assert r.exit_code == 0, r.output
-    for name in ("confidence.csv", "confidence_classes.csv", "capability.tif", "capability_by_class.csv",
-                 "reclassification_moves.csv", "reclassification.gpkg"):
+    for name in (
+        "confidence.csv",
+        "confidence_classes.csv",
+        "capability.tif",
+        "capability_by_class.csv",
+        "reclassification_moves.csv",
+        "reclassification.gpkg",
+    ):
         assert (out / name).exists(), name
     import pandas as pd
 

@@ -12,10 +12,19 @@ import math
 import numpy as np
 import pytest
 import shapely
+from _support import ramp_dem, write_parcels, write_raster
 from rasterio.transform import from_origin
 from scipy import stats
 
 from landcheck.core.audit import _build_plan, _WindowJob
+from landcheck.errors import RuleFileError
+from landcheck.geo.grid import iter_windows
+from landcheck.inputs.dem import open_dem
+from landcheck.inputs.layers import ground_areas, read_parcels
+from landcheck.inputs.rulebook import load_rules
+from landcheck.overlay.sums import Totals
+from landcheck.terrain.dem_error import ErrorModel
+from landcheck.terrain.slope import SlopeMethod
 from landcheck.verdicts.confidence import (
     ROBUST_CLEAR_P,
     ROBUST_CONFLICT_P,
@@ -24,17 +33,7 @@ from landcheck.verdicts.confidence import (
     confidence_settings,
     run_confidence,
 )
-from landcheck.errors import RuleFileError
 from landcheck.verdicts.evaluate import evaluate_parcels, parcel_rules
-from landcheck.geo.grid import iter_windows
-from landcheck.inputs.dem import open_dem
-from landcheck.inputs.layers import ground_areas, read_parcels
-from landcheck.overlay.sums import Totals
-from landcheck.inputs.rulebook import load_rules
-from landcheck.terrain.slope import SlopeMethod
-from landcheck.terrain.dem_error import ErrorModel
-
-from _support import ramp_dem, write_parcels, write_raster
 
 X0, Y0 = 400000.0, 1600000.0
 H = 10.0
@@ -50,8 +49,9 @@ def _prepare(tmp_path, dem_path, geoms, zoning, rules_text, *, tile=1024):
     dem = open_dem(dem_path)
     g = dem.grid
     rules = load_rules(rules_path)
-    frame = read_parcels(parcels_path, class_field=rules.class_field, id_field=rules.id_field,
-                         target_crs_wkt=g.crs_wkt).frame
+    frame = read_parcels(
+        parcels_path, class_field=rules.class_field, id_field=rules.id_field, target_crs_wkt=g.crs_wkt
+    ).frame
     geo = np.asarray(frame.geometry.values)
     area_m2, factor = ground_areas(frame, g.crs_wkt)
     pr = parcel_rules(rules, frame["class_value"].to_numpy())
@@ -69,8 +69,18 @@ def _prepare(tmp_path, dem_path, geoms, zoning, rules_text, *, tile=1024):
 def _run(s, model, n, seed, windows=None, workers=1):
     g = s["dem"].grid
     wins = windows if windows is not None else list(iter_windows(g.height, g.width, 1024))
-    return run_confidence(s["dem"], wins, s["geoms"], s["plan"], s["rules"], s["pr"], SlopeMethod.HORN,
-                          s["baseline"], ConfidenceSettings(model, n, seed), workers=workers)
+    return run_confidence(
+        s["dem"],
+        wins,
+        s["geoms"],
+        s["plan"],
+        s["rules"],
+        s["pr"],
+        SlopeMethod.HORN,
+        s["baseline"],
+        ConfidenceSettings(model, n, seed),
+        workers=workers,
+    )
 
 
 def _rules(classes: str) -> str:
@@ -79,14 +89,16 @@ def _rules(classes: str) -> str:
 
 # --------------------------------------------------------------------------- flat DEM: published false gradient
 
+
 def test_flat_dem_realizations_reproduce_horn_false_gradient(tmp_path):
     n_cells, sigma = 122, 1.0
-    dem = write_raster(tmp_path / "flat.tif", np.full((n_cells, n_cells), 12.5),
-                       transform=from_origin(X0, Y0, H, H))
+    dem = write_raster(tmp_path / "flat.tif", np.full((n_cells, n_cells), 12.5), transform=from_origin(X0, Y0, H, H))
     # the parcel covers every cell with a slope (the outer ring has none: strict-window policy)
     inner = shapely.box(X0 + H, Y0 - (n_cells - 1) * H, X0 + (n_cells - 1) * H, Y0 - H)
     limits = (5.0, 8.0)
-    text = _rules("".join(f'[classes.c{i}]\nvalues = ["C{i}"]\nmax_slope_pct = {lim}\n' for i, lim in enumerate(limits)))
+    text = _rules(
+        "".join(f'[classes.c{i}]\nvalues = ["C{i}"]\nmax_slope_pct = {lim}\n' for i, lim in enumerate(limits))
+    )
     s = _prepare(tmp_path, dem, [inner, inner], ["C0", "C1"], text)
     model = ErrorModel(rmse_m=sigma, corr_length_m=0, cell_size_m=H)
     parcels, _, _ = _run(s, model, 10, seed=20240601)
@@ -105,6 +117,7 @@ def test_flat_dem_realizations_reproduce_horn_false_gradient(tmp_path):
 
 
 # --------------------------------------------------------------------------- robust vs. threshold parcels
+
 
 def _ramp_expected_share(x_centres_m, limit_pct, sigma_p_pct):
     """Expected share of cells read at or over the limit on the ramp (slope 0.04 x %, no north component).
@@ -127,8 +140,10 @@ def test_robust_and_threshold_parcels(tmp_path):
     sigma_p_pct = 100.0 * HORN_STD_FACTOR * sigma / H
     expected = _ramp_expected_share(np.arange(355.0, 550.0, 10.0), 18.0, sigma_p_pct)
     # tolerance = the expected share over the limit, so the parcel sits exactly on the verdict threshold
-    text = _rules('[classes.r]\nvalues = ["R"]\nmax_slope_pct = 18\ntolerance_pct = 5\n'
-                  f'[classes.t]\nvalues = ["T"]\nmax_slope_pct = 18\ntolerance_pct = {100.0 * expected!r}\n')
+    text = _rules(
+        '[classes.r]\nvalues = ["R"]\nmax_slope_pct = 18\ntolerance_pct = 5\n'
+        f'[classes.t]\nvalues = ["T"]\nmax_slope_pct = 18\ntolerance_pct = {100.0 * expected!r}\n'
+    )
     s = _prepare(tmp_path, dem, [far_above, far_below, on_line], ["R", "R", "T"], text)
     model = ErrorModel(rmse_m=sigma, corr_length_m=0, cell_size_m=H)
     parcels, classes, summary = _run(s, model, n, seed=11)
@@ -162,6 +177,7 @@ def test_robust_and_threshold_parcels(tmp_path):
 
 # --------------------------------------------------------------------------- invariants
 
+
 def _ramp_case(tmp_path):
     dem = ramp_dem(tmp_path / "ramp.tif", n=40)
     geoms = [
@@ -170,8 +186,10 @@ def _ramp_case(tmp_path):
         shapely.box(X0 + 210, Y0 - 390, X0 + 385, Y0 - 320),  # partly on the NaN ring
         shapely.box(X0 + 50, Y0 - 100, X0 + 90, Y0 - 60),  # no slope limit (forest)
     ]
-    text = _rules('[classes.r]\nvalues = ["R"]\nmax_slope_pct = 8\ntolerance_pct = 30\n'
-                  '[classes.f]\nvalues = ["F"]\ndevelopment = false\n')
+    text = _rules(
+        '[classes.r]\nvalues = ["R"]\nmax_slope_pct = 8\ntolerance_pct = 30\n'
+        '[classes.f]\nvalues = ["F"]\ndevelopment = false\n'
+    )
     return _prepare(tmp_path, dem, geoms, ["R", "R", "R", "F"], text)
 
 
@@ -189,8 +207,9 @@ def test_windowed_equals_whole_and_seed_reproducible(tmp_path):
     # the summation order of per-window sums differs (relative 1e-12 at most).
     np.testing.assert_allclose(tiled[num].to_numpy(float), whole[num].to_numpy(float), rtol=1e-12, equal_nan=True)
     assert tiled["confidence"].tolist() == whole["confidence"].tolist()
-    np.testing.assert_allclose(tc.filter(like="share").to_numpy(float), wc.filter(like="share").to_numpy(float),
-                               rtol=1e-12, equal_nan=True)
+    np.testing.assert_allclose(
+        tc.filter(like="share").to_numpy(float), wc.filter(like="share").to_numpy(float), rtol=1e-12, equal_nan=True
+    )
     # Source: reproducibility contract of landcheck.terrain.dem_error: same seed, same numbers bit for bit.
     assert again[num].equals(whole[num]) and auto.equals(whole)
     assert not np.allclose(other["over_limit_share_p50"].iloc[:3], whole["over_limit_share_p50"].iloc[:3])
@@ -208,6 +227,7 @@ def test_worker_processes_give_identical_results(tmp_path):
 
 
 # --------------------------------------------------------------------------- bad input
+
 
 @pytest.mark.parametrize(
     "kw, pattern",
@@ -230,8 +250,12 @@ def test_bad_settings_raise_clear_errors(tmp_path, kw, pattern):
 def test_settings_merge_rulebook_and_overrides(tmp_path):
     dem = open_dem(ramp_dem(tmp_path / "ramp.tif", n=20))
     p = tmp_path / "r.toml"
-    p.write_text(_rules('[classes.r]\nvalues = ["R"]\nmax_slope_pct = 18\n'
-                        '[uncertainty]\nrmse_m = 3.0\ncorr_length_m = 40.0\nrealizations = 50\nseed = 9\n'))
+    p.write_text(
+        _rules(
+            '[classes.r]\nvalues = ["R"]\nmax_slope_pct = 18\n'
+            "[uncertainty]\nrmse_m = 3.0\ncorr_length_m = 40.0\nrealizations = 50\nseed = 9\n"
+        )
+    )
     rules = load_rules(p)
     c = confidence_settings(rules, dem.grid)
     assert (c.model.rmse_m, c.model.corr_length_m, c.realizations, c.seed) == (3.0, 40.0, 50, 9)

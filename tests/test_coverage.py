@@ -12,14 +12,14 @@ from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 from shapely import affinity
 
+from landcheck.errors import InputDataError
+from landcheck.geo.grid import GridSpec, iter_windows
 from landcheck.overlay.coverage import (
     MIN_FRACTION,
     _coverage_kernel,
     coverage_triplets,
     prepare_polygons,
 )
-from landcheck.errors import InputDataError
-from landcheck.geo.grid import GridSpec, iter_windows
 
 CRS = "EPSG:32651"
 X0_M, Y0_M = 400_000.0, 1_600_000.0  # fictional grid origin (top-left corner)
@@ -65,24 +65,36 @@ def _random_features(rng, t: Affine, height: int, width: int, n: int, snap=False
         cx, cy = _xy(t, cu, cv)
         kind = len(feats) % 4
         if kind == 0:
-            g = affinity.rotate(shapely.box(cx, cy, cx + rng.uniform(0.05, 9) * dx, cy + rng.uniform(0.05, 6) * dy),
-                                rng.uniform(0, 180), origin="centroid")
+            g = affinity.rotate(
+                shapely.box(cx, cy, cx + rng.uniform(0.05, 9) * dx, cy + rng.uniform(0.05, 6) * dy),
+                rng.uniform(0, 180),
+                origin="centroid",
+            )
         elif kind == 1:
             g = shapely.Polygon(np.column_stack([cx + rng.uniform(-5, 5, 3) * dx, cy + rng.uniform(-5, 5, 3) * dy]))
         elif kind == 2:
             outer = shapely.Point(cx, cy).buffer(rng.uniform(2, 6) * dx, quad_segs=4)
-            g = outer.difference(shapely.Point(cx + 0.3 * dx, cy - 0.2 * dy).buffer(rng.uniform(0.3, 1.5) * dx, quad_segs=3))
+            g = outer.difference(
+                shapely.Point(cx + 0.3 * dx, cy - 0.2 * dy).buffer(rng.uniform(0.3, 1.5) * dx, quad_segs=3)
+            )
         else:
-            g = shapely.MultiPolygon([
-                shapely.box(cx, cy, cx + 2.5 * dx, cy + 1.7 * dy),
-                affinity.rotate(shapely.box(cx + 3 * dx, cy, cx + 4.2 * dx, cy + 5 * dy), 20),
-            ])
+            g = shapely.MultiPolygon(
+                [
+                    shapely.box(cx, cy, cx + 2.5 * dx, cy + 1.7 * dy),
+                    affinity.rotate(shapely.box(cx + 3 * dx, cy, cx + 4.2 * dx, cy + 5 * dy), 20),
+                ]
+            )
         if snap:
             # vertices on grid lines: whole or half cells from the grid origin
-            g = shapely.transform(g, lambda xy: np.column_stack([
-                t.c + np.round(2 * (xy[:, 0] - t.c) / dx) / 2 * dx,
-                t.f - np.round(2 * (t.f - xy[:, 1]) / dy) / 2 * dy,
-            ]))
+            g = shapely.transform(
+                g,
+                lambda xy: np.column_stack(
+                    [
+                        t.c + np.round(2 * (xy[:, 0] - t.c) / dx) / 2 * dx,
+                        t.f - np.round(2 * (t.f - xy[:, 1]) / dy) / 2 * dy,
+                    ]
+                ),
+            )
         if g.is_empty or not g.is_valid or g.area == 0:
             continue
         feats.append(g)
@@ -165,8 +177,9 @@ def _exactextract_cells(feats, t: Affine, height: int, width: int, pad: int = 4)
     ph, pw = height + 2 * pad, width + 2 * pad
     xa, ya = _xy(t, -pad, -pad)
     xb, yb = _xy(t, width + pad, height + pad)
-    src = NumPyRasterSource(np.zeros((ph, pw)), min(xa, xb), min(ya, yb), max(xa, xb), max(ya, yb),
-                            srs_wkt=pyproj.CRS(CRS).to_wkt())
+    src = NumPyRasterSource(
+        np.zeros((ph, pw)), min(xa, xb), min(ya, yb), max(xa, xb), max(ya, yb), srs_wkt=pyproj.CRS(CRS).to_wkt()
+    )
     # exactextract 0.3.0 stops with "Never get here." on rings with repeated consecutive vertices
     # (which snapping to grid lines creates); the same polygons without them have the same area
     clean = shapely.remove_repeated_points(np.array(feats, dtype=object))
@@ -246,7 +259,8 @@ def _star_polygon(draw_values, t: Affine, width: int, height: int):
 @settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.filter_too_much])
 @given(
     st.tuples(
-        st.floats(-4, 16), st.floats(-4, 12),
+        st.floats(-4, 16),
+        st.floats(-4, 12),
         st.lists(st.floats(0, 2 * np.pi, allow_nan=False), min_size=3, max_size=14, unique=True),
         st.lists(st.floats(0.05, 7.0), min_size=14, max_size=14),
         st.booleans(),
@@ -279,8 +293,9 @@ def test_tiling_polygons_sum_to_one_per_cell():
     t = _transform()
     height, width = 20, 24
     region = shapely.box(*(_xy(t, 1.3, 18.6)), *(_xy(t, 22.45, 0.7)))
-    pts = shapely.points(rng.uniform(region.bounds[0], region.bounds[2], 60),
-                         rng.uniform(region.bounds[1], region.bounds[3], 60))
+    pts = shapely.points(
+        rng.uniform(region.bounds[0], region.bounds[2], 60), rng.uniform(region.bounds[1], region.bounds[3], 60)
+    )
     tiles = shapely.get_parts(shapely.voronoi_polygons(shapely.multipoints(pts), extend_to=region))
     tiles = shapely.intersection(tiles, region)
     trip = coverage_triplets(tiles, t, height, width)
@@ -317,13 +332,18 @@ def test_windows_that_do_not_divide_the_raster_merge_exactly():
         part = coverage_triplets(prepared, wt, win.height, win.width)
         assert part.row.max(initial=0) < win.height and part.col.max(initial=0) < win.width
         totals += np.bincount(part.feature_index, weights=part.fraction, minlength=len(feats))
-        for k, r, c, fr in zip(part.feature_index.tolist(), (part.row + win.row_off).tolist(),
-                               (part.col + win.col_off).tolist(), part.fraction.tolist()):
+        for k, r, c, fr in zip(
+            part.feature_index.tolist(),
+            (part.row + win.row_off).tolist(),
+            (part.col + win.col_off).tolist(),
+            part.fraction.tolist(),
+        ):
             merged[(k, r, c)] = fr
     whole_totals = np.bincount(whole.feature_index, weights=whole.fraction, minlength=len(feats))
     np.testing.assert_allclose(totals, whole_totals, rtol=1e-12, atol=1e-12)
-    whole_cells = dict(zip(zip(whole.feature_index.tolist(), whole.row.tolist(), whole.col.tolist()),
-                           whole.fraction.tolist()))
+    whole_cells = dict(
+        zip(zip(whole.feature_index.tolist(), whole.row.tolist(), whole.col.tolist()), whole.fraction.tolist())
+    )
     assert set(merged) == set(whole_cells)
     np.testing.assert_allclose([merged[k] for k in whole_cells], list(whole_cells.values()), rtol=0, atol=1e-12)
     # the big feature: the whole raster minus its hole (shapely)
@@ -440,9 +460,26 @@ def test_plain_python_kernel_matches_compiled():
     feats = _random_features(rng, t, 6, 7, 8)
     p = prepare_polygons(feats)
     sel = np.arange(len(feats), dtype=np.int64)
-    args = (p.x, p.y, p.ring_offsets, p.ring_is_hole, p.feature_ring_start, p.feature_ring_stop, sel,
-            t.a, t.c, t.e, t.f, 6, 7, MIN_FRACTION)
-    bufs = lambda: (np.empty(16, np.int64), np.empty(16, np.int32), np.empty(16, np.int32), np.empty(16))
+    args = (
+        p.x,
+        p.y,
+        p.ring_offsets,
+        p.ring_is_hole,
+        p.feature_ring_start,
+        p.feature_ring_stop,
+        sel,
+        t.a,
+        t.c,
+        t.e,
+        t.f,
+        6,
+        7,
+        MIN_FRACTION,
+    )
+
+    def bufs():
+        return (np.empty(16, np.int64), np.empty(16, np.int32), np.empty(16, np.int32), np.empty(16))
+
     compiled = _coverage_kernel(*args, *bufs())
     python = getattr(_coverage_kernel, "py_func", _coverage_kernel)(*args, *bufs())
     n = compiled[4]

@@ -234,10 +234,12 @@ def test_river_centreline_runs_along_the_channel(dem):
     rivers = gpd.read_file(DEMO / "rivers.gpkg")
     assert set(rivers["name"]) == {"Tamsel River"}
     assert (rivers["width_m"] > 0).all()
+
     def sample(x, y):
         r, c = _fractional_rowcol(info["transform"], x, y)
-        return elev[np.floor(r).astype(int).clip(0, elev.shape[0] - 1),
-                    np.floor(c).astype(int).clip(0, elev.shape[1] - 1)]
+        return elev[
+            np.floor(r).astype(int).clip(0, elev.shape[0] - 1), np.floor(c).astype(int).clip(0, elev.shape[1] - 1)
+        ]
 
     for geom, width_m in zip(rivers.geometry, rivers["width_m"]):
         p = np.asarray(geom.coords)

@@ -5,11 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import shapely
+from _support import ramp_dem, write_parcels, write_rules
 from shapely import affinity
 
 from landcheck.core.audit import audit
-
-from _support import ramp_dem, write_parcels, write_rules
 
 X0, Y0 = 400000.0, 1600000.0
 
@@ -21,9 +20,12 @@ def test_dask_equals_threads(tmp_path):
     dem = ramp_dem(tmp_path / "dem.tif")
     rules = write_rules(tmp_path / "r.toml", tol=5.0, band=3.0)
     rng = np.random.default_rng(3)
-    geoms = [affinity.rotate(shapely.box(X0 + x, Y0 - y, X0 + x + w, Y0 - y + 70), a, origin="centroid")
-             for x, y, w, a in zip(rng.uniform(50, 900, 30), rng.uniform(100, 1100, 30), rng.uniform(30, 200, 30),
-                                   rng.uniform(0, 90, 30))]
+    geoms = [
+        affinity.rotate(shapely.box(X0 + x, Y0 - y, X0 + x + w, Y0 - y + 70), a, origin="centroid")
+        for x, y, w, a in zip(
+            rng.uniform(50, 900, 30), rng.uniform(100, 1100, 30), rng.uniform(30, 200, 30), rng.uniform(0, 90, 30)
+        )
+    ]
     parcels = write_parcels(tmp_path / "p.gpkg", geoms, pid=np.arange(1, 31), zoning=["R"] * 30)
     a = audit(dem, parcels, rules, tmp_path / "threads", make_report=False, tile_cells=29, workers=2)
     b = audit(dem, parcels, rules, tmp_path / "dask", make_report=False, tile_cells=29, workers=2, engine="dask")

@@ -11,15 +11,14 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import rasterio
+from _support import write_raster
 from matplotlib import cbook
 from rasterio.transform import from_origin
 from rasterio.warp import Resampling, calculate_default_transform, reproject
 
-from landcheck.inputs.dem import open_dem
 from landcheck.core.slope_raster import derive_slope
+from landcheck.inputs.dem import open_dem
 from landcheck.terrain.slope import slope_gradient
-
-from _support import write_raster
 
 UTM_CRS = "EPSG:32616"  # the UTM zone of the sample's longitudes (-84.4 .. -84.1)
 
@@ -67,8 +66,16 @@ def test_geographic_slope_agrees_with_projected_copy(tmp_path, geo_dem):
         res = (src.res[0] * geodesy.metres_per_degree_lon(lat), src.res[1] * geodesy.metres_per_degree_lat(lat))
         tr, w, h = calculate_default_transform(src.crs, UTM_CRS, src.width, src.height, *src.bounds, resolution=res)
         utm = np.full((h, w), np.nan, "float32")
-        reproject(rasterio.band(src, 1), utm, src_transform=src.transform, src_crs=src.crs, dst_transform=tr,
-                  dst_crs=UTM_CRS, resampling=Resampling.cubic, dst_nodata=np.nan)
+        reproject(
+            rasterio.band(src, 1),
+            utm,
+            src_transform=src.transform,
+            src_crs=src.crs,
+            dst_transform=tr,
+            dst_crs=UTM_CRS,
+            resampling=Resampling.cubic,
+            dst_nodata=np.nan,
+        )
     utm_path = write_raster(tmp_path / "utm.tif", utm, transform=tr, crs=UTM_CRS, nodata=np.nan)
     derive_slope(geo_dem, tmp_path / "geo_s.tif")
     derive_slope(utm_path, tmp_path / "utm_s.tif")
@@ -80,8 +87,9 @@ def test_geographic_slope_agrees_with_projected_copy(tmp_path, geo_dem):
     from pyproj import Transformer
 
     rr, cc = np.mgrid[0 : geo_s.shape[0], 0 : geo_s.shape[1]]
-    x, y = Transformer.from_crs("EPSG:4326", UTM_CRS, always_xy=True).transform(gt.c + (cc + 0.5) * gt.a,
-                                                                              gt.f + (rr + 0.5) * gt.e)
+    x, y = Transformer.from_crs("EPSG:4326", UTM_CRS, always_xy=True).transform(
+        gt.c + (cc + 0.5) * gt.a, gt.f + (rr + 0.5) * gt.e
+    )
     col = np.floor((x - ut.c) / ut.a).astype(int)
     row = np.floor((y - ut.f) / ut.e).astype(int)
     inside = (row >= 0) & (row < utm_s.shape[0]) & (col >= 0) & (col < utm_s.shape[1])

@@ -79,9 +79,7 @@ def test_projected_grid_in_feet():
 
 
 @settings(max_examples=200, deadline=None)
-@given(
-    h=st.integers(1, 60), w=st.integers(1, 60), tr=st.integers(1, 17), tc=st.integers(1, 17), halo=st.integers(0, 3)
-)
+@given(h=st.integers(1, 60), w=st.integers(1, 60), tr=st.integers(1, 17), tc=st.integers(1, 17), halo=st.integers(0, 3))
 def test_windows_tile_raster_exactly_once(h, w, tr, tc, halo):
     # Invariant (STYLE.md 6.4): windows cover every cell exactly once; grown windows pad back to full size.
     count = np.zeros((h, w), int)

@@ -19,8 +19,11 @@ def _geod_area(geom, crs, step):
     pyproj adds the signed areas of the rings, so rings are oriented first (exterior counter-clockwise,
     holes clockwise) as its documentation asks.
     """
-    geom = shapely.geometry.polygon.orient(geom, 1.0) if geom.geom_type == "Polygon" else shapely.MultiPolygon(
-        [shapely.geometry.polygon.orient(p, 1.0) for p in geom.geoms])
+    geom = (
+        shapely.geometry.polygon.orient(geom, 1.0)
+        if geom.geom_type == "Polygon"
+        else shapely.MultiPolygon([shapely.geometry.polygon.orient(p, 1.0) for p in geom.geoms])
+    )
     crs = pyproj.CRS.from_user_input(crs)
     tr = pyproj.Transformer.from_crs(crs, crs.geodetic_crs, always_xy=True)
     ll = shapely.transform(shapely.segmentize(geom, step), lambda xy: np.column_stack(tr.transform(xy[:, 0], xy[:, 1])))
@@ -36,10 +39,13 @@ def _shapes(unit=1.0):
         x, y = X0 + rng.uniform(0, 50000), Y0 + rng.uniform(0, 50000)
         out.append(affinity.rotate(shapely.box(x, y, x + w, y + h), rng.uniform(0, 90), origin="centroid"))
     # shell and hole wound the same way (no OGC winding): the hole must still be subtracted
-    big = shapely.Polygon(shell=[(X0, Y0), (X0 + 9000, Y0 + 500), (X0 + 8000, Y0 + 7000), (X0 - 500, Y0 + 6000)],
-                          holes=[[(X0 + 2000, Y0 + 2000), (X0 + 3000, Y0 + 2000), (X0 + 3000, Y0 + 3000), (X0 + 2000, Y0 + 3000)]])
-    multi = shapely.MultiPolygon([shapely.box(X0 + 100, Y0 + 100, X0 + 300, Y0 + 250),
-                                  shapely.box(X0 + 5000, Y0 + 100, X0 + 7600, Y0 + 2600)])  # one part > 2 km
+    big = shapely.Polygon(
+        shell=[(X0, Y0), (X0 + 9000, Y0 + 500), (X0 + 8000, Y0 + 7000), (X0 - 500, Y0 + 6000)],
+        holes=[[(X0 + 2000, Y0 + 2000), (X0 + 3000, Y0 + 2000), (X0 + 3000, Y0 + 3000), (X0 + 2000, Y0 + 3000)]],
+    )
+    multi = shapely.MultiPolygon(
+        [shapely.box(X0 + 100, Y0 + 100, X0 + 300, Y0 + 250), shapely.box(X0 + 5000, Y0 + 100, X0 + 7600, Y0 + 2600)]
+    )  # one part > 2 km
     out += [big, multi, shapely.Polygon(), None]
     return [affinity.scale(g, 1 / unit, 1 / unit, origin=(0, 0)) if g is not None else None for g in out]
 
@@ -72,8 +78,10 @@ def test_foot_crs_areas_are_in_square_metres():
 def test_geographic_areas_match_pyproj_geod():
     # Reference: pyproj.Geod on lon/lat polygons densified to 2e-5 degrees.
     rng = np.random.default_rng(8)
-    geoms = [affinity.rotate(shapely.box(lon, lat, lon + d, lat + d * 0.7), rng.uniform(0, 90))
-             for lon, lat, d in zip(rng.uniform(-179, 179, 12), rng.uniform(-70, 70, 12), rng.uniform(1e-3, 0.5, 12))]
+    geoms = [
+        affinity.rotate(shapely.box(lon, lat, lon + d, lat + d * 0.7), rng.uniform(0, 90))
+        for lon, lat, d in zip(rng.uniform(-179, 179, 12), rng.uniform(-70, 70, 12), rng.uniform(1e-3, 0.5, 12))
+    ]
     area, factor = ground_areas_fast(np.array(geoms, dtype=object), "EPSG:4326")
     geod = pyproj.Geod(ellps="WGS84")
     for g, got in zip(geoms, area):

@@ -13,8 +13,8 @@ from affine import Affine
 from matplotlib import cbook
 from scipy import ndimage
 
-from landcheck.geo import geodesy
 from landcheck.errors import InputDataError, LandcheckError
+from landcheck.geo import geodesy
 from landcheck.terrain.hydrology import (
     flow_directions,
     hand_m,
@@ -80,7 +80,17 @@ def d8_targets(routing):
     """Linear index each valid cell drains to, decoded from the D8 codes (itself at a pit)."""
     # Source: pyflwdir D8 encoding, documented in pyflwdir.core_d8 (_ds table):
     # 1 E, 2 SE, 4 S, 8 SW, 16 W, 32 NW, 64 N, 128 NE, 0 pit
-    offsets = {1: (0, 1), 2: (1, 1), 4: (1, 0), 8: (1, -1), 16: (0, -1), 32: (-1, -1), 64: (-1, 0), 128: (-1, 1), 0: (0, 0)}
+    offsets = {
+        1: (0, 1),
+        2: (1, 1),
+        4: (1, 0),
+        8: (1, -1),
+        16: (0, -1),
+        32: (-1, -1),
+        64: (-1, 0),
+        128: (-1, 1),
+        0: (0, 0),
+    }
     d8 = routing.flw.to_array()
     rows, cols = d8.shape
     target = np.full(d8.size, -1, dtype=np.int64)
@@ -335,7 +345,7 @@ def test_plain_threshold_floods_more_than_connected_bathtub():
     z[3, 3] = 0.5  # isolated low cell
     sea = sea_mask(z)
     (water,) = inundation_masks(z, sea, [1.0])
-    plain = (z <= 1.0)
+    plain = z <= 1.0
     assert not water[3, 3] and plain[3, 3]
     assert np.all(water <= plain)
 
@@ -464,7 +474,12 @@ def test_streams_to_lines_on_v_valley():
 
 @pytest.mark.parametrize(
     "rises, scenario",
-    [([1.0, 0.5], "scenario 2"), ([0.5, 1.0, 1.0], "scenario 3"), ([-0.2, 1.0], "scenario 1"), ([0.5, np.nan], "scenario 2")],
+    [
+        ([1.0, 0.5], "scenario 2"),
+        ([0.5, 1.0, 1.0], "scenario 3"),
+        ([-0.2, 1.0], "scenario 1"),
+        ([0.5, np.nan], "scenario 2"),
+    ],
 )
 def test_bad_scenario_lists_are_refused(rises, scenario):
     z = np.array([[-1.0, 0.0, 2.0]])
@@ -478,7 +493,9 @@ def test_bad_scenario_lists_are_refused(rises, scenario):
 
 def test_seed_outside_raster_names_the_point():
     z = np.zeros((4, 5)) - 1.0
-    with pytest.raises(InputDataError, match=r"seed point 2 at \(row 4, col 1\) lies outside the DEM \(4 rows x 5 cols\)"):
+    with pytest.raises(
+        InputDataError, match=r"seed point 2 at \(row 4, col 1\) lies outside the DEM \(4 rows x 5 cols\)"
+    ):
         sea_mask(z, seed_cells=[(0, 0), (4, 1)])
     with pytest.raises(InputDataError, match=r"seed point 1 at \(row -1, col 0\)"):
         sea_mask(z, seed_cells=[(-1, 0)])

@@ -56,8 +56,17 @@ def test_rotated_grid_refused(raster_writer):
 
 def test_multiband_needs_band_choice(tmp_path):
     path = tmp_path / "two.tif"
-    with rasterio.open(path, "w", driver="GTiff", width=4, height=4, count=2, dtype="float32", crs="EPSG:32651",
-                       transform=Affine(10, 0, 0, 0, -10, 0)) as ds:
+    with rasterio.open(
+        path,
+        "w",
+        driver="GTiff",
+        width=4,
+        height=4,
+        count=2,
+        dtype="float32",
+        crs="EPSG:32651",
+        transform=Affine(10, 0, 0, 0, -10, 0),
+    ) as ds:
         ds.write(np.stack([np.ones((4, 4)), 2 * np.ones((4, 4))]).astype("float32"))
     with pytest.raises(InputDataError, match=r"two\.tif: the raster has 2 bands.*--dem-band"):
         open_dem(path)
@@ -77,8 +86,8 @@ def test_all_nodata_refused(raster_writer):
 
 def test_feet_units(raster_writer):
     # Common practice: international foot = 0.3048 m. A 10 ft rise per 100 ft run is 10 % whatever the unit.
-    from landcheck.terrain.slope import slope_gradient
     from landcheck.geo.grid import Window
+    from landcheck.terrain.slope import slope_gradient
 
     x = np.arange(8) * 100.0
     z = np.tile(0.1 * x, (8, 1)).astype("float32")

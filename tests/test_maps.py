@@ -11,8 +11,8 @@ import numpy as np
 import pytest
 from report_fixture import build_audit_folder
 
-from landcheck.evidence import maps
 from landcheck.errors import InputDataError
+from landcheck.evidence import maps
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
@@ -82,15 +82,24 @@ def test_overview_files_size_and_legend(audit, tmp_path):
 def test_overview_custom_breaks_other_dpi_and_missing_dem(audit, tmp_path):
     audit.dem_path.rename(audit.dem_path.with_suffix(".moved"))
     try:
-        files = maps.overview_map(audit.out_dir, dest_dir=tmp_path, dpi=300, figsize_in=(5.0, 4.0),
-                                  formats=("png",), slope_breaks_pct=[0, 10, 25, math.inf])
+        files = maps.overview_map(
+            audit.out_dir,
+            dest_dir=tmp_path,
+            dpi=300,
+            figsize_in=(5.0, 4.0),
+            formats=("png",),
+            slope_breaks_pct=[0, 10, 25, math.inf],
+        )
     finally:
         audit.dem_path.with_suffix(".moved").rename(audit.dem_path)
     assert list(files) == [tmp_path / "overview.png"]
     # Source: PNG spec IHDR; 5 x 4 in at 300 dpi
     assert png_size(tmp_path / "overview.png") == (1500, 1200)
     assert [e.label for e in files.legend_entries if e.group == "slope_class"] == [
-        "0 to under 10 %", "10 to under 25 %", "25 % and over"]
+        "0 to under 10 %",
+        "10 to under 25 %",
+        "25 % and over",
+    ]
     relief = [e.label for e in files.legend_entries if e.group == "relief" and e.key == "relief"][0]
     assert "slope shading" in relief and "DEM not found" in relief
 
@@ -98,11 +107,17 @@ def test_overview_custom_breaks_other_dpi_and_missing_dem(audit, tmp_path):
 def test_closeups_largest_conflict_first(audit, tmp_path):
     rows = csv_rows(audit.out_dir / "parcels.csv")
     # expected order computed from the CSV itself: conflict_m2 descending, ties by id
-    expected = [r["parcel_id"] for r in sorted((r for r in rows if float(r["conflict_m2"] or 0) > 0),
-                                               key=lambda r: (-float(r["conflict_m2"]), r["parcel_id"]))]
+    expected = [
+        r["parcel_id"]
+        for r in sorted(
+            (r for r in rows if float(r["conflict_m2"] or 0) > 0),
+            key=lambda r: (-float(r["conflict_m2"]), r["parcel_id"]),
+        )
+    ]
     assert len(expected) >= 2
-    files = maps.parcel_closeup_maps(audit.out_dir, max_maps=12, dest_dir=tmp_path, dpi=200,
-                                     figsize_in=(8.0, 6.5), formats=("png",))
+    files = maps.parcel_closeup_maps(
+        audit.out_dir, max_maps=12, dest_dir=tmp_path, dpi=200, figsize_in=(8.0, 6.5), formats=("png",)
+    )
     assert [it.parcel_id for it in files.items] == expected
     for rank, pid in enumerate(expected, start=1):
         p = tmp_path / f"closeup_{rank:02d}_{pid}.png"
@@ -119,9 +134,11 @@ def test_closeups_largest_conflict_first(audit, tmp_path):
 
 
 def test_charts_written(audit, tmp_path):
-    for fn, stem in ((maps.class_share_chart, "chart_class_shares"),
-                     (maps.slope_distribution_chart, "chart_slope_distribution"),
-                     (maps.sensitivity_chart, "chart_sensitivity")):
+    for fn, stem in (
+        (maps.class_share_chart, "chart_class_shares"),
+        (maps.slope_distribution_chart, "chart_slope_distribution"),
+        (maps.sensitivity_chart, "chart_sensitivity"),
+    ):
         files = fn(audit.out_dir, dest_dir=tmp_path, dpi=200, formats=("png",))
         assert list(files) == [tmp_path / f"{stem}.png"]
         w, h = png_size(tmp_path / f"{stem}.png")
@@ -136,7 +153,7 @@ def _srgb_to_lstar(hex_colour: str) -> float:
     Source: IEC 61966-2-1 (sRGB transfer function and D65 luminance row
     0.2126, 0.7152, 0.0722) and CIE 15 (L* = 116 f(Y/Yn) - 16).
     """
-    rgb = [int(hex_colour[i:i + 2], 16) / 255 for i in (1, 3, 5)]
+    rgb = [int(hex_colour[i : i + 2], 16) / 255 for i in (1, 3, 5)]
     lin = [c / 12.92 if c <= 0.04045 else ((c + 0.055) / 1.055) ** 2.4 for c in rgb]
     y = 0.2126 * lin[0] + 0.7152 * lin[1] + 0.0722 * lin[2]
     f = y ** (1 / 3) if y > (6 / 29) ** 3 else y / (3 * (6 / 29) ** 2) + 4 / 29
@@ -199,8 +216,9 @@ def test_true_north_matches_meridian_convergence():
     lon, lat = 124.0, 14.5  # UTM zone 51 has its central meridian at 123 E
     x, y = Transformer.from_crs("EPSG:4326", "EPSG:32651", always_xy=True).transform(lon, lat)
     ang = maps.true_north_angle_deg(x, y, "EPSG:32651")
-    assert ang == pytest.approx(-math.degrees(math.atan(math.tan(math.radians(1.0)) * math.sin(math.radians(lat)))),
-                                abs=2e-3)
+    assert ang == pytest.approx(
+        -math.degrees(math.atan(math.tan(math.radians(1.0)) * math.sin(math.radians(lat)))), abs=2e-3
+    )
     assert maps.true_north_angle_deg(121.0, 14.0, "EPSG:4326") == 0.0
 
 

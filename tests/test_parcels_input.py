@@ -6,12 +6,11 @@ import json
 
 import pytest
 import shapely
+from _support import ramp_dem, write_parcels, write_rules
 from click.testing import CliRunner
 
-from landcheck.core.audit import audit
 from landcheck.cli.main import cli
-
-from _support import ramp_dem, write_parcels, write_rules
+from landcheck.core.audit import audit
 
 X0, Y0 = 400000.0, 1600000.0
 
@@ -35,10 +34,13 @@ def test_reprojection_multipolygon_repair_and_empty(tmp_path):
 
     dem = ramp_dem(tmp_path / "dem.tif")
     rules = write_rules(tmp_path / "r.toml")
-    multi = shapely.MultiPolygon([shapely.box(X0 + 100, Y0 - 300, X0 + 150, Y0 - 250), shapely.box(X0 + 500, Y0 - 300, X0 + 550, Y0 - 250)])
+    multi = shapely.MultiPolygon(
+        [shapely.box(X0 + 100, Y0 - 300, X0 + 150, Y0 - 250), shapely.box(X0 + 500, Y0 - 300, X0 + 550, Y0 - 250)]
+    )
     bowtie = shapely.Polygon([(X0 + 300, Y0 - 500), (X0 + 400, Y0 - 400), (X0 + 400, Y0 - 500), (X0 + 300, Y0 - 400)])
-    gdf = gpd.GeoDataFrame({"pid": [1, 2, 3], "zoning": ["R", "R", "R"]},
-                           geometry=[multi, bowtie, shapely.Polygon()], crs="EPSG:32651").to_crs("EPSG:4326")
+    gdf = gpd.GeoDataFrame(
+        {"pid": [1, 2, 3], "zoning": ["R", "R", "R"]}, geometry=[multi, bowtie, shapely.Polygon()], crs="EPSG:32651"
+    ).to_crs("EPSG:4326")
     gdf.to_file(tmp_path / "p.gpkg", layer="lots")
     with pytest.warns(Warning):
         res = audit(dem, tmp_path / "p.gpkg", rules, tmp_path / "out", make_report=False)
@@ -54,9 +56,11 @@ def test_reprojection_multipolygon_repair_and_empty(tmp_path):
 def test_partly_outside_dem_gets_no_data(tmp_path):
     dem = ramp_dem(tmp_path / "dem.tif")
     rules = write_rules(tmp_path / "r.toml")  # min_evaluated_share = 0.5
-    geoms = [shapely.box(X0 - 300, Y0 - 300, X0 + 100, Y0 - 200),  # 1/4 inside (and its edge column has no slope)
-             shapely.box(X0 + 1000, Y0 - 300, X0 + 1400, Y0 - 200),  # 1/5 inside at the east edge
-             shapely.box(X0 + 3000, Y0 - 300, X0 + 3100, Y0 - 200)]  # fully outside
+    geoms = [
+        shapely.box(X0 - 300, Y0 - 300, X0 + 100, Y0 - 200),  # 1/4 inside (and its edge column has no slope)
+        shapely.box(X0 + 1000, Y0 - 300, X0 + 1400, Y0 - 200),  # 1/5 inside at the east edge
+        shapely.box(X0 + 3000, Y0 - 300, X0 + 3100, Y0 - 200),
+    ]  # fully outside
     p = write_parcels(tmp_path / "p.gpkg", geoms, pid=[1, 2, 3], zoning=["R", "R", "R"])
     res = audit(dem, p, rules, tmp_path / "out", make_report=False)
     assert res.parcels["verdict"].tolist() == ["no_data", "no_data", "no_data"]
@@ -70,15 +74,31 @@ def test_partly_outside_dem_gets_no_data(tmp_path):
 def _cli(tmp_path, parcels, *extra, rules=None, out="out"):
     dem = ramp_dem(tmp_path / "dem.tif")
     rules = rules or write_rules(tmp_path / "r.toml")
-    return CliRunner().invoke(cli, ["audit", "--dem", str(dem), "--parcels", str(parcels), "--rulebook", str(rules),
-                                    "--out", str(tmp_path / out), "--no-report", *extra])
+    return CliRunner().invoke(
+        cli,
+        [
+            "audit",
+            "--dem",
+            str(dem),
+            "--parcels",
+            str(parcels),
+            "--rulebook",
+            str(rules),
+            "--out",
+            str(tmp_path / out),
+            "--no-report",
+            *extra,
+        ],
+    )
 
 
 def test_refusals(tmp_path):
     import geopandas as gpd
 
     # no CRS
-    gpd.GeoDataFrame({"pid": [1], "zoning": ["R"]}, geometry=_geoms()[:1]).to_file(tmp_path / "nocrs.geojson", driver="GeoJSON")
+    gpd.GeoDataFrame({"pid": [1], "zoning": ["R"]}, geometry=_geoms()[:1]).to_file(
+        tmp_path / "nocrs.geojson", driver="GeoJSON"
+    )
     # GeoJSON without a crs member is read as WGS84 by GDAL; a Shapefile without .prj has no CRS
     gpd.GeoDataFrame({"pid": [1], "zoning": ["R"]}, geometry=_geoms()[:1]).to_file(tmp_path / "nocrs.shp")
     r = _cli(tmp_path, tmp_path / "nocrs.shp")
@@ -104,7 +124,11 @@ def test_refusals(tmp_path):
     # a CRS that cannot hold these coordinates (projected metres labelled as degrees)
     p = write_parcels(tmp_path / "badcrs.gpkg", _geoms(), crs="EPSG:4326", pid=[1, 2], zoning=["R", "R"])
     r = _cli(tmp_path, p, out="o6")
-    assert r.exit_code == 3 and "badcrs.gpkg" in r.output and ("cannot transform" in r.output or "invalid coordinates" in r.output)
+    assert (
+        r.exit_code == 3
+        and "badcrs.gpkg" in r.output
+        and ("cannot transform" in r.output or "invalid coordinates" in r.output)
+    )
     # points are not parcels
     p = write_parcels(tmp_path / "pts.gpkg", [shapely.Point(X0 + 5, Y0 - 5)], pid=[1], zoning=["R"])
     r = _cli(tmp_path, p, out="o7")

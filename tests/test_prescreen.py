@@ -12,16 +12,15 @@ import geopandas as gpd
 import numpy as np
 import pytest
 import shapely
+from _support import ramp_dem, require_tool, write_parcels, write_rules
 from click.testing import CliRunner
 from scipy import ndimage
 
 from landcheck.about import CAUTION
-from landcheck.core.audit import audit
 from landcheck.cli.main import cli
+from landcheck.core.audit import audit
 from landcheck.errors import InputDataError
 from landcheck.evidence.prescreen import MAP_SIZE_IN, largest_patch, parse_polygon, prescreen
-
-from _support import ramp_dem, require_tool, write_parcels, write_rules
 
 X0, Y0 = 400000.0, 1600000.0
 # ramp_dem: slope = 0.04 x percent at distance x east of the DEM's west edge, so 18 % falls at x = 450 m,
@@ -192,8 +191,13 @@ def test_page_is_offline_with_caution_and_png_size(ramp_run):
     assert _png_size(out / "map.png") == (round(MAP_SIZE_IN[0] * RAMP_DPI), round(MAP_SIZE_IN[1] * RAMP_DPI))
     data = json.loads((out / "prescreen.json").read_text())
     assert data["caution"] == CAUTION
-    assert sorted(p.name for p in out.iterdir()) == ["histogram.png", "largest_patch.gpkg", "map.png",
-                                                     "prescreen.html", "prescreen.json"]
+    assert sorted(p.name for p in out.iterdir()) == [
+        "histogram.png",
+        "largest_patch.gpkg",
+        "map.png",
+        "prescreen.html",
+        "prescreen.json",
+    ]
 
 
 @pytest.mark.reference_tool
@@ -202,10 +206,22 @@ def test_page_prints_on_one_a4_sheet(ramp_run, tmp_path):
     chromium = shutil.which("chromium") or shutil.which("chromium-browser") or require_tool("chromium")
     d, _ = ramp_run
     pdf = tmp_path / "page.pdf"
-    subprocess.run([chromium, "--headless", "--no-sandbox", "--disable-gpu", "--no-pdf-header-footer",
-                    f"--user-data-dir={tmp_path / 'profile'}", "--proxy-server=127.0.0.1:9",
-                    f"--print-to-pdf={pdf}", (d / "out" / "prescreen.html").as_uri()],
-                   check=True, capture_output=True, timeout=60)
+    subprocess.run(
+        [
+            chromium,
+            "--headless",
+            "--no-sandbox",
+            "--disable-gpu",
+            "--no-pdf-header-footer",
+            f"--user-data-dir={tmp_path / 'profile'}",
+            "--proxy-server=127.0.0.1:9",
+            f"--print-to-pdf={pdf}",
+            (d / "out" / "prescreen.html").as_uri(),
+        ],
+        check=True,
+        capture_output=True,
+        timeout=60,
+    )
     body = pdf.read_bytes()
     assert len(re.findall(rb"/Type\s*/Page(?!s)", body)) == 1
     # A4 = 595.28 x 841.89 pt (ISO 216; 1 pt = 1/72 in)
@@ -256,12 +272,15 @@ def test_forbidden_flood_polygon_removes_exactly_its_area(tmp_path):
     # slope 0.04 x: at x 103..297 m every cell is under 12 %, so only the flood polygon limits building
     parcel = shapely.box(X0 + 103.3, Y0 - 406.1, X0 + 296.7, Y0 - 248.9)
     # a 45-degree band about 42 m wide crossing the whole parcel, off the cell lines
-    band = shapely.Polygon([(X0 + 150.2, Y0 - 500), (X0 + 210.0, Y0 - 500), (X0 + 460, Y0 - 150), (X0 + 400.2, Y0 - 150)])
+    band = shapely.Polygon(
+        [(X0 + 150.2, Y0 - 500), (X0 + 210.0, Y0 - 500), (X0 + 460, Y0 - 150), (X0 + 400.2, Y0 - 150)]
+    )
     low = shapely.box(X0 + 100, Y0 - 300, X0 + 140, Y0 - 260)  # level 1: reported only, not forbidden
     gpd.GeoDataFrame({"hazard_level": [3, 1]}, geometry=[band, low], crs="EPSG:32651").to_file(tmp_path / "flood.gpkg")
     write_parcels(tmp_path / "p.gpkg", [parcel], pid=[1], zoning=["R"])
-    res = prescreen(tmp_path / "dem.tif", tmp_path / "r.toml", tmp_path / "out", parcels_path=tmp_path / "p.gpkg",
-                    dpi=72)
+    res = prescreen(
+        tmp_path / "dem.tif", tmp_path / "r.toml", tmp_path / "out", parcels_path=tmp_path / "p.gpkg", dpi=72
+    )
     f = res.figures
     cov = f["parcel"]["covered_m2"]
     # Source: exact polygon intersection (shapely/GEOS) as the closed form of the lost area
@@ -321,16 +340,25 @@ def inputs(tmp_path):
     dem = ramp_dem(tmp_path / "dem.tif")
     rules = write_rules(tmp_path / "r.toml")
     one = write_parcels(tmp_path / "one.gpkg", [shapely.Polygon(RECT)], pid=[7], zoning=["R"])
-    many = write_parcels(tmp_path / "many.gpkg", [shapely.box(X0 + 100, Y0 - 200, X0 + 200, Y0 - 100),
-                                                  shapely.Polygon(RECT), shapely.box(X0 + 600, Y0 - 700, X0 + 650, Y0 - 650)],
-                         pid=[3, 7, 11], zoning=["R", "R", "F"])
+    many = write_parcels(
+        tmp_path / "many.gpkg",
+        [
+            shapely.box(X0 + 100, Y0 - 200, X0 + 200, Y0 - 100),
+            shapely.Polygon(RECT),
+            shapely.box(X0 + 600, Y0 - 700, X0 + 650, Y0 - 650),
+        ],
+        pid=[3, 7, 11],
+        zoning=["R", "R", "F"],
+    )
     return tmp_path, dem, rules, one, many
 
 
 def _run(tmp, dem, rules, out, *args):
     # 72 dpi: these tests check figures, not pictures, and small PNGs draw faster
-    return CliRunner().invoke(cli, ["-q", "prescreen", "--dem", str(dem), "--rulebook", str(rules),
-                                    "--out", str(tmp / out), "--dpi", "72", *args])
+    return CliRunner().invoke(
+        cli,
+        ["-q", "prescreen", "--dem", str(dem), "--rulebook", str(rules), "--out", str(tmp / out), "--dpi", "72", *args],
+    )
 
 
 _SAME = ("buildable", "largest_patch", "slope_histogram", "verdict", "reasons", "zones", "conflict_m2")
@@ -345,8 +373,7 @@ def test_three_input_modes_give_identical_figures(inputs):
     }
     for name, r in runs.items():
         assert r.exit_code == 0, (name, r.output)
-    figs = {name: json.loads((tmp / out / "prescreen.json").read_text()) for name, out in
-            zip(runs, ("a", "b", "c"))}
+    figs = {name: json.loads((tmp / out / "prescreen.json").read_text()) for name, out in zip(runs, ("a", "b", "c"))}
     for name in ("id", "polygon"):
         for key in _SAME:
             assert figs[name][key] == figs["file"][key], (name, key)
@@ -358,22 +385,31 @@ def test_three_input_modes_give_identical_figures(inputs):
 
     tr = pyproj.Transformer.from_crs("EPSG:32651", "EPSG:4326", always_xy=True)
     ll_text = " ".join("{:.10f},{:.10f}".format(*tr.transform(x, y)) for x, y in RECT)
-    r = _run(tmp, dem, rules, "d", "--polygon", ll_text, "--polygon-crs", "EPSG:4326", "--class", "residential",
-             "--json")
+    r = _run(
+        tmp, dem, rules, "d", "--polygon", ll_text, "--polygon-crs", "EPSG:4326", "--class", "residential", "--json"
+    )
     assert r.exit_code == 0, r.output
     ll = json.loads(r.stdout)
     assert ll["buildable"]["area_m2"] == pytest.approx(figs["file"]["buildable"]["area_m2"], rel=1e-6)
 
 
-@pytest.mark.parametrize("args, message", [
-    (["--parcels", "{many}", "--parcel-id", "99"], r"no parcel with id '99'.*ids here: 3, 7, 11"),
-    (["--parcels", "{many}"], r"holds 3 features; choose one with --parcel-id"),
-    (["--polygon", "400400,1599700 400500,1599700 400500;1599800"], r"vertex 3 \('400500;1599800'\)"),
-    (["--polygon", RECT_TEXT, "--class", "industrial"], r"--class 'industrial': no such class.*residential.*forest"),
-    (["--polygon", RECT_TEXT], r"has no 'zoning' value.*--class"),
-    (["--polygon", "390000,1500000 390100,1500000 390100,1500100", "--class", "residential"],
-     r"lies outside the DEM"),
-])
+@pytest.mark.parametrize(
+    "args, message",
+    [
+        (["--parcels", "{many}", "--parcel-id", "99"], r"no parcel with id '99'.*ids here: 3, 7, 11"),
+        (["--parcels", "{many}"], r"holds 3 features; choose one with --parcel-id"),
+        (["--polygon", "400400,1599700 400500,1599700 400500;1599800"], r"vertex 3 \('400500;1599800'\)"),
+        (
+            ["--polygon", RECT_TEXT, "--class", "industrial"],
+            r"--class 'industrial': no such class.*residential.*forest",
+        ),
+        (["--polygon", RECT_TEXT], r"has no 'zoning' value.*--class"),
+        (
+            ["--polygon", "390000,1500000 390100,1500000 390100,1500100", "--class", "residential"],
+            r"lies outside the DEM",
+        ),
+    ],
+)
 def test_bad_inputs_exit_3_and_write_nothing(inputs, args, message):
     tmp, dem, rules, _one, many = inputs
     before = sorted(p.name for p in tmp.iterdir())
@@ -386,7 +422,9 @@ def test_bad_inputs_exit_3_and_write_nothing(inputs, args, message):
 
 def test_existing_output_and_self_intersecting_polygon(inputs):
     tmp, dem, rules, one, _many = inputs
-    bowtie = f"{X0 + 400},{Y0 - 300} {X0 + 480},{Y0 - 220} {X0 + 480},{Y0 - 300} {X0 + 400},{Y0 - 220} {X0 + 400},{Y0 - 300}"
+    bowtie = (
+        f"{X0 + 400},{Y0 - 300} {X0 + 480},{Y0 - 220} {X0 + 480},{Y0 - 300} {X0 + 400},{Y0 - 220} {X0 + 400},{Y0 - 300}"
+    )
     r = _run(tmp, dem, rules, "out", "--polygon", bowtie, "--class", "residential", "--json")
     assert r.exit_code == 0, r.output
     data = json.loads(r.stdout)
@@ -395,8 +433,10 @@ def test_existing_output_and_self_intersecting_polygon(inputs):
     # in the map plane; Source: pyproj.Geod (Karney 2013) for their area on the ellipsoid
     import pyproj
 
-    tris = [shapely.Polygon([(X0 + 400, Y0 - 300), (X0 + 440, Y0 - 260), (X0 + 400, Y0 - 220)]),
-            shapely.Polygon([(X0 + 480, Y0 - 220), (X0 + 480, Y0 - 300), (X0 + 440, Y0 - 260)])]
+    tris = [
+        shapely.Polygon([(X0 + 400, Y0 - 300), (X0 + 440, Y0 - 260), (X0 + 400, Y0 - 220)]),
+        shapely.Polygon([(X0 + 480, Y0 - 220), (X0 + 480, Y0 - 300), (X0 + 440, Y0 - 260)]),
+    ]
     assert sum(t.area for t in tris) == 3200.0
     tr = pyproj.Transformer.from_crs("EPSG:32651", "EPSG:4326", always_xy=True)
     geod = pyproj.Geod(ellps="WGS84")
@@ -404,8 +444,9 @@ def test_existing_output_and_self_intersecting_polygon(inputs):
     def to_ll(xy):
         return np.column_stack(tr.transform(xy[:, 0], xy[:, 1]))
 
-    expected = sum(abs(geod.geometry_area_perimeter(shapely.transform(shapely.segmentize(t, 5.0), to_ll))[0])
-                   for t in tris)
+    expected = sum(
+        abs(geod.geometry_area_perimeter(shapely.transform(shapely.segmentize(t, 5.0), to_ll))[0]) for t in tris
+    )
     assert data["parcel"]["covered_m2"] == pytest.approx(expected, rel=1e-5)
     before = sorted(p.name for p in (tmp / "out").iterdir())
     r = _run(tmp, dem, rules, "out", "--parcels", str(one))

@@ -5,25 +5,24 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import shapely
+from _support import ramp_dem, write_parcels, write_raster
 from rasterio.transform import from_origin
 
 from landcheck.core.audit import _build_plan, _WindowJob
 from landcheck.errors import InputDataError, RuleFileError
-from landcheck.verdicts.evaluate import evaluate_parcels, parcel_rules
 from landcheck.geo.grid import iter_windows
 from landcheck.inputs.dem import open_dem
 from landcheck.inputs.layers import read_parcels
+from landcheck.inputs.rulebook import load_rules
 from landcheck.overlay.sums import ROLE_FORBIDDEN_PIECE, Totals
+from landcheck.terrain.slope import SlopeMethod
+from landcheck.verdicts.evaluate import evaluate_parcels, parcel_rules
 from landcheck.verdicts.reclassify import (
     PART_COMPLIANT,
     PART_NON_COMPLIANT,
     draft_reclassification,
 )
-from landcheck.inputs.rulebook import load_rules
-from landcheck.terrain.slope import SlopeMethod
 from landcheck.zones.prepare import ZoneColumn, ZoneSet
-
-from _support import ramp_dem, write_parcels, write_raster
 
 X0, Y0 = 400000.0, 1600000.0
 X18 = 450.0  # the ramp's 18 % line (ramp_dem: slope = 0.04 x %), a cell boundary
@@ -72,8 +71,9 @@ def _setup(tmp_path, dem_path, geoms, zoning, *, rules_text=RULES, zones_fn=None
     dem = open_dem(dem_path)
     g = dem.grid
     rules = load_rules(rp)
-    frame = read_parcels(parcels_path, class_field=rules.class_field, id_field=rules.id_field,
-                         target_crs_wkt=g.crs_wkt).frame
+    frame = read_parcels(
+        parcels_path, class_field=rules.class_field, id_field=rules.id_field, target_crs_wkt=g.crs_wkt
+    ).frame
     from landcheck.inputs.layers import ground_areas
 
     area_m2, factor = ground_areas(frame, g.crs_wkt)
@@ -88,14 +88,17 @@ def _setup(tmp_path, dem_path, geoms, zoning, *, rules_text=RULES, zones_fn=None
     for win in iter_windows(g.height, g.width, 1024):
         totals.add(job(win)[0])
     cols = zones.columns if zones is not None else ()
-    base = evaluate_parcels(totals, plan, rules, pr, area_m2, shapely.is_empty(geo), frame["class_value"].to_numpy(), cols)
+    base = evaluate_parcels(
+        totals, plan, rules, pr, area_m2, shapely.is_empty(geo), frame["class_value"].to_numpy(), cols
+    )
     base.insert(0, "parcel_id", frame["parcel_id"].to_numpy())
     return {"dem": dem, "geoms": all_geoms, "plan": plan, "rules": rules, "pr": pr, "zones": zones, "base": base}
 
 
 def _draft(s, mmu=0.0):
-    return draft_reclassification(s["dem"], SlopeMethod.HORN, s["base"], s["geoms"], s["plan"], s["rules"], s["pr"],
-                                  zones=s["zones"], mmu_m2=mmu)
+    return draft_reclassification(
+        s["dem"], SlopeMethod.HORN, s["base"], s["geoms"], s["plan"], s["rules"], s["pr"], zones=s["zones"], mmu_m2=mmu
+    )
 
 
 def test_split_on_the_ramp_matches_the_closed_form(tmp_path):
@@ -110,8 +113,14 @@ def test_split_on_the_ramp_matches_the_closed_form(tmp_path):
     flood_piece = shapely.box(X0 + 320, Y0 - 560, X0 + 380, Y0 - 470).intersection(span)  # forbidden vector piece
     flat = shapely.box(X0 + 100, Y0 - 300, X0 + 200, Y0 - 200)  # 4-8 %: consistent, not drafted
     steep_forest = shapely.box(X0 + 700, Y0 - 300, X0 + 800, Y0 - 200)  # over 18 %, but forest has no limit
-    s = _setup(tmp_path, ramp_dem(tmp_path / "ramp.tif", n=100), [span, flat, steep_forest], ["R", "R", "F"],
-               zones_fn=zones_fn, pieces=[(0, flood_piece)])
+    s = _setup(
+        tmp_path,
+        ramp_dem(tmp_path / "ramp.tif", n=100),
+        [span, flat, steep_forest],
+        ["R", "R", "F"],
+        zones_fn=zones_fn,
+        pieces=[(0, flood_piece)],
+    )
     assert s["base"]["verdict"].tolist() == ["conflict", "consistent", "consistent"]
     parts, moves = _draft(s)
     assert parts["parcel_id"].tolist() == [101, 101] and parts["part"].tolist() == [PART_COMPLIANT, PART_NON_COMPLIANT]
@@ -131,8 +140,14 @@ def test_split_on_the_ramp_matches_the_closed_form(tmp_path):
     assert parts["area_m2"].iloc[1] == pytest.approx(s["base"]["conflict_m2"].iloc[0], rel=1e-6)
     assert parts["proposed_class"].tolist() == ["residential", "forest"]
     assert parts["proposed_value"].tolist() == ["R", "F"]  # the designated class's first value
-    assert moves.to_dict(orient="records") == [{"from_class": "residential", "to_class": "forest", "parcels": 1,
-                                                "area_m2": pytest.approx(parts["area_m2"].iloc[1])}]
+    assert moves.to_dict(orient="records") == [
+        {
+            "from_class": "residential",
+            "to_class": "forest",
+            "parcels": 1,
+            "area_m2": pytest.approx(parts["area_m2"].iloc[1]),
+        }
+    ]
     # the layer round-trips through a GeoPackage (open standard) with its columns and CRS
     import geopandas as gpd
 
@@ -158,8 +173,9 @@ def test_minimum_mapping_unit_merges_slivers(tmp_path):
     assert parts["part"].tolist() == [PART_COMPLIANT, PART_NON_COMPLIANT]
     assert parts["area_m2"].iloc[0] == pytest.approx(_ground_m2(pokes_over), rel=1e-8)
     assert parts["area_m2"].iloc[1] == pytest.approx(_ground_m2(mostly_over), rel=1e-8)
-    assert parts0["area_m2"].iloc[1] == pytest.approx(_ground_m2(shapely.box(X0 + 450, Y0 - 300, X0 + 452, Y0 - 200)),
-                                                      rel=1e-8)
+    assert parts0["area_m2"].iloc[1] == pytest.approx(
+        _ground_m2(shapely.box(X0 + 450, Y0 - 300, X0 + 452, Y0 - 200)), rel=1e-8
+    )
     assert moves["area_m2"].sum() == pytest.approx(_ground_m2(mostly_over), rel=1e-8)
 
 
@@ -173,10 +189,14 @@ def test_real_terrain_parts_add_up_and_match_the_exact_breach(tmp_path):
     dem = write_raster(tmp_path / "real.tif", z, transform=from_origin(X0, Y0, h, h))
     rng = np.random.default_rng(4)
     geoms = []
-    for k in range(6):
+    for _k in range(6):
         cx, cy = X0 + rng.uniform(400, 2300), Y0 - rng.uniform(400, 2000)
-        box = shapely.box(cx - rng.uniform(150, 350), cy - rng.uniform(150, 350), cx + rng.uniform(150, 350),
-                          cy + rng.uniform(150, 350))
+        box = shapely.box(
+            cx - rng.uniform(150, 350),
+            cy - rng.uniform(150, 350),
+            cx + rng.uniform(150, 350),
+            cy + rng.uniform(150, 350),
+        )
         geoms.append(shapely.affinity.rotate(box, float(rng.uniform(0, 90))))
     text = RULES.replace('max_slope_pct = 18\nforbidden_zones = ["wet"]', "max_slope_pct = 35")
     s = _setup(tmp_path, dem, geoms, ["R"] * len(geoms), rules_text=text)
@@ -186,8 +206,14 @@ def test_real_terrain_parts_add_up_and_match_the_exact_breach(tmp_path):
     parts, _ = _draft(s)
     mmu = 3 * h * h
     parts_mmu, _ = _draft(s, mmu=mmu)
-    cells = np.array([shapely.box(X0 + c * h, Y0 - (r + 1) * h, X0 + (c + 1) * h, Y0 - r * h)
-                      for r in range(z.shape[0]) for c in range(z.shape[1])], dtype=object)
+    cells = np.array(
+        [
+            shapely.box(X0 + c * h, Y0 - (r + 1) * h, X0 + (c + 1) * h, Y0 - r * h)
+            for r in range(z.shape[0])
+            for c in range(z.shape[1])
+        ],
+        dtype=object,
+    )
     for i in conflicted:
         pid = base["parcel_id"].iloc[i]
         p0 = parts[parts["parcel_id"] == pid].set_index("part")["area_m2"]
@@ -206,16 +232,20 @@ def test_real_terrain_parts_add_up_and_match_the_exact_breach(tmp_path):
             for poly in shapely.get_parts(geom):
                 assert _ground_m2(poly) >= mmu * (1 - 1e-9)
     # the mapping unit changed something on this terrain (so the check above is not empty)
-    assert not np.allclose(parts.groupby("part")["area_m2"].sum().to_numpy(),
-                           parts_mmu.groupby("part")["area_m2"].sum().to_numpy())
+    assert not np.allclose(
+        parts.groupby("part")["area_m2"].sum().to_numpy(), parts_mmu.groupby("part")["area_m2"].sum().to_numpy()
+    )
 
 
 def test_missing_designated_class_and_bad_unit(tmp_path):
     dem = ramp_dem(tmp_path / "ramp.tif", n=100)
     s = _setup(tmp_path, dem, [shapely.box(X0 + 500, Y0 - 300, X0 + 600, Y0 - 200)], ["A"])
     assert s["base"]["verdict"].iloc[0] == "conflict"
-    with pytest.raises(RuleFileError, match=r"class 'farmland' has 1 conflicting parcels but no designated_class; "
-                                            r"add designated_class = \"<class>\" to \[classes.farmland\]"):
+    with pytest.raises(
+        RuleFileError,
+        match=r"class 'farmland' has 1 conflicting parcels but no designated_class; "
+        r"add designated_class = \"<class>\" to \[classes.farmland\]",
+    ):
         _draft(s)
     with pytest.raises(InputDataError, match=r"minimum mapping unit -5.0; expected an area in m² >= 0"):
         _draft(s, mmu=-5.0)

@@ -11,10 +11,9 @@ import subprocess
 import numpy as np
 import pytest
 import rasterio
+from _support import require_tool
 
 from landcheck.core.slope_raster import derive_slope
-
-from _support import require_tool
 
 pytestmark = pytest.mark.reference_tool
 

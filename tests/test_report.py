@@ -108,16 +108,29 @@ def test_manifest_hashes_equal_hashlib(built):
     fx, _, text = built
     # recorded input hashes are shown as written, and equal the files' SHA-256 computed here
     for path in (fx.dem_path, fx.parcels_input_path, fx.zone_input_path, fx.rulebook_path):
-        m = re.search(r'data-path="' + re.escape(html.escape(str(path))) + r'".*?<code class="sha256">([0-9a-f]{64})',
-                      text, re.S)
+        m = re.search(
+            r'data-path="' + re.escape(html.escape(str(path))) + r'".*?<code class="sha256">([0-9a-f]{64})', text, re.S
+        )
         assert m, path
         assert m.group(1) == sha256_hex(path)
     assert text.count("matches the file") == 4
     # output hashes listed by the report equal hashlib over the output folder's files
-    shown = dict(re.findall(r'<tr data-file="([^"]+)"><td><code>[^<]*</code></td><td class="n">[^<]*</td>'
-                            r'<td><code class="sha256">([0-9a-f]{64})</code>', text))
-    assert set(shown) >= {"parcels.csv", "classes.csv", "summary.json", "slope_pct.tif", "conflict.tif",
-                          "parcels.gpkg", "zones/flood_prone.gpkg"}
+    shown = dict(
+        re.findall(
+            r'<tr data-file="([^"]+)"><td><code>[^<]*</code></td><td class="n">[^<]*</td>'
+            r'<td><code class="sha256">([0-9a-f]{64})</code>',
+            text,
+        )
+    )
+    assert set(shown) >= {
+        "parcels.csv",
+        "classes.csv",
+        "summary.json",
+        "slope_pct.tif",
+        "conflict.tif",
+        "parcels.gpkg",
+        "zones/flood_prone.gpkg",
+    }
     for rel, digest in shown.items():
         assert digest == sha256_hex(fx.out_dir / rel), rel
 
@@ -178,8 +191,14 @@ def test_changed_and_missing_inputs_are_flagged(built, tmp_path):
             f.write("# edited after the audit\n")
         fx.dem_path.rename(moved)
         now = sha256_hex(fx.rulebook_path)
-        text = build_report(fx.out_dir, report_path=tmp_path / "r.html", figures_dir=tmp_path / "fig",
-                            figure_formats=("png",), max_closeups=0, dpi=TEST_DPI).read_text(encoding="utf-8")
+        text = build_report(
+            fx.out_dir,
+            report_path=tmp_path / "r.html",
+            figures_dir=tmp_path / "fig",
+            figure_formats=("png",),
+            max_closeups=0,
+            dpi=TEST_DPI,
+        ).read_text(encoding="utf-8")
     finally:
         fx.rulebook_path.write_bytes(original)
         moved.rename(fx.dem_path)
@@ -225,10 +244,19 @@ def test_report_in_headless_chromium(built, tmp_path):
     fx, path, _ = built
     opts = webdriver.ChromeOptions()
     opts.binary_location = chromium
-    for arg in ("--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
-                "--disable-component-update", "--disable-sync", "--no-first-run",
-                "--proxy-server=127.0.0.1:9", "--host-resolver-rules=MAP * ~NOTFOUND",
-                "--window-size=1280,2200", f"--user-data-dir={tmp_path / 'profile'}"):
+    for arg in (
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        "--no-first-run",
+        "--proxy-server=127.0.0.1:9",
+        "--host-resolver-rules=MAP * ~NOTFOUND",
+        "--window-size=1280,2200",
+        f"--user-data-dir={tmp_path / 'profile'}",
+    ):
         opts.add_argument(arg)
     opts.set_capability("goog:loggingPrefs", {"browser": "ALL"})
     driver = webdriver.Chrome(service=Service(executable_path=chromedriver), options=opts)
@@ -243,12 +271,15 @@ def test_report_in_headless_chromium(built, tmp_path):
                 "var ths = Array.from(document.querySelectorAll('#parcel-table thead th'));"
                 "var i = ths.findIndex(function (t) { return t.dataset.col === col; });"
                 "return Array.from(document.querySelectorAll('#parcel-table tbody tr'))"
-                ".map(function (r) { return r.cells[i].getAttribute('data-value'); });", col)
+                ".map(function (r) { return r.cells[i].getAttribute('data-value'); });",
+                col,
+            )
 
         def click(col: str) -> str:
             driver.find_element(By.CSS_SELECTOR, f'#parcel-table th[data-col="{col}"] button').click()
             return driver.find_element(By.CSS_SELECTOR, f'#parcel-table th[data-col="{col}"]').get_attribute(
-                "aria-sort")
+                "aria-sort"
+            )
 
         # numeric column: compared with Python's sorted() over the CSV's values
         area = sorted(float(r["area_m2"]) for r in rows)
@@ -266,14 +297,16 @@ def test_report_in_headless_chromium(built, tmp_path):
         limits = sorted(float(r["max_slope_pct"]) for r in rows if r["max_slope_pct"])
         click("max_slope_pct")
         got = column("max_slope_pct")
-        assert [float(v) for v in got if v] == limits and got[len(limits):] == [""] * (len(rows) - len(limits))
+        assert [float(v) for v in got if v] == limits and got[len(limits) :] == [""] * (len(rows) - len(limits))
 
         # nothing was fetched from the network: only inline data
         names_fetched = driver.execute_script(
-            "return performance.getEntriesByType('resource').map(function (e) { return e.name; });")
+            "return performance.getEntriesByType('resource').map(function (e) { return e.name; });"
+        )
         assert all(n.startswith("data:") for n in names_fetched), names_fetched
         images_ok = driver.execute_script(
-            "return Array.from(document.images).every(function (i) { return i.complete && i.naturalWidth > 0; });")
+            "return Array.from(document.images).every(function (i) { return i.complete && i.naturalWidth > 0; });"
+        )
         assert images_ok
 
         shot = tmp_path / "report.png"

@@ -11,10 +11,9 @@ import re
 
 import numpy as np
 import shapely
+from _support import ramp_dem, write_parcels, write_rules
 
 from landcheck.core.audit import audit
-
-from _support import ramp_dem, write_parcels, write_rules
 
 X0, Y0 = 400000.0, 1600000.0
 
@@ -31,7 +30,10 @@ def test_rerun_reproduces_figures_and_hashes(tmp_path):
     dem = ramp_dem(tmp_path / "dem.tif")
     rules = write_rules(tmp_path / "r.toml", tol=5.0, band=3.0)
     rng = np.random.default_rng(9)
-    geoms = [shapely.box(X0 + x, Y0 - y, X0 + x + 80, Y0 - y + 60) for x, y in zip(rng.uniform(0, 1000, 12), rng.uniform(80, 1150, 12))]
+    geoms = [
+        shapely.box(X0 + x, Y0 - y, X0 + x + 80, Y0 - y + 60)
+        for x, y in zip(rng.uniform(0, 1000, 12), rng.uniform(80, 1150, 12))
+    ]
     parcels = write_parcels(tmp_path / "p.gpkg", geoms, pid=np.arange(1, 13), zoning=["R"] * 12)
     a = audit(dem, parcels, rules, tmp_path / "a", make_report=True)
     b = audit(dem, parcels, rules, tmp_path / "b", make_report=True, workers=1)  # same settings, other worker count

@@ -37,22 +37,34 @@ def test_degrees_converted_to_percent():
     "text, pattern",
     [
         ("[rulebook\nclass_field = 1", r"r\.toml: not valid TOML"),
-        (BASE + "colour = 'red'\n", r"r\.toml, line 7, \[classes\.residential\]\.colour: unknown key 'colour'; allowed keys"),
-        (BASE.replace("18", '"steep"'), r"line 6, \[classes\.residential\]\.max_slope_pct: got 'steep'; expected a number"),
+        (
+            BASE + "colour = 'red'\n",
+            r"r\.toml, line 7, \[classes\.residential\]\.colour: unknown key 'colour'; allowed keys",
+        ),
+        (
+            BASE.replace("18", '"steep"'),
+            r"line 6, \[classes\.residential\]\.max_slope_pct: got 'steep'; expected a number",
+        ),
         (BASE.replace("18", "-5"), r"max_slope_pct: got -5; allowed range is \(0, 100\]"),
         (BASE.replace("18", "120"), r"max_slope_pct: got 120; allowed range"),
         (BASE + "tolerance_pct = 150\n", r"tolerance_pct: got 150; allowed range is \[0, 100\)"),
         (BASE + "tolerance_pct = -1\n", r"tolerance_pct: got -1"),
         (BASE + "review_band_pct = 20\n", r"review band must be smaller than the limit"),
-        (BASE + "forbidden_zones = [\"floodway\"]\n", r"zone 'floodway' is not defined"),
+        (BASE + 'forbidden_zones = ["floodway"]\n', r"zone 'floodway' is not defined"),
         (BASE.replace('class_field = "zoning"', ""), r"missing class_field"),
         ("[classes.a]\nvalues=['x']\n", r"missing the \[rulebook\] section"),
         (BASE + '\n[classes.other]\nvalues = ["R"]\n', r"value 'R' is already mapped to class 'residential'"),
         (BASE + '\n[zones.z]\nkind = "lava"\n', r"\[zones\.z\]\.kind: got 'lava'; choose one of"),
-        (BASE + '\n[zones.z]\nkind = "easement"\nlayer = "shore"\nwidth_m = 3\n', r"layer 'shore' is not listed in \[layers\]"),
+        (
+            BASE + '\n[zones.z]\nkind = "easement"\nlayer = "shore"\nwidth_m = 3\n',
+            r"layer 'shore' is not listed in \[layers\]",
+        ),
         (BASE + '\n[zones.z]\nkind = "sea_rise"\nrise_m = 1\nscenarios_m = [2, 1]\n', r"not increasing"),
-        (BASE + '\n[uncertainty]\nrmse_m = 0\n', r"rmse_m: got 0; allowed range is \(0"),
-        (BASE + '\n[uncertainty]\nrmse_m = 2\nrealizations = 5\n', r"realizations: got 5; expected a whole number from 10 to 10000"),
+        (BASE + "\n[uncertainty]\nrmse_m = 0\n", r"rmse_m: got 0; allowed range is \(0"),
+        (
+            BASE + "\n[uncertainty]\nrmse_m = 2\nrealizations = 5\n",
+            r"realizations: got 5; expected a whole number from 10 to 10000",
+        ),
         (BASE + 'designated_class = "forest"\n', r"class 'forest' is not defined"),
     ],
 )
@@ -62,7 +74,10 @@ def test_refusals(text, pattern):
 
 
 def test_context_needed_for_per_context_widths(tmp_path):
-    text = BASE + 'forbidden_zones = ["strip"]\n[layers]\nshore = "s.gpkg"\n[zones.strip]\nkind = "easement"\nlayer = "shore"\nwidth_m = { urban = 3.0 }\n'
+    text = (
+        BASE
+        + 'forbidden_zones = ["strip"]\n[layers]\nshore = "s.gpkg"\n[zones.strip]\nkind = "easement"\nlayer = "shore"\nwidth_m = { urban = 3.0 }\n'
+    )
     with pytest.raises(RuleFileError, match="needs context"):
         parse_rules(text, path="r.toml")
 

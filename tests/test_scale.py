@@ -91,8 +91,10 @@ def test_compiled_reduction_equals_reference_bit_for_bit(seed):
     bits = rng.integers(0, 4, (h, w)).astype(np.uint32)
     land = rng.random((h, w)) < 0.9
     cell_area = np.full(h, CELL_M * CELL_M) * rng.uniform(0.99, 1.01, h)
-    for win_transform, hh, ww, sl in [(Affine(CELL_M, 0, 0, 0, -CELL_M, 0), h, w, np.s_[:, :]),
-                                      (Affine(CELL_M, 0, 100, 0, -CELL_M, -50), 20, 30, np.s_[5:25, 10:40])]:
+    for win_transform, hh, ww, sl in [
+        (Affine(CELL_M, 0, 0, 0, -CELL_M, 0), h, w, np.s_[:, :]),
+        (Affine(CELL_M, 0, 100, 0, -CELL_M, -50), 20, 30, np.s_[5:25, 10:40]),
+    ]:
         trip = tuple(coverage_triplets(prepared, win_transform, hh, ww))
         cand = np.arange(len(geoms), dtype=np.int64)
         ref, ref_tile = accumulate_window(slope[sl], bits[sl], cell_area[sl[0]], cand, trip, plan, land[sl])
@@ -113,9 +115,21 @@ def test_compiled_reduction_closed_form_values():
     # area-weighted mean slope = 15 %, maximum 20 %; with an 18 % limit the conflict raster flags the middle
     # column (bit 1) and leaves cells outside the parcel at 255.
     parcel = shapely.box(0, -20, 30, 0)
-    plan = OverlayPlan(np.array([18.0]), np.array([0]), np.array([-1]), np.zeros(1, np.uint32),
-                       np.zeros(1, np.uint32), np.ones(1), np.array([0]), 1, np.array([0]), np.array([ROLE_PARCEL]),
-                       np.empty(0, np.int64), np.empty(0, np.int64), None)
+    plan = OverlayPlan(
+        np.array([18.0]),
+        np.array([0]),
+        np.array([-1]),
+        np.zeros(1, np.uint32),
+        np.zeros(1, np.uint32),
+        np.ones(1),
+        np.array([0]),
+        1,
+        np.array([0]),
+        np.array([ROLE_PARCEL]),
+        np.empty(0, np.int64),
+        np.empty(0, np.int64),
+        None,
+    )
     slope = np.array([[10, 20, np.nan, 5], [10, 20, np.nan, 5], [1, 1, 1, 1]], np.float32)
     trip = tuple(coverage_triplets([parcel], Affine(CELL_M, 0, 0, 0, -CELL_M, 0), 3, 4))
     s, tile = accumulate_window_compiled(slope, None, np.full(3, 100.0), np.array([0]), trip, plan)
@@ -125,17 +139,32 @@ def test_compiled_reduction_closed_form_values():
     assert s.slope_area_sum[0] / s.evaluated_m2[0] == pytest.approx(15.0)
     assert s.slope_max_pct.tolist() == [20.0]
     assert s.conflict_m2.tolist() == [200.0]
-    np.testing.assert_array_equal(tile, [[0, 1, 0, CONFLICT_OUTSIDE], [0, 1, 0, CONFLICT_OUTSIDE],
-                                         [CONFLICT_OUTSIDE] * 4])
+    np.testing.assert_array_equal(
+        tile, [[0, 1, 0, CONFLICT_OUTSIDE], [0, 1, 0, CONFLICT_OUTSIDE], [CONFLICT_OUTSIDE] * 4]
+    )
 
 
 def test_compiled_reduction_empty_window():
     # Common practice: a window no parcel touches gives no per-parcel sums and an all-"outside" tile.
-    plan = OverlayPlan(np.array([18.0]), np.array([0]), np.array([-1]), np.zeros(1, np.uint32),
-                       np.zeros(1, np.uint32), np.ones(1), np.array([0]), 1, np.array([0]), np.array([ROLE_PARCEL]),
-                       np.empty(0, np.int64), np.empty(0, np.int64), None)
+    plan = OverlayPlan(
+        np.array([18.0]),
+        np.array([0]),
+        np.array([-1]),
+        np.zeros(1, np.uint32),
+        np.zeros(1, np.uint32),
+        np.ones(1),
+        np.array([0]),
+        1,
+        np.array([0]),
+        np.array([ROLE_PARCEL]),
+        np.empty(0, np.int64),
+        np.empty(0, np.int64),
+        None,
+    )
     empty = (np.empty(0, np.int64), np.empty(0, np.int32), np.empty(0, np.int32), np.empty(0))
-    s, tile = accumulate_window_compiled(np.ones((4, 5), np.float32), None, np.full(4, 100.0), np.array([0]), empty, plan)
+    s, tile = accumulate_window_compiled(
+        np.ones((4, 5), np.float32), None, np.full(4, 100.0), np.array([0]), empty, plan
+    )
     assert s.parcels.size == 0 and s.land_m2 == pytest.approx(2000.0)
     assert (tile == CONFLICT_OUTSIDE).all()
 
@@ -181,11 +210,15 @@ def test_raster_formats_hold_the_same_cells(tmp_path):
     x0, y0 = 400000.0, 1600000.0
     dem = ramp_dem(tmp_path / "dem.tif")
     rules = write_rules(tmp_path / "r.toml")
-    geoms = [affinity.rotate(shapely.box(x0 + 380, y0 - 500, x0 + 540, y0 - 430), 27, origin="centroid"),
-             shapely.box(x0 + 420, y0 - 700, x0 + 520, y0 - 600)]
+    geoms = [
+        affinity.rotate(shapely.box(x0 + 380, y0 - 500, x0 + 540, y0 - 430), 27, origin="centroid"),
+        shapely.box(x0 + 420, y0 - 700, x0 + 520, y0 - 600),
+    ]
     parcels = write_parcels(tmp_path / "p.gpkg", geoms, pid=[1, 2], zoning=["R", "R"])
-    runs = {f: audit(dem, parcels, rules, tmp_path / f, make_report=False, rasters=f, tile_cells=50, workers=2)
-            for f in ("cog", "gtiff", "none")}
+    runs = {
+        f: audit(dem, parcels, rules, tmp_path / f, make_report=False, rasters=f, tile_cells=50, workers=2)
+        for f in ("cog", "gtiff", "none")
+    }
     num = [c for c in runs["cog"].parcels.columns if runs["cog"].parcels[c].dtype.kind == "f"]
     for f in ("gtiff", "none"):
         np.testing.assert_array_equal(runs["cog"].parcels[num].to_numpy(), runs[f].parcels[num].to_numpy())
@@ -273,9 +306,12 @@ def test_audit_rasters_and_sums_do_not_depend_on_tiles_or_workers(tmp_path):
     dem = ramp_dem(tmp_path / "dem.tif")
     rules = write_rules(tmp_path / "r.toml", band=3.0)
     rng = np.random.default_rng(11)
-    geoms = [affinity.rotate(shapely.box(x0 + x, y0 - y, x0 + x + w, y0 - y + 60), a, origin="centroid")
-             for x, y, w, a in zip(rng.uniform(30, 900, 25), rng.uniform(80, 1150, 25), rng.uniform(20, 250, 25),
-                                   rng.uniform(0, 90, 25))]
+    geoms = [
+        affinity.rotate(shapely.box(x0 + x, y0 - y, x0 + x + w, y0 - y + 60), a, origin="centroid")
+        for x, y, w, a in zip(
+            rng.uniform(30, 900, 25), rng.uniform(80, 1150, 25), rng.uniform(20, 250, 25), rng.uniform(0, 90, 25)
+        )
+    ]
     parcels = write_parcels(tmp_path / "p.gpkg", geoms, pid=np.arange(1, 26), zoning=["R"] * 20 + ["F"] * 5)
     a = audit(dem, parcels, rules, tmp_path / "a", make_report=False, rasters="gtiff", tile_cells=37, workers=1)
     b = audit(dem, parcels, rules, tmp_path / "b", make_report=False, rasters="gtiff", tile_cells=37, workers=2)
@@ -306,8 +342,15 @@ def test_slope_formats_hold_the_same_cells(tmp_path):
 
     dem = ramp_dem(tmp_path / "dem.tif", n=700)
     for fmt in ("cog", "gtiff"):
-        derive_slope(dem, tmp_path / f"{fmt}.tif", raster_format=fmt, class_out=tmp_path / f"{fmt}_cls.tif",
-                     tile_cells=300, workers=2, show_progress=False)
+        derive_slope(
+            dem,
+            tmp_path / f"{fmt}.tif",
+            raster_format=fmt,
+            class_out=tmp_path / f"{fmt}_cls.tif",
+            tile_cells=300,
+            workers=2,
+            show_progress=False,
+        )
     with rasterio.open(tmp_path / "cog.tif") as a, rasterio.open(tmp_path / "gtiff.tif") as b:
         sa, sb = a.read(1), b.read(1)
         assert a.overviews(1) and not b.overviews(1)

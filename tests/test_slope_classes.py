@@ -41,8 +41,9 @@ def test_cli_writes_class_raster(tmp_path, raster_writer):
     # Analytic plane (REFERENCES.md 1.4(1)): z = 0.2 x is 20 % everywhere inside -> class 18-30 (index 3).
     x = np.arange(12) * 10.0
     dem = raster_writer(np.tile(0.2 * x, (9, 1)).astype("float32"))
-    res = CliRunner().invoke(cli, ["slope", str(dem), str(tmp_path / "s.tif"), "--class-raster",
-                                   str(tmp_path / "c.tif"), "--json"])
+    res = CliRunner().invoke(
+        cli, ["slope", str(dem), str(tmp_path / "s.tif"), "--class-raster", str(tmp_path / "c.tif"), "--json"]
+    )
     assert res.exit_code == 0, res.output
     summary = json.loads(res.stdout)
     assert summary["max"] == pytest.approx(20.0, rel=1e-5)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from landcheck.terrain.slope import SlopeMethod, gradient_to_unit, slope_gradient, _horn_pq, _zt_pq
+from landcheck.terrain.slope import SlopeMethod, _horn_pq, _zt_pq, gradient_to_unit, slope_gradient
 
 H = 10.0
 
@@ -53,11 +53,11 @@ def test_eighteen_percent_plane_in_degrees():
     ],
 )
 def test_sinusoid_truncation_factor(method, factor):
-    k, l = 2 * np.pi / 200.0, 2 * np.pi / 300.0
+    k, m = 2 * np.pi / 200.0, 2 * np.pi / 300.0
     X, Y = _grid(64)
-    z = 5.0 * np.sin(k * X) * np.cos(l * Y)
+    z = 5.0 * np.sin(k * X) * np.cos(m * Y)
     inner = (slice(1, -1), slice(1, -1))
-    p_true = (5.0 * k * np.cos(k * X) * np.cos(l * Y))[inner]
+    p_true = (5.0 * k * np.cos(k * X) * np.cos(m * Y))[inner]
     e = z
     z1, z2, z3 = e[:-2, :-2], e[:-2, 1:-1], e[:-2, 2:]
     z4, z6 = e[1:-1, :-2], e[1:-1, 2:]

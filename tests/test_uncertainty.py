@@ -17,7 +17,6 @@ from affine import Affine
 
 from landcheck.errors import RuleFileError
 from landcheck.geo.grid import GridSpec, Window, grow_window, iter_windows
-from landcheck.terrain.slope import _horn_pq, _zt_pq, slope_gradient
 from landcheck.terrain.dem_error import (
     MAX_REALIZATIONS,
     MIN_REALIZATIONS,
@@ -28,6 +27,7 @@ from landcheck.terrain.dem_error import (
     error_field_with_halo,
     probability_standard_error,
 )
+from landcheck.terrain.slope import _horn_pq, _zt_pq, slope_gradient
 
 # Horn (1981) east-derivative weights on the 3x3 window z1..z9 (REFERENCES.md 1.2), times 8 h
 HORN_P_WEIGHTS = np.array([[-1.0, 0.0, 1.0], [-2.0, 0.0, 2.0], [-1.0, 0.0, 1.0]])
@@ -37,8 +37,9 @@ def _pq(elev, h, formula):
     """p, q of every interior cell of a haloed window, through the project's own formula function."""
     e = elev
     hh = np.full((e.shape[0] - 2, 1), h)
-    return formula(e[:-2, :-2], e[:-2, 1:-1], e[:-2, 2:], e[1:-1, :-2], e[1:-1, 2:],
-                   e[2:, :-2], e[2:, 1:-1], e[2:, 2:], hh, hh)
+    return formula(
+        e[:-2, :-2], e[:-2, 1:-1], e[:-2, 2:], e[1:-1, :-2], e[1:-1, 2:], e[2:, :-2], e[2:, 1:-1], e[2:, 2:], hh, hh
+    )
 
 
 def _horn_var_p(sigma, h, corr_length):
@@ -62,6 +63,7 @@ def _corr(a, b):
 
 # --------------------------------------------------------------------------- flat DEM, independent error
 
+
 def test_flat_dem_independent_error_gives_published_false_gradient():
     sigma, h, n = 2.0, 10.0, 400
     model = ErrorModel(rmse_m=sigma, corr_length_m=None, cell_size_m=h)
@@ -82,6 +84,7 @@ def test_flat_dem_independent_error_gives_published_false_gradient():
 
 # --------------------------------------------------------------------------- marginal std and correlation
 
+
 def test_field_std_and_correlation_match_the_stated_gaussian_model():
     sigma, h, length, n = 3.0, 10.0, 40.0, 500
     model = ErrorModel(rmse_m=sigma, corr_length_m=length, cell_size_m=h)
@@ -96,11 +99,11 @@ def test_field_std_and_correlation_match_the_stated_gaussian_model():
     def lag_corr(dr, dc):
         return float(np.mean([_corr(f[: n - dr, : n - dc], f[dr:, dc:]) for f in fields]))
 
-    assert lag_corr(0, 4) == pytest.approx(math.exp(-1.0), abs=0.03)   # east-west, d = L = 40 m
-    assert lag_corr(4, 0) == pytest.approx(math.exp(-1.0), abs=0.03)   # north-south, d = L
-    assert lag_corr(3, 4) == pytest.approx(math.exp(-(50.0 / length) ** 2), abs=0.03)  # diagonal 50 m: isotropy
+    assert lag_corr(0, 4) == pytest.approx(math.exp(-1.0), abs=0.03)  # east-west, d = L = 40 m
+    assert lag_corr(4, 0) == pytest.approx(math.exp(-1.0), abs=0.03)  # north-south, d = L
+    assert lag_corr(3, 4) == pytest.approx(math.exp(-((50.0 / length) ** 2)), abs=0.03)  # diagonal 50 m: isotropy
     assert lag_corr(0, 2) == pytest.approx(math.exp(-0.25), abs=0.03)  # d = L/2
-    assert lag_corr(0, 8) == pytest.approx(math.exp(-4.0), abs=0.03)   # d = 2L
+    assert lag_corr(0, 8) == pytest.approx(math.exp(-4.0), abs=0.03)  # d = 2L
 
 
 def test_rectangular_cells_keep_the_correlation_length_in_metres():
@@ -134,6 +137,7 @@ def test_lattice_correlation_is_within_stated_accuracy_of_the_definition():
 
 
 # --------------------------------------------------------------------------- correlation length and false slope
+
 
 def test_false_gradient_shrinks_as_the_correlation_length_grows():
     sigma, h, n = 1.0, 10.0, 400
@@ -169,6 +173,7 @@ def test_false_gradient_shrinks_as_the_correlation_length_grows():
 
 # --------------------------------------------------------------------------- tiling, reproducibility
 
+
 @pytest.mark.parametrize("length", [0.0, 30.0])
 def test_windowed_equals_whole_raster_bit_for_bit_on_tiles_that_do_not_divide_it(length):
     # Source: STYLE.md 6.4 invariant, tiled == untiled for 7x5 tiles on a 23x31 grid (common practice).
@@ -187,8 +192,9 @@ def test_windowed_equals_whole_raster_bit_for_bit_on_tiles_that_do_not_divide_it
         core = haloed[top : haloed.shape[0] - bottom, left : haloed.shape[1] - right]
         assert np.array_equal(core, whole[inner.rows, inner.cols])
         # cells outside the raster equal the whole raster's own halo there
-        assert np.array_equal(haloed, whole_h[win.row_off : win.row_off + win.height + 2,
-                                              win.col_off : win.col_off + win.width + 2])
+        assert np.array_equal(
+            haloed, whole_h[win.row_off : win.row_off + win.height + 2, win.col_off : win.col_off + win.width + 2]
+        )
         assert not np.isnan(haloed).any()
 
 
@@ -199,8 +205,11 @@ def test_windowed_equals_whole_raster_across_noise_block_boundaries():
     whole = error_field(model, Window(0, 0, height, width), height, width, seed=2, realization=17)
     windows = list(iter_windows(height, width, 97, 61))
     b = NOISE_BLOCK_CELLS
-    straddle = [w for w in windows if w.row_off // b != (w.row_off + w.height - 1) // b
-                and w.col_off // b != (w.col_off + w.width - 1) // b]
+    straddle = [
+        w
+        for w in windows
+        if w.row_off // b != (w.row_off + w.height - 1) // b and w.col_off // b != (w.col_off + w.width - 1) // b
+    ]
     assert straddle, "test set-up: some windows must cross a block corner"
     for win in windows:
         assert np.array_equal(error_field(model, win, height, width, seed=2, realization=17), whole[win.rows, win.cols])
@@ -235,8 +244,10 @@ def test_same_seed_same_field_and_other_seed_or_realization_differs():
     assert np.array_equal(a, error_field(shipped, win, n, n, seed=123, realization=5))
     # Source: independent realizations are uncorrelated; SE of a sample correlation ~ sqrt(k/n) with k ~ 6 cells
     # per independent sample at L = 2 cells: ~0.04; bound 0.2 (common practice).
-    for other in (error_field(model, win, n, n, seed=123, realization=6),
-                  error_field(model, win, n, n, seed=124, realization=5)):
+    for other in (
+        error_field(model, win, n, n, seed=123, realization=6),
+        error_field(model, win, n, n, seed=124, realization=5),
+    ):
         assert not np.array_equal(a, other)
         assert abs(_corr(a, other)) < 0.2
 
@@ -245,8 +256,9 @@ def test_same_seed_same_field_and_other_seed_or_realization_differs():
 def test_mean_over_realizations_tends_to_zero_like_one_over_sqrt_n(length):
     sigma, n_real, size = 1.5, 300, 16
     model = ErrorModel(rmse_m=sigma, corr_length_m=length, cell_size_m=10.0)
-    stack = np.stack([error_field(model, Window(0, 0, size, size), size, size, seed=8, realization=k)
-                      for k in range(n_real)])
+    stack = np.stack(
+        [error_field(model, Window(0, 0, size, size), size, size, seed=8, realization=k) for k in range(n_real)]
+    )
     cell_mean = stack.mean(axis=0)
     # Source: the mean of N independent draws has std sigma / sqrt(N) (common practice).  RMS over 256 cells:
     # SE ~4.4 % of it for independent cells, more when cells are correlated; tolerance 25 %.
@@ -257,13 +269,19 @@ def test_mean_over_realizations_tends_to_zero_like_one_over_sqrt_n(length):
 
 # --------------------------------------------------------------------------- geographic grid helper
 
+
 def test_for_grid_takes_ellipsoidal_cell_sizes_of_the_centre_row():
     # 1 arc-second grid whose centre row is at 45 N.
     # Source: REFERENCES.md 5.3 [C]: a 1" cell at 45 deg is 21.902 m (E-W) x 30.870 m (N-S).
     d = 1.0 / 3600.0
     height = 201
-    grid = GridSpec(transform=Affine(d, 0.0, 120.0, 0.0, -d, 45.0 + (height / 2.0) * d),
-                    crs_wkt="EPSG:4326", width=300, height=height, geographic=True)
+    grid = GridSpec(
+        transform=Affine(d, 0.0, 120.0, 0.0, -d, 45.0 + (height / 2.0) * d),
+        crs_wkt="EPSG:4326",
+        width=300,
+        height=height,
+        geographic=True,
+    )
     model = ErrorModel.for_grid(4.0, 300.0, grid)
     assert model.cell_size_m == pytest.approx(21.902, abs=2e-3)
     assert model.cell_size_y_m == pytest.approx(30.870, abs=2e-3)
@@ -271,6 +289,7 @@ def test_for_grid_takes_ellipsoidal_cell_sizes_of_the_centre_row():
 
 
 # --------------------------------------------------------------------------- validation
+
 
 @pytest.mark.parametrize("rmse", [0.0, -1.0, float("nan"), float("inf"), "5 m", True])
 def test_bad_rmse_is_refused(rmse):
@@ -304,8 +323,14 @@ def test_realization_count_limits():
     assert check_realizations(MIN_REALIZATIONS) == 10
     assert check_realizations(MAX_REALIZATIONS) == 10_000
     assert check_realizations(np.int64(250)) == 250
-    for bad, words in [(9, "at least 10"), (0, "at least 10"), (10_001, "at most 10000"),
-                       (2.5, "whole number"), ("100", "whole number"), (True, "whole number")]:
+    for bad, words in [
+        (9, "at least 10"),
+        (0, "at least 10"),
+        (10_001, "at most 10000"),
+        (2.5, "whole number"),
+        ("100", "whole number"),
+        (True, "whole number"),
+    ]:
         with pytest.raises(RuleFileError, match=words):
             check_realizations(bad)
 

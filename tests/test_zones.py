@@ -5,17 +5,16 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import shapely
+from _support import write_parcels, write_raster
 from affine import Affine
 from click.testing import CliRunner
 from rasterio.transform import from_origin
 
-from landcheck.core.audit import audit
 from landcheck.cli.main import cli
+from landcheck.core.audit import audit
 from landcheck.errors import InputDataError, RuleFileError
 from landcheck.geo.grid import GridSpec
 from landcheck.zones.prepare import buffer_ground
-
-from _support import write_parcels, write_raster
 
 X0, Y0 = 400000.0, 1600000.0
 UTM = "EPSG:32651"
@@ -77,7 +76,9 @@ def test_geographic_buffer_width_matches_geodesic_distance():
         assert d == pytest.approx(40.0, abs=0.05)
 
 
-def _coast_case(tmp_path, extra_zones="", forbidden='["shore_strip", "flood_high", "sea_1m"]', scenarios="[0.5, 1.0, 2.0]"):
+def _coast_case(
+    tmp_path, extra_zones="", forbidden='["shore_strip", "flood_high", "sea_1m"]', scenarios="[0.5, 1.0, 2.0]"
+):
     n, h = 100, 10.0
     x = (np.arange(n) + 0.5) * h
     z = np.tile((x - 200) * 0.02, (n, 1))  # sea west of x = 200 m, rising 2 % eastwards
@@ -85,16 +86,24 @@ def _coast_case(tmp_path, extra_zones="", forbidden='["shore_strip", "flood_high
     dem = write_raster(tmp_path / "dem.tif", z, crs=UTM)
     import geopandas as gpd
 
-    gpd.GeoDataFrame({"name": ["shore"]}, geometry=[shapely.LineString([(X0 + 200, Y0), (X0 + 200, Y0 - 1000)])],
-                     crs=UTM).to_file(tmp_path / "shore.gpkg")
-    gpd.GeoDataFrame({"lvl": [3, 1]}, geometry=[shapely.box(X0 + 300, Y0 - 300, X0 + 400, Y0 - 200),
-                                                shapely.box(X0 + 300, Y0 - 500, X0 + 400, Y0 - 400)],
-                     crs=UTM).to_file(tmp_path / "flood.gpkg")
-    polys = [shapely.box(X0 + 190, Y0 - 150, X0 + 260, Y0 - 100),  # crosses the shoreline
-             shapely.box(X0 + 330, Y0 - 290, X0 + 380, Y0 - 210),  # inside the level-3 flood polygon
-             shapely.box(X0 + 590, Y0 - 610, X0 + 720, Y0 - 390),  # holds the closed basin
-             shapely.box(X0 + 205, Y0 - 900, X0 + 240, Y0 - 850),  # forest lot by the shore
-             shapely.box(X0 + 330, Y0 - 490, X0 + 380, Y0 - 410)]  # inside the level-1 flood polygon
+    gpd.GeoDataFrame(
+        {"name": ["shore"]}, geometry=[shapely.LineString([(X0 + 200, Y0), (X0 + 200, Y0 - 1000)])], crs=UTM
+    ).to_file(tmp_path / "shore.gpkg")
+    gpd.GeoDataFrame(
+        {"lvl": [3, 1]},
+        geometry=[
+            shapely.box(X0 + 300, Y0 - 300, X0 + 400, Y0 - 200),
+            shapely.box(X0 + 300, Y0 - 500, X0 + 400, Y0 - 400),
+        ],
+        crs=UTM,
+    ).to_file(tmp_path / "flood.gpkg")
+    polys = [
+        shapely.box(X0 + 190, Y0 - 150, X0 + 260, Y0 - 100),  # crosses the shoreline
+        shapely.box(X0 + 330, Y0 - 290, X0 + 380, Y0 - 210),  # inside the level-3 flood polygon
+        shapely.box(X0 + 590, Y0 - 610, X0 + 720, Y0 - 390),  # holds the closed basin
+        shapely.box(X0 + 205, Y0 - 900, X0 + 240, Y0 - 850),  # forest lot by the shore
+        shapely.box(X0 + 330, Y0 - 490, X0 + 380, Y0 - 410),
+    ]  # inside the level-1 flood polygon
     parcels = write_parcels(tmp_path / "parcels.gpkg", polys, pid=[1, 2, 3, 4, 5], zoning=["R", "R", "R", "F", "R"])
     (tmp_path / "rules.toml").write_text(f"""
 [rulebook]
@@ -208,11 +217,26 @@ def test_bad_zone_inputs(tmp_path):
     runner = CliRunner()
 
     def run(out):
-        return runner.invoke(cli, ["audit", "--dem", str(dem), "--parcels", str(parcels), "--rulebook", str(rules),
-                                   "--out", str(tmp_path / out), "--no-report"])
+        return runner.invoke(
+            cli,
+            [
+                "audit",
+                "--dem",
+                str(dem),
+                "--parcels",
+                str(parcels),
+                "--rulebook",
+                str(rules),
+                "--out",
+                str(tmp_path / out),
+                "--no-report",
+            ],
+        )
 
     # a line layer with no CRS
-    gpd.GeoDataFrame({"name": ["s"]}, geometry=[shapely.LineString([(X0, Y0), (X0, Y0 - 10)])]).to_file(tmp_path / "shore.gpkg")
+    gpd.GeoDataFrame({"name": ["s"]}, geometry=[shapely.LineString([(X0, Y0), (X0, Y0 - 10)])]).to_file(
+        tmp_path / "shore.gpkg"
+    )
     r = run("o1")
     assert r.exit_code == 3 and "shore.gpkg" in r.output and "no CRS" in r.output
     assert not (tmp_path / "o1").exists()
@@ -222,12 +246,17 @@ def test_bad_zone_inputs(tmp_path):
     assert r.exit_code == 3 and "no features" in r.output
     # level attribute non-numeric
     _coast_case(tmp_path)
-    gpd.GeoDataFrame({"lvl": ["high", "1"]}, geometry=[shapely.box(X0, Y0 - 10, X0 + 10, Y0), shapely.box(X0, Y0 - 30, X0 + 10, Y0 - 20)],
-                     crs=UTM).to_file(tmp_path / "flood.gpkg")
+    gpd.GeoDataFrame(
+        {"lvl": ["high", "1"]},
+        geometry=[shapely.box(X0, Y0 - 10, X0 + 10, Y0), shapely.box(X0, Y0 - 30, X0 + 10, Y0 - 20)],
+        crs=UTM,
+    ).to_file(tmp_path / "flood.gpkg")
     r = run("o3")
     assert r.exit_code == 3 and "'lvl' must be numeric" in r.output and "[1]" in r.output
     # level attribute missing
-    gpd.GeoDataFrame({"other": [1]}, geometry=[shapely.box(X0, Y0 - 10, X0 + 10, Y0)], crs=UTM).to_file(tmp_path / "flood.gpkg")
+    gpd.GeoDataFrame({"other": [1]}, geometry=[shapely.box(X0, Y0 - 10, X0 + 10, Y0)], crs=UTM).to_file(
+        tmp_path / "flood.gpkg"
+    )
     r = run("o4")
     assert r.exit_code == 3 and "no attribute 'lvl'" in r.output
     assert not any((tmp_path / o).exists() for o in ("o1", "o2", "o3", "o4"))

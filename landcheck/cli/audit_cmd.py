@@ -8,6 +8,7 @@ import warnings
 import click
 
 from landcheck.errors import LandcheckWarning
+
 from .main import handle_errors
 from .options import CAUTION_HELP, EXIT_CONFLICTS, dem_options, method_option, run_options
 
@@ -28,15 +29,26 @@ def run_audit_and_report(ctx, *, as_json: bool, fail_on_conflict: bool, **kwargs
         result = audit(show_progress=None if not quiet else False, on_step=on_step, **kwargs)
     t = result.summary["totals"]
     if as_json:
-        click.echo(json.dumps({"out_dir": str(result.out_dir), "caution": result.summary["caution"], "totals": t,
-                               "capability": result.summary["capability"], "warnings": result.warnings}))
+        click.echo(
+            json.dumps(
+                {
+                    "out_dir": str(result.out_dir),
+                    "caution": result.summary["caution"],
+                    "totals": t,
+                    "capability": result.summary["capability"],
+                    "warnings": result.warnings,
+                }
+            )
+        )
     elif not quiet:
         vc = t["verdict_counts"]
         share = t["conflict_share"]
         click.echo(
             f"{t['parcels']} parcels: {vc['conflict']} conflict, {vc['review']} review, {vc['consistent']} consistent, "
             f"{vc['no_data']} no data, {vc['no_rule']} without a rule. Conflict share of evaluated classified land: "
-            f"{'n/a' if share is None else f'{100 * share:.1f} %'}.", err=True)
+            f"{'n/a' if share is None else f'{100 * share:.1f} %'}.",
+            err=True,
+        )
         for w in result.warnings:
             click.echo(f"warning: {w}", err=True)
         click.echo(f"Outputs: {result.out_dir}", err=True)
@@ -46,7 +58,9 @@ def run_audit_and_report(ctx, *, as_json: bool, fail_on_conflict: bool, **kwargs
     return result
 
 
-@click.command("audit", help=f"""Audit a parcel layer against a rulebook.
+@click.command(
+    "audit",
+    help=f"""Audit a parcel layer against a rulebook.
 
 For every parcel: exact area (cell-coverage fractions, not cell centres), the
 area and share at or over its class's slope limit and inside forbidden hazard
@@ -63,54 +77,152 @@ Examples:
   landcheck audit --dem demo_area/dem.tif --parcels demo_area/parcels.gpkg \\
       --rulebook demo_area/rulebook.toml --out audit-out
   landcheck audit ... --json --fail-on-conflict   # for scripts: exit 1 when any parcel conflicts
-""")
-@click.option("--dem", required=True, type=click.Path(dir_okay=False), help="Elevation raster (GeoTIFF or any GDAL raster).")
-@click.option("--parcels", required=True, type=click.Path(dir_okay=False),
-              help="Parcel polygons: GeoPackage, GeoJSON, Shapefile or GeoParquet.")
+""",
+)
+@click.option(
+    "--dem", required=True, type=click.Path(dir_okay=False), help="Elevation raster (GeoTIFF or any GDAL raster)."
+)
+@click.option(
+    "--parcels",
+    required=True,
+    type=click.Path(dir_okay=False),
+    help="Parcel polygons: GeoPackage, GeoJSON, Shapefile or GeoParquet.",
+)
 @click.option("--parcels-layer", default=None, help="Layer of a multi-layer parcels file.")
 @click.option("--parcels-crs", default=None, metavar="CRS", help="CRS to assume when the parcels have none.")
 @click.option("--rulebook", required=True, type=click.Path(dir_okay=False), help="Rulebook (TOML; docs/rules-file.md).")
-@click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False), help="Output folder (must not exist unless --overwrite).")
+@click.option(
+    "--out",
+    "out_dir",
+    required=True,
+    type=click.Path(file_okay=False),
+    help="Output folder (must not exist unless --overwrite).",
+)
 @method_option
 @dem_options
 @run_options
-@click.option("--engine", type=click.Choice(["threads", "dask"]), default="threads", show_default=True,
-              help="Run windows on local threads, or on a Dask cluster (a local one unless --scheduler is given).")
-@click.option("--scheduler", "scheduler_address", default=None, metavar="ADDRESS",
-              help="Dask scheduler address, e.g. tcp://10.0.0.5:8786 (implies --engine dask). Workers must read "
-                   "the inputs by the same paths.")
-@click.option("--dem-rmse", "dem_rmse_m", type=float, default=None, metavar="M",
-              help="Vertical RMSE of the DEM in metres: adds verdict confidence by Monte Carlo (overrides the "
-                   "rulebook's [uncertainty]).")
-@click.option("--corr-length", "corr_length_m", type=float, default=None, metavar="M",
-              help="Correlation length of the DEM error in metres (0 = independent cells).")
+@click.option(
+    "--engine",
+    type=click.Choice(["threads", "dask"]),
+    default="threads",
+    show_default=True,
+    help="Run windows on local threads, or on a Dask cluster (a local one unless --scheduler is given).",
+)
+@click.option(
+    "--scheduler",
+    "scheduler_address",
+    default=None,
+    metavar="ADDRESS",
+    help="Dask scheduler address, e.g. tcp://10.0.0.5:8786 (implies --engine dask). Workers must read "
+    "the inputs by the same paths.",
+)
+@click.option(
+    "--dem-rmse",
+    "dem_rmse_m",
+    type=float,
+    default=None,
+    metavar="M",
+    help="Vertical RMSE of the DEM in metres: adds verdict confidence by Monte Carlo (overrides the "
+    "rulebook's [uncertainty]).",
+)
+@click.option(
+    "--corr-length",
+    "corr_length_m",
+    type=float,
+    default=None,
+    metavar="M",
+    help="Correlation length of the DEM error in metres (0 = independent cells).",
+)
 @click.option("--realizations", type=int, default=None, help="Monte Carlo realizations (10..10000, default 100).")
 @click.option("--seed", type=int, default=None, help="Seed of the error fields (same seed, same numbers).")
-@click.option("--capability-map", "capability_scheme", default=None, metavar="SCHEME",
-              help="Also write a land-capability map: planning-6, fao-2006 or breaks like 8,18,30.")
-@click.option("--draft-reclassification", "draft_mmu_m2", type=float, default=None, metavar="MMU_M2",
-              help="Split conflicting parcels into compliant and non-compliant parts (minimum mapping unit in m²).")
-@click.option("--rasters", type=click.Choice(["cog", "gtiff", "none"]), default="cog", show_default=True,
-              help="Slope and conflict rasters as Cloud-Optimized GeoTIFF, plain tiled GeoTIFF (faster for big "
-                   "runs), or none (tables only; needs --no-report).")
+@click.option(
+    "--capability-map",
+    "capability_scheme",
+    default=None,
+    metavar="SCHEME",
+    help="Also write a land-capability map: planning-6, fao-2006 or breaks like 8,18,30.",
+)
+@click.option(
+    "--draft-reclassification",
+    "draft_mmu_m2",
+    type=float,
+    default=None,
+    metavar="MMU_M2",
+    help="Split conflicting parcels into compliant and non-compliant parts (minimum mapping unit in m²).",
+)
+@click.option(
+    "--rasters",
+    type=click.Choice(["cog", "gtiff", "none"]),
+    default="cog",
+    show_default=True,
+    help="Slope and conflict rasters as Cloud-Optimized GeoTIFF, plain tiled GeoTIFF (faster for big "
+    "runs), or none (tables only; needs --no-report).",
+)
 @click.option("--no-report", is_flag=True, help="Skip the HTML report and maps.")
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary on stdout.")
 @click.option("--fail-on-conflict", is_flag=True, help="Exit with status 1 when any parcel is in conflict.")
 @click.pass_context
 @handle_errors
-def command(ctx, dem, parcels, parcels_layer, parcels_crs, rulebook, out_dir, method, dem_band, dem_crs, z_unit,
-            tile_cells, workers, overwrite, engine, scheduler_address, dem_rmse_m, corr_length_m, realizations, seed,
-            capability_scheme, draft_mmu_m2, rasters, no_report, as_json, fail_on_conflict):
+def command(
+    ctx,
+    dem,
+    parcels,
+    parcels_layer,
+    parcels_crs,
+    rulebook,
+    out_dir,
+    method,
+    dem_band,
+    dem_crs,
+    z_unit,
+    tile_cells,
+    workers,
+    overwrite,
+    engine,
+    scheduler_address,
+    dem_rmse_m,
+    corr_length_m,
+    realizations,
+    seed,
+    capability_scheme,
+    draft_mmu_m2,
+    rasters,
+    no_report,
+    as_json,
+    fail_on_conflict,
+):
     if capability_scheme is not None and "," in capability_scheme:
         try:
             capability_scheme = [float(b) for b in capability_scheme.split(",")]
         except ValueError:
-            raise click.BadParameter(f"{capability_scheme!r}: give a scheme name or breaks like 8,18,30",
-                                     param_hint="--capability-map") from None
-    run_audit_and_report(ctx, as_json=as_json, fail_on_conflict=fail_on_conflict, dem_path=dem, parcels_path=parcels,
-                         rulebook_path=rulebook, out_dir=out_dir, parcels_layer=parcels_layer, parcels_crs=parcels_crs,
-                         dem_band=dem_band, dem_crs=dem_crs, z_unit=z_unit, method=method, tile_cells=tile_cells,
-                         workers=workers, overwrite=overwrite, make_report=not no_report,
-                         engine="dask" if scheduler_address else engine, scheduler_address=scheduler_address,
-                         dem_rmse_m=dem_rmse_m, corr_length_m=corr_length_m, realizations=realizations, seed=seed,
-                         capability_scheme=capability_scheme, draft_mmu_m2=draft_mmu_m2, rasters=rasters)
+            raise click.BadParameter(
+                f"{capability_scheme!r}: give a scheme name or breaks like 8,18,30", param_hint="--capability-map"
+            ) from None
+    run_audit_and_report(
+        ctx,
+        as_json=as_json,
+        fail_on_conflict=fail_on_conflict,
+        dem_path=dem,
+        parcels_path=parcels,
+        rulebook_path=rulebook,
+        out_dir=out_dir,
+        parcels_layer=parcels_layer,
+        parcels_crs=parcels_crs,
+        dem_band=dem_band,
+        dem_crs=dem_crs,
+        z_unit=z_unit,
+        method=method,
+        tile_cells=tile_cells,
+        workers=workers,
+        overwrite=overwrite,
+        make_report=not no_report,
+        engine="dask" if scheduler_address else engine,
+        scheduler_address=scheduler_address,
+        dem_rmse_m=dem_rmse_m,
+        corr_length_m=corr_length_m,
+        realizations=realizations,
+        seed=seed,
+        capability_scheme=capability_scheme,
+        draft_mmu_m2=draft_mmu_m2,
+        rasters=rasters,
+    )

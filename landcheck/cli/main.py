@@ -12,8 +12,9 @@ import traceback
 import click
 
 from landcheck.about import CAUTION, __version__
-from landcheck.versions import show_versions
 from landcheck.errors import LandcheckError
+from landcheck.versions import show_versions
+
 from .options import CAUTION_HELP, EXIT_INTERNAL
 
 logger = logging.getLogger("landcheck")
@@ -49,14 +50,18 @@ def handle_errors(fn):
             if verbosity >= 2:
                 traceback.print_exc(file=sys.stderr)
             else:
-                click.echo("Run again with -vv for a traceback and include it in a bug report "
-                           "with the output of `landcheck --show-versions`.", err=True)
+                click.echo(
+                    "Run again with -vv for a traceback and include it in a bug report "
+                    "with the output of `landcheck --show-versions`.",
+                    err=True,
+                )
             ctx.exit(EXIT_INTERNAL)
 
     return wrapper
 
 
-@click.group(help=f"""Screen land classification against terrain.
+@click.group(
+    help=f"""Screen land classification against terrain.
 
 Derives slope and hazard zones from a DEM, checks every parcel against a
 rulebook, and reports the exact area share where classification conflicts
@@ -71,10 +76,17 @@ Examples:
   landcheck audit --dem demo_area/dem.tif --parcels demo_area/parcels.gpkg \\
       --rulebook demo_area/rulebook.toml --out audit-out
   landcheck slope demo_area/dem.tif slope.tif --unit degrees
-""")
+"""
+)
 @click.version_option(__version__, prog_name="landcheck")
-@click.option("--show-versions", is_flag=True, expose_value=False, is_eager=True, callback=_versions_callback,
-              help="Print versions of landcheck and its libraries (for bug reports) and exit.")
+@click.option(
+    "--show-versions",
+    is_flag=True,
+    expose_value=False,
+    is_eager=True,
+    callback=_versions_callback,
+    help="Print versions of landcheck and its libraries (for bug reports) and exit.",
+)
 @click.option("-v", "--verbose", count=True, help="More log output on stderr (-v info, -vv debug and tracebacks).")
 @click.option("-q", "--quiet", is_flag=True, help="Only errors on stderr; no progress bars.")
 @click.pass_context

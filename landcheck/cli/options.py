@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import click
 
-from landcheck.terrain.slope import SlopeMethod
 from landcheck.inputs.dem import ZUnit
+from landcheck.terrain.slope import SlopeMethod
 
 EXIT_OK = 0
 EXIT_CONFLICTS = 1
@@ -20,25 +20,43 @@ CAUTION_HELP = (
 
 
 def dem_options(f):
-    f = click.option("--dem-band", type=click.IntRange(min=1), default=None,
-                     help="Elevation band of a multi-band raster (1-based).")(f)
-    f = click.option("--dem-crs", default=None, metavar="CRS",
-                     help="CRS to assume when the DEM has none, e.g. EPSG:32651.")(f)
-    f = click.option("--z-unit", type=click.Choice([u.value for u in ZUnit]), default=ZUnit.METRE.value,
-                     show_default=True, help="Unit of the DEM's elevation values (m, ft, us-ft).")(f)
+    f = click.option(
+        "--dem-band", type=click.IntRange(min=1), default=None, help="Elevation band of a multi-band raster (1-based)."
+    )(f)
+    f = click.option(
+        "--dem-crs", default=None, metavar="CRS", help="CRS to assume when the DEM has none, e.g. EPSG:32651."
+    )(f)
+    f = click.option(
+        "--z-unit",
+        type=click.Choice([u.value for u in ZUnit]),
+        default=ZUnit.METRE.value,
+        show_default=True,
+        help="Unit of the DEM's elevation values (m, ft, us-ft).",
+    )(f)
     return f
 
 
 def method_option(f):
-    return click.option("--method", type=click.Choice([m.value for m in SlopeMethod]), default=None,
-                        help="Slope method: horn (Horn 1981) or zevenbergen-thorne (Zevenbergen & Thorne 1987). "
-                             "Default: the rulebook's, else horn.")(f)
+    return click.option(
+        "--method",
+        type=click.Choice([m.value for m in SlopeMethod]),
+        default=None,
+        help="Slope method: horn (Horn 1981) or zevenbergen-thorne (Zevenbergen & Thorne 1987). "
+        "Default: the rulebook's, else horn.",
+    )(f)
 
 
 def run_options(f):
-    f = click.option("--tile-size", "tile_cells", type=click.IntRange(min=16), default=1024, show_default=True,
-                     help="Window size in cells for streamed processing.")(f)
-    f = click.option("--workers", type=click.IntRange(min=1), default=None,
-                     help="Worker threads (default: all cores).")(f)
+    f = click.option(
+        "--tile-size",
+        "tile_cells",
+        type=click.IntRange(min=16),
+        default=1024,
+        show_default=True,
+        help="Window size in cells for streamed processing.",
+    )(f)
+    f = click.option(
+        "--workers", type=click.IntRange(min=1), default=None, help="Worker threads (default: all cores)."
+    )(f)
     f = click.option("--overwrite", is_flag=True, help="Replace existing outputs.")(f)
     return f

@@ -7,11 +7,14 @@ from pathlib import Path
 import click
 
 from landcheck.errors import InputDataError
+
 from .main import handle_errors
 from .options import CAUTION_HELP
 
 
-@click.command("report", help=f"""Rebuild the report and maps of an audit output folder.
+@click.command(
+    "report",
+    help=f"""Rebuild the report and maps of an audit output folder.
 
 Reads only the folder written by `landcheck audit` (and the DEM named in its
 manifest, for relief shading), checks the recorded SHA-256 of every input
@@ -23,12 +26,22 @@ again, and writes report.html and figures/ (PNG and SVG).
 Examples:
   landcheck report landcheck-demo-output
   landcheck report audit-out --dpi 300 --max-closeups 30
-""")
+""",
+)
 @click.argument("out_dir", type=click.Path(file_okay=False))
-@click.option("--report-path", type=click.Path(dir_okay=False), default=None, help="Where to write (default OUT_DIR/report.html).")
-@click.option("--dpi", type=click.IntRange(72, 600), default=200, show_default=True, help="Resolution of the PNG figures.")
-@click.option("--max-closeups", type=click.IntRange(0, 500), default=12, show_default=True,
-              help="Close-up maps of the largest conflicts.")
+@click.option(
+    "--report-path", type=click.Path(dir_okay=False), default=None, help="Where to write (default OUT_DIR/report.html)."
+)
+@click.option(
+    "--dpi", type=click.IntRange(72, 600), default=200, show_default=True, help="Resolution of the PNG figures."
+)
+@click.option(
+    "--max-closeups",
+    type=click.IntRange(0, 500),
+    default=12,
+    show_default=True,
+    help="Close-up maps of the largest conflicts.",
+)
 @click.pass_context
 @handle_errors
 def command(ctx, out_dir, report_path, dpi, max_closeups):

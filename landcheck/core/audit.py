@@ -14,28 +14,43 @@ import logging
 import os
 import threading
 import warnings
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 import pandas as pd
 
-from landcheck.engine.handles import ThreadLocalHandles
 from landcheck.about import CAUTION, __version__
+from landcheck.engine.backends import map_windows
+from landcheck.engine.handles import ThreadLocalHandles
+from landcheck.engine.windows import progress_bar, slope_window
 from landcheck.errors import InputDataError, LandcheckWarning
-from landcheck.verdicts.evaluate import (SENSITIVITY_LIMITS_PCT, Verdict, evaluate_parcels, parcel_rules, sensitivity_table,
-                       slope_histogram, summarise_classes)
 from landcheck.geo.grid import Window, iter_windows
 from landcheck.inputs.dem import DemSource, ZUnit, open_dem
 from landcheck.inputs.layers import areal_factor_at, ground_areas, read_parcels
-from landcheck.outputs.writers import RasterFormat, RasterSink, check_output_path, staged_folder, write_csv, write_gpkg, write_json
+from landcheck.inputs.rulebook import Rulebook, load_rules
+from landcheck.outputs.writers import (
+    RasterFormat,
+    RasterSink,
+    check_output_path,
+    staged_folder,
+    write_csv,
+    write_gpkg,
+    write_json,
+)
 from landcheck.overlay.coverage import CoverageBuffers, coverage_triplets, prepare_polygons
 from landcheck.overlay.sums import CONFLICT_OUTSIDE, ROLE_PARCEL, OverlayPlan, Totals, accumulate_window_compiled
-from landcheck.inputs.rulebook import Rulebook, load_rules
 from landcheck.terrain.slope import SlopeMethod, gradient_to_unit
-from landcheck.engine.backends import map_windows
-from landcheck.engine.windows import progress_bar, slope_window
+from landcheck.verdicts.evaluate import (
+    SENSITIVITY_LIMITS_PCT,
+    Verdict,
+    evaluate_parcels,
+    parcel_rules,
+    sensitivity_table,
+    slope_histogram,
+    summarise_classes,
+)
 
 __all__ = ["audit", "AuditResult", "AuditSettings"]
 
@@ -84,13 +99,22 @@ def _input_files(path: str) -> list[str]:
     return [str(p)] if p.is_file() else []
 
 
-def _build_plan(rules: Rulebook, class_names: np.ndarray, area_factor: np.ndarray, ground_factor: float,
-                zones=None, piece_parcel=None, piece_role=None) -> OverlayPlan:
+def _build_plan(
+    rules: Rulebook,
+    class_names: np.ndarray,
+    area_factor: np.ndarray,
+    ground_factor: float,
+    zones=None,
+    piece_parcel=None,
+    piece_role=None,
+) -> OverlayPlan:
     by = {c.name: c for c in rules.classes}
     class_idx = {c.name: i for i, c in enumerate(rules.classes)}
     zone_idx = {z.name: i for i, z in enumerate(rules.zones)}
     if len(rules.zones) > 7:
-        raise InputDataError(f"{rules.path}: {len(rules.zones)} zones defined; at most 7 fit the conflict raster's bits.")
+        raise InputDataError(
+            f"{rules.path}: {len(rules.zones)} zones defined; at most 7 fit the conflict raster's bits."
+        )
     columns = zones.columns if zones is not None else []
     limits = set(float(x) for x in SENSITIVITY_LIMITS_PCT)
     for c in rules.classes:
@@ -127,9 +151,22 @@ def _build_plan(rules: Rulebook, class_names: np.ndarray, area_factor: np.ndarra
     geom_role = np.concatenate([np.full(n, ROLE_PARCEL, np.int64), piece_role])
     col_channel = np.array([c.raster_channel for c in columns], np.int64)
     col_zone = np.array([c.zone_index if c.zone_index is not None else -1 for c in columns], np.int64)
-    return OverlayPlan(thresholds, limit_index, near_index, raster_forbid, zone_forbid, area_factor, cidx,
-                       len(rules.classes), geom_parcel, geom_role, col_channel, col_zone, rules.capability_limit_pct,
-                       ground_factor)
+    return OverlayPlan(
+        thresholds,
+        limit_index,
+        near_index,
+        raster_forbid,
+        zone_forbid,
+        area_factor,
+        cidx,
+        len(rules.classes),
+        geom_parcel,
+        geom_role,
+        col_channel,
+        col_zone,
+        rules.capability_limit_pct,
+        ground_factor,
+    )
 
 
 class _WindowJob(ThreadLocalHandles):
@@ -143,7 +180,9 @@ class _WindowJob(ThreadLocalHandles):
         self.plan = plan
         self.zones = zones
         self._local = threading.local()  # per-thread reusable coverage buffers
-        self.keep_rasters = True  # False: hand back no slope/conflict tiles (nothing to write; less to ship from workers)
+        self.keep_rasters = (
+            True  # False: hand back no slope/conflict tiles (nothing to write; less to ship from workers)
+        )
 
     def __call__(self, win: Window):
         g = self.dem.grid
@@ -156,8 +195,9 @@ class _WindowJob(ThreadLocalHandles):
             buffers = self._local.buffers = CoverageBuffers()
         trip = coverage_triplets(self.polygons, g.window_transform(win), win.height, win.width, buffers=buffers)
         rows = np.arange(win.row_off, win.row_off + win.height)
-        sums, conflict = accumulate_window_compiled(slope_pct, zone_bits, g.cell_area_m2(rows), self.all_index,
-                                                    tuple(trip), self.plan, land_mask)
+        sums, conflict = accumulate_window_compiled(
+            slope_pct, zone_bits, g.cell_area_m2(rows), self.all_index, tuple(trip), self.plan, land_mask
+        )
         if not self.keep_rasters:
             return sums, None, None
         return sums, slope_pct, conflict
@@ -208,26 +248,46 @@ def audit(
     rules = load_rules(rulebook_path)
     layer_paths = list(rules.layers.values())
     out = check_output_path(out_dir, [dem_path, parcels_path, rulebook_path, *layer_paths], overwrite=overwrite)
-    settings = AuditSettings(SlopeMethod.from_user(method) if method else rules.slope_method, tile_cells, dem_band,
-                             dem_crs, ZUnit.from_user(z_unit), parcels_layer, parcels_crs)
+    settings = AuditSettings(
+        SlopeMethod.from_user(method) if method else rules.slope_method,
+        tile_cells,
+        dem_band,
+        dem_crs,
+        ZUnit.from_user(z_unit),
+        parcels_layer,
+        parcels_crs,
+    )
     raster_format = RasterFormat.from_user(rasters)  # cog | gtiff | none (docs/scale.md)
     if raster_format is RasterFormat.NONE and make_report:
-        raise InputDataError("rasters='none' writes no slope or conflict raster, and the report maps need them; "
-                             "turn the report off (--no-report) or choose rasters 'cog' or 'gtiff'.")
+        raise InputDataError(
+            "rasters='none' writes no slope or conflict raster, and the report maps need them; "
+            "turn the report off (--no-report) or choose rasters 'cog' or 'gtiff'."
+        )
     dem = open_dem(dem_path, band=dem_band, crs=dem_crs, z_unit=settings.z_unit)
     g = dem.grid
     from landcheck.verdicts.confidence import confidence_settings
 
-    conf = None if skip_confidence else confidence_settings(rules, g, rmse_m=dem_rmse_m, corr_length_m=corr_length_m,
-                                                            realizations=realizations, seed=seed)
+    conf = (
+        None
+        if skip_confidence
+        else confidence_settings(
+            rules, g, rmse_m=dem_rmse_m, corr_length_m=corr_length_m, realizations=realizations, seed=seed
+        )
+    )
     if draft_mmu_m2 is not None and draft_mmu_m2 < 0:
         raise InputDataError(f"minimum mapping unit: got {draft_mmu_m2} m²; give 0 or a positive area.")
     step(f"DEM {g.width}x{g.height} cells, {'geographic' if g.geographic else 'projected'}")
     collected: list[str] = []
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", LandcheckWarning)
-        ps = read_parcels(parcels_path, class_field=rules.class_field, id_field=rules.id_field,
-                          target_crs_wkt=g.crs_wkt, layer=parcels_layer, crs=parcels_crs)
+        ps = read_parcels(
+            parcels_path,
+            class_field=rules.class_field,
+            id_field=rules.id_field,
+            target_crs_wkt=g.crs_wkt,
+            layer=parcels_layer,
+            crs=parcels_crs,
+        )
     for w in caught:
         if issubclass(w.category, LandcheckWarning):
             collected.append(str(w.message))
@@ -240,8 +300,10 @@ def audit(
     dem_box = shapely.box(*g.bounds)
     inside = shapely.intersects(geoms, dem_box)
     if not inside.any():
-        raise InputDataError(f"{ps.where}: no parcel overlaps the DEM (DEM bounds {tuple(round(b, 3) for b in g.bounds)} "
-                             "in its CRS); check that the parcels and the DEM cover the same area and CRS.")
+        raise InputDataError(
+            f"{ps.where}: no parcel overlaps the DEM (DEM bounds {tuple(round(b, 3) for b in g.bounds)} "
+            "in its CRS); check that the parcels and the DEM cover the same area and CRS."
+        )
     n_out = int((~inside & ~empty).sum())
     if n_out:
         msg = f"{ps.where}: {n_out} parcels lie entirely outside the DEM; they are reported with verdict no_data."
@@ -251,13 +313,18 @@ def audit(
     pr = parcel_rules(rules, frame["class_value"].to_numpy())
     unmatched = sorted(set(frame["class_value"][pr.class_name == "no_rule"].astype(str)))
     if unmatched:
-        msg = (f"{ps.where}: {int((pr.class_name == 'no_rule').sum())} parcels have class values with no rule "
-               f"({', '.join(map(repr, unmatched[:10]))}); they are listed with verdict no_rule.")
+        msg = (
+            f"{ps.where}: {int((pr.class_name == 'no_rule').sum())} parcels have class values with no rule "
+            f"({', '.join(map(repr, unmatched[:10]))}); they are listed with verdict no_rule."
+        )
         collected.append(msg)
         warnings.warn(msg, LandcheckWarning, stacklevel=2)
     # whole-area land figures use the map-to-ground factor at the DEM's centre (parcels use their own)
-    ground_factor = 1.0 if g.geographic else areal_factor_at(g.crs_wkt, (g.bounds[0] + g.bounds[2]) / 2,
-                                                               (g.bounds[1] + g.bounds[3]) / 2)
+    ground_factor = (
+        1.0
+        if g.geographic
+        else areal_factor_at(g.crs_wkt, (g.bounds[0] + g.bounds[2]) / 2, (g.bounds[1] + g.bounds[3]) / 2)
+    )
     step(f"{len(frame)} parcels, {len(rules.classes)} classes, {len(rules.zones)} zones")
 
     zones = None
@@ -280,14 +347,26 @@ def audit(
     columns = zones.columns if zones is not None else []
     job.keep_rasters = raster_format is not RasterFormat.NONE
     with staged_folder(out, overwrite=overwrite) as stage:
-        with RasterSink(stage / "slope_pct.tif", g, dtype="float32", nodata=np.nan, band_names=["slope_pct"],
-                        fmt=raster_format) as slope_sink, \
-                RasterSink(stage / "conflict.tif", g, dtype="uint8", nodata=CONFLICT_OUTSIDE, fmt=raster_format,
-                           categorical=True,
-                           band_names=["conflict bits: 1=slope" + "".join(f", {1 << (i + 1)}={z}" for i, z in enumerate(zone_names))]) as conflict_sink, \
-                progress_bar(len(windows), "audit", enabled=show_progress) as bar:
-            for win, (sums, slope_pct, conflict) in map_windows(job, windows, engine=engine, workers=workers,
-                                                                      scheduler_address=scheduler_address, progress=bar):
+        with (
+            RasterSink(
+                stage / "slope_pct.tif", g, dtype="float32", nodata=np.nan, band_names=["slope_pct"], fmt=raster_format
+            ) as slope_sink,
+            RasterSink(
+                stage / "conflict.tif",
+                g,
+                dtype="uint8",
+                nodata=CONFLICT_OUTSIDE,
+                fmt=raster_format,
+                categorical=True,
+                band_names=[
+                    "conflict bits: 1=slope" + "".join(f", {1 << (i + 1)}={z}" for i, z in enumerate(zone_names))
+                ],
+            ) as conflict_sink,
+            progress_bar(len(windows), "audit", enabled=show_progress) as bar,
+        ):
+            for win, (sums, slope_pct, conflict) in map_windows(
+                job, windows, engine=engine, workers=workers, scheduler_address=scheduler_address, progress=bar
+            ):
                 totals.add(sums)
                 slope_sink.write(win, slope_pct)
                 conflict_sink.write(win, conflict)
@@ -296,13 +375,43 @@ def audit(
         parcels.insert(0, "parcel_id", frame["parcel_id"].to_numpy())
         parcels["geometry_note"] = frame["geometry_note"].to_numpy()
         classes = summarise_classes(parcels, rules)
-        extra = _extras(stage, dem, windows, all_geoms, plan, rules, pr, settings, parcels, zones, conf,
-                        capability_scheme, draft_mmu_m2, workers, show_progress, step)
-        counted = (parcels["verdict"] != Verdict.NO_DATA).to_numpy() & (parcels["verdict"] != Verdict.NO_RULE).to_numpy()
+        extra = _extras(
+            stage,
+            dem,
+            windows,
+            all_geoms,
+            plan,
+            rules,
+            pr,
+            settings,
+            parcels,
+            zones,
+            conf,
+            capability_scheme,
+            draft_mmu_m2,
+            workers,
+            show_progress,
+            step,
+        )
+        counted = (parcels["verdict"] != Verdict.NO_DATA).to_numpy() & (
+            parcels["verdict"] != Verdict.NO_RULE
+        ).to_numpy()
         summary = _summary(rules, parcels, classes, totals, plan, pr, counted, zone_names, collected, columns)
         summary.update(extra)
-        summary["manifest"] = _manifest(started, dem, parcels_path, rules, settings, workers, g, engine, conf,
-                                        capability_scheme, draft_mmu_m2, raster_format.value)
+        summary["manifest"] = _manifest(
+            started,
+            dem,
+            parcels_path,
+            rules,
+            settings,
+            workers,
+            g,
+            engine,
+            conf,
+            capability_scheme,
+            draft_mmu_m2,
+            raster_format.value,
+        )
         if zones is not None:
             summary["zones"] = zones.describe()
             zones.write_layers(stage)
@@ -325,8 +434,24 @@ def audit(
     return AuditResult(out, summary, parcels, classes, collected)
 
 
-def _extras(stage, dem, windows, all_geoms, plan, rules, pr, settings, parcels, zones, conf, capability_scheme,
-            draft_mmu_m2, workers, show_progress, step) -> dict:
+def _extras(
+    stage,
+    dem,
+    windows,
+    all_geoms,
+    plan,
+    rules,
+    pr,
+    settings,
+    parcels,
+    zones,
+    conf,
+    capability_scheme,
+    draft_mmu_m2,
+    workers,
+    show_progress,
+    step,
+) -> dict:
     """Confidence under DEM error, capability map, drafted reclassification; writes their files, adds columns."""
     extra: dict = {}
     if conf is not None:
@@ -335,8 +460,19 @@ def _extras(stage, dem, windows, all_geoms, plan, rules, pr, settings, parcels, 
         step(f"confidence: {conf.realizations} realizations of DEM error (RMSE {conf.model.rmse_m:g} m)")
         with progress_bar(conf.realizations * len(windows), "confidence", enabled=show_progress) as cbar:
             cparcels, cclasses, extra["confidence"] = run_confidence(
-                dem, windows, all_geoms, plan, rules, pr, settings, parcels, conf, zones=zones, workers=workers,
-                progress=cbar)
+                dem,
+                windows,
+                all_geoms,
+                plan,
+                rules,
+                pr,
+                settings,
+                parcels,
+                conf,
+                zones=zones,
+                workers=workers,
+                progress=cbar,
+            )
         parcels["p_conflict"] = cparcels["p_conflict"].to_numpy()
         parcels["confidence"] = cparcels["confidence"].to_numpy()
         write_csv(stage / "confidence.csv", cparcels)
@@ -346,8 +482,18 @@ def _extras(stage, dem, windows, all_geoms, plan, rules, pr, settings, parcels, 
 
         step("land-capability map")
         spec = capability_spec(rules, zones, scheme=capability_scheme)
-        table, _ = run_capability(dem, windows, all_geoms, plan, rules, spec, stage / "capability.tif",
-                                  method=settings.method, zones=zones, workers=workers)
+        table, _ = run_capability(
+            dem,
+            windows,
+            all_geoms,
+            plan,
+            rules,
+            spec,
+            stage / "capability.tif",
+            method=settings.method,
+            zones=zones,
+            workers=workers,
+        )
         write_csv(stage / "capability_by_class.csv", table)
         write_capability_legend(stage, spec)
         extra["capability_map"] = {"scheme": spec.scheme.key, "hazard_zones": list(spec.hazard_zones)}
@@ -355,13 +501,17 @@ def _extras(stage, dem, windows, all_geoms, plan, rules, pr, settings, parcels, 
         from landcheck.verdicts.reclassify import draft_reclassification
 
         step("drafting the reclassification of conflicting parcels")
-        parts, moves = draft_reclassification(dem, settings, parcels, all_geoms, plan, rules, pr, zones=zones,
-                                              mmu_m2=draft_mmu_m2)
+        parts, moves = draft_reclassification(
+            dem, settings, parcels, all_geoms, plan, rules, pr, zones=zones, mmu_m2=draft_mmu_m2
+        )
         if len(parts):
             write_gpkg(stage / "reclassification.gpkg", parts, layer="parts")
         write_csv(stage / "reclassification_moves.csv", moves)
-        extra["reclassification"] = {"mmu_m2": draft_mmu_m2, "parts": int(len(parts)),
-                                     "moves": moves.to_dict(orient="records")}
+        extra["reclassification"] = {
+            "mmu_m2": draft_mmu_m2,
+            "parts": int(len(parts)),
+            "moves": moves.to_dict(orient="records"),
+        }
     return extra
 
 
@@ -376,10 +526,14 @@ def _summary(rules, parcels, classes, totals, plan, pr, counted, zone_names, col
         "reference_limit_pct": plan.capability_limit_pct,
         "dem_land_m2": totals.land_m2,
         "land_within_limit_m2": totals.land_within_m2 if plan.capability_limit_pct is not None else None,
-        "land_within_limit_share": (totals.land_within_m2 / totals.land_m2) if totals.land_m2 > 0 and plan.capability_limit_pct is not None else None,
+        "land_within_limit_share": (totals.land_within_m2 / totals.land_m2)
+        if totals.land_m2 > 0 and plan.capability_limit_pct is not None
+        else None,
         "classified_m2": total_area,
         "classified_development_m2": float(parcels.loc[dev, "covered_m2"].sum()),
-        "classified_development_share": float(parcels.loc[dev, "covered_m2"].sum()) / totals.land_m2 if totals.land_m2 > 0 else None,
+        "classified_development_share": float(parcels.loc[dev, "covered_m2"].sum()) / totals.land_m2
+        if totals.land_m2 > 0
+        else None,
     }
     return {
         "tool": "landcheck",
@@ -399,7 +553,9 @@ def _summary(rules, parcels, classes, totals, plan, pr, counted, zone_names, col
         "sensitivity": sensitivity_table(totals, plan, pr, rules, counted),
         "slope_histogram": slope_histogram(totals, rules),
         "conflict_raster_bits": ["slope", *zone_names],
-        "zone_columns": [{"name": c.name, "label": c.label, "rulebook_zone": c.zone_index is not None} for c in columns],
+        "zone_columns": [
+            {"name": c.name, "label": c.label, "rulebook_zone": c.zone_index is not None} for c in columns
+        ],
         "zone_shares_by_class": _zone_shares_by_class(parcels, rules, columns),
         "warnings": collected,
     }
@@ -411,14 +567,27 @@ def _zone_shares_by_class(parcels: pd.DataFrame, rules: Rulebook, columns) -> di
     for c in rules.classes:
         sel = parcels["class_name"] == c.name
         cov = float(parcels.loc[sel, "covered_m2"].sum())
-        out[c.name] = {col.name: (float(parcels.loc[sel, f"zone_{col.name}_m2"].sum()) / cov if cov > 0 else None)
-                       for col in columns}
+        out[c.name] = {
+            col.name: (float(parcels.loc[sel, f"zone_{col.name}_m2"].sum()) / cov if cov > 0 else None)
+            for col in columns
+        }
     return out
 
 
-def _manifest(started, dem: DemSource, parcels_path, rules: Rulebook, settings: AuditSettings, workers, g,
-              engine: str = "threads", conf=None, capability_scheme=None, draft_mmu_m2=None,
-              rasters: str = "cog") -> dict:
+def _manifest(
+    started,
+    dem: DemSource,
+    parcels_path,
+    rules: Rulebook,
+    settings: AuditSettings,
+    workers,
+    g,
+    engine: str = "threads",
+    conf=None,
+    capability_scheme=None,
+    draft_mmu_m2=None,
+    rasters: str = "cog",
+) -> dict:
     from landcheck.versions import show_versions
 
     inputs = [{"role": "dem", "path": str(Path(dem.path).resolve()), "sha256": sha256_file(dem.path)}]

@@ -10,12 +10,12 @@ from pathlib import Path
 
 import numpy as np
 
+from landcheck.engine.windows import progress_bar, run_windows, slope_window
 from landcheck.geo.grid import iter_windows
 from landcheck.inputs.dem import ZUnit, open_dem
 from landcheck.outputs.writers import RasterFormat, RasterSink
-from landcheck.terrain.slope_classes import NO_CLASS, SlopeClassScheme, classify_slope, get_scheme
 from landcheck.terrain.slope import SlopeMethod, SlopeUnit, gradient_to_unit
-from landcheck.engine.windows import progress_bar, run_windows, slope_window
+from landcheck.terrain.slope_classes import NO_CLASS, SlopeClassScheme, classify_slope, get_scheme
 
 __all__ = ["derive_slope", "SlopeRunInfo"]
 
@@ -50,7 +50,7 @@ def derive_slope(
     overwrite: bool = False,
     show_progress: bool | None = None,
     class_out: str | os.PathLike | None = None,
-    class_scheme: "SlopeClassScheme | None" = None,
+    class_scheme: SlopeClassScheme | None = None,
     raster_format: RasterFormat | str = RasterFormat.COG,
 ) -> SlopeRunInfo:
     """Compute a slope raster from a DEM, window by window, and write it as a COG.
@@ -77,13 +77,31 @@ def derive_slope(
     vmin, vmax = np.inf, -np.inf
     scheme = class_scheme or get_scheme("planning-6")
     with contextlib.ExitStack() as stack:
-        sink = stack.enter_context(RasterSink(out_path, g, dtype="float32", nodata=np.nan, overwrite=overwrite,
-                                              band_names=[f"slope_{unit.value}"], fmt=raster_format))
+        sink = stack.enter_context(
+            RasterSink(
+                out_path,
+                g,
+                dtype="float32",
+                nodata=np.nan,
+                overwrite=overwrite,
+                band_names=[f"slope_{unit.value}"],
+                fmt=raster_format,
+            )
+        )
         class_sink = None
         if class_out is not None:
-            class_sink = stack.enter_context(RasterSink(
-                class_out, g, dtype="uint8", nodata=NO_CLASS, overwrite=overwrite, fmt=raster_format, categorical=True,
-                band_names=["slope class: " + "; ".join(f"{i}={lab}" for i, lab in enumerate(scheme.labels))]))
+            class_sink = stack.enter_context(
+                RasterSink(
+                    class_out,
+                    g,
+                    dtype="uint8",
+                    nodata=NO_CLASS,
+                    overwrite=overwrite,
+                    fmt=raster_format,
+                    categorical=True,
+                    band_names=["slope class: " + "; ".join(f"{i}={lab}" for i, lab in enumerate(scheme.labels))],
+                )
+            )
         bar = stack.enter_context(progress_bar(len(windows), "slope", enabled=show_progress))
         want_classes = class_sink is not None
 

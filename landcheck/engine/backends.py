@@ -18,11 +18,11 @@ count (tests check local threads == Dask).
 from __future__ import annotations
 
 import logging
-from typing import Callable, Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 
 from landcheck.choices import UserChoice
-from landcheck.geo.grid import Window
 from landcheck.engine.windows import default_workers, ordered_results, run_windows
+from landcheck.geo.grid import Window
 
 __all__ = ["EngineKind", "map_windows"]
 
@@ -36,7 +36,6 @@ class EngineKind(UserChoice):
     @classmethod
     def _noun(cls) -> str:
         return "engine"
-
 
 
 def _call(task, win):
@@ -68,15 +67,17 @@ def _dask_map(task, windows, *, workers, scheduler_address, progress):
         client = Client(scheduler_address)
     else:
         n = workers or default_workers()
-        cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, dashboard_address=None,
-                               silence_logs=logging.ERROR)
+        cluster = LocalCluster(
+            n_workers=n, threads_per_worker=1, processes=True, dashboard_address=None, silence_logs=logging.ERROR
+        )
         client = Client(cluster)
     try:
         n_workers = max(1, len(client.scheduler_info().get("workers", {})) or (workers or 1))
         logger.info("dask: %d workers at %s", n_workers, client.scheduler.address)
         task_ref = client.scatter(task, broadcast=True)
-        yield from ordered_results(lambda w: client.submit(_call, task_ref, w, pure=False), windows,
-                                   2 * n_workers, progress)
+        yield from ordered_results(
+            lambda w: client.submit(_call, task_ref, w, pure=False), windows, 2 * n_workers, progress
+        )
     finally:
         client.close()
         if cluster is not None:

@@ -14,8 +14,9 @@ from __future__ import annotations
 import os
 import sys
 from collections import deque
+from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import ThreadPoolExecutor
-from typing import Callable, Iterable, Iterator, TypeVar
+from typing import TypeVar
 
 import numpy as np
 

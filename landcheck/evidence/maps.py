@@ -85,12 +85,19 @@ _VERDICT_STYLE = {
     "no_rule": ("#7a3d96", 1.6, (0, (6.0, 2.0, 1.2, 2.0))),
 }
 _CONFLICT_HATCH = {1: "////", 2: "\\\\\\\\", 3: "xxxx"}
-_CONFLICT_TEXT = {1: "slope at or over the class limit", 2: "inside a zone the class forbids",
-                  3: "both slope and forbidden zone"}
+_CONFLICT_TEXT = {
+    1: "slope at or over the class limit",
+    2: "inside a zone the class forbids",
+    3: "both slope and forbidden zone",
+}
 _ZONE_STYLE = [("#0b5f8a", ".."), ("#2f7d4f", "oo"), ("#6a4c93", "++"), ("#8a5a0b", "--")]
 _SERIES_STYLE = [  # (colour, marker, dash) for chart lines; marker + dash separate them in greyscale
-    ("#1f4e8c", "o", "solid"), ("#c2571a", "s", (0, (5, 2))), ("#3a8a55", "^", (0, (1, 1.5))),
-    ("#7a3d96", "D", (0, (6, 2, 1, 2))), ("#8c6d1f", "v", (0, (3, 1))), ("#5c5c5c", "P", (0, (8, 3))),
+    ("#1f4e8c", "o", "solid"),
+    ("#c2571a", "s", (0, (5, 2))),
+    ("#3a8a55", "^", (0, (1, 1.5))),
+    ("#7a3d96", "D", (0, (6, 2, 1, 2))),
+    ("#8c6d1f", "v", (0, (3, 1))),
+    ("#5c5c5c", "P", (0, (8, 3))),
 ]
 _NODATA_GREY = np.array([0.86, 0.86, 0.86])
 _PNG_METADATA = {"Software": None}
@@ -165,8 +172,15 @@ class ScaleBar:
 # --------------------------------------------------------------------------- pure helpers
 
 
-def hillshade(elev: np.ndarray, dx_m: float, dy_m: float, *, azimuth_deg: float = SUN_AZIMUTH_DEG,
-              altitude_deg: float = SUN_ALTITUDE_DEG, north_up: bool = True) -> np.ndarray:
+def hillshade(
+    elev: np.ndarray,
+    dx_m: float,
+    dy_m: float,
+    *,
+    azimuth_deg: float = SUN_AZIMUTH_DEG,
+    altitude_deg: float = SUN_ALTITUDE_DEG,
+    north_up: bool = True,
+) -> np.ndarray:
     """Lambertian illumination of a gridded surface (relief shading).
 
     The surface normal is (-p, -q, 1)/sqrt(1 + p^2 + q^2) with p = dz/dx (east)
@@ -204,8 +218,10 @@ def hillshade(elev: np.ndarray, dx_m: float, dy_m: float, *, azimuth_deg: float 
 def _check_breaks(breaks_pct: Sequence[float]) -> np.ndarray:
     b = np.asarray([float(v) for v in breaks_pct], dtype=np.float64)
     if b.ndim != 1 or b.size < 2 or np.any(np.isnan(b)) or np.any(np.diff(b) <= 0) or b[0] < 0:
-        raise ValueError(f"slope_breaks_pct: got {list(breaks_pct)}; expected at least two strictly increasing "
-                         "percent values starting at 0 or more, e.g. [0, 3, 8, 18, 30, 50, inf]")
+        raise ValueError(
+            f"slope_breaks_pct: got {list(breaks_pct)}; expected at least two strictly increasing "
+            "percent values starting at 0 or more, e.g. [0, 3, 8, 18, 30, 50, inf]"
+        )
     return b
 
 
@@ -246,14 +262,16 @@ def slope_class_labels(breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT) -
 
 # Anchor colours in CIELAB (L*, a*, b*), pale straw to dark plum; L* falls
 # strictly, so the ramp reads in greyscale and for every colour-vision type.
-_SLOPE_RAMP_LAB = np.array([
-    [96.0, -5.0, 28.0],
-    [84.0, 4.0, 52.0],
-    [70.0, 22.0, 55.0],
-    [56.0, 38.0, 38.0],
-    [42.0, 40.0, 8.0],
-    [27.0, 24.0, -18.0],
-])
+_SLOPE_RAMP_LAB = np.array(
+    [
+        [96.0, -5.0, 28.0],
+        [84.0, 4.0, 52.0],
+        [70.0, 22.0, 55.0],
+        [56.0, 38.0, 38.0],
+        [42.0, 40.0, 8.0],
+        [27.0, 24.0, -18.0],
+    ]
+)
 _D65_WHITE = (0.95047, 1.0, 1.08883)
 
 
@@ -317,8 +335,9 @@ def _metres_per_map_unit_x(crs, lat_deg: float) -> float:
     return float(crs.axis_info[0].unit_conversion_factor)
 
 
-def choose_scale_bar(x_min: float, x_max: float, y_min: float, y_max: float, crs, *,
-                     fraction: float = 0.25) -> ScaleBar:
+def choose_scale_bar(
+    x_min: float, x_max: float, y_min: float, y_max: float, crs, *, fraction: float = 0.25
+) -> ScaleBar:
     """Pick a round scale-bar length near ``fraction`` of the map width.
 
     Parameters
@@ -368,8 +387,10 @@ def _read_json(path: Path) -> dict:
         with open(path, encoding="utf-8") as f:
             return json.load(f)
     except json.JSONDecodeError as exc:
-        raise InputDataError(f"{path}: not valid JSON at line {exc.lineno}, column {exc.colno} ({exc.msg}); "
-                             "rerun `landcheck audit` to write it again.") from exc
+        raise InputDataError(
+            f"{path}: not valid JSON at line {exc.lineno}, column {exc.colno} ({exc.msg}); "
+            "rerun `landcheck audit` to write it again."
+        ) from exc
 
 
 _PARCEL_TEXT_COLUMNS = ("parcel_id", "class_value", "class_name", "verdict", "reasons", "geometry_note")
@@ -386,8 +407,10 @@ def _read_csv(path: Path, required: Sequence[str], text_columns: Sequence[str]):
         raise InputDataError(f"{path}: cannot be read as CSV ({exc}); rerun `landcheck audit`.") from exc
     missing = [c for c in required if c not in df.columns]
     if missing:
-        raise InputDataError(f"{path}: missing column(s) {', '.join(missing)}; expected the columns listed in "
-                             "docs/outputs.md. Was it written by an older or newer landcheck?")
+        raise InputDataError(
+            f"{path}: missing column(s) {', '.join(missing)}; expected the columns listed in "
+            "docs/outputs.md. Was it written by an older or newer landcheck?"
+        )
     for c in text_columns:
         if c in df.columns:
             df[c] = df[c].fillna("").astype(str)
@@ -416,8 +439,10 @@ class AuditFolder:
     def require(self, name: str) -> Path:
         p = self.out_dir / name
         if not p.exists():
-            raise InputDataError(f"{p}: not found; expected the output folder of `landcheck audit` "
-                                 "(docs/outputs.md). Rerun the audit or point to the right folder.")
+            raise InputDataError(
+                f"{p}: not found; expected the output folder of `landcheck audit` "
+                "(docs/outputs.md). Rerun the audit or point to the right folder."
+            )
         return p
 
     def section(self, *keys: str, default=None):
@@ -521,8 +546,10 @@ def load_audit_folder(out_dir) -> AuditFolder:
         raise InputDataError(f"{out_dir}: not a folder; expected the output folder of `landcheck audit`.")
     p = out_dir / "summary.json"
     if not p.exists():
-        raise InputDataError(f"{p}: not found; expected the output folder of `landcheck audit` "
-                             "(docs/outputs.md). Rerun the audit or point to the right folder.")
+        raise InputDataError(
+            f"{p}: not found; expected the output folder of `landcheck audit` "
+            "(docs/outputs.md). Rerun the audit or point to the right folder."
+        )
     summary = _read_json(p)
     if not isinstance(summary, dict):
         raise InputDataError(f"{p}: expected a JSON object at the top level (docs/outputs.md).")
@@ -601,7 +628,7 @@ def _read_reduced(path: Path, bounds, max_px: int, kind: str) -> _Grid | None:
                 cnt = ok.sum(axis=(1, 3))
                 tot = np.where(ok, blocks, 0.0).sum(axis=(1, 3))
                 red = np.where(cnt > 0, tot / np.maximum(cnt, 1), np.nan)
-            out[r // f: r // f + nb] = red
+            out[r // f : r // f + nb] = red
         tr = Affine(t.a * f, 0.0, t.c + t.a * win.col_off, 0.0, t.e * f, t.f + t.e * win.row_off)
         left, top = tr.c, tr.f
         right, bottom = left + out_w * tr.a, top + out_h * tr.e
@@ -644,9 +671,15 @@ def _read_relief(folder: AuditFolder, slope: _Grid) -> tuple[np.ndarray, str]:
                     win = Window(c0, r0, c1 - c0, r1 - r0)
                     eps = 1e-6
                     inside = c0 >= -eps and r0 >= -eps and c1 <= ds.width + eps and r1 <= ds.height + eps
-                    z = ds.read(1, window=win, out_shape=slope.data.shape, resampling=Resampling.average,
-                                boundless=not inside, masked=True,
-                                fill_value=ds.nodata if ds.nodata is not None else 0)
+                    z = ds.read(
+                        1,
+                        window=win,
+                        out_shape=slope.data.shape,
+                        resampling=Resampling.average,
+                        boundless=not inside,
+                        masked=True,
+                        fill_value=ds.nodata if ds.nodata is not None else 0,
+                    )
                     z = np.ma.filled(z.astype(np.float64), np.nan)
                     zunit = str(folder.section("manifest", "parameters", "z_unit", default="m")).lower()
                     z = z * {"ft": 0.3048, "us-ft": 1200.0 / 3937.0}.get(zunit, 1.0)
@@ -800,9 +833,20 @@ def _legend_column(fig, lax, groups) -> None:
         if not handles:
             continue
         labels = [textwrap.fill(lab, _LEGEND_WRAP_CHARS, subsequent_indent="  ") for lab in labels]
-        leg = lax.legend(handles, labels, title=title, loc="upper left", bbox_to_anchor=(0.0, y), frameon=False,
-                         fontsize=7.5, title_fontsize=8.5, alignment="left", handlelength=2.6, borderaxespad=0.0,
-                         labelspacing=0.45)
+        leg = lax.legend(
+            handles,
+            labels,
+            title=title,
+            loc="upper left",
+            bbox_to_anchor=(0.0, y),
+            frameon=False,
+            fontsize=7.5,
+            title_fontsize=8.5,
+            alignment="left",
+            handlelength=2.6,
+            borderaxespad=0.0,
+            labelspacing=0.45,
+        )
         lax.add_artist(leg)
         bb = leg.get_window_extent(renderer).transformed(lax.transAxes.inverted())
         y = bb.y0 - 0.035
@@ -817,8 +861,17 @@ def _draw_scale_and_north(ax, crs, extent) -> None:
     w, h = x1 - x0, y1 - y0
     bx, by = x0 + 0.04 * w, y0 + 0.05 * h
     bh = 0.012 * h
-    ax.add_patch(Rectangle((bx - 0.015 * w, by - 0.025 * h), bar.length_map + 0.09 * w, 0.075 * h,
-                           facecolor="white", edgecolor="none", alpha=0.8, zorder=8))
+    ax.add_patch(
+        Rectangle(
+            (bx - 0.015 * w, by - 0.025 * h),
+            bar.length_map + 0.09 * w,
+            0.075 * h,
+            facecolor="white",
+            edgecolor="none",
+            alpha=0.8,
+            zorder=8,
+        )
+    )
     half = bar.length_map / 2
     for i, fc in enumerate(("#111111", "white")):
         ax.add_patch(Rectangle((bx + i * half, by), half, bh, facecolor=fc, edgecolor="#111111", lw=0.7, zorder=9))
@@ -829,11 +882,35 @@ def _draw_scale_and_north(ax, crs, extent) -> None:
     ax_pos = (0.93, 0.84)
     length = 0.09
     dx, dy = length * math.sin(ang), length * math.cos(ang)
-    ax.add_patch(FancyArrow(ax_pos[0] - dx / 2, ax_pos[1] - dy / 2, dx, dy, width=0.012, head_width=0.04,
-                            head_length=0.035, length_includes_head=True, transform=ax.transAxes,
-                            facecolor="#111111", edgecolor="white", lw=0.8, zorder=9))
-    ax.text(ax_pos[0] + 0.6 * dx, ax_pos[1] + 0.6 * dy + 0.02, "N", transform=ax.transAxes, ha="center",
-            va="bottom", fontsize=10, fontweight="bold", zorder=9, path_effects=_halo(2.5))
+    ax.add_patch(
+        FancyArrow(
+            ax_pos[0] - dx / 2,
+            ax_pos[1] - dy / 2,
+            dx,
+            dy,
+            width=0.012,
+            head_width=0.04,
+            head_length=0.035,
+            length_includes_head=True,
+            transform=ax.transAxes,
+            facecolor="#111111",
+            edgecolor="white",
+            lw=0.8,
+            zorder=9,
+        )
+    )
+    ax.text(
+        ax_pos[0] + 0.6 * dx,
+        ax_pos[1] + 0.6 * dy + 0.02,
+        "N",
+        transform=ax.transAxes,
+        ha="center",
+        va="bottom",
+        fontsize=10,
+        fontweight="bold",
+        zorder=9,
+        path_effects=_halo(2.5),
+    )
 
 
 def _crs_note(crs) -> str:
@@ -908,15 +985,22 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
     crs = _crs(data.slope.crs)
     ax = fig.add_axes(rect)
     colours = slope_class_colours(len(breaks) - 1)
-    ax.imshow(_composite(data.slope.data, data.relief, breaks, colours), extent=data.slope.extent,
-              origin="upper", interpolation="nearest", zorder=1)
+    ax.imshow(
+        _composite(data.slope.data, data.relief, breaks, colours),
+        extent=data.slope.extent,
+        origin="upper",
+        interpolation="nearest",
+        zorder=1,
+    )
     groups, entries = [], []
     labels = slope_class_labels(breaks)
     idx = classify_slope(data.slope.data, breaks)
     h = [Patch(facecolor=c, edgecolor="#555555", lw=0.5) for c in colours]
     groups.append(("Slope class", h, labels))
-    entries += [LegendEntry("slope_class", f"{_fmt_num(lo)}-{_fmt_num(hi)}", lab)
-                for lo, hi, lab in zip(breaks[:-1], breaks[1:], labels)]
+    entries += [
+        LegendEntry("slope_class", f"{_fmt_num(lo)}-{_fmt_num(hi)}", lab)
+        for lo, hi, lab in zip(breaks[:-1], breaks[1:], labels)
+    ]
     relief_h = [Patch(facecolor="#9a9a9a", edgecolor="#555555", lw=0.5)]
     relief_l = [f"relief: {data.relief_note}"]
     if (idx < 0).any() and (~np.isnan(data.relief)).any():
@@ -941,8 +1025,9 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
         pretty = name.replace("_", " ")
         poly = gdf[gdf.geom_type.isin(["Polygon", "MultiPolygon"])]
         if not poly.empty:
-            _add_polygons(ax, poly.geometry, facecolors="none", edgecolors=colour, hatch=hatch, linewidths=1.0,
-                          zorder=3)
+            _add_polygons(
+                ax, poly.geometry, facecolors="none", edgecolors=colour, hatch=hatch, linewidths=1.0, zorder=3
+            )
             zh.append(Patch(facecolor="none", edgecolor=colour, hatch=hatch, lw=1.0))
             zl.append(f"hazard zone: {pretty}")
             entries.append(LegendEntry("zone", name, zl[-1]))
@@ -966,13 +1051,21 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
             sub = [g for g, k in shapes if k == kind]
             if not sub:
                 continue
-            _add_polygons(ax, sub, facecolors=[(1, 1, 1, 0.28)], edgecolors="#161616", hatch=_CONFLICT_HATCH[kind],
-                          linewidths=0.4, zorder=4)
+            _add_polygons(
+                ax,
+                sub,
+                facecolors=[(1, 1, 1, 0.28)],
+                edgecolors="#161616",
+                hatch=_CONFLICT_HATCH[kind],
+                linewidths=0.4,
+                zorder=4,
+            )
             ch.append(Patch(facecolor=(1, 1, 1, 0.28), edgecolor="#161616", hatch=_CONFLICT_HATCH[kind], lw=0.4))
             cl.append(_CONFLICT_TEXT[kind])
             entries.append(LegendEntry("conflict", {1: "slope", 2: "zone", 3: "slope+zone"}[kind], cl[-1]))
-    title = "Conflict cells" + (f" (any conflict in {data.slope.factor}\u00d7{data.slope.factor} cells)"
-                                if data.slope.factor > 1 else "")
+    title = "Conflict cells" + (
+        f" (any conflict in {data.slope.factor}\u00d7{data.slope.factor} cells)" if data.slope.factor > 1 else ""
+    )
     groups.append((title, ch, cl))
 
     # parcels by verdict
@@ -986,8 +1079,9 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
     for v in reversed(present):  # conflict drawn last, on top
         colour, lw, ls = _VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))
         sub = gdf[gdf["verdict"] == v]
-        _add_lines(ax, sub.geometry, colors=colour, linewidths=lw, linestyles=[ls], zorder=5,
-                   path_effects=_halo(lw + 2.2))
+        _add_lines(
+            ax, sub.geometry, colors=colour, linewidths=lw, linestyles=[ls], zorder=5, path_effects=_halo(lw + 2.2)
+        )
     for v in present:
         colour, lw, ls = _VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))
         n = int((gdf["verdict"] == v).sum())
@@ -1003,8 +1097,17 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
                 continue
             pt = geom.representative_point()
             bold = focus_id is not None and pid == focus_id
-            ax.text(pt.x, pt.y, pid, ha="center", va="center", fontsize=9 if bold else 6.5,
-                    fontweight="bold" if bold else "normal", zorder=6, path_effects=_halo(2.2))
+            ax.text(
+                pt.x,
+                pt.y,
+                pid,
+                ha="center",
+                va="center",
+                fontsize=9 if bold else 6.5,
+                fontweight="bold" if bold else "normal",
+                zorder=6,
+                path_effects=_halo(2.2),
+            )
     extent = (x0, x1, y0, y1)
     _format_axes(ax, crs, extent)
     _draw_scale_and_north(ax, crs, extent)
@@ -1026,13 +1129,24 @@ def _dest(folder: AuditFolder, dest_dir) -> Path:
 
 
 def _breaks_note(breaks: np.ndarray) -> str:
-    return "Slope classes at " + ", ".join(_fmt_num(b) for b in breaks if not math.isinf(b)) + \
-        " % (land-use planning breaks); a cell at a break belongs to the steeper class."
+    return (
+        "Slope classes at "
+        + ", ".join(_fmt_num(b) for b in breaks if not math.isinf(b))
+        + " % (land-use planning breaks); a cell at a break belongs to the steeper class."
+    )
 
 
-def overview_map(out_dir, *, dest_dir=None, slope_breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT,
-                 dpi: int = 200, figsize_in: tuple[float, float] = (10.0, 8.0), max_px: int = 1600,
-                 formats: Sequence[str] = ("png", "svg"), title: str | None = None) -> FigureFiles:
+def overview_map(
+    out_dir,
+    *,
+    dest_dir=None,
+    slope_breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT,
+    dpi: int = 200,
+    figsize_in: tuple[float, float] = (10.0, 8.0),
+    max_px: int = 1600,
+    formats: Sequence[str] = ("png", "svg"),
+    title: str | None = None,
+) -> FigureFiles:
     """Draw the whole audit area: slope classes over relief, parcels by verdict, conflict cells, zones.
 
     Parameters
@@ -1068,12 +1182,17 @@ def overview_map(out_dir, *, dest_dir=None, slope_breaks_pct: Sequence[float] = 
     lax.axis("off")
     _legend_column(fig, lax, groups)
     n = len(folder.parcels_gdf)
-    _figure_frame(fig, title or "Slope classes and parcel verdicts",
-                  f"landcheck screening map \u00b7 audit run {folder.run_date_text} \u00b7 {n} parcels",
-                  [_crs_note(data.slope.crs) + "; grid lines dashed.", _breaks_note(breaks)])
+    _figure_frame(
+        fig,
+        title or "Slope classes and parcel verdicts",
+        f"landcheck screening map \u00b7 audit run {folder.run_date_text} \u00b7 {n} parcels",
+        [_crs_note(data.slope.crs) + "; grid lines dashed.", _breaks_note(breaks)],
+    )
     paths = _save(fig, _dest(folder, dest_dir), "overview", dpi, formats)
-    caption = (f"Whole audit area. Slope classes over {data.relief_note}; parcel outlines by verdict; "
-               "hatched cells breach a rule of their class.")
+    caption = (
+        f"Whole audit area. Slope classes over {data.relief_note}; parcel outlines by verdict; "
+        "hatched cells breach a rule of their class."
+    )
     return FigureFiles([FigureItem("overview", caption, paths, entries)])
 
 
@@ -1089,10 +1208,17 @@ def _safe_stem(text: str) -> str:
     return re.sub(r"[^A-Za-z0-9_.-]+", "_", text)[:40].strip("._") or "parcel"
 
 
-def parcel_closeup_maps(out_dir, max_maps: int = 12, *, dest_dir=None,
-                        slope_breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT, dpi: int = 200,
-                        figsize_in: tuple[float, float] = (8.0, 6.5), max_px: int = 1200,
-                        formats: Sequence[str] = ("png", "svg")) -> FigureFiles:
+def parcel_closeup_maps(
+    out_dir,
+    max_maps: int = 12,
+    *,
+    dest_dir=None,
+    slope_breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT,
+    dpi: int = 200,
+    figsize_in: tuple[float, float] = (8.0, 6.5),
+    max_px: int = 1200,
+    formats: Sequence[str] = ("png", "svg"),
+) -> FigureFiles:
     """One close-up map per parcel with conflict area, largest ``conflict_m2`` first.
 
     Ties are ordered by ``parcel_id``.  Files are ``closeup_NN_<parcel_id>.{png,svg}``;
@@ -1141,11 +1267,17 @@ def parcel_closeup_maps(out_dir, max_maps: int = 12, *, dest_dir=None,
         limit = folder.class_limits_pct.get(rec["class_name"], math.nan)
         lim_txt = f"slope limit {_fmt_num(limit)} %" if not math.isnan(limit) else "no slope limit"
         share = float(rec["conflict_share"]) if not _isnan(rec["conflict_share"]) else math.nan
-        sub = (f"class {rec['class_name']} \u00b7 {lim_txt} \u00b7 conflict {float(rec['conflict_m2']):,.0f} m\u00b2"
-               + (f" ({share:.1%} of evaluated area)" if not math.isnan(share) else "")
-               + f" \u00b7 audit run {folder.run_date_text}")
-        _figure_frame(fig, f"Parcel {pid}: {_VERDICT_TEXT.get(rec['verdict'], rec['verdict'])}", sub,
-                      [_crs_note(data.slope.crs) + "."])
+        sub = (
+            f"class {rec['class_name']} \u00b7 {lim_txt} \u00b7 conflict {float(rec['conflict_m2']):,.0f} m\u00b2"
+            + (f" ({share:.1%} of evaluated area)" if not math.isnan(share) else "")
+            + f" \u00b7 audit run {folder.run_date_text}"
+        )
+        _figure_frame(
+            fig,
+            f"Parcel {pid}: {_VERDICT_TEXT.get(rec['verdict'], rec['verdict'])}",
+            sub,
+            [_crs_note(data.slope.crs) + "."],
+        )
         stem = f"closeup_{rank:02d}_{_safe_stem(pid)}"
         paths = _save(fig, dest, stem, dpi, formats)
         detail = sub.split(" \u00b7 audit")[0]
@@ -1190,8 +1322,9 @@ def _chart_frame(fig, folder: AuditFolder, title: str) -> None:
     fig.text(0.02, 0.008, CAUTION, ha="left", va="bottom", fontsize=6.5, color="#5a1a00")
 
 
-def class_share_chart(out_dir, *, dest_dir=None, dpi: int = 200, formats: Sequence[str] = ("png", "svg")
-                      ) -> FigureFiles:
+def class_share_chart(
+    out_dir, *, dest_dir=None, dpi: int = 200, formats: Sequence[str] = ("png", "svg")
+) -> FigureFiles:
     """Horizontal bars per class: share of evaluated area over the slope limit, and in conflict.
 
     Reads ``classes.csv`` (``over_limit_m2 / evaluated_m2`` and
@@ -1225,28 +1358,47 @@ def class_share_chart(out_dir, *, dest_dir=None, dpi: int = 200, formats: Sequen
         ax.barh(yi - bh / 2, 100 * c, height=bh, color="#3b3b3b", edgecolor="#161616", hatch="////", lw=0.8)
         ax.text(100 * c + 1, yi - bh / 2, f"{c:.1%}", va="center", fontsize=7.5)
     ax.set_yticks(y)
-    ax.set_yticklabels([_class_label(folder, nm) + (f"\nlimit {_fmt_num(limits[nm])} %"
-                                                    if not math.isnan(limits.get(nm, math.nan)) else "")
-                        for nm in names], fontsize=8)
+    ax.set_yticklabels(
+        [
+            _class_label(folder, nm)
+            + (f"\nlimit {_fmt_num(limits[nm])} %" if not math.isnan(limits.get(nm, math.nan)) else "")
+            for nm in names
+        ],
+        fontsize=8,
+    )
     ax.set_xlim(0, 110)
     ax.set_ylim(-0.7, len(names) - 0.3)
     ax.set_xticks([0, 20, 40, 60, 80, 100])
     ax.set_xlabel("share of evaluated area (%)")
     ax.grid(True, axis="x", color="#bbbbbb", lw=0.5)
     ax.set_axisbelow(True)
-    ax.legend([Patch(facecolor="#a9c4e0", edgecolor="#24509a"),
-               Patch(facecolor="#3b3b3b", edgecolor="#161616", hatch="////")],
-              ["slope at or over the class limit", "breaching any rule of the class"],
-              loc="lower right", fontsize=7.5, framealpha=0.9)
+    ax.legend(
+        [
+            Patch(facecolor="#a9c4e0", edgecolor="#24509a"),
+            Patch(facecolor="#3b3b3b", edgecolor="#161616", hatch="////"),
+        ],
+        ["slope at or over the class limit", "breaching any rule of the class"],
+        loc="lower right",
+        fontsize=7.5,
+        framealpha=0.9,
+    )
     _chart_frame(fig, folder, "Share of each class over its limit")
     paths = _save(fig, _dest(folder, dest_dir), "chart_class_shares", dpi, formats)
-    return FigureFiles([FigureItem("chart_class_shares",
-                                   "Per class: share of the evaluated area with slope at or over the class limit, "
-                                   "and share breaching any rule (slope or forbidden zone).", paths)])
+    return FigureFiles(
+        [
+            FigureItem(
+                "chart_class_shares",
+                "Per class: share of the evaluated area with slope at or over the class limit, "
+                "and share breaching any rule (slope or forbidden zone).",
+                paths,
+            )
+        ]
+    )
 
 
-def slope_distribution_chart(out_dir, *, dest_dir=None, dpi: int = 200, formats: Sequence[str] = ("png", "svg"),
-                             max_panels: int = 9) -> FigureFiles:
+def slope_distribution_chart(
+    out_dir, *, dest_dir=None, dpi: int = 200, formats: Sequence[str] = ("png", "svg"), max_panels: int = 9
+) -> FigureFiles:
     """Area of classified land per 1 % slope bin, one panel per class, with the class limit marked.
 
     Reads ``summary.json`` → ``slope_histogram``.  Bins at or over the limit
@@ -1256,11 +1408,18 @@ def slope_distribution_chart(out_dir, *, dest_dir=None, dpi: int = 200, formats:
     folder = load_audit_folder(out_dir)
     hist = folder.section("slope_histogram", default={}) or {}
     edges = [_parse_float(v) for v in hist.get("bin_edges_pct", [])]
-    classes = {k: [float(x) for x in v] for k, v in (hist.get("classes") or {}).items()
-               if len(v) == max(0, len(edges) - 1) and sum(float(x) for x in v) > 0}
-    order = [c for c in folder.classes["class_name"] if c in classes] + sorted(set(classes) - set(folder.classes["class_name"]))
+    classes = {
+        k: [float(x) for x in v]
+        for k, v in (hist.get("classes") or {}).items()
+        if len(v) == max(0, len(edges) - 1) and sum(float(x) for x in v) > 0
+    }
+    order = [c for c in folder.classes["class_name"] if c in classes] + sorted(
+        set(classes) - set(folder.classes["class_name"])
+    )
     order = sorted(order, key=lambda c: -sum(classes[c]))[:max_panels]
-    order = [c for c in folder.classes["class_name"] if c in order] + [c for c in order if c not in set(folder.classes["class_name"])]
+    order = [c for c in folder.classes["class_name"] if c in order] + [
+        c for c in order if c not in set(folder.classes["class_name"])
+    ]
     n = max(1, len(order))
     ncols = 1 if n <= 3 else 2
     nrows = math.ceil(n / ncols)
@@ -1281,19 +1440,36 @@ def slope_distribution_chart(out_dir, *, dest_dir=None, dpi: int = 200, formats:
         line = limit if not math.isnan(limit) else ref
         over = lo >= line if not math.isnan(line) else np.zeros(lo.shape, bool)
         step_edges = np.append(lo, lo[-1] + width[-1])
-        ax.stairs(np.where(over, 0.0, area_ha), step_edges, fill=True, facecolor="#a9c4e0", edgecolor="#24509a",
-                  lw=0.6)
-        ax.stairs(np.where(over, area_ha, 0.0), step_edges, fill=True, facecolor="#3b3b3b", edgecolor="#161616",
-                  hatch="////", lw=0.6)
+        ax.stairs(np.where(over, 0.0, area_ha), step_edges, fill=True, facecolor="#a9c4e0", edgecolor="#24509a", lw=0.6)
+        ax.stairs(
+            np.where(over, area_ha, 0.0),
+            step_edges,
+            fill=True,
+            facecolor="#3b3b3b",
+            edgecolor="#161616",
+            hatch="////",
+            lw=0.6,
+        )
         nz = np.nonzero(area_ha > 0)[0]
         xmax = min(float(lo[nz[-1]] + width[nz[-1]]) + 2, float(lo[-1] + width[-1])) if nz.size else 30.0
         if not math.isnan(line):
             xmax = max(xmax, line + 3)
             ax.axvline(line, color="#161616", lw=1.2, ls=(0, (4, 2)))
-            txt = f"limit {_fmt_num(line)} %" if not math.isnan(limit) else f"reference {_fmt_num(line)} % (no class limit)"
+            txt = (
+                f"limit {_fmt_num(line)} %"
+                if not math.isnan(limit)
+                else f"reference {_fmt_num(line)} % (no class limit)"
+            )
             share = area_ha[over].sum() / area_ha.sum() if area_ha.sum() else 0.0
-            ax.text(line, 0.97, f" {txt}\n {share:.1%} at or over", transform=ax.get_xaxis_transform(),
-                    va="top", ha="left", fontsize=7)
+            ax.text(
+                line,
+                0.97,
+                f" {txt}\n {share:.1%} at or over",
+                transform=ax.get_xaxis_transform(),
+                va="top",
+                ha="left",
+                fontsize=7,
+            )
         ax.set_xlim(0, xmax)
         ax.set_title(_class_label(folder, name), fontsize=8.5, loc="left")
         ax.tick_params(labelsize=7)
@@ -1304,13 +1480,21 @@ def slope_distribution_chart(out_dir, *, dest_dir=None, dpi: int = 200, formats:
             ax.set_xlabel("slope (%), 1 % bins", fontsize=7.5)
     _chart_frame(fig, folder, "Slope distribution of classified land")
     paths = _save(fig, _dest(folder, dest_dir), "chart_slope_distribution", dpi, formats)
-    return FigureFiles([FigureItem("chart_slope_distribution",
-                                   "Evaluated area per 1 % slope bin for each class; dark hatched bars lie at or "
-                                   "over the class limit (dashed line).", paths)])
+    return FigureFiles(
+        [
+            FigureItem(
+                "chart_slope_distribution",
+                "Evaluated area per 1 % slope bin for each class; dark hatched bars lie at or "
+                "over the class limit (dashed line).",
+                paths,
+            )
+        ]
+    )
 
 
-def sensitivity_chart(out_dir, *, dest_dir=None, dpi: int = 200, formats: Sequence[str] = ("png", "svg")
-                      ) -> FigureFiles:
+def sensitivity_chart(
+    out_dir, *, dest_dir=None, dpi: int = 200, formats: Sequence[str] = ("png", "svg")
+) -> FigureFiles:
     """Share of evaluated area at or over a trial slope limit (10-30 %), per class and for all development land.
 
     Reads ``summary.json`` → ``sensitivity``; marks each class's own limit
@@ -1335,8 +1519,15 @@ def sensitivity_chart(out_dir, *, dest_dir=None, dpi: int = 200, formats: Sequen
         ax.plot(lims, 100 * vals, color=colour, marker=marker, ms=3.5, lw=1.4, ls=ls)
         lim = limits.get(name, math.nan)
         if not math.isnan(lim) and lims.size and lims.min() <= lim <= lims.max():
-            ax.plot([lim], [100 * np.interp(lim, lims, vals)], marker=marker, ms=9, color=colour,
-                    markeredgecolor="white", ls="none")
+            ax.plot(
+                [lim],
+                [100 * np.interp(lim, lims, vals)],
+                marker=marker,
+                ms=9,
+                color=colour,
+                markeredgecolor="white",
+                ls="none",
+            )
         handles.append(Line2D([0], [0], color=colour, marker=marker, ms=4, lw=1.4, ls=ls))
         labels.append(_class_label(folder, name) + (f", limit {_fmt_num(lim)} %" if not math.isnan(lim) else ""))
     alldev = sens.get("all_development")
@@ -1361,7 +1552,12 @@ def sensitivity_chart(out_dir, *, dest_dir=None, dpi: int = 200, formats: Sequen
     fig.legend(handles, labels, loc="upper left", bbox_to_anchor=(0.71, 0.88), fontsize=7.5, frameon=False)
     _chart_frame(fig, folder, "Sensitivity to the slope limit")
     paths = _save(fig, _dest(folder, dest_dir), "chart_sensitivity", dpi, formats)
-    return FigureFiles([FigureItem("chart_sensitivity",
-                                   "How the share of land at or over a slope limit changes as the limit moves "
-                                   "from 10 % to 30 %.", paths)])
-
+    return FigureFiles(
+        [
+            FigureItem(
+                "chart_sensitivity",
+                "How the share of land at or over a slope limit changes as the limit moves from 10 % to 30 %.",
+                paths,
+            )
+        ]
+    )

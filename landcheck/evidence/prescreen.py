@@ -136,7 +136,7 @@ def largest_patch(mask: np.ndarray, cell_area_m2, connectivity: int = 8) -> tupl
         r0, r1 = 0, h - dr
         c0, c1 = max(0, -dc), w - max(0, dc)
         a = node[r0:r1, c0:c1]
-        b = node[r0 + dr:r1 + dr, c0 + dc:c1 + dc]
+        b = node[r0 + dr : r1 + dr, c0 + dc : c1 + dc]
         both = (a >= 0) & (b >= 0)
         src.append(a[both])
         dst.append(b[both])
@@ -185,20 +185,26 @@ def parse_polygon(text: str) -> tuple[np.ndarray, list[str]]:
     for i, tok in enumerate(tokens, start=1):
         parts = tok.split(",")
         if len(parts) != 2 or not parts[0] or not parts[1]:
-            raise InputDataError(f"--polygon, vertex {i} ({tok!r}): expected x,y - two numbers joined by a comma, "
-                                 "with spaces only between vertices, e.g. --polygon \"100,200 150,200 150,260\".")
+            raise InputDataError(
+                f"--polygon, vertex {i} ({tok!r}): expected x,y - two numbers joined by a comma, "
+                'with spaces only between vertices, e.g. --polygon "100,200 150,200 150,260".'
+            )
         try:
             x, y = float(parts[0]), float(parts[1])
         except ValueError:
-            raise InputDataError(f"--polygon, vertex {i} ({tok!r}): {tok!r} is not two numbers; "
-                                 "write each vertex as x,y, e.g. 401250.5,1599320.0.") from None
+            raise InputDataError(
+                f"--polygon, vertex {i} ({tok!r}): {tok!r} is not two numbers; "
+                "write each vertex as x,y, e.g. 401250.5,1599320.0."
+            ) from None
         if not (math.isfinite(x) and math.isfinite(y)):
             raise InputDataError(f"--polygon, vertex {i} ({tok!r}): coordinates must be finite numbers.")
         pts.append((x, y))
     distinct = {p for p in pts}
     if len(distinct) < 3:
-        raise InputDataError(f"--polygon: got {len(distinct)} distinct vertices ({len(tokens)} given); a parcel needs "
-                             "at least 3, e.g. --polygon \"100,200 150,200 150,260\".")
+        raise InputDataError(
+            f"--polygon: got {len(distinct)} distinct vertices ({len(tokens)} given); a parcel needs "
+            'at least 3, e.g. --polygon "100,200 150,200 150,260".'
+        )
     notes = []
     if pts[0] != pts[-1]:
         pts.append(pts[0])
@@ -230,10 +236,13 @@ def _checked_geometry(geom, where: str) -> tuple[object, list[str]]:
         reason = shapely.is_valid_reason(geom)
         geom = _polygonal(shapely.make_valid(geom))
         if geom.is_empty or geom.area <= 0:
-            raise InputDataError(f"{where}: the polygon is invalid ({reason}) and has no area once repaired; "
-                                 "check the vertex order.")
-        notes.append(f"{where}: the polygon was invalid ({reason}); it was repaired (shapely.make_valid) to "
-                     f"{geom.geom_type} of area {geom.area:,.1f} (CRS units squared); check the vertex order.")
+            raise InputDataError(
+                f"{where}: the polygon is invalid ({reason}) and has no area once repaired; check the vertex order."
+            )
+        notes.append(
+            f"{where}: the polygon was invalid ({reason}); it was repaired (shapely.make_valid) to "
+            f"{geom.geom_type} of area {geom.area:,.1f} (CRS units squared); check the vertex order."
+        )
     if geom.area <= 0:
         raise InputDataError(f"{where}: the polygon has zero area; check the coordinates.")
     return geom, notes
@@ -284,23 +293,29 @@ def _parcel_from_file(path, *, layer, crs, parcel_id, id_field, rules: Rulebook,
     where = gdf.attrs["where"]
     columns = [c for c in gdf.columns if c != gdf.geometry.name]
     if id_field is not None and id_field not in columns:
-        raise InputDataError(f"{where}: no attribute {id_field!r} (--id-field); attributes here: {', '.join(columns) or 'none'}.")
+        raise InputDataError(
+            f"{where}: no attribute {id_field!r} (--id-field); attributes here: {', '.join(columns) or 'none'}."
+        )
     key = id_field or (rules.id_field if rules.id_field in columns else None)
     n = len(gdf)
     ids = gdf[key].tolist() if key else list(range(1, n + 1))
     key_text = f"attribute {key!r}" if key else "the 1-based row number"
     if parcel_id is None:
         if n > 1:
-            raise InputDataError(f"{where}: holds {n} features; choose one with --parcel-id (matched against "
-                                 f"{key_text}); ids here: {_some_ids(ids)}.")
+            raise InputDataError(
+                f"{where}: holds {n} features; choose one with --parcel-id (matched against "
+                f"{key_text}); ids here: {_some_ids(ids)}."
+            )
         idx = 0
     else:
         hits = [i for i, v in enumerate(ids) if _same_id(v, str(parcel_id))]
         if not hits:
             raise InputDataError(f"{where}: no parcel with id {parcel_id!r} ({key_text}); ids here: {_some_ids(ids)}.")
         if len(hits) > 1:
-            raise InputDataError(f"{where}: {len(hits)} features have id {parcel_id!r} ({key_text}; rows "
-                                 f"{', '.join(str(i + 1) for i in hits[:10])}); ids must be unique.")
+            raise InputDataError(
+                f"{where}: {len(hits)} features have id {parcel_id!r} ({key_text}; rows "
+                f"{', '.join(str(i + 1) for i in hits[:10])}); ids must be unique."
+            )
         idx = hits[0]
     feature = f"{where}, feature {idx + 1}"
     geom, notes = _checked_geometry(gdf.geometry.iloc[idx], feature)
@@ -311,8 +326,9 @@ def _parcel_from_file(path, *, layer, crs, parcel_id, id_field, rules: Rulebook,
         if v is not None and not (isinstance(v, float) and math.isnan(v)) and not pd.isna(v) and str(v).strip():
             class_value = str(v)
     pid = str(ids[idx])
-    return _Parcel(geom, pid, class_value, f"{where}, {key_text} = {pid}" if parcel_id is not None else feature,
-                   feature, notes)
+    return _Parcel(
+        geom, pid, class_value, f"{where}, {key_text} = {pid}" if parcel_id is not None else feature, feature, notes
+    )
 
 
 def _parcel_from_polygon(text: str, polygon_crs: str | None, target_wkt: str) -> _Parcel:
@@ -327,8 +343,9 @@ def _parcel_from_polygon(text: str, polygon_crs: str | None, target_wkt: str) ->
         try:
             crs = pyproj.CRS.from_user_input(polygon_crs)
         except pyproj.exceptions.CRSError as exc:
-            raise InputDataError(f"--polygon-crs {polygon_crs!r}: not a CRS pyproj knows ({exc}); "
-                                 "give e.g. EPSG:32651.") from None
+            raise InputDataError(
+                f"--polygon-crs {polygon_crs!r}: not a CRS pyproj knows ({exc}); give e.g. EPSG:32651."
+            ) from None
         geom = _to_dem_crs(geom, crs, target_wkt, where)
     return _Parcel(geom, "polygon", None, f"--polygon ({len(coords) - 1} vertices)", where, notes + more)
 
@@ -342,16 +359,22 @@ def _resolve_class(rules: Rulebook, parcel: _Parcel, class_name: str | None) -> 
             raise InputDataError(f"--class {class_name!r}: no such class in {rules.path}; classes there: {listing}.")
         notes = []
         if parcel.class_value is not None and mapped != class_name:
-            notes.append(f"{parcel.where}: its {rules.class_field} is {parcel.class_value!r} "
-                         f"({'class ' + mapped if mapped else 'no class in the rulebook'}); it was tested against "
-                         f"--class {class_name} as asked.")
+            notes.append(
+                f"{parcel.where}: its {rules.class_field} is {parcel.class_value!r} "
+                f"({'class ' + mapped if mapped else 'no class in the rulebook'}); it was tested against "
+                f"--class {class_name} as asked."
+            )
         return by[class_name], "--class", notes
     if parcel.class_value is None:
-        raise InputDataError(f"{parcel.where}: the parcel has no {rules.class_field!r} value (the rulebook's class_field); "
-                             f"say which class to test with --class NAME; classes in {rules.path}: {listing}.")
+        raise InputDataError(
+            f"{parcel.where}: the parcel has no {rules.class_field!r} value (the rulebook's class_field); "
+            f"say which class to test with --class NAME; classes in {rules.path}: {listing}."
+        )
     if mapped is None:
-        raise InputDataError(f"{parcel.where}: class value {parcel.class_value!r} ({rules.class_field}) has no rule in "
-                             f"{rules.path}; choose a class with --class NAME; classes there: {listing}.")
+        raise InputDataError(
+            f"{parcel.where}: class value {parcel.class_value!r} ({rules.class_field}) has no rule in "
+            f"{rules.path}; choose a class with --class NAME; classes there: {listing}."
+        )
     return by[mapped], f"attribute {rules.class_field}", []
 
 
@@ -382,8 +405,18 @@ def _write_crop(dem: DemSource, win: Window, path: Path) -> None:
     import rasterio
 
     z = dem.read(win)
-    with rasterio.open(path, "w", driver="GTiff", width=win.width, height=win.height, count=1, dtype="float64",
-                       crs=dem.grid.crs_wkt, transform=dem.grid.window_transform(win), nodata=np.nan) as ds:
+    with rasterio.open(
+        path,
+        "w",
+        driver="GTiff",
+        width=win.width,
+        height=win.height,
+        count=1,
+        dtype="float64",
+        crs=dem.grid.crs_wkt,
+        transform=dem.grid.window_transform(win),
+        nodata=np.nan,
+    ) as ds:
         ds.write(z, 1)
 
 
@@ -508,12 +541,15 @@ def prescreen(
     if connectivity not in CONNECTIVITIES:
         raise InputDataError(f"connectivity: got {connectivity!r}; choose 4 or 8.")
     if (parcels_path is None) == (polygon is None):
-        raise InputDataError("give the parcel either as a vector file (--parcels) or as --polygon coordinates, not both "
-                             "and not neither.")
+        raise InputDataError(
+            "give the parcel either as a vector file (--parcels) or as --polygon coordinates, not both and not neither."
+        )
     if polygon is None and polygon_crs is not None:
         raise InputDataError("--polygon-crs applies to --polygon only; for a file use --parcels-crs.")
     rules = load_rules(rulebook_path)
-    out = check_output_path(out_dir, [dem_path, parcels_path, rulebook_path, *rules.layers.values()], overwrite=overwrite)
+    out = check_output_path(
+        out_dir, [dem_path, parcels_path, rulebook_path, *rules.layers.values()], overwrite=overwrite
+    )
     z_unit = ZUnit.from_user(z_unit)
     dem = open_dem(dem_path, band=dem_band, crs=dem_crs, z_unit=z_unit)
     g = dem.grid
@@ -521,8 +557,15 @@ def prescreen(
     if polygon is not None:
         parcel = _parcel_from_polygon(polygon, polygon_crs, g.crs_wkt)
     else:
-        parcel = _parcel_from_file(parcels_path, layer=parcels_layer, crs=parcels_crs, parcel_id=parcel_id,
-                                   id_field=id_field, rules=rules, target_wkt=g.crs_wkt)
+        parcel = _parcel_from_file(
+            parcels_path,
+            layer=parcels_layer,
+            crs=parcels_crs,
+            parcel_id=parcel_id,
+            id_field=id_field,
+            rules=rules,
+            target_wkt=g.crs_wkt,
+        )
     notes += parcel.notes
     cls, class_source, more = _resolve_class(rules, parcel, class_name)
     notes += more
@@ -530,12 +573,16 @@ def prescreen(
     dem_box = shapely.box(*g.bounds)
     overlap = geom.intersection(dem_box).area
     if overlap <= 0:
-        raise InputDataError(f"{parcel.where}: the parcel lies outside the DEM (parcel bounds "
-                             f"{tuple(round(b, 3) for b in geom.bounds)}, DEM bounds {tuple(round(b, 3) for b in g.bounds)}, "
-                             "in the DEM's CRS); check the coordinates and their CRS (--polygon-crs / --parcels-crs).")
+        raise InputDataError(
+            f"{parcel.where}: the parcel lies outside the DEM (parcel bounds "
+            f"{tuple(round(b, 3) for b in geom.bounds)}, DEM bounds {tuple(round(b, 3) for b in g.bounds)}, "
+            "in the DEM's CRS); check the coordinates and their CRS (--polygon-crs / --parcels-crs)."
+        )
     if overlap < geom.area * (1 - 1e-9):
-        notes.append(f"{parcel.where}: {100 * (1 - overlap / geom.area):.1f} % of the parcel lies outside the DEM; "
-                     "only the part inside is evaluated.")
+        notes.append(
+            f"{parcel.where}: {100 * (1 - overlap / geom.area):.1f} % of the parcel lies outside the DEM; "
+            "only the part inside is evaluated."
+        )
     step(f"parcel {parcel.parcel_id}: class {cls.name} ({class_source}), {geom.area:,.1f} CRS units²")
 
     from landcheck.evidence.maps import _closeup_bounds
@@ -564,45 +611,92 @@ def prescreen(
         gpd.GeoDataFrame(cols, geometry=[geom], crs=ag.crs_wkt).to_file(parcel_file, layer="parcel", driver="GPKG")
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", LandcheckWarning)
-            res = audit(audit_dem_path, parcel_file, rulebook_path, tmp / "audit", method=method, make_report=False,
-                        show_progress=False, workers=1, on_step=lambda s: step(f"audit: {s}"), **audit_kw)
+            res = audit(
+                audit_dem_path,
+                parcel_file,
+                rulebook_path,
+                tmp / "audit",
+                method=method,
+                make_report=False,
+                show_progress=False,
+                workers=1,
+                on_step=lambda s: step(f"audit: {s}"),
+                **audit_kw,
+            )
         notes += [w.replace(str(tmp), "<temporary folder>") for w in res.warnings]
         row = res.parcels.iloc[0].to_dict()
         figures, arrays = _figures(res, row, rules, cls, geom, ag, connectivity)
-        step(f"buildable {figures['buildable']['area_m2']:,.0f} m², largest patch "
-             f"{figures['largest_patch']['area_m2']:,.0f} m²")
+        step(
+            f"buildable {figures['buildable']['area_m2']:,.0f} m², largest patch "
+            f"{figures['largest_patch']['area_m2']:,.0f} m²"
+        )
         view_win = _cells_of_bounds(ag, view)
         slope_view = _read_window(res.out_dir / "slope_pct.tif", view_win).astype(np.float64)
         elev_view = adem.read(view_win)
         zone_layers = _zone_layers(res.out_dir)
 
-        figures.update({
-            "tool": "landcheck", "version": __version__, "caution": CAUTION,
-            "inputs": [{"role": "dem", "path": str(Path(dem_path).resolve()), "sha256": sha256_file(dem_path)},
-                       {"role": "rulebook", "path": str(Path(rulebook_path).resolve()), "sha256": rules.sha256}]
-                      + ([{"role": "parcels", "path": str(Path(parcels_path).resolve()),
-                           "sha256": sha256_file(parcels_path)}] if parcels_path is not None else []),
-            "parameters": {"slope_method": res.summary["manifest"]["parameters"]["slope_method"],
-                           "connectivity": connectivity, "z_unit": z_unit.value, "dem_band": dem.band,
-                           "dem_crs_override": dem_crs, "parcels_layer": parcels_layer, "parcels_crs": parcels_crs,
-                           "polygon_crs": polygon_crs, "dem_cropped": not _needs_whole_dem(rules)},
-            "started_utc": started.isoformat(timespec="seconds"),
-            "crs_wkt": g.crs_wkt,
-            "warnings": notes,
-        })
-        figures["parcel"].update({"id": parcel.parcel_id, "source": parcel.source, "class_source": class_source,
-                                  "class_value_in_file": parcel.class_value})
+        figures.update(
+            {
+                "tool": "landcheck",
+                "version": __version__,
+                "caution": CAUTION,
+                "inputs": [
+                    {"role": "dem", "path": str(Path(dem_path).resolve()), "sha256": sha256_file(dem_path)},
+                    {"role": "rulebook", "path": str(Path(rulebook_path).resolve()), "sha256": rules.sha256},
+                ]
+                + (
+                    [
+                        {
+                            "role": "parcels",
+                            "path": str(Path(parcels_path).resolve()),
+                            "sha256": sha256_file(parcels_path),
+                        }
+                    ]
+                    if parcels_path is not None
+                    else []
+                ),
+                "parameters": {
+                    "slope_method": res.summary["manifest"]["parameters"]["slope_method"],
+                    "connectivity": connectivity,
+                    "z_unit": z_unit.value,
+                    "dem_band": dem.band,
+                    "dem_crs_override": dem_crs,
+                    "parcels_layer": parcels_layer,
+                    "parcels_crs": parcels_crs,
+                    "polygon_crs": polygon_crs,
+                    "dem_cropped": not _needs_whole_dem(rules),
+                },
+                "started_utc": started.isoformat(timespec="seconds"),
+                "crs_wkt": g.crs_wkt,
+                "warnings": notes,
+            }
+        )
+        figures["parcel"].update(
+            {
+                "id": parcel.parcel_id,
+                "source": parcel.source,
+                "class_source": class_source,
+                "class_value_in_file": parcel.class_value,
+            }
+        )
         for n in notes:
             warnings.warn(n, LandcheckWarning, stacklevel=2)
 
         with staged_folder(out, overwrite=overwrite) as stage:
             patch_gdf = gpd.GeoDataFrame(
-                {"parcel_id": [parcel.parcel_id], "area_m2": [figures["largest_patch"]["area_m2"]],
-                 "cells": [figures["largest_patch"]["cells"]], "connectivity": [connectivity]},
-                geometry=[arrays["patch_geom"]], crs=g.crs_wkt)
+                {
+                    "parcel_id": [parcel.parcel_id],
+                    "area_m2": [figures["largest_patch"]["area_m2"]],
+                    "cells": [figures["largest_patch"]["cells"]],
+                    "connectivity": [connectivity],
+                },
+                geometry=[arrays["patch_geom"]],
+                crs=g.crs_wkt,
+            )
             write_gpkg(stage / "largest_patch.gpkg", patch_gdf, layer="largest_patch")
-            map_png = _draw_map(stage, dpi, figures, geom, arrays, ag, view_win, slope_view, elev_view, zone_layers,
-                                res.out_dir)
+            map_png = _draw_map(
+                stage, dpi, figures, geom, arrays, ag, view_win, slope_view, elev_view, zone_layers, res.out_dir
+            )
             hist_png = _draw_histogram(stage, dpi, figures)
             write_json(stage / "prescreen.json", figures)
             _write_html(stage / "prescreen.html", figures, map_png, hist_png)
@@ -719,9 +813,18 @@ def _figures(res, row: dict, rules: Rulebook, cls: ClassRule, geom, grid: GridSp
     zones = []
     for name, c in zone_cols.items():
         m2 = float(row.get(f"zone_{name}_m2", 0.0) or 0.0)
-        zones.append({"name": name, "label": c["label"], "kind": kinds.get(name),
-                      "rulebook_zone": bool(c["rulebook_zone"]), "forbidden": name in cls.forbidden_zones,
-                      "area_m2": m2, "share": (m2 / covered) if covered > 0 else None, "touches": m2 > 0})
+        zones.append(
+            {
+                "name": name,
+                "label": c["label"],
+                "kind": kinds.get(name),
+                "rulebook_zone": bool(c["rulebook_zone"]),
+                "forbidden": name in cls.forbidden_zones,
+                "area_m2": m2,
+                "share": (m2 / covered) if covered > 0 else None,
+                "touches": m2 > 0,
+            }
+        )
 
     def f(k):
         v = row.get(k)
@@ -732,32 +835,61 @@ def _figures(res, row: dict, rules: Rulebook, cls: ClassRule, geom, grid: GridSp
         return v if math.isfinite(v) else None
 
     figures = {
-        "parcel": {"class_name": cls.name, "class_label": cls.label, "class_value_tested": cls.values[0],
-                   "development_class": cls.development, "area_m2": f("area_m2"), "covered_m2": covered,
-                   "evaluated_m2": f("evaluated_m2"), "evaluated_share": f("evaluated_share"),
-                   "slope_mean_pct": f("slope_mean_pct"), "slope_max_pct": f("slope_max_pct"),
-                   "bounds": list(geom.bounds)},
-        "rule": {"max_slope_pct": limit, "tolerance_share": cls.tolerance_share, "min_breach_m2": cls.min_breach_m2,
-                 "review_band_pct": cls.review_band_pct, "forbidden_zones": list(cls.forbidden_zones)},
+        "parcel": {
+            "class_name": cls.name,
+            "class_label": cls.label,
+            "class_value_tested": cls.values[0],
+            "development_class": cls.development,
+            "area_m2": f("area_m2"),
+            "covered_m2": covered,
+            "evaluated_m2": f("evaluated_m2"),
+            "evaluated_share": f("evaluated_share"),
+            "slope_mean_pct": f("slope_mean_pct"),
+            "slope_max_pct": f("slope_max_pct"),
+            "bounds": list(geom.bounds),
+        },
+        "rule": {
+            "max_slope_pct": limit,
+            "tolerance_share": cls.tolerance_share,
+            "min_breach_m2": cls.min_breach_m2,
+            "review_band_pct": cls.review_band_pct,
+            "forbidden_zones": list(cls.forbidden_zones),
+        },
         "verdict": str(row["verdict"]),
         "reasons": [r for r in str(row["reasons"]).split(" | ") if r],
-        "conflict_m2": f("conflict_m2"), "conflict_share": f("conflict_share"),
+        "conflict_m2": f("conflict_m2"),
+        "conflict_share": f("conflict_share"),
         "over_limit_m2": f("over_limit_m2"),
-        "slope_histogram": {"bin_edges_pct": edges.tolist(), "area_m2": hist.tolist(), "limit_pct": limit,
-                            "at_or_over_limit_m2": at_over},
-        "buildable": {"area_m2": buildable_m2, "share_of_parcel": buildable_m2 / covered if covered > 0 else None,
-                      "rule": "slope defined and below the class limit, outside every zone the class forbids; "
-                              "exact coverage of the parcel (minus forbidden vector zones) on those cells"},
-        "largest_patch": {"area_m2": patch_m2, "share_of_parcel": patch_m2 / covered if covered > 0 else None,
-                          "share_of_buildable": patch_m2 / buildable_m2 if buildable_m2 > 0 else None,
-                          "cells": int(patch.sum()), "connectivity": connectivity,
-                          "bounds": list(patch_geom.bounds) if not patch_geom.is_empty else None},
+        "slope_histogram": {
+            "bin_edges_pct": edges.tolist(),
+            "area_m2": hist.tolist(),
+            "limit_pct": limit,
+            "at_or_over_limit_m2": at_over,
+        },
+        "buildable": {
+            "area_m2": buildable_m2,
+            "share_of_parcel": buildable_m2 / covered if covered > 0 else None,
+            "rule": "slope defined and below the class limit, outside every zone the class forbids; "
+            "exact coverage of the parcel (minus forbidden vector zones) on those cells",
+        },
+        "largest_patch": {
+            "area_m2": patch_m2,
+            "share_of_parcel": patch_m2 / covered if covered > 0 else None,
+            "share_of_buildable": patch_m2 / buildable_m2 if buildable_m2 > 0 else None,
+            "cells": int(patch.sum()),
+            "connectivity": connectivity,
+            "bounds": list(patch_geom.bounds) if not patch_geom.is_empty else None,
+        },
         "zones": zones,
     }
-    arrays = {"patch_geom": patch_geom, "buildable_geom": free_geom_buildable, "forbidden_vec": forbidden_vec,
-              "slope_breach_geom": _polygonal(_cells_polygon(slope_breach, grid, win).intersection(geom)),
-              "zone_cells_geom": _polygonal(_cells_polygon(zone_cells, grid, win).intersection(geom)),
-              "window": win}
+    arrays = {
+        "patch_geom": patch_geom,
+        "buildable_geom": free_geom_buildable,
+        "forbidden_vec": forbidden_vec,
+        "slope_breach_geom": _polygonal(_cells_polygon(slope_breach, grid, win).intersection(geom)),
+        "zone_cells_geom": _polygonal(_cells_polygon(zone_cells, grid, win).intersection(geom)),
+        "window": win,
+    }
     return figures, arrays
 
 
@@ -771,8 +903,19 @@ def _zone_layers(audit_dir: Path) -> list[tuple[str, object]]:
 # --------------------------------------------------------------------------- drawing
 
 
-def _draw_map(stage: Path, dpi: int, figures: dict, geom, arrays: dict, grid: GridSpec, view_win: Window,
-              slope_view: np.ndarray, elev_view: np.ndarray, zone_layers, audit_dir: Path) -> Path:
+def _draw_map(
+    stage: Path,
+    dpi: int,
+    figures: dict,
+    geom,
+    arrays: dict,
+    grid: GridSpec,
+    view_win: Window,
+    slope_view: np.ndarray,
+    elev_view: np.ndarray,
+    zone_layers,
+    audit_dir: Path,
+) -> Path:
     """``map.png``: slope classes over relief, parcel, non-buildable parts, forbidden zones, largest patch."""
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
@@ -793,10 +936,20 @@ def _draw_map(stage: Path, dpi: int, figures: dict, geom, arrays: dict, grid: Gr
 
     fig = M._new_figure(MAP_SIZE_IN, dpi)
     ax = fig.add_axes([0.085, 0.18, 0.55, 0.69])
-    ax.imshow(M._composite(slope_view, shade, breaks, colours), extent=extent, origin="upper",
-              interpolation="nearest", zorder=1)
-    groups = [("Slope class", [Patch(facecolor=c, edgecolor="#555555", lw=0.5) for c in colours],
-               M.slope_class_labels(breaks))]
+    ax.imshow(
+        M._composite(slope_view, shade, breaks, colours),
+        extent=extent,
+        origin="upper",
+        interpolation="nearest",
+        zorder=1,
+    )
+    groups = [
+        (
+            "Slope class",
+            [Patch(facecolor=c, edgecolor="#555555", lw=0.5) for c in colours],
+            M.slope_class_labels(breaks),
+        )
+    ]
     # zones (outlines, as on the audit maps)
     zh, zl = [], []
     for i, (name, gdf) in enumerate(zone_layers):
@@ -813,14 +966,24 @@ def _draw_map(stage: Path, dpi: int, figures: dict, geom, arrays: dict, grid: Gr
     # parts of the parcel that are not buildable, hatched like the audit's conflict cells
     slope_g = arrays["slope_breach_geom"]
     zone_g = _polygonal(arrays["zone_cells_geom"].union(arrays["forbidden_vec"].intersection(geom)))
-    kinds = {1: _polygonal(slope_g.difference(zone_g)), 2: _polygonal(zone_g.difference(slope_g)),
-             3: _polygonal(slope_g.intersection(zone_g))}
+    kinds = {
+        1: _polygonal(slope_g.difference(zone_g)),
+        2: _polygonal(zone_g.difference(slope_g)),
+        3: _polygonal(slope_g.intersection(zone_g)),
+    }
     ch, cl = [], []
     for k, gk in kinds.items():
         if gk.is_empty:
             continue
-        M._add_polygons(ax, [gk], facecolors=[(1, 1, 1, 0.28)], edgecolors="#161616", hatch=M._CONFLICT_HATCH[k],
-                        linewidths=0.4, zorder=4)
+        M._add_polygons(
+            ax,
+            [gk],
+            facecolors=[(1, 1, 1, 0.28)],
+            edgecolors="#161616",
+            hatch=M._CONFLICT_HATCH[k],
+            linewidths=0.4,
+            zorder=4,
+        )
         ch.append(Patch(facecolor=(1, 1, 1, 0.28), edgecolor="#161616", hatch=M._CONFLICT_HATCH[k], lw=0.4))
         cl.append(M._CONFLICT_TEXT[k])
     if np.isnan(slope_view).any():
@@ -831,8 +994,15 @@ def _draw_map(stage: Path, dpi: int, figures: dict, geom, arrays: dict, grid: Gr
     lp = figures["largest_patch"]
     ph, pl = [], []
     if not patch_geom.is_empty:
-        M._add_polygons(ax, [patch_geom], facecolors=[_PATCH_FILL], edgecolors=_PATCH_COLOUR, linewidths=2.2,
-                        zorder=5, path_effects=M._halo(4.0))
+        M._add_polygons(
+            ax,
+            [patch_geom],
+            facecolors=[_PATCH_FILL],
+            edgecolors=_PATCH_COLOUR,
+            linewidths=2.2,
+            zorder=5,
+            path_effects=M._halo(4.0),
+        )
         ph.append(Patch(facecolor=_PATCH_FILL, edgecolor=_PATCH_COLOUR, lw=2.2))
         pl.append(f"largest buildable patch, {lp['area_m2']:,.0f} m\u00b2 ({lp['connectivity']}-connected cells)")
     verdict = figures["verdict"]
@@ -850,10 +1020,13 @@ def _draw_map(stage: Path, dpi: int, figures: dict, geom, arrays: dict, grid: Gr
     M._legend_column(fig, lax, groups)
     p = figures["parcel"]
     b = figures["buildable"]
-    M._figure_frame(fig, f"Parcel {p['id']}: buildable area and slope",
-                    f"class {p['class_name']} \u00b7 buildable {b['area_m2']:,.0f} m\u00b2 of "
-                    f"{p['covered_m2']:,.0f} m\u00b2 \u00b7 verdict {verdict}",
-                    [M._crs_note(crs) + "."])
+    M._figure_frame(
+        fig,
+        f"Parcel {p['id']}: buildable area and slope",
+        f"class {p['class_name']} \u00b7 buildable {b['area_m2']:,.0f} m\u00b2 of "
+        f"{p['covered_m2']:,.0f} m\u00b2 \u00b7 verdict {verdict}",
+        [M._crs_note(crs) + "."],
+    )
     M._save(fig, stage, "map", dpi, ("png",))
     return stage / "map.png"
 
@@ -877,8 +1050,9 @@ def _draw_histogram(stage: Path, dpi: int, figures: dict) -> Path:
     ax = fig.add_axes([0.17, 0.2, 0.78, 0.6])
     step_edges = np.append(lo, hi[-1])
     ax.stairs(np.where(over, 0.0, area), step_edges, fill=True, facecolor="#a9c4e0", edgecolor="#24509a", lw=0.6)
-    ax.stairs(np.where(over, area, 0.0), step_edges, fill=True, facecolor="#3b3b3b", edgecolor="#161616",
-              hatch="////", lw=0.6)
+    ax.stairs(
+        np.where(over, area, 0.0), step_edges, fill=True, facecolor="#3b3b3b", edgecolor="#161616", hatch="////", lw=0.6
+    )
     nz = np.nonzero(area > 0)[0]
     xmin = float(lo[nz[0]]) if nz.size else 0.0
     xmax = float(hi[nz[-1]]) if nz.size else 30.0
@@ -962,67 +1136,96 @@ def _img(path: Path, alt: str) -> str:
 
 
 def _write_html(path: Path, figures: dict, map_png: Path, hist_png: Path) -> None:
-    from landcheck.outputs.writers import atomic_file
     from landcheck.evidence.report import html_head
+    from landcheck.outputs.writers import atomic_file
 
     p, b, lp, rule = figures["parcel"], figures["buildable"], figures["largest_patch"], figures["rule"]
     verdict = figures["verdict"]
     limit = rule["max_slope_pct"]
-    cards = [("Parcel area", _m2(p["area_m2"])),
-             ("Buildable area", f"{_m2(b['area_m2'])} <span class=\"muted\">({_share(b['share_of_parcel'])})</span>"),
-             ("Largest buildable patch",
-              f"{_m2(lp['area_m2'])} <span class=\"muted\">({_share(lp['share_of_parcel'])})</span>"),
-             ("Slope mean / max", "\u2013" if p["slope_mean_pct"] is None else
-              f"{p['slope_mean_pct']:.1f} / {p['slope_max_pct']:.1f} %"),
-             ("Slope limit", "none" if limit is None else f"{limit:g} %")]
+    cards = [
+        ("Parcel area", _m2(p["area_m2"])),
+        ("Buildable area", f'{_m2(b["area_m2"])} <span class="muted">({_share(b["share_of_parcel"])})</span>'),
+        (
+            "Largest buildable patch",
+            f'{_m2(lp["area_m2"])} <span class="muted">({_share(lp["share_of_parcel"])})</span>',
+        ),
+        (
+            "Slope mean / max",
+            "\u2013" if p["slope_mean_pct"] is None else f"{p['slope_mean_pct']:.1f} / {p['slope_max_pct']:.1f} %",
+        ),
+        ("Slope limit", "none" if limit is None else f"{limit:g} %"),
+    ]
     zone_rows = [z for z in figures["zones"] if z["touches"]]
     if zone_rows:
-        ztable = ("<table id=\"zones\"><thead><tr><th>Zone</th><th>Rule</th><th>Area</th><th>Share</th></tr></thead>"
-                  "<tbody>" + "".join(
-                      f"<tr><td>{_e(z['label'])}</td><td>{'forbidden' if z['forbidden'] else 'reported'}</td>"
-                      f"<td class=\"n\">{_e(_m2(z['area_m2']))}</td><td class=\"n\">{_e(_share(z['share']))}</td></tr>"
-                      for z in zone_rows) + "</tbody></table>")
+        ztable = (
+            '<table id="zones"><thead><tr><th>Zone</th><th>Rule</th><th>Area</th><th>Share</th></tr></thead>'
+            "<tbody>"
+            + "".join(
+                f"<tr><td>{_e(z['label'])}</td><td>{'forbidden' if z['forbidden'] else 'reported'}</td>"
+                f'<td class="n">{_e(_m2(z["area_m2"]))}</td><td class="n">{_e(_share(z["share"]))}</td></tr>'
+                for z in zone_rows
+            )
+            + "</tbody></table>"
+        )
     elif figures["zones"]:
-        ztable = "<p id=\"zones\">No hazard zone of the rulebook touches the parcel.</p>"
+        ztable = '<p id="zones">No hazard zone of the rulebook touches the parcel.</p>'
     else:
-        ztable = "<p id=\"zones\">The rulebook defines no hazard zones.</p>"
+        ztable = '<p id="zones">The rulebook defines no hazard zones.</p>'
     forbidden = ", ".join(rule["forbidden_zones"]) or "none"
-    rule_text = (f"Class <b>{_e(p['class_label'])}</b> ({_e(p['class_name'])}, from {_e(p['class_source'])}): "
-                 f"slope limit {'none' if limit is None else f'{limit:g} % (or over breaches)'}; forbidden zones: "
-                 f"{_e(forbidden)}; tolerance {100 * rule['tolerance_share']:g} %, minimum breach "
-                 f"{rule['min_breach_m2']:g} m\u00b2.")
-    warn_html = ("<ul class=\"small\">" + "".join(f"<li>{_e(w)}</li>" for w in figures["warnings"]) + "</ul>"
-                 if figures["warnings"] else "<p class=\"small muted\">None.</p>")
-    ins = " \u00b7 ".join(f"{_e(i['role'])} <code>{_e(Path(i['path']).name)}</code> sha256 "
-                          f"{_e(i['sha256'][:_SHA_SHORT])}\u2026" for i in figures["inputs"])
+    rule_text = (
+        f"Class <b>{_e(p['class_label'])}</b> ({_e(p['class_name'])}, from {_e(p['class_source'])}): "
+        f"slope limit {'none' if limit is None else f'{limit:g} % (or over breaches)'}; forbidden zones: "
+        f"{_e(forbidden)}; tolerance {100 * rule['tolerance_share']:g} %, minimum breach "
+        f"{rule['min_breach_m2']:g} m\u00b2."
+    )
+    warn_html = (
+        '<ul class="small">' + "".join(f"<li>{_e(w)}</li>" for w in figures["warnings"]) + "</ul>"
+        if figures["warnings"]
+        else '<p class="small muted">None.</p>'
+    )
+    ins = " \u00b7 ".join(
+        f"{_e(i['role'])} <code>{_e(Path(i['path']).name)}</code> sha256 {_e(i['sha256'][:_SHA_SHORT])}\u2026"
+        for i in figures["inputs"]
+    )
     badge_cls = verdict if verdict in ("conflict", "review", "consistent", "no_data") else "no_data"
     parts = [
         html_head(f"landcheck pre-screen - parcel {p['id']}", _CSS, _CSP),
         f"<header><h1>Pre-screen of parcel {_e(p['id'])}</h1>",
-        (f'<p class="sub">{_e(p["source"])} \u00b7 run {_e(figures["started_utc"])} \u00b7 landcheck '
-        f"{_e(figures['version'])}</p>"),
+        (
+            f'<p class="sub">{_e(p["source"])} \u00b7 run {_e(figures["started_utc"])} \u00b7 landcheck '
+            f"{_e(figures['version'])}</p>"
+        ),
         f'<div class="caution" role="note" id="caution">\u26a0 {_e(CAUTION)}</div></header><main>',
-        (f'<div class="verdict" id="verdict">Verdict: <span class="badge v-{badge_cls}">'
-        f'{_e(verdict.replace("_", " "))}</span> <span class="small">{rule_text}</span>'),
-        "<ul class=\"small\" id=\"reasons\">" + "".join(f"<li>{_e(r)}</li>" for r in figures["reasons"]) + "</ul></div>",
-        '<div class="cards" id="figures">' + "".join(
-            f'<div class="card"><div class="card-h">{_e(h)}</div><div class="card-v">{v}</div></div>'
-            for h, v in cards) + "</div>",
+        (
+            f'<div class="verdict" id="verdict">Verdict: <span class="badge v-{badge_cls}">'
+            f'{_e(verdict.replace("_", " "))}</span> <span class="small">{rule_text}</span>'
+        ),
+        '<ul class="small" id="reasons">' + "".join(f"<li>{_e(r)}</li>" for r in figures["reasons"]) + "</ul></div>",
+        '<div class="cards" id="figures">'
+        + "".join(
+            f'<div class="card"><div class="card-h">{_e(h)}</div><div class="card-v">{v}</div></div>' for h, v in cards
+        )
+        + "</div>",
         f'<figure id="map">{_img(map_png, "Map of the parcel: slope classes, non-buildable parts hatched, largest buildable patch outlined")}</figure>',
         '<div class="cols"><div>',
         f'<figure id="histogram">{_img(hist_png, "Parcel area per 1 % slope bin with the slope limit marked")}</figure>',
         "</div><div><h2>Hazard zones touching the parcel</h2>",
         ztable,
-        ("<h2>How the figures are made</h2><p class=\"small\">Areas are exact: each DEM cell counts with the share of "
-        "it the parcel covers. <b>Buildable</b> = cells whose slope is defined and below the limit, outside every "
-        "cell-based zone the class forbids, counted with the part of the cell inside the parcel and outside every "
-        "forbidden zone polygon. The <b>largest buildable patch</b> joins buildable cells sharing "
-        f"{'an edge' if lp['connectivity'] == 4 else 'an edge or a corner'} ({lp['connectivity']}-connectivity). "
-        "Shares are of the parcel's area inside the DEM.</p>"),
-        "<h2>Warnings</h2>", warn_html,
+        (
+            '<h2>How the figures are made</h2><p class="small">Areas are exact: each DEM cell counts with the share of '
+            "it the parcel covers. <b>Buildable</b> = cells whose slope is defined and below the limit, outside every "
+            "cell-based zone the class forbids, counted with the part of the cell inside the parcel and outside every "
+            "forbidden zone polygon. The <b>largest buildable patch</b> joins buildable cells sharing "
+            f"{'an edge' if lp['connectivity'] == 4 else 'an edge or a corner'} ({lp['connectivity']}-connectivity). "
+            "Shares are of the parcel's area inside the DEM.</p>"
+        ),
+        "<h2>Warnings</h2>",
+        warn_html,
         "</div></div></main>",
-        (f'<footer class="small"><p><strong>{_e(CAUTION)}</strong></p><p class="muted">Inputs: {ins}. Figures in '
-        "prescreen.json; patch polygon in largest_patch.gpkg.</p></footer>"),
+        (
+            f'<footer class="small"><p><strong>{_e(CAUTION)}</strong></p><p class="muted">Inputs: {ins}. Figures in '
+            "prescreen.json; patch polygon in largest_patch.gpkg.</p></footer>"
+        ),
         "</body></html>\n",
     ]
     with atomic_file(path, overwrite=True) as tmp:

@@ -24,7 +24,6 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 from landcheck.about import CAUTION, __version__
-from landcheck.outputs.writers import write_bytes
 from landcheck.evidence.maps import (
     DEFAULT_SLOPE_BREAKS_PCT,
     VERDICTS,
@@ -37,17 +36,32 @@ from landcheck.evidence.maps import (
     sensitivity_chart,
     slope_distribution_chart,
 )
+from landcheck.outputs.writers import write_bytes
 
 __all__ = ["build_report", "sha256_file"]
 
 logger = logging.getLogger(__name__)
 
 #: files of the output contract whose SHA-256 the report lists (docs/outputs.md)
-_OUTPUT_FILES = ("parcels.gpkg", "parcels.csv", "classes.csv", "summary.json", "slope_pct.tif", "conflict.tif",
-                 "confidence.csv", "confidence_classes.csv", "capability.tif", "capability_by_class.csv",
-                 "capability_legend.csv", "reclassification.gpkg", "reclassification_moves.csv")
-_CSP = ("default-src 'none'; img-src data:; style-src 'unsafe-inline'; script-src 'unsafe-inline'; "
-        "base-uri 'none'; form-action 'none'")
+_OUTPUT_FILES = (
+    "parcels.gpkg",
+    "parcels.csv",
+    "classes.csv",
+    "summary.json",
+    "slope_pct.tif",
+    "conflict.tif",
+    "confidence.csv",
+    "confidence_classes.csv",
+    "capability.tif",
+    "capability_by_class.csv",
+    "capability_legend.csv",
+    "reclassification.gpkg",
+    "reclassification_moves.csv",
+)
+_CSP = (
+    "default-src 'none'; img-src data:; style-src 'unsafe-inline'; script-src 'unsafe-inline'; "
+    "base-uri 'none'; form-action 'none'"
+)
 _HASH_CHUNK_BYTES = 1 << 20
 _M2_PER_HA = 10_000.0
 
@@ -71,12 +85,21 @@ _PARCEL_COLUMNS = [
 ]
 _PARCEL_TAIL = [("reasons", "Reasons", "text"), ("geometry_note", "Geometry", "text")]
 _CLASS_COLUMNS = [
-    ("class_name", "Class", "text"), ("label", "Label", "text"), ("development", "Development", "text"),
-    ("limit_pct", "Slope limit (%)", "pct"), ("parcels", "Parcels", "int"), ("area_m2", "Area (m\u00b2)", "m2"),
-    ("evaluated_m2", "Evaluated (m\u00b2)", "m2"), ("compliant_m2", "Compliant (m\u00b2)", "m2"),
-    ("over_limit_m2", "Over limit (m\u00b2)", "m2"), ("conflict_m2", "Conflict (m\u00b2)", "m2"),
-    ("conflict_share", "Conflict share", "share"), ("n_consistent", "Consistent", "int"),
-    ("n_conflict", "Conflict", "int"), ("n_review", "Review", "int"), ("n_no_data", "No data", "int"),
+    ("class_name", "Class", "text"),
+    ("label", "Label", "text"),
+    ("development", "Development", "text"),
+    ("limit_pct", "Slope limit (%)", "pct"),
+    ("parcels", "Parcels", "int"),
+    ("area_m2", "Area (m\u00b2)", "m2"),
+    ("evaluated_m2", "Evaluated (m\u00b2)", "m2"),
+    ("compliant_m2", "Compliant (m\u00b2)", "m2"),
+    ("over_limit_m2", "Over limit (m\u00b2)", "m2"),
+    ("conflict_m2", "Conflict (m\u00b2)", "m2"),
+    ("conflict_share", "Conflict share", "share"),
+    ("n_consistent", "Consistent", "int"),
+    ("n_conflict", "Conflict", "int"),
+    ("n_review", "Review", "int"),
+    ("n_no_data", "No data", "int"),
 ]
 
 
@@ -135,7 +158,7 @@ def _area_text(m2) -> str:
     f = _num(m2)
     if math.isnan(f):
         return "\u2013"
-    return f"{f / _M2_PER_HA:,.2f} ha <span class=\"muted\">({f:,.0f} m\u00b2)</span>"
+    return f'{f / _M2_PER_HA:,.2f} ha <span class="muted">({f:,.0f} m\u00b2)</span>'
 
 
 def _verdict_badge(v: str) -> str:
@@ -143,16 +166,25 @@ def _verdict_badge(v: str) -> str:
     return f'<span class="badge v-{cls}">{_e(v.replace("_", " "))}</span>'
 
 
-def _table(table_id: str, columns: Sequence[tuple[str, str, str]], rows: Iterable[dict], caption: str,
-           numeric_text_cols: set[str] = frozenset()) -> str:
+def _table(
+    table_id: str,
+    columns: Sequence[tuple[str, str, str]],
+    rows: Iterable[dict],
+    caption: str,
+    numeric_text_cols: set[str] = frozenset(),
+) -> str:
     """A sortable table: every header is a button; cells carry data-value sort keys."""
-    out = [f'<div class="table-wrap"><table id="{_e(table_id)}" class="sortable">',
-           f"<caption>{caption}</caption><thead><tr>"]
+    out = [
+        f'<div class="table-wrap"><table id="{_e(table_id)}" class="sortable">',
+        f"<caption>{caption}</caption><thead><tr>",
+    ]
     for key, head, kind in columns:
         dtype = "num" if (kind not in ("text", "verdict") or key in numeric_text_cols) else "text"
-        out.append(f'<th scope="col" data-type="{dtype}" data-col="{_e(key)}" aria-sort="none">'
-                   f'<button type="button" data-col="{_e(key)}">{_e(head)}<span class="arrow" aria-hidden="true">'
-                   "</span></button></th>")
+        out.append(
+            f'<th scope="col" data-type="{dtype}" data-col="{_e(key)}" aria-sort="none">'
+            f'<button type="button" data-col="{_e(key)}">{_e(head)}<span class="arrow" aria-hidden="true">'
+            "</span></button></th>"
+        )
     out.append("</tr></thead><tbody>")
     for i, row in enumerate(rows):
         out.append(f'<tr data-row="{i}">')
@@ -179,8 +211,10 @@ def _figure_html(item: FigureItem, alt: str, css_class: str = "") -> str:
         return ""
     data = base64.b64encode(png.read_bytes()).decode("ascii")
     cls = f' class="{css_class}"' if css_class else ""
-    return (f'<figure{cls} id="fig-{_e(item.stem)}"><img src="data:image/png;base64,{data}" alt="{_e(alt)}">'
-            f"<figcaption>{_e(item.caption)}</figcaption></figure>")
+    return (
+        f'<figure{cls} id="fig-{_e(item.stem)}"><img src="data:image/png;base64,{data}" alt="{_e(alt)}">'
+        f"<figcaption>{_e(item.caption)}</figcaption></figure>"
+    )
 
 
 def _summary_section(folder: AuditFolder) -> str:
@@ -198,24 +232,30 @@ def _summary_section(folder: AuditFolder) -> str:
     parts.append("</div>")
     counts = t.get("verdict_counts") or {}
     if counts:
-        parts.append('<table class="plain" id="verdict-counts"><caption>Parcels by verdict</caption>'
-                     '<thead><tr><th scope="col">Verdict</th><th scope="col">Parcels</th></tr></thead><tbody>')
+        parts.append(
+            '<table class="plain" id="verdict-counts"><caption>Parcels by verdict</caption>'
+            '<thead><tr><th scope="col">Verdict</th><th scope="col">Parcels</th></tr></thead><tbody>'
+        )
         keys = [v for v in VERDICTS if v in counts] + sorted(set(counts) - set(VERDICTS))
         for k in keys:
             parts.append(f'<tr><td>{_verdict_badge(k)}</td><td class="n">{_e(_fmt(counts[k], "int"))}</td></tr>')
         parts.append("</tbody></table>")
-    parts.append('<p class="muted">Verdicts: <b>conflict</b> - part of the parcel breaks a rule of its class; '
-                 "<b>review</b> - close to a limit, look closer; <b>consistent</b> - no rule broken; "
-                 "<b>no data</b> - outside the DEM or without slope; <b>no rule</b> - the class value has no rule "
-                 "in the rulebook.</p></section>")
+    parts.append(
+        '<p class="muted">Verdicts: <b>conflict</b> - part of the parcel breaks a rule of its class; '
+        "<b>review</b> - close to a limit, look closer; <b>consistent</b> - no rule broken; "
+        "<b>no data</b> - outside the DEM or without slope; <b>no rule</b> - the class value has no rule "
+        "in the rulebook.</p></section>"
+    )
     return "".join(parts)
 
 
 def _capability_section(folder: AuditFolder) -> str:
     c = folder.section("capability", default={}) or {}
     if not c:
-        return ('<section id="capability"><h2>Terrain capability and classification</h2>'
-                "<p>summary.json has no capability figures.</p></section>")
+        return (
+            '<section id="capability"><h2>Terrain capability and classification</h2>'
+            "<p>summary.json has no capability figures.</p></section>"
+        )
     ref = _num(c.get("reference_limit_pct"))
     dem = _num(c.get("dem_land_m2"))
     cap, cap_sh = _num(c.get("land_within_limit_m2")), _num(c.get("land_within_limit_share"))
@@ -227,21 +267,29 @@ def _capability_section(folder: AuditFolder) -> str:
         ("Land classified for development", dev, dev_sh),
         ("Classified for development minus land under the limit", diff, diff / dem if dem > 0 else math.nan),
     ]
-    parts = ['<section id="capability"><h2>Terrain capability and classification</h2>',
-             '<table class="plain" id="capability-table"><caption>What the terrain allows vs what is classified'
-             '</caption><thead><tr><th scope="col"></th><th scope="col">Area</th>'
-             '<th scope="col">Share of DEM land</th></tr></thead><tbody>']
+    parts = [
+        '<section id="capability"><h2>Terrain capability and classification</h2>',
+        '<table class="plain" id="capability-table"><caption>What the terrain allows vs what is classified'
+        '</caption><thead><tr><th scope="col"></th><th scope="col">Area</th>'
+        '<th scope="col">Share of DEM land</th></tr></thead><tbody>',
+    ]
     for head, area, share in rows:
-        parts.append(f"<tr><th scope=\"row\">{_e(head)}</th><td class=\"n\">{_area_text(area)}</td>"
-                     f"<td class=\"n\">{_e(_fmt(share, 'share'))}</td></tr>")
+        parts.append(
+            f'<tr><th scope="row">{_e(head)}</th><td class="n">{_area_text(area)}</td>'
+            f'<td class="n">{_e(_fmt(share, "share"))}</td></tr>'
+        )
     parts.append("</tbody></table>")
     if not math.isnan(diff) and diff > 0:
-        parts.append(f'<p class="flag">More land is classified for development than the terrain offers under '
-                     f"{ref:g} % slope: at least {_area_text(diff)} of it must lie on steeper ground or outside "
-                     "the DEM.</p>")
+        parts.append(
+            f'<p class="flag">More land is classified for development than the terrain offers under '
+            f"{ref:g} % slope: at least {_area_text(diff)} of it must lie on steeper ground or outside "
+            "the DEM.</p>"
+        )
     else:
-        parts.append(f"<p>Land classified for development does not exceed the land under {ref:g} % slope; "
-                     "the per-parcel table shows where individual parcels still breach their class.</p>")
+        parts.append(
+            f"<p>Land classified for development does not exceed the land under {ref:g} % slope; "
+            "the per-parcel table shows where individual parcels still breach their class.</p>"
+        )
     parts.append("</section>")
     return "".join(parts)
 
@@ -255,32 +303,44 @@ def _classes_section(folder: AuditFolder) -> str:
         rec["limit_pct"] = limits.get(rec["class_name"], math.nan)
         rows.append(rec)
     cols = [c for c in _CLASS_COLUMNS if c[0] in df.columns or c[0] == "limit_pct"]
-    return ('<section id="classes"><h2>Per class</h2>'
-            + _table("class-table", cols, rows, "One row per rulebook class (classes.csv); click a header to sort.")
-            + "</section>")
+    return (
+        '<section id="classes"><h2>Per class</h2>'
+        + _table("class-table", cols, rows, "One row per rulebook class (classes.csv); click a header to sort.")
+        + "</section>"
+    )
 
 
 _CONFIDENCE_COLUMNS = [
-    ("class_name", "Class", "text"), ("parcels_evaluated", "Parcels", "int"),
-    ("expected_conflicts", "Expected conflicts", "pct"), ("n_robust_conflict", "Robust conflict", "int"),
-    ("n_uncertain", "Uncertain", "int"), ("n_robust_clear", "Robust clear", "int"),
-    ("conflict_share_p05", "Conflict share p5", "share"), ("conflict_share_p50", "p50", "share"),
+    ("class_name", "Class", "text"),
+    ("parcels_evaluated", "Parcels", "int"),
+    ("expected_conflicts", "Expected conflicts", "pct"),
+    ("n_robust_conflict", "Robust conflict", "int"),
+    ("n_uncertain", "Uncertain", "int"),
+    ("n_robust_clear", "Robust clear", "int"),
+    ("conflict_share_p05", "Conflict share p5", "share"),
+    ("conflict_share_p50", "p50", "share"),
     ("conflict_share_p95", "p95", "share"),
 ]
-_MOVES_COLUMNS = [("from_class", "From class", "text"), ("to_class", "To class", "text"),
-                  ("parcels", "Parcels", "int"), ("area_m2", "Area (m\u00b2)", "m2")]
+_MOVES_COLUMNS = [
+    ("from_class", "From class", "text"),
+    ("to_class", "To class", "text"),
+    ("parcels", "Parcels", "int"),
+    ("area_m2", "Area (m\u00b2)", "m2"),
+]
 
 
 def html_head(title: str, css: str, csp: str) -> str:
     """Opening of a self-contained page: a Content-Security-Policy that forbids every fetch, inline CSS."""
-    return ("<!DOCTYPE html>\n"
-            '<html lang="en"><head><meta charset="utf-8">\n'
-            f'<meta http-equiv="Content-Security-Policy" content="{csp}">\n'
-            '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
-            '<meta name="generator" content="landcheck">\n'
-            '<link rel="icon" href="data:,">\n'
-            f"<title>{_e(title)}</title>\n"
-            f"<style>{css}</style></head><body>")
+    return (
+        "<!DOCTYPE html>\n"
+        '<html lang="en"><head><meta charset="utf-8">\n'
+        f'<meta http-equiv="Content-Security-Policy" content="{csp}">\n'
+        '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
+        '<meta name="generator" content="landcheck">\n'
+        '<link rel="icon" href="data:,">\n'
+        f"<title>{_e(title)}</title>\n"
+        f"<style>{css}</style></head><body>"
+    )
 
 
 def _final_name(out_dir: Path) -> str:
@@ -308,35 +368,44 @@ def _extras_section(folder: AuditFolder) -> str:
         rmse = model.get("rmse_m", "?")
         corr = model.get("corr_length_m", "?")
         n = model.get("realizations", "?")
-        parts.append('<section id="confidence"><h2>Confidence under DEM error</h2>'
-                     f"<p>{_e(n)} seeded realizations of a correlated DEM error field (RMSE {_e(rmse)} m, "
-                     f"correlation length {_e(corr)} m) were added to the DEM and every slope, share and verdict "
-                     "recomputed. <b>Robust conflict</b>: in conflict in at least 95 % of realizations; "
-                     "<b>robust clear</b>: in at most 5 %; otherwise <b>uncertain</b>. Per-parcel probabilities "
-                     "are in the parcel table (P(conflict)) and confidence.csv.</p>"
-                     + _table("confidence-table", _CONFIDENCE_COLUMNS, conf.to_dict("records"),
-                              "Per class: verdict stability and the 5-50-95 % range of the conflict share.")
-                     + "</section>")
+        parts.append(
+            '<section id="confidence"><h2>Confidence under DEM error</h2>'
+            f"<p>{_e(n)} seeded realizations of a correlated DEM error field (RMSE {_e(rmse)} m, "
+            f"correlation length {_e(corr)} m) were added to the DEM and every slope, share and verdict "
+            "recomputed. <b>Robust conflict</b>: in conflict in at least 95 % of realizations; "
+            "<b>robust clear</b>: in at most 5 %; otherwise <b>uncertain</b>. Per-parcel probabilities "
+            "are in the parcel table (P(conflict)) and confidence.csv.</p>"
+            + _table(
+                "confidence-table",
+                _CONFIDENCE_COLUMNS,
+                conf.to_dict("records"),
+                "Per class: verdict stability and the 5-50-95 % range of the conflict share.",
+            )
+            + "</section>"
+        )
     cap = _optional_csv(folder, "capability_by_class.csv")
     if cap is not None:
         piv = cap.pivot_table(index="capability", columns="class_name", values="area_m2", aggfunc="sum", fill_value=0.0)
         cols = [("capability", "Capability class", "text")] + [(c, f"{c} (ha)", "ha") for c in piv.columns]
         rows = [{"capability": idx, **{c: piv.loc[idx, c] for c in piv.columns}} for idx in piv.index]
-        parts.append('<section id="capability-map"><h2>Land capability inside each class</h2>'
-                     "<p>Every cell is classed by slope (published planning classes) and downgraded where it lies "
-                     "in a hazard zone (capability.tif, legend in capability_legend.csv); areas are exact "
-                     "coverage-weighted areas inside the parcels of each class.</p>"
-                     + _table("capability-class-table", cols, rows, "Area of each capability class by zoning class.")
-                     + "</section>")
+        parts.append(
+            '<section id="capability-map"><h2>Land capability inside each class</h2>'
+            "<p>Every cell is classed by slope (published planning classes) and downgraded where it lies "
+            "in a hazard zone (capability.tif, legend in capability_legend.csv); areas are exact "
+            "coverage-weighted areas inside the parcels of each class.</p>"
+            + _table("capability-class-table", cols, rows, "Area of each capability class by zoning class.")
+            + "</section>"
+        )
     moves = _optional_csv(folder, "reclassification_moves.csv")
     if moves is not None:
-        parts.append('<section id="reclassification"><h2>Drafted reclassification</h2>'
-                     "<p>Each conflicting parcel split along the cells that break its rule; the non-compliant part "
-                     "is proposed for the class the rulebook designates (reclassification.gpkg). A draft for "
-                     "discussion, not a decision.</p>"
-                     + _table("moves-table", _MOVES_COLUMNS, moves.to_dict("records"),
-                              "Area that would move between classes.")
-                     + "</section>")
+        parts.append(
+            '<section id="reclassification"><h2>Drafted reclassification</h2>'
+            "<p>Each conflicting parcel split along the cells that break its rule; the non-compliant part "
+            "is proposed for the class the rulebook designates (reclassification.gpkg). A draft for "
+            "discussion, not a decision.</p>"
+            + _table("moves-table", _MOVES_COLUMNS, moves.to_dict("records"), "Area that would move between classes.")
+            + "</section>"
+        )
     return "".join(parts)
 
 
@@ -366,13 +435,19 @@ def _parcels_section(folder: AuditFolder, max_rows: int) -> tuple[str, list[str]
         order = sorted(range(len(records)), key=lambda i: (-(_num(records[i].get("conflict_m2")) or 0.0), i))
         keep = sorted(order[:max_rows], key=lambda i: order.index(i))
         records = [records[i] for i in keep]
-        notes.append(f"The per-parcel table shows the {max_rows:,d} parcels with the largest conflict area of "
-                     f"{len(df):,d}; parcels.csv holds all of them.")
+        notes.append(
+            f"The per-parcel table shows the {max_rows:,d} parcels with the largest conflict area of "
+            f"{len(df):,d}; parcels.csv holds all of them."
+        )
     ids = [str(r.get("parcel_id", "")) for r in records]
     numeric_ids = bool(ids) and all(_is_number(i) for i in ids)
-    html_table = _table("parcel-table", cols, records,
-                        f"{len(records):,d} parcels (parcels.csv); click a header to sort, click again to reverse.",
-                        numeric_text_cols={"parcel_id"} if numeric_ids else set())
+    html_table = _table(
+        "parcel-table",
+        cols,
+        records,
+        f"{len(records):,d} parcels (parcels.csv); click a header to sort, click again to reverse.",
+        numeric_text_cols={"parcel_id"} if numeric_ids else set(),
+    )
     return f'<section id="parcels"><h2>Per parcel</h2>{html_table}</section>', notes
 
 
@@ -386,18 +461,20 @@ def _is_number(text: str) -> bool:
 def _manifest_section(folder: AuditFolder, verify_inputs: bool, built_utc: str) -> tuple[str, list[str]]:
     m = folder.section("manifest", default={}) or {}
     warnings: list[str] = []
-    parts = ['<section id="manifest"><h2>Run manifest</h2>',
-             "<p>Everything needed to rerun this audit and check the result: the inputs and their SHA-256, the "
-             "full rulebook, the parameters, the CRS and the software versions. Rerun <code>landcheck audit</code> "
-             "with the same inputs, rulebook and parameters, then compare the output hashes below.</p>",
-             '<table class="plain kv"><tbody>',
-             f'<tr><th scope="row">Audit started (UTC)</th><td>{_e(m.get("started_utc", "not recorded"))}</td></tr>',
-             f'<tr><th scope="row">Report built (UTC)</th><td><time id="report-built">{_e(built_utc)}</time></td></tr>',
-             f'<tr><th scope="row">Audit tool</th><td>{_e(folder.summary.get("tool", "landcheck"))} '
-             f'{_e(folder.summary.get("version", ""))}</td></tr>',
-             f'<tr><th scope="row">Report tool</th><td>landcheck {_e(__version__)}</td></tr>',
-             f'<tr><th scope="row">Output folder</th><td><code>{_e(folder.out_dir.parent / _final_name(folder.out_dir))}</code></td></tr>',
-             "</tbody></table>"]
+    parts = [
+        '<section id="manifest"><h2>Run manifest</h2>',
+        "<p>Everything needed to rerun this audit and check the result: the inputs and their SHA-256, the "
+        "full rulebook, the parameters, the CRS and the software versions. Rerun <code>landcheck audit</code> "
+        "with the same inputs, rulebook and parameters, then compare the output hashes below.</p>",
+        '<table class="plain kv"><tbody>',
+        f'<tr><th scope="row">Audit started (UTC)</th><td>{_e(m.get("started_utc", "not recorded"))}</td></tr>',
+        f'<tr><th scope="row">Report built (UTC)</th><td><time id="report-built">{_e(built_utc)}</time></td></tr>',
+        f'<tr><th scope="row">Audit tool</th><td>{_e(folder.summary.get("tool", "landcheck"))} '
+        f"{_e(folder.summary.get('version', ''))}</td></tr>",
+        f'<tr><th scope="row">Report tool</th><td>landcheck {_e(__version__)}</td></tr>',
+        f'<tr><th scope="row">Output folder</th><td><code>{_e(folder.out_dir.parent / _final_name(folder.out_dir))}</code></td></tr>',
+        "</tbody></table>",
+    ]
 
     def check(path_text: str, recorded: str, what: str) -> str:
         if not verify_inputs:
@@ -409,20 +486,26 @@ def _manifest_section(folder: AuditFolder, verify_inputs: bool, built_utc: str) 
         now = sha256_file(p)
         if now.lower() == str(recorded).lower():
             return '<span class="st-ok">matches the file</span>'
-        warnings.append(f"{what} {path_text}: the file changed since the audit (SHA-256 now {now}); "
-                        "the report describes the earlier file.")
+        warnings.append(
+            f"{what} {path_text}: the file changed since the audit (SHA-256 now {now}); "
+            "the report describes the earlier file."
+        )
         return f'<span class="st-bad">changed: now <code class="sha256-now">{_e(now)}</code></span>'
 
-    parts.append('<h3>Inputs</h3><table class="plain" id="manifest-inputs"><thead><tr><th scope="col">Role</th>'
-                 '<th scope="col">Path</th><th scope="col">SHA-256 at audit time</th><th scope="col">Check now</th>'
-                 "</tr></thead><tbody>")
+    parts.append(
+        '<h3>Inputs</h3><table class="plain" id="manifest-inputs"><thead><tr><th scope="col">Role</th>'
+        '<th scope="col">Path</th><th scope="col">SHA-256 at audit time</th><th scope="col">Check now</th>'
+        "</tr></thead><tbody>"
+    )
     for item in m.get("inputs", []) or []:
         if not isinstance(item, dict):
             continue
         role, path, digest = item.get("role", ""), item.get("path", ""), item.get("sha256", "")
-        parts.append(f'<tr data-role="{_e(role)}" data-path="{_e(path)}"><td>{_e(role)}</td><td><code>{_e(path)}'
-                     f'</code></td><td><code class="sha256">{_e(digest)}</code></td>'
-                     f"<td>{check(path, digest, f'input ({role})')}</td></tr>")
+        parts.append(
+            f'<tr data-role="{_e(role)}" data-path="{_e(path)}"><td>{_e(role)}</td><td><code>{_e(path)}'
+            f'</code></td><td><code class="sha256">{_e(digest)}</code></td>'
+            f"<td>{check(path, digest, f'input ({role})')}</td></tr>"
+        )
     parts.append("</tbody></table>")
 
     rb = m.get("rulebook") or {}
@@ -432,23 +515,28 @@ def _manifest_section(folder: AuditFolder, verify_inputs: bool, built_utc: str) 
         parts.append(
             '<h3>Rulebook</h3><table class="plain" id="manifest-rulebook"><tbody>'
             f'<tr data-role="rulebook" data-path="{_e(rb.get("path", ""))}"><th scope="row">Path</th>'
-            f'<td><code>{_e(rb.get("path", ""))}</code></td></tr>'
+            f"<td><code>{_e(rb.get('path', ''))}</code></td></tr>"
             f'<tr><th scope="row">SHA-256 at audit time</th><td><code class="sha256">{_e(rb.get("sha256", ""))}'
-            f'</code> {check(str(rb.get("path", "")), str(rb.get("sha256", "")), "rulebook")}</td></tr>'
+            f"</code> {check(str(rb.get('path', '')), str(rb.get('sha256', '')), 'rulebook')}</td></tr>"
             f'<tr><th scope="row">Text</th><td><a download="rulebook.toml" href="data:text/plain;charset=utf-8;'
             f'base64,{b64}">save the rulebook text</a></td></tr></tbody></table>'
-            f'<pre id="rulebook-text" class="code">{_e(text)}</pre>')
+            f'<pre id="rulebook-text" class="code">{_e(text)}</pre>'
+        )
 
     params = m.get("parameters") or {}
     parts.append('<h3>Parameters</h3><table class="plain kv" id="manifest-parameters"><tbody>')
     for k in sorted(params):
-        parts.append(f'<tr><th scope="row"><code>{_e(k)}</code></th>'
-                     f"<td><code>{_e(json.dumps(params[k], sort_keys=True))}</code></td></tr>")
+        parts.append(
+            f'<tr><th scope="row"><code>{_e(k)}</code></th>'
+            f"<td><code>{_e(json.dumps(params[k], sort_keys=True))}</code></td></tr>"
+        )
     parts.append("</tbody></table>")
 
     wkt = m.get("crs_wkt", "")
-    parts.append(f"<h3>Coordinate reference system</h3><p>{_e(_crs_name(wkt))}</p>"
-                 f'<details><summary>WKT</summary><pre class="code" id="crs-wkt">{_e(wkt)}</pre></details>')
+    parts.append(
+        f"<h3>Coordinate reference system</h3><p>{_e(_crs_name(wkt))}</p>"
+        f'<details><summary>WKT</summary><pre class="code" id="crs-wkt">{_e(wkt)}</pre></details>'
+    )
 
     sw = m.get("software") or {}
     parts.append('<h3>Software</h3><table class="plain kv" id="manifest-software"><tbody>')
@@ -456,8 +544,10 @@ def _manifest_section(folder: AuditFolder, verify_inputs: bool, built_utc: str) 
         parts.append(f'<tr><th scope="row">{_e(k)}</th><td>{_e(sw[k])}</td></tr>')
     parts.append("</tbody></table>")
 
-    parts.append('<h3>Outputs</h3><table class="plain" id="manifest-outputs"><thead><tr><th scope="col">File</th>'
-                 '<th scope="col">Bytes</th><th scope="col">SHA-256</th></tr></thead><tbody>')
+    parts.append(
+        '<h3>Outputs</h3><table class="plain" id="manifest-outputs"><thead><tr><th scope="col">File</th>'
+        '<th scope="col">Bytes</th><th scope="col">SHA-256</th></tr></thead><tbody>'
+    )
     outs = [folder.out_dir / n for n in _OUTPUT_FILES]
     zdir = folder.out_dir / "zones"
     if zdir.is_dir():
@@ -465,13 +555,17 @@ def _manifest_section(folder: AuditFolder, verify_inputs: bool, built_utc: str) 
     for p in outs:
         if p.is_file():
             rel = p.relative_to(folder.out_dir).as_posix()
-            parts.append(f'<tr data-file="{_e(rel)}"><td><code>{_e(rel)}</code></td>'
-                         f'<td class="n">{p.stat().st_size:,d}</td>'
-                         f'<td><code class="sha256">{sha256_file(p)}</code></td></tr>')
+            parts.append(
+                f'<tr data-file="{_e(rel)}"><td><code>{_e(rel)}</code></td>'
+                f'<td class="n">{p.stat().st_size:,d}</td>'
+                f'<td><code class="sha256">{sha256_file(p)}</code></td></tr>'
+            )
     parts.append("</tbody></table>")
     manifest_b64 = base64.b64encode(json.dumps(m, indent=2, sort_keys=True).encode("utf-8")).decode("ascii")
-    parts.append(f'<p><a download="manifest.json" href="data:application/json;base64,{manifest_b64}">'
-                 "save the manifest as JSON</a></p></section>")
+    parts.append(
+        f'<p><a download="manifest.json" href="data:application/json;base64,{manifest_b64}">'
+        "save the manifest as JSON</a></p></section>"
+    )
     return "".join(parts), warnings
 
 
@@ -590,10 +684,19 @@ _JS = """
 """
 
 
-def build_report(out_dir, *, report_path=None, figures_dir=None,
-                 slope_breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT, max_closeups: int = 12,
-                 max_table_rows: int = 5000, dpi: int = 200, figure_formats: Sequence[str] = ("png", "svg"),
-                 closeup_formats: Sequence[str] = ("png",), verify_inputs: bool = True) -> Path:
+def build_report(
+    out_dir,
+    *,
+    report_path=None,
+    figures_dir=None,
+    slope_breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT,
+    max_closeups: int = 12,
+    max_table_rows: int = 5000,
+    dpi: int = 200,
+    figure_formats: Sequence[str] = ("png", "svg"),
+    closeup_formats: Sequence[str] = ("png",),
+    verify_inputs: bool = True,
+) -> Path:
     """Write a self-contained HTML report of an audit output folder.
 
     Parameters
@@ -644,19 +747,28 @@ def build_report(out_dir, *, report_path=None, figures_dir=None,
     kw = dict(dest_dir=figures_dir, dpi=dpi, formats=formats)
     overview = overview_map(folder, slope_breaks_pct=slope_breaks_pct, **kw)
     # close-ups are many: PNG by default (SVG on request) to keep the audit quick
-    closeups = parcel_closeup_maps(folder, max_closeups, slope_breaks_pct=slope_breaks_pct, dest_dir=figures_dir,
-                                   dpi=dpi, formats=tuple(dict.fromkeys(("png", *closeup_formats))))
+    closeups = parcel_closeup_maps(
+        folder,
+        max_closeups,
+        slope_breaks_pct=slope_breaks_pct,
+        dest_dir=figures_dir,
+        dpi=dpi,
+        formats=tuple(dict.fromkeys(("png", *closeup_formats))),
+    )
     charts = [class_share_chart(folder, **kw), slope_distribution_chart(folder, **kw), sensitivity_chart(folder, **kw)]
 
     extra_warnings: list[str] = []
     relief = [e for e in overview.legend_entries if e.group == "relief" and e.key == "relief"]
     if relief and "slope shading" in relief[0].label:
-        extra_warnings.append("Maps: the DEM named in the manifest could not be used for relief, so the slope "
-                              f"raster is shaded instead ({relief[0].label.split('(', 1)[-1].rstrip(')')}).")
+        extra_warnings.append(
+            "Maps: the DEM named in the manifest could not be used for relief, so the slope "
+            f"raster is shaded instead ({relief[0].label.split('(', 1)[-1].rstrip(')')})."
+        )
     n_conflict_parcels = int((folder.parcels["conflict_m2"].fillna(0) > 0).sum())
     if n_conflict_parcels > len(closeups.items):
-        extra_warnings.append(f"Maps: {n_conflict_parcels} parcels have conflict area; close-ups show the "
-                              f"{len(closeups.items)} largest.")
+        extra_warnings.append(
+            f"Maps: {n_conflict_parcels} parcels have conflict area; close-ups show the {len(closeups.items)} largest."
+        )
     parcels_html, notes = _parcels_section(folder, max_table_rows)
     extra_warnings += notes
     manifest_html, manifest_warnings = _manifest_section(folder, verify_inputs, built_utc)
@@ -689,19 +801,23 @@ def build_report(out_dir, *, report_path=None, figures_dir=None,
     for it in overview.items:
         parts.append(_figure_html(it, "Overview map: " + it.caption))
     if closeups.items:
-        parts.append("<h3>Close-ups, largest conflict first</h3><div class=\"grid\">")
+        parts.append('<h3>Close-ups, largest conflict first</h3><div class="grid">')
         for it in closeups.items:
             parts.append(_figure_html(it, "Close-up map. " + it.caption, "closeup"))
         parts.append("</div>")
     else:
         parts.append("<p>No parcel has conflict area, so there are no close-ups.</p>")
-    parts.append(f'<p class="muted">Figure files (PNG and SVG) are in <code>{_e(figures_dir.name)}/</code> '
-                 "next to this report.</p></section>")
+    parts.append(
+        f'<p class="muted">Figure files (PNG and SVG) are in <code>{_e(figures_dir.name)}/</code> '
+        "next to this report.</p></section>"
+    )
     parts.append(parcels_html)
     parts.append(manifest_html)
-    parts.append(f'</main><footer><p class="caution-foot"><strong>{_e(CAUTION)}</strong></p>'
-                 f'<p class="muted">Written by landcheck {_e(__version__)} from the files of one audit output '
-                 "folder; no network resource is used.</p></footer>")
+    parts.append(
+        f'</main><footer><p class="caution-foot"><strong>{_e(CAUTION)}</strong></p>'
+        f'<p class="muted">Written by landcheck {_e(__version__)} from the files of one audit output '
+        "folder; no network resource is used.</p></footer>"
+    )
     parts.append(f"<script>{_JS}</script></body></html>\n")
     write_bytes(report_path, "\n".join(parts).encode("utf-8"))
     logger.info("report written: %s (%d close-ups)", report_path, len(closeups.items))

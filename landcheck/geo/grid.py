@@ -8,8 +8,8 @@ objects go to worker threads and to Dask workers.
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from dataclasses import dataclass
-from typing import Iterator
 
 import numpy as np
 from affine import Affine
@@ -102,10 +102,10 @@ class GridSpec:
             return geodesy.band_area_m2(lat_top, lat_bottom, abs(t.a), self.ellipsoid_a_m, self.ellipsoid_e2)
         return np.ones(rows.shape, dtype=np.float64) * abs(t.a * t.e) * self.unit_m**2
 
-    def window_transform(self, win: "Window") -> Affine:
+    def window_transform(self, win: Window) -> Affine:
         return _compose(self.transform, Affine.translation(win.col_off, win.row_off))
 
-    def window_bounds(self, win: "Window") -> tuple[float, float, float, float]:
+    def window_bounds(self, win: Window) -> tuple[float, float, float, float]:
         t = self.window_transform(win)
         x0, y0 = t.c, t.f
         x1, y1 = apply_transform(t, win.width, win.height)
@@ -145,7 +145,9 @@ def iter_windows(height: int, width: int, tile_rows: int, tile_cols: int | None 
             yield Window(r0, c0, min(tile_rows, height - r0), min(tile_cols, width - c0))
 
 
-def grow_window(win: Window, halo: int, height: int, width: int) -> tuple[Window, tuple[tuple[int, int], tuple[int, int]]]:
+def grow_window(
+    win: Window, halo: int, height: int, width: int
+) -> tuple[Window, tuple[tuple[int, int], tuple[int, int]]]:
     """Grow ``win`` by ``halo`` cells, clipped to the raster.
 
     Returns the clipped read window and the padding ``((top, bottom), (left, right))``

@@ -60,8 +60,9 @@ def _authalic_f(lat_rad: np.ndarray, a_m: float, e2: float) -> np.ndarray:
     return a_m * a_m * (1.0 - e2) / 2.0 * (s / (1.0 - e2 * s * s) + np.arctanh(e * s) / e)
 
 
-def polygon_areas_m2(lon_deg: np.ndarray, lat_deg: np.ndarray, ring_of_vertex: np.ndarray, n_rings: int,
-                     a_m: float, e2: float) -> np.ndarray:
+def polygon_areas_m2(
+    lon_deg: np.ndarray, lat_deg: np.ndarray, ring_of_vertex: np.ndarray, n_rings: int, a_m: float, e2: float
+) -> np.ndarray:
     """Absolute ellipsoidal area (m^2) of each closed ring given by its vertices in degrees.
 
     Parameters

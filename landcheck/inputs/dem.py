@@ -14,8 +14,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from landcheck.engine.handles import ThreadLocalHandles
 from landcheck.choices import UserChoice
+from landcheck.engine.handles import ThreadLocalHandles
 from landcheck.errors import InputDataError
 from landcheck.geo.grid import GridSpec, Window, grow_window, iter_windows
 
@@ -42,12 +42,19 @@ class ZUnit(UserChoice):
 
     @classmethod
     def _aliases(cls) -> dict:
-        return {"metre": "m", "meter": "m", "metres": "m", "meters": "m", "foot": "ft", "feet": "ft", "us-survey-foot": "us-ft"}
+        return {
+            "metre": "m",
+            "meter": "m",
+            "metres": "m",
+            "meters": "m",
+            "foot": "ft",
+            "feet": "ft",
+            "us-survey-foot": "us-ft",
+        }
 
     @classmethod
     def _noun(cls) -> str:
         return "elevation unit"
-
 
 
 @dataclass
@@ -107,7 +114,13 @@ class DemSource(ThreadLocalHandles):
         return arr
 
     def _float32_exact(self, ds) -> bool:
-        return self.z_unit is ZUnit.METRE and ds.dtypes[self.band - 1] in ("float32", "int8", "uint8", "int16", "uint16")
+        return self.z_unit is ZUnit.METRE and ds.dtypes[self.band - 1] in (
+            "float32",
+            "int8",
+            "uint8",
+            "int16",
+            "uint16",
+        )
 
     def read_with_halo(self, win: Window, halo: int, dtype=np.float64) -> np.ndarray:
         """``win`` grown by ``halo`` cells on every side; cells outside the raster are NaN (``dtype`` as in :meth:`read`)."""
@@ -142,7 +155,9 @@ def grid_from_dataset(ds, path: str, crs=None) -> GridSpec:
             "give it both, e.g. with `gdal_translate -a_srs EPSG:xxxx -a_ullr ...`."
         )
     if t.e > 0:
-        raise InputDataError(f"{path}: rows run south to north (positive pixel height {t.e}); flip it to north-up first.")
+        raise InputDataError(
+            f"{path}: rows run south to north (positive pixel height {t.e}); flip it to north-up first."
+        )
     the_crs = crs if crs is not None else ds.crs
     if the_crs is None:
         raise InputDataError(
@@ -161,7 +176,9 @@ def grid_from_dataset(ds, path: str, crs=None) -> GridSpec:
             raise InputDataError(f"{path}: geographic CRS with angular unit {unit_name!r}; only degrees are supported.")
         return GridSpec(t, pcrs.to_wkt(), ds.width, ds.height, True, 1.0, a_m, e2)
     if not pcrs.is_projected:
-        raise InputDataError(f"{path}: CRS {pcrs.name!r} is neither projected nor geographic; give a projected CRS in metres or feet.")
+        raise InputDataError(
+            f"{path}: CRS {pcrs.name!r} is neither projected nor geographic; give a projected CRS in metres or feet."
+        )
     axis = pcrs.axis_info[0] if pcrs.axis_info else None
     unit_m = axis.unit_conversion_factor if axis is not None else None
     if not unit_m or unit_m <= 0:
@@ -207,7 +224,9 @@ def open_dem(
     try:
         ds = rasterio.open(path)
     except RasterioIOError as exc:
-        raise InputDataError(f"{path}: not a raster GDAL can open ({exc}). Give a GeoTIFF or another GDAL raster.") from exc
+        raise InputDataError(
+            f"{path}: not a raster GDAL can open ({exc}). Give a GeoTIFF or another GDAL raster."
+        ) from exc
     with ds:
         if ds.count < 1:
             raise InputDataError(f"{path}: the raster has no bands.")
@@ -229,7 +248,12 @@ def open_dem(
         raise InputDataError(f"{path}: every cell of band {band} is nodata or NaN; there is no elevation to work with.")
     logger.info(
         "DEM %s: %d x %d cells, %s, band %d, nodata=%s",
-        path, grid.width, grid.height, "geographic" if grid.geographic else f"projected ({grid.unit_m} m/unit)", band, nodata,
+        path,
+        grid.width,
+        grid.height,
+        "geographic" if grid.geographic else f"projected ({grid.unit_m} m/unit)",
+        band,
+        nodata,
     )
     return src
 

@@ -29,7 +29,9 @@ def _layer_names(path: str) -> list[str]:
     try:
         return [str(n) for n in pyogrio.list_layers(path)[:, 0]]
     except Exception as exc:  # pyogrio raises DataSourceError and friends
-        raise InputDataError(f"{path}: not a vector file GDAL can open ({exc}). Give a GeoPackage, GeoJSON, Shapefile or GeoParquet.") from None
+        raise InputDataError(
+            f"{path}: not a vector file GDAL can open ({exc}). Give a GeoPackage, GeoJSON, Shapefile or GeoParquet."
+        ) from None
 
 
 def read_layer(path: str | os.PathLike, *, layer: str | None = None, role: str = "layer", crs: str | None = None):
@@ -47,7 +49,9 @@ def read_layer(path: str | os.PathLike, *, layer: str | None = None, role: str =
             names = _layer_names(path)
             if layer is None:
                 if len(names) > 1:
-                    raise InputDataError(f"{path}: holds {len(names)} layers ({', '.join(names)}); choose one with --parcels-layer (or the layer key).")
+                    raise InputDataError(
+                        f"{path}: holds {len(names)} layers ({', '.join(names)}); choose one with --parcels-layer (or the layer key)."
+                    )
                 layer = names[0] if names else None
             elif layer not in names:
                 raise InputDataError(f"{path}: no layer {layer!r}; layers here: {', '.join(names) or 'none'}.")
@@ -61,7 +65,9 @@ def read_layer(path: str | os.PathLike, *, layer: str | None = None, role: str =
         raise InputDataError(f"{where}: the {role} layer has no features.")
     if gdf.crs is None:
         if crs is None:
-            raise InputDataError(f"{where}: the {role} layer has no CRS; give one (e.g. --parcels-crs EPSG:32651) or fix the file.")
+            raise InputDataError(
+                f"{where}: the {role} layer has no CRS; give one (e.g. --parcels-crs EPSG:32651) or fix the file."
+            )
         gdf = gdf.set_crs(crs)
     gdf.attrs["where"] = where
     return gdf
@@ -78,11 +84,15 @@ def to_crs_checked(gdf, target_wkt: str, where: str, role: str):
     try:
         out = gdf.to_crs(target)
     except Exception as exc:
-        raise InputDataError(f"{where}: cannot transform the {role} from {gdf.crs.name!r} to the DEM's CRS {target.name!r} ({exc}).") from None
+        raise InputDataError(
+            f"{where}: cannot transform the {role} from {gdf.crs.name!r} to the DEM's CRS {target.name!r} ({exc})."
+        ) from None
     coords = shapely.get_coordinates(out.geometry.values)
     if coords.size and not np.isfinite(coords).all():
-        raise InputDataError(f"{where}: transforming the {role} from {gdf.crs.name!r} to {target.name!r} gave invalid "
-                             "coordinates (outside the target CRS's area of use?); reproject the layer yourself first.")
+        raise InputDataError(
+            f"{where}: transforming the {role} from {gdf.crs.name!r} to {target.name!r} gave invalid "
+            "coordinates (outside the target CRS's area of use?); reproject the layer yourself first."
+        )
     logger.info("%s: reprojected %s from %s to %s", where, role, gdf.crs.name, target.name)
     return out
 
@@ -122,22 +132,30 @@ def read_parcels(
     notes = []
     if class_field not in gdf.columns:
         fields = [c for c in gdf.columns if c != gdf.geometry.name]
-        raise InputDataError(f"{where}: no attribute {class_field!r} (the rulebook's class_field); attributes here: {', '.join(fields)}.")
+        raise InputDataError(
+            f"{where}: no attribute {class_field!r} (the rulebook's class_field); attributes here: {', '.join(fields)}."
+        )
     gdf = gdf.reset_index(drop=True)
     gdf["row"] = np.arange(1, len(gdf) + 1)
     if id_field is not None:
         if id_field not in gdf.columns:
-            raise InputDataError(f"{where}: no attribute {id_field!r} (the rulebook's id_field); attributes here: "
-                                 f"{', '.join(c for c in gdf.columns if c not in (gdf.geometry.name, 'row'))}.")
+            raise InputDataError(
+                f"{where}: no attribute {id_field!r} (the rulebook's id_field); attributes here: "
+                f"{', '.join(c for c in gdf.columns if c not in (gdf.geometry.name, 'row'))}."
+            )
         ids = gdf[id_field]
         if ids.isna().any():
             rows = (np.flatnonzero(ids.isna().to_numpy()) + 1)[:5].tolist()
-            raise InputDataError(f"{where}: {int(ids.isna().sum())} parcels have no {id_field} (rows {rows}); every parcel needs an id.")
+            raise InputDataError(
+                f"{where}: {int(ids.isna().sum())} parcels have no {id_field} (rows {rows}); every parcel needs an id."
+            )
         dup = ids[ids.duplicated(keep=False)]
         if len(dup):
             first = dup.iloc[0]
             rows = (np.flatnonzero((ids == first).to_numpy()) + 1).tolist()
-            raise InputDataError(f"{where}: {len(rows)} parcels share {id_field} {first} (rows {', '.join(map(str, rows[:10]))}); ids must be unique.")
+            raise InputDataError(
+                f"{where}: {len(rows)} parcels share {id_field} {first} (rows {', '.join(map(str, rows[:10]))}); ids must be unique."
+            )
         gdf["parcel_id"] = ids.to_numpy()
     else:
         gdf["parcel_id"] = gdf["row"]
@@ -150,8 +168,10 @@ def read_parcels(
     polygonal = np.isin(types, (3, 6)) | empty  # Polygon, MultiPolygon
     if not polygonal.all():
         bad = np.flatnonzero(~polygonal)
-        raise InputDataError(f"{where}: {len(bad)} features are not polygons (rows {', '.join(str(i + 1) for i in bad[:10])}, "
-                             f"type {shapely.get_type_id(geom[bad[0]])}); parcels must be Polygon or MultiPolygon.")
+        raise InputDataError(
+            f"{where}: {len(bad)} features are not polygons (rows {', '.join(str(i + 1) for i in bad[:10])}, "
+            f"type {shapely.get_type_id(geom[bad[0]])}); parcels must be Polygon or MultiPolygon."
+        )
     invalid = ~empty & ~shapely.is_valid(geom)
     if invalid.any():
         repaired = shapely.make_valid(geom[invalid])
@@ -160,15 +180,19 @@ def read_parcels(
         geom[invalid] = repaired
         gdf = gdf.set_geometry(geom, crs=gdf.crs)
         gdf.loc[invalid, "geometry_note"] = "repaired"
-        msg = (f"{where}: {int(invalid.sum())} invalid parcel geometries were repaired (rows "
-               f"{', '.join(str(i + 1) for i in np.flatnonzero(invalid)[:10])}); check them.")
+        msg = (
+            f"{where}: {int(invalid.sum())} invalid parcel geometries were repaired (rows "
+            f"{', '.join(str(i + 1) for i in np.flatnonzero(invalid)[:10])}); check them."
+        )
         notes.append(msg)
         warnings.warn(msg, LandcheckWarning, stacklevel=2)
         empty = shapely.is_empty(gdf.geometry.values)
     if empty.any():
         gdf.loc[empty, "geometry_note"] = "empty geometry"
-        msg = (f"{where}: {int(empty.sum())} parcels have an empty geometry (rows "
-               f"{', '.join(str(i + 1) for i in np.flatnonzero(empty)[:10])}); they are reported with verdict no_data.")
+        msg = (
+            f"{where}: {int(empty.sum())} parcels have an empty geometry (rows "
+            f"{', '.join(str(i + 1) for i in np.flatnonzero(empty)[:10])}); they are reported with verdict no_data."
+        )
         notes.append(msg)
         warnings.warn(msg, LandcheckWarning, stacklevel=2)
     gdf = to_crs_checked(gdf, target_crs_wkt, where, "parcels")

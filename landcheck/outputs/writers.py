@@ -14,15 +14,15 @@ import logging
 import os
 import shutil
 import tempfile
+from collections.abc import Callable, Iterable, Iterator
 from pathlib import Path
-from typing import Callable, Iterable, Iterator
 
 import numpy as np
 
 from landcheck.choices import UserChoice
 from landcheck.errors import OutputExistsError, OutputWriteError
-from landcheck.inputs.gdal_cache import cap_gdal_cache
 from landcheck.geo.grid import GridSpec, Window
+from landcheck.inputs.gdal_cache import cap_gdal_cache
 
 __all__ = [
     "atomic_file",
@@ -49,7 +49,9 @@ def atomic_file(final: str | os.PathLike, *, overwrite: bool = False, suffix: st
         fd, tmp = tempfile.mkstemp(prefix=f".{final.name}.", suffix=suffix or final.suffix + ".tmp", dir=final.parent)
         os.close(fd)
     except OSError as exc:
-        raise OutputWriteError(f"{final}: cannot write here ({exc.strerror or exc}); choose another output path.") from exc
+        raise OutputWriteError(
+            f"{final}: cannot write here ({exc.strerror or exc}); choose another output path."
+        ) from exc
     tmp_path = Path(tmp)
     try:
         yield tmp_path
@@ -78,7 +80,9 @@ def check_output_path(out: str | os.PathLike, inputs: Iterable[str | os.PathLike
                 f"{out}: the output folder would contain or replace the input {ip}; choose an output folder outside the inputs."
             )
     if out.exists() and not overwrite:
-        raise OutputExistsError(f"{out}: output folder already exists; pass --overwrite to replace it, or choose another.")
+        raise OutputExistsError(
+            f"{out}: output folder already exists; pass --overwrite to replace it, or choose another."
+        )
     if out.exists() and not out.is_dir():
         raise OutputWriteError(f"{out}: exists and is not a folder.")
     return out
@@ -92,7 +96,9 @@ def staged_folder(final: str | os.PathLike, *, overwrite: bool = False) -> Itera
     """
     final = Path(final)
     if final.exists() and not overwrite:
-        raise OutputExistsError(f"{final}: output folder already exists; pass --overwrite to replace it, or choose another.")
+        raise OutputExistsError(
+            f"{final}: output folder already exists; pass --overwrite to replace it, or choose another."
+        )
     try:
         final.parent.mkdir(parents=True, exist_ok=True)
         stage = Path(tempfile.mkdtemp(prefix=f".{final.name}.partial-", dir=final.parent))
@@ -112,7 +118,9 @@ def staged_folder(final: str | os.PathLike, *, overwrite: bool = False) -> Itera
         shutil.rmtree(stage, ignore_errors=True)
         if isinstance(exc, (OutputExistsError, OutputWriteError)):
             raise
-        raise OutputWriteError(f"{final}: writing the outputs failed ({exc.strerror or exc}); nothing was left behind.") from exc
+        raise OutputWriteError(
+            f"{final}: writing the outputs failed ({exc.strerror or exc}); nothing was left behind."
+        ) from exc
     except BaseException:
         shutil.rmtree(stage, ignore_errors=True)
         raise
@@ -147,7 +155,9 @@ def _clean_floats(o):
 
 def write_json(path: str | os.PathLike, data, *, overwrite: bool = True) -> Path:
     with atomic_file(path, overwrite=overwrite) as tmp:
-        tmp.write_text(json.dumps(_clean_floats(data), indent=2, default=_json_default, allow_nan=False) + "\n", encoding="utf-8")
+        tmp.write_text(
+            json.dumps(_clean_floats(data), indent=2, default=_json_default, allow_nan=False) + "\n", encoding="utf-8"
+        )
     return Path(path)
 
 
@@ -190,7 +200,6 @@ class RasterFormat(UserChoice):
         return "raster format"
 
 
-
 class RasterSink:
     """Streamed writer for one raster: windows in, a GeoTIFF out (:class:`RasterFormat`).
 
@@ -204,9 +213,20 @@ class RasterSink:
     otherwise by averaging.
     """
 
-    def __init__(self, final: str | os.PathLike, grid: GridSpec, *, dtype: str, nodata, overwrite: bool = False,
-                 block: int = 512, band_names: list[str] | None = None, count: int = 1,
-                 fmt: "RasterFormat | str" = RasterFormat.COG, categorical: bool = False):
+    def __init__(
+        self,
+        final: str | os.PathLike,
+        grid: GridSpec,
+        *,
+        dtype: str,
+        nodata,
+        overwrite: bool = False,
+        block: int = 512,
+        band_names: list[str] | None = None,
+        count: int = 1,
+        fmt: RasterFormat | str = RasterFormat.COG,
+        categorical: bool = False,
+    ):
         import rasterio
 
         self.final = Path(final)
@@ -237,9 +257,21 @@ class RasterSink:
             options = {} if self._float else {"COMPRESS": "ZSTD", "ZSTD_LEVEL": 1, "NUM_THREADS": "ALL_CPUS"}
         try:
             self._ds = rasterio.open(
-                self._scratch, "w", driver="GTiff", width=grid.width, height=grid.height, count=count, dtype=dtype,
-                crs=grid.crs_wkt, transform=grid.transform, nodata=nodata, tiled=True,
-                blockxsize=block, blockysize=block, BIGTIFF="IF_SAFER", **options,
+                self._scratch,
+                "w",
+                driver="GTiff",
+                width=grid.width,
+                height=grid.height,
+                count=count,
+                dtype=dtype,
+                crs=grid.crs_wkt,
+                transform=grid.transform,
+                nodata=nodata,
+                tiled=True,
+                blockxsize=block,
+                blockysize=block,
+                BIGTIFF="IF_SAFER",
+                **options,
             )
         except Exception as exc:
             self._scratch.unlink(missing_ok=True)
@@ -278,14 +310,26 @@ class RasterSink:
                 os.replace(self._scratch, self.final)
                 return self.final
             with atomic_file(self.final, overwrite=True, suffix=".tif") as tmp:
-                rasterio.shutil.copy(self._scratch, tmp, driver="COG", COMPRESS="DEFLATE", LEVEL=1, PREDICTOR="YES",
-                                     BLOCKSIZE=512, OVERVIEWS="AUTO", BIGTIFF="IF_SAFER", NUM_THREADS="ALL_CPUS",
-                                     RESAMPLING="NEAREST" if self._categorical else "AVERAGE")
+                rasterio.shutil.copy(
+                    self._scratch,
+                    tmp,
+                    driver="COG",
+                    COMPRESS="DEFLATE",
+                    LEVEL=1,
+                    PREDICTOR="YES",
+                    BLOCKSIZE=512,
+                    OVERVIEWS="AUTO",
+                    BIGTIFF="IF_SAFER",
+                    NUM_THREADS="ALL_CPUS",
+                    RESAMPLING="NEAREST" if self._categorical else "AVERAGE",
+                )
         except Exception as exc:
             self.abort()
             if isinstance(exc, OutputWriteError):
                 raise
-            raise OutputWriteError(f"{self.final}: writing the raster failed ({exc}); nothing was left behind.") from exc
+            raise OutputWriteError(
+                f"{self.final}: writing the raster failed ({exc}); nothing was left behind."
+            ) from exc
         self._scratch.unlink(missing_ok=True)
         return self.final
 

@@ -106,6 +106,7 @@ try:  # numba is an accelerator: without it the very same functions run as plain
 
     _jit = _numba.njit(nogil=True, cache=True)
 except ImportError:  # pragma: no cover - numba is a declared dependency
+
     def _jit(func):
         return func
 
@@ -318,8 +319,26 @@ def _grow(feat, rows, cols, frac, need):
 
 
 @_jit
-def _coverage_kernel(x, y, ring_offsets, ring_is_hole, feature_ring_start, feature_ring_stop, selected,
-                     a, c, e, f, height, width, min_fraction, out_f, out_r, out_c, out_x):
+def _coverage_kernel(
+    x,
+    y,
+    ring_offsets,
+    ring_is_hole,
+    feature_ring_start,
+    feature_ring_stop,
+    selected,
+    a,
+    c,
+    e,
+    f,
+    height,
+    width,
+    min_fraction,
+    out_f,
+    out_r,
+    out_c,
+    out_x,
+):
     """Coverage triplets of the ``selected`` features on one window (see module docstring).
 
     ``a, c, e, f`` are the window transform's x cell size, x origin, y cell size
@@ -584,8 +603,12 @@ class CoverageBuffers:
 
     def at_least(self, capacity: int):
         if self.arrays[0].shape[0] < capacity:
-            self.arrays = (np.empty(capacity, np.int64), np.empty(capacity, np.int32), np.empty(capacity, np.int32),
-                           np.empty(capacity, np.float64))
+            self.arrays = (
+                np.empty(capacity, np.int64),
+                np.empty(capacity, np.int32),
+                np.empty(capacity, np.int32),
+                np.empty(capacity, np.float64),
+            )
         return self.arrays
 
 
@@ -667,12 +690,28 @@ def coverage_triplets(
     if buffers is not None:
         out = buffers.at_least(capacity)
     else:
-        out = (np.empty(capacity, np.int64), np.empty(capacity, np.int32), np.empty(capacity, np.int32),
-               np.empty(capacity, np.float64))
+        out = (
+            np.empty(capacity, np.int64),
+            np.empty(capacity, np.int32),
+            np.empty(capacity, np.int32),
+            np.empty(capacity, np.float64),
+        )
     fi, ro, co, fr, n = _coverage_kernel(
-        polygons.x, polygons.y, polygons.ring_offsets, polygons.ring_is_hole,
-        polygons.feature_ring_start, polygons.feature_ring_stop, selected.astype(np.int64),
-        a, c, e, f, height, width, MIN_FRACTION, *out,
+        polygons.x,
+        polygons.y,
+        polygons.ring_offsets,
+        polygons.ring_is_hole,
+        polygons.feature_ring_start,
+        polygons.feature_ring_stop,
+        selected.astype(np.int64),
+        a,
+        c,
+        e,
+        f,
+        height,
+        width,
+        MIN_FRACTION,
+        *out,
     )
     if buffers is not None and fi is not out[0]:  # the kernel grew them: keep the larger arrays
         buffers.arrays = (fi, ro, co, fr)

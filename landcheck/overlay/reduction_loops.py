@@ -46,10 +46,34 @@ def _hist_bin(edges, x, nb):
 
 
 @numba.njit(cache=True, nogil=True)
-def accumulate_pairs(slope_pct, zone_bits, has_zones, cell_area_m2, candidates, fi, rr, cc, frac,
-                     geom_parcel, geom_role, thresholds_pct, limit_index, near_index, raster_forbid_bits,
-                     zone_forbid_bits, area_factor, class_index, n_classes, col_channel, col_zone, hist_edges_pct,
-                     conflict_tile, best_frac, best_parcel, vector_bits):
+def accumulate_pairs(
+    slope_pct,
+    zone_bits,
+    has_zones,
+    cell_area_m2,
+    candidates,
+    fi,
+    rr,
+    cc,
+    frac,
+    geom_parcel,
+    geom_role,
+    thresholds_pct,
+    limit_index,
+    near_index,
+    raster_forbid_bits,
+    zone_forbid_bits,
+    area_factor,
+    class_index,
+    n_classes,
+    col_channel,
+    col_zone,
+    hist_edges_pct,
+    conflict_tile,
+    best_frac,
+    best_parcel,
+    vector_bits,
+):
     """Per-parcel sums of one window; fills ``conflict_tile`` (h, w) in place (it must hold 255 on entry).
 
     ``best_frac`` (-inf), ``best_parcel`` (-1) and ``vector_bits`` (0) are flat scratch arrays of
@@ -254,8 +278,19 @@ def accumulate_pairs(slope_pct, zone_bits, has_zones, cell_area_m2, candidates, 
             slope_max[loc] = np.nan
     conflict = conflict_p + conflict_f
     near_conflict = near_p + near_f
-    return (parcels, covered, evaluated, slope_sum, slope_max, over_m2, conflict, near_conflict, slope_conflict,
-            zone_m2, hist)
+    return (
+        parcels,
+        covered,
+        evaluated,
+        slope_sum,
+        slope_max,
+        over_m2,
+        conflict,
+        near_conflict,
+        slope_conflict,
+        zone_m2,
+        hist,
+    )
 
 
 @numba.njit(cache=True, nogil=True)

@@ -198,8 +198,21 @@ def accumulate_window(
     nb = len(HIST_EDGES_PCT) - 1
     if fi.size == 0:
         e = np.empty(0)
-        return WindowSums(np.empty(0, np.int64), e, e, e, e, np.empty((0, n_t)), e, e, e, np.empty((0, plan.n_cols)),
-                          np.zeros((plan.n_classes, nb)), land_m2, land_within_m2), conflict_tile
+        return WindowSums(
+            np.empty(0, np.int64),
+            e,
+            e,
+            e,
+            e,
+            np.empty((0, n_t)),
+            e,
+            e,
+            e,
+            np.empty((0, plan.n_cols)),
+            np.zeros((plan.n_classes, nb)),
+            land_m2,
+            land_within_m2,
+        ), conflict_tile
 
     gi = candidates[fi]
     gp = plan.geom_parcel[gi]  # parcel of each pair
@@ -284,8 +297,21 @@ def accumulate_window(
             bits[hit] |= np.uint32(1 << (z + 1))
     conflict_tile[rr[pick], cc[pick]] = bits.astype(np.uint8)
 
-    sums = WindowSums(local_ids, covered, evaluated, slope_sum, smax, over_m2, conflict, near_conflict, slope_conflict,
-                      zone_m2, hist, land_m2, land_within_m2)
+    sums = WindowSums(
+        local_ids,
+        covered,
+        evaluated,
+        slope_sum,
+        smax,
+        over_m2,
+        conflict,
+        near_conflict,
+        slope_conflict,
+        zone_m2,
+        hist,
+        land_m2,
+        land_within_m2,
+    )
     return sums, conflict_tile
 
 
@@ -349,12 +375,27 @@ def accumulate_window_compiled(
     nb = len(HIST_EDGES_PCT) - 1
     if len(fi) == 0:
         e = np.empty(0)
-        return WindowSums(np.empty(0, np.int64), e, e, e, e, np.empty((0, n_t)), e, e, e, np.empty((0, plan.n_cols)),
-                          np.zeros((plan.n_classes, nb)), land_m2, land_within_m2), conflict_tile
+        return WindowSums(
+            np.empty(0, np.int64),
+            e,
+            e,
+            e,
+            e,
+            np.empty((0, n_t)),
+            e,
+            e,
+            e,
+            np.empty((0, plan.n_cols)),
+            np.zeros((plan.n_classes, nb)),
+            land_m2,
+            land_within_m2,
+        ), conflict_tile
     has_zones = zone_bits is not None
     zb = np.ascontiguousarray(zone_bits, dtype=np.uint32) if has_zones else np.zeros((1, 1), np.uint32)
     try:
-        out = _accumulate(slope_pct, zb, has_zones, cell_area_m2, candidates, fi, rr, cc, frac, plan, conflict_tile, h * w)
+        out = _accumulate(
+            slope_pct, zb, has_zones, cell_area_m2, candidates, fi, rr, cc, frac, plan, conflict_tile, h * w
+        )
     except BaseException:
         _scratch.arrays = None  # the kernel may have stopped before resetting it
         raise
@@ -366,13 +407,28 @@ def _accumulate(slope_pct, zb, has_zones, cell_area_m2, candidates, fi, rr, cc, 
     from landcheck.overlay import reduction_loops as _overlay_compiled
 
     return _overlay_compiled.accumulate_pairs(
-        slope_pct, zb, has_zones,
-        np.ascontiguousarray(cell_area_m2, dtype=np.float64), np.asarray(candidates, dtype=np.int64),
-        np.asarray(fi, dtype=np.int64), np.asarray(rr, dtype=np.int32), np.asarray(cc, dtype=np.int32),
-        np.asarray(frac, dtype=np.float64), plan.geom_parcel.astype(np.int64, copy=False),
-        plan.geom_role.astype(np.int64, copy=False), np.asarray(plan.thresholds_pct, dtype=np.float64),
-        plan.limit_index.astype(np.int64, copy=False), plan.near_index.astype(np.int64, copy=False),
-        plan.raster_forbid_bits.astype(np.uint32, copy=False), plan.zone_forbid_bits.astype(np.uint32, copy=False),
-        np.asarray(plan.area_factor, dtype=np.float64), plan.class_index.astype(np.int64, copy=False),
-        int(plan.n_classes), plan.col_channel.astype(np.int64, copy=False), plan.col_zone.astype(np.int64, copy=False),
-        HIST_EDGES_PCT, conflict_tile, *_thread_scratch(n_cells))
+        slope_pct,
+        zb,
+        has_zones,
+        np.ascontiguousarray(cell_area_m2, dtype=np.float64),
+        np.asarray(candidates, dtype=np.int64),
+        np.asarray(fi, dtype=np.int64),
+        np.asarray(rr, dtype=np.int32),
+        np.asarray(cc, dtype=np.int32),
+        np.asarray(frac, dtype=np.float64),
+        plan.geom_parcel.astype(np.int64, copy=False),
+        plan.geom_role.astype(np.int64, copy=False),
+        np.asarray(plan.thresholds_pct, dtype=np.float64),
+        plan.limit_index.astype(np.int64, copy=False),
+        plan.near_index.astype(np.int64, copy=False),
+        plan.raster_forbid_bits.astype(np.uint32, copy=False),
+        plan.zone_forbid_bits.astype(np.uint32, copy=False),
+        np.asarray(plan.area_factor, dtype=np.float64),
+        plan.class_index.astype(np.int64, copy=False),
+        int(plan.n_classes),
+        plan.col_channel.astype(np.int64, copy=False),
+        plan.col_zone.astype(np.int64, copy=False),
+        HIST_EDGES_PCT,
+        conflict_tile,
+        *_thread_scratch(n_cells),
+    )

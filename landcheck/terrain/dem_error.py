@@ -179,8 +179,10 @@ class ErrorModel:
     def __post_init__(self) -> None:
         rmse = _as_positive_float(self.rmse_m, "rmse_m", "the DEM's vertical RMSE in metres, e.g. 5.0")
         hx = _as_positive_float(self.cell_size_m, "cell_size_m", "the east-west cell size in metres")
-        hy = hx if self.cell_size_y_m is None else _as_positive_float(
-            self.cell_size_y_m, "cell_size_y_m", "the north-south cell size in metres"
+        hy = (
+            hx
+            if self.cell_size_y_m is None
+            else _as_positive_float(self.cell_size_y_m, "cell_size_y_m", "the north-south cell size in metres")
         )
         length = self.corr_length_m
         if length is None:
@@ -220,7 +222,7 @@ class ErrorModel:
         object.__setattr__(self, "_kernel_x", _smoothing_kernel(length / (2.0 * hx)) if length else _IDENTITY)
 
     @classmethod
-    def for_grid(cls, rmse_m: float, corr_length_m: float | None, grid: GridSpec) -> "ErrorModel":
+    def for_grid(cls, rmse_m: float, corr_length_m: float | None, grid: GridSpec) -> ErrorModel:
         """Model for ``grid`` with the cell sizes of its centre row (see the module notes on geographic grids)."""
         hx, hy = grid.cell_size_m(np.array([grid.height // 2]))
         return cls(rmse_m, corr_length_m, float(hx[0]), float(hy[0]))
@@ -314,7 +316,9 @@ def check_realizations(n) -> int:
         if isinstance(n, numbers.Real) and not isinstance(n, bool) and float(n).is_integer():
             n = int(n)
         else:
-            raise RuleFileError(f"realizations = {n!r}; expected a whole number from {MIN_REALIZATIONS} to {MAX_REALIZATIONS}.")
+            raise RuleFileError(
+                f"realizations = {n!r}; expected a whole number from {MIN_REALIZATIONS} to {MAX_REALIZATIONS}."
+            )
     n = int(n)
     if n < MIN_REALIZATIONS:
         raise RuleFileError(

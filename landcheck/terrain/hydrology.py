@@ -36,15 +36,17 @@ What is computed
 
 from __future__ import annotations
 
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
-from typing import Iterable, Sequence
 
 import numpy as np
 from affine import Affine
 from scipy import ndimage
 
-from landcheck.geo import geodesy
 from landcheck.errors import InputDataError
+from landcheck.geo import geodesy
+
+_IDENTITY = Affine.identity()
 
 __all__ = [
     "FlowRouting",
@@ -65,8 +67,14 @@ _D8_NODATA = np.uint8(247)
 #: (dr, dc, code); cardinal neighbours first, so that when two neighbours give the
 #: very same descent the cardinal one wins, then N-E-S-W order (documented tie rule)
 _D8_NEIGHBOURS = (
-    (-1, 0, 64), (0, 1, 1), (1, 0, 4), (0, -1, 16),
-    (-1, 1, 128), (1, 1, 2), (1, -1, 8), (-1, -1, 32),
+    (-1, 0, 64),
+    (0, 1, 1),
+    (1, 0, 4),
+    (0, -1, 16),
+    (-1, 1, 128),
+    (1, 1, 2),
+    (1, -1, 8),
+    (-1, -1, 32),
 )
 
 
@@ -80,9 +88,7 @@ def _elevation(elev_m, name: str = "elev_m") -> np.ndarray:
         raise InputDataError(f"{name}: expected a 2-D elevation array, got shape {z.shape}.")
     if np.isinf(z).any():
         n = int(np.isinf(z).sum())
-        raise InputDataError(
-            f"{name}: {n} cells hold infinite elevations; mark missing cells as nodata (NaN) instead."
-        )
+        raise InputDataError(f"{name}: {n} cells hold infinite elevations; mark missing cells as nodata (NaN) instead.")
     if np.isnan(z).all():
         raise InputDataError(
             f"{name}: every cell of the {z.shape[0]} x {z.shape[1]} DEM is nodata; "
@@ -413,7 +419,7 @@ def _edge_cells(valid: np.ndarray) -> np.ndarray:
 
 def flow_directions(
     elev_m: np.ndarray,
-    transform: Affine = Affine.identity(),
+    transform: Affine = _IDENTITY,
     *,
     latlon: bool = False,
     cell_size_m: tuple | None = None,
@@ -717,9 +723,7 @@ def _pixel_polygons(mask: np.ndarray):
     import rasterio.features
     import shapely
 
-    shapes = rasterio.features.shapes(
-        mask.astype(np.uint8), mask=mask, connectivity=4, transform=Affine.identity()
-    )
+    shapes = rasterio.features.shapes(mask.astype(np.uint8), mask=mask, connectivity=4, transform=Affine.identity())
     return [shapely.geometry.shape(geom) for geom, _ in shapes]
 
 

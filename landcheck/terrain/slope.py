@@ -28,7 +28,6 @@ Formulas (z1..z9 row by row from the north-west, p east, q north):
 
 from __future__ import annotations
 
-
 import numpy as np
 
 from landcheck.choices import UserChoice
@@ -53,12 +52,15 @@ class SlopeMethod(UserChoice):
 
     @classmethod
     def _aliases(cls) -> dict:
-        return {"zt": "zevenbergen-thorne", "zevenbergenthorne": "zevenbergen-thorne", "zevenbergen_thorne": "zevenbergen-thorne"}
+        return {
+            "zt": "zevenbergen-thorne",
+            "zevenbergenthorne": "zevenbergen-thorne",
+            "zevenbergen_thorne": "zevenbergen-thorne",
+        }
 
     @classmethod
     def _noun(cls) -> str:
         return "slope method"
-
 
 
 class SlopeUnit(UserChoice):
@@ -72,7 +74,6 @@ class SlopeUnit(UserChoice):
     @classmethod
     def _noun(cls) -> str:
         return "slope unit"
-
 
 
 def _horn_pq(z1, z2, z3, z4, z6, z7, z8, z9, hx, hy):

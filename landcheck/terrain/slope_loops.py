@@ -30,8 +30,18 @@ def horn_loop(e, hx, hy, out):
         bx = hx[i]
         by = hy[i]
         for j in range(cols):
-            p, q = _horn(f8(e[i, j]), f8(e[i, j + 1]), f8(e[i, j + 2]), f8(e[i + 1, j]), f8(e[i + 1, j + 2]),
-                         f8(e[i + 2, j]), f8(e[i + 2, j + 1]), f8(e[i + 2, j + 2]), bx, by)
+            p, q = _horn(
+                f8(e[i, j]),
+                f8(e[i, j + 1]),
+                f8(e[i, j + 2]),
+                f8(e[i + 1, j]),
+                f8(e[i + 1, j + 2]),
+                f8(e[i + 2, j]),
+                f8(e[i + 2, j + 1]),
+                f8(e[i + 2, j + 2]),
+                bx,
+                by,
+            )
             g = math.sqrt(p * p + q * q)
             if np.isnan(e[i + 1, j + 1]):
                 g = np.nan
@@ -45,8 +55,18 @@ def zt_loop(e, hx, hy, out):
         bx = hx[i]
         by = hy[i]
         for j in range(cols):
-            p, q = _zt(f8(e[i, j]), f8(e[i, j + 1]), f8(e[i, j + 2]), f8(e[i + 1, j]), f8(e[i + 1, j + 2]),
-                       f8(e[i + 2, j]), f8(e[i + 2, j + 1]), f8(e[i + 2, j + 2]), bx, by)
+            p, q = _zt(
+                f8(e[i, j]),
+                f8(e[i, j + 1]),
+                f8(e[i, j + 2]),
+                f8(e[i + 1, j]),
+                f8(e[i + 1, j + 2]),
+                f8(e[i + 2, j]),
+                f8(e[i + 2, j + 1]),
+                f8(e[i + 2, j + 2]),
+                bx,
+                by,
+            )
             g = math.sqrt(p * p + q * q)
             if np.isnan(e[i + 1, j + 1]):
                 g = np.nan

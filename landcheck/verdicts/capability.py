@@ -43,9 +43,9 @@ import numpy as np
 
 from landcheck.errors import RuleFileError
 from landcheck.geo.grid import GridSpec, Window
+from landcheck.inputs.rulebook import NO_RULE, Rulebook
 from landcheck.overlay.coverage import coverage_triplets
 from landcheck.overlay.sums import ROLE_PARCEL, OverlayPlan
-from landcheck.inputs.rulebook import NO_RULE, Rulebook
 from landcheck.terrain.slope_classes import (
     NO_CLASS,
     SlopeClassScheme,
@@ -103,8 +103,14 @@ class CapabilitySpec:
     hazard_geom: object | None = None
     hazard_zones: tuple[str, ...] = ()
 
-    def window_codes(self, grid: GridSpec, win: Window, slope_pct: np.ndarray, zone_bits: np.ndarray | None,
-                     land_mask: np.ndarray | None = None) -> np.ndarray:
+    def window_codes(
+        self,
+        grid: GridSpec,
+        win: Window,
+        slope_pct: np.ndarray,
+        zone_bits: np.ndarray | None,
+        land_mask: np.ndarray | None = None,
+    ) -> np.ndarray:
         """Capability codes of one window (see the module notes); reads no file."""
         hazard = np.zeros(slope_pct.shape, bool)
         if zone_bits is not None and self.hazard_channels:
@@ -123,36 +129,66 @@ class CapabilitySpec:
         piece = shapely.clip_by_rect(self.hazard_geom, *grid.window_bounds(win))
         if piece.is_empty or piece.area == 0:
             return cover
-        _, rr, cc, frac = coverage_triplets(np.array([piece], dtype=object), grid.window_transform(win),
-                                            win.height, win.width)
+        _, rr, cc, frac = coverage_triplets(
+            np.array([piece], dtype=object), grid.window_transform(win), win.height, win.width
+        )
         cover[rr, cc] = frac
         return cover
 
     def legend(self) -> list[dict]:
         """One record per code: code, label, slope class, lower/upper slope (%), hazard, sea."""
         s = self.scheme
-        rows = [{"code": NO_VALUE, "label": "no slope value", "slope_class": None, "lower_pct": None,
-                 "upper_pct": None, "hazard": False, "sea": False}]
+        rows = [
+            {
+                "code": NO_VALUE,
+                "label": "no slope value",
+                "slope_class": None,
+                "lower_pct": None,
+                "upper_pct": None,
+                "hazard": False,
+                "sea": False,
+            }
+        ]
         uppers = list(s.lower_pct[1:]) + [None]
         for flag in (0, HAZARD_FLAG):
             for i, (lo, hi, lab) in enumerate(zip(s.lower_pct, uppers, s.labels)):
                 rng = f"{lo:g}-{hi:g} %" if hi is not None else f">= {lo:g} %"
-                rows.append({"code": i + 1 + flag, "label": f"{lab} ({rng})" + (", hazard zone" if flag else ""),
-                             "slope_class": i + 1, "lower_pct": lo, "upper_pct": hi, "hazard": bool(flag),
-                             "sea": False})
-        rows.append({"code": SEA, "label": "sea (not land)", "slope_class": None, "lower_pct": None,
-                     "upper_pct": None, "hazard": False, "sea": True})
+                rows.append(
+                    {
+                        "code": i + 1 + flag,
+                        "label": f"{lab} ({rng})" + (", hazard zone" if flag else ""),
+                        "slope_class": i + 1,
+                        "lower_pct": lo,
+                        "upper_pct": hi,
+                        "hazard": bool(flag),
+                        "sea": False,
+                    }
+                )
+        rows.append(
+            {
+                "code": SEA,
+                "label": "sea (not land)",
+                "slope_class": None,
+                "lower_pct": None,
+                "upper_pct": None,
+                "hazard": False,
+                "sea": True,
+            }
+        )
         return rows
 
     def band_description(self) -> str:
         n = len(self.scheme.labels)
-        return (f"capability: 1-{n} slope class of scheme {self.scheme.key} "
-                f"(lower edges {', '.join(f'{b:g}' for b in self.scheme.lower_pct)} %), +{HAZARD_FLAG} in a hazard "
-                f"zone, {SEA} sea, {NO_VALUE} no slope value")
+        return (
+            f"capability: 1-{n} slope class of scheme {self.scheme.key} "
+            f"(lower edges {', '.join(f'{b:g}' for b in self.scheme.lower_pct)} %), +{HAZARD_FLAG} in a hazard "
+            f"zone, {SEA} sea, {NO_VALUE} no slope value"
+        )
 
 
-def capability_spec(rules: Rulebook, zones=None, *, scheme: str | SlopeClassScheme | list = "planning-6",
-                    hazard_zones=None) -> CapabilitySpec:
+def capability_spec(
+    rules: Rulebook, zones=None, *, scheme: str | SlopeClassScheme | list = "planning-6", hazard_zones=None
+) -> CapabilitySpec:
     """Build the capability classing from the rulebook, its prepared zones and a slope-class scheme.
 
     Parameters
@@ -183,8 +219,10 @@ def capability_spec(rules: Rulebook, zones=None, *, scheme: str | SlopeClassSche
     except (ValueError, TypeError) as exc:
         raise RuleFileError(f"capability map: {exc}.") from None
     if len(sch.labels) >= HAZARD_FLAG:
-        raise RuleFileError(f"capability map: scheme {sch.key!r} has {len(sch.labels)} classes; at most "
-                            f"{HAZARD_FLAG - 1} fit beside the hazard flag.")
+        raise RuleFileError(
+            f"capability map: scheme {sch.key!r} has {len(sch.labels)} classes; at most "
+            f"{HAZARD_FLAG - 1} fit beside the hazard flag."
+        )
     names = [z.name for z in rules.zones]
     if hazard_zones is None:
         chosen = tuple(names)
@@ -192,8 +230,10 @@ def capability_spec(rules: Rulebook, zones=None, *, scheme: str | SlopeClassSche
         chosen = tuple(hazard_zones)
         unknown = [z for z in chosen if z not in names]
         if unknown:
-            raise RuleFileError(f"{rules.path}: capability hazard zone {unknown[0]!r} is not defined; defined zones: "
-                                f"{', '.join(names) or 'none'}.")
+            raise RuleFileError(
+                f"{rules.path}: capability hazard zone {unknown[0]!r} is not defined; defined zones: "
+                f"{', '.join(names) or 'none'}."
+            )
     bits = 0
     geoms = []
     if zones is not None:
@@ -212,8 +252,9 @@ def capability_spec(rules: Rulebook, zones=None, *, scheme: str | SlopeClassSche
     return CapabilitySpec(sch, bits, geom, chosen)
 
 
-def classify_capability(slope_pct: np.ndarray, hazard: np.ndarray, scheme: SlopeClassScheme,
-                        land_mask: np.ndarray | None = None) -> np.ndarray:
+def classify_capability(
+    slope_pct: np.ndarray, hazard: np.ndarray, scheme: SlopeClassScheme, land_mask: np.ndarray | None = None
+) -> np.ndarray:
     """Capability code of each cell (pure kernel).
 
     Parameters
@@ -246,8 +287,9 @@ def classify_capability(slope_pct: np.ndarray, hazard: np.ndarray, scheme: Slope
     return code.astype(np.uint8)
 
 
-def accumulate_capability(codes: np.ndarray, cell_area_m2: np.ndarray, candidates: np.ndarray, triplets,
-                          plan: OverlayPlan) -> np.ndarray:
+def accumulate_capability(
+    codes: np.ndarray, cell_area_m2: np.ndarray, candidates: np.ndarray, triplets, plan: OverlayPlan
+) -> np.ndarray:
     """Area (m²) of each capability code inside the parcels of each zoning class, for one window.
 
     Parameters
@@ -276,8 +318,9 @@ def accumulate_capability(codes: np.ndarray, cell_area_m2: np.ndarray, candidate
     a = frac[is_p] * cell_area_m2[rr] * plan.area_factor[gp]
     row = plan.class_index[gp]
     row = np.where(row < 0, plan.n_classes, row)
-    flat = np.bincount(row * N_CODES + codes[rr, cc].astype(np.int64), weights=a,
-                       minlength=(plan.n_classes + 1) * N_CODES)
+    flat = np.bincount(
+        row * N_CODES + codes[rr, cc].astype(np.int64), weights=a, minlength=(plan.n_classes + 1) * N_CODES
+    )
     return flat.reshape(plan.n_classes + 1, N_CODES)
 
 
@@ -308,9 +351,17 @@ def capability_table(totals: CapabilityTotals, rules: Rulebook, spec: Capability
             continue
         for leg in legend:
             a = float(totals.area_m2[i, leg["code"]])
-            rows.append({"class_name": name, "code": leg["code"], "capability": leg["label"],
-                         "slope_class": leg["slope_class"], "hazard": leg["hazard"], "area_m2": a,
-                         "share": a / total if total > 0 else np.nan})
+            rows.append(
+                {
+                    "class_name": name,
+                    "code": leg["code"],
+                    "capability": leg["label"],
+                    "slope_class": leg["slope_class"],
+                    "hazard": leg["hazard"],
+                    "area_m2": a,
+                    "share": a / total if total > 0 else np.nan,
+                }
+            )
     return pd.DataFrame(rows)
 
 
@@ -318,8 +369,9 @@ def capability_sink(path: str | os.PathLike, grid: GridSpec, spec: CapabilitySpe
     """A streamed COG writer for the capability codes (uint8, nodata 0, band description set)."""
     from landcheck.outputs.writers import RasterSink
 
-    return RasterSink(path, grid, dtype="uint8", nodata=NO_VALUE, overwrite=overwrite,
-                      band_names=[spec.band_description()])
+    return RasterSink(
+        path, grid, dtype="uint8", nodata=NO_VALUE, overwrite=overwrite, band_names=[spec.band_description()]
+    )
 
 
 def write_capability_legend(folder: str | os.PathLike, spec: CapabilitySpec) -> tuple[Path, Path]:
@@ -331,16 +383,36 @@ def write_capability_legend(folder: str | os.PathLike, spec: CapabilitySpec) -> 
     folder = Path(folder)
     legend = spec.legend()
     csv = write_csv(folder / "capability_legend.csv", pd.DataFrame(legend))
-    js = write_json(folder / "capability_legend.json", {
-        "scheme": spec.scheme.key, "title": spec.scheme.title, "source": spec.scheme.source,
-        "hazard_flag": HAZARD_FLAG, "hazard_zones": list(spec.hazard_zones),
-        "hazard_vector_min_cover": MIN_HAZARD_COVER, "codes": legend})
+    js = write_json(
+        folder / "capability_legend.json",
+        {
+            "scheme": spec.scheme.key,
+            "title": spec.scheme.title,
+            "source": spec.scheme.source,
+            "hazard_flag": HAZARD_FLAG,
+            "hazard_zones": list(spec.hazard_zones),
+            "hazard_vector_min_cover": MIN_HAZARD_COVER,
+            "codes": legend,
+        },
+    )
     return csv, js
 
 
-def run_capability(dem, windows, geoms: np.ndarray, plan: OverlayPlan, rules: Rulebook, spec: CapabilitySpec,
-                   out_tif: str | os.PathLike | None, *, method, zones=None, workers: int | None = None,
-                   progress=None, overwrite: bool = False):
+def run_capability(
+    dem,
+    windows,
+    geoms: np.ndarray,
+    plan: OverlayPlan,
+    rules: Rulebook,
+    spec: CapabilitySpec,
+    out_tif: str | os.PathLike | None,
+    *,
+    method,
+    zones=None,
+    workers: int | None = None,
+    progress=None,
+    overwrite: bool = False,
+):
     """A stand-alone window pass: slope, capability codes, per-class areas and (optionally) the COG.
 
     The audit can instead call :meth:`CapabilitySpec.window_codes` and :func:`accumulate_capability`
@@ -354,8 +426,8 @@ def run_capability(dem, windows, geoms: np.ndarray, plan: OverlayPlan, rules: Ru
     """
     import shapely
 
-    from landcheck.terrain.slope import gradient_to_unit
     from landcheck.engine.windows import run_windows, slope_window
+    from landcheck.terrain.slope import gradient_to_unit
 
     g = dem.grid
     geoms = np.asarray(geoms, dtype=object)

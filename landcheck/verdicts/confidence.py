@@ -79,6 +79,7 @@ import numpy as np
 
 from landcheck.errors import InputDataError, RuleFileError
 from landcheck.geo.grid import GridSpec, Window
+from landcheck.inputs.rulebook import NO_RULE, Rulebook
 from landcheck.overlay.coverage import coverage_triplets
 from landcheck.overlay.sums import (
     ROLE_FORBIDDEN_PIECE,
@@ -86,14 +87,13 @@ from landcheck.overlay.sums import (
     OverlayPlan,
     accumulate_window_compiled,
 )
-from landcheck.inputs.rulebook import NO_RULE, Rulebook
-from landcheck.terrain.slope import HALO_CELLS, SlopeMethod, gradient_to_unit, slope_gradient
 from landcheck.terrain.dem_error import (
     ErrorModel,
     check_realizations,
     error_field_with_halo,
     probability_standard_error,
 )
+from landcheck.terrain.slope import HALO_CELLS, SlopeMethod, gradient_to_unit, slope_gradient
 
 if TYPE_CHECKING:
     import pandas as pd
@@ -197,8 +197,10 @@ def confidence_settings(
     rmse = rmse_m if rmse_m is not None else (unc.rmse_m if unc is not None else None)
     if rmse is None:
         if any(v is not None for v in (corr_length_m, realizations, seed)):
-            raise RuleFileError(f"{where}: a DEM error model needs the DEM's vertical RMSE; give --dem-rmse "
-                                "(metres) or rmse_m in the rulebook's [uncertainty] table.")
+            raise RuleFileError(
+                f"{where}: a DEM error model needs the DEM's vertical RMSE; give --dem-rmse "
+                "(metres) or rmse_m in the rulebook's [uncertainty] table."
+            )
         return None
     length = corr_length_m if corr_length_m is not None else (unc.corr_length_m if unc is not None else 0.0)
     n = realizations if realizations is not None else (unc.realizations if unc is not None else 100)
@@ -218,6 +220,7 @@ def _check_seed(seed, where: str = "confidence options") -> int:
 
 
 # --------------------------------------------------------------------------- the per-window work
+
 
 def _realization_plan(plan: OverlayPlan) -> OverlayPlan:
     """The audit's plan reduced to what a realization needs: the class limits and the conflict rule.
@@ -280,8 +283,9 @@ class _TaskResult:
     slope_sum: np.ndarray  # (r1 - r0, k), area-weighted slope sums (% m²)
 
 
-def _prepare_window(dem, tree, keep: np.ndarray, geoms: np.ndarray, index: int, win: Window,
-                    zones) -> _WindowData | None:
+def _prepare_window(
+    dem, tree, keep: np.ndarray, geoms: np.ndarray, index: int, win: Window, zones
+) -> _WindowData | None:
     """Read and cover one window (driver side: file access and geometry stay out of the workers)."""
     import shapely
 
@@ -342,6 +346,7 @@ def _chunks(n: int, parts: int) -> list[tuple[int, int]]:
 
 
 # --------------------------------------------------------------------------- driver
+
 
 def run_confidence(
     dem,
@@ -405,16 +410,18 @@ def run_confidence(
     InputDataError
         ``baseline`` does not match the parcels of ``plan``.
     """
-    from landcheck.verdicts.evaluate import Verdict
     from landcheck.engine.windows import default_workers
+    from landcheck.verdicts.evaluate import Verdict
 
     n = check_realizations(conf.realizations)
     seed = _check_seed(conf.seed)
     method = SlopeMethod.from_user(getattr(settings, "method", settings))
     n_parcels = len(pr.class_name)
     if len(baseline) != n_parcels:
-        raise InputDataError(f"confidence: the baseline table has {len(baseline)} rows for {n_parcels} parcels; "
-                             "pass the audit's per-parcel table in parcel order.")
+        raise InputDataError(
+            f"confidence: the baseline table has {len(baseline)} rows for {n_parcels} parcels; "
+            "pass the audit's per-parcel table in parcel order."
+        )
     verdict = baseline["verdict"].to_numpy().astype(str)
     counted = (verdict != Verdict.NO_DATA) & (verdict != Verdict.NO_RULE)
     varies = counted & (plan.limit_index >= 0)  # slope-limited parcels: their figures change per realization
@@ -438,9 +445,9 @@ def run_confidence(
 
     def merge(res: _TaskResult) -> None:
         p = res.parcels
-        over[res.r0:res.r1, p] += res.over_m2
-        conflict[res.r0:res.r1, p] += res.conflict_m2
-        slope_sum[res.r0:res.r1, p] += res.slope_sum
+        over[res.r0 : res.r1, p] += res.over_m2
+        conflict[res.r0 : res.r1, p] += res.conflict_m2
+        slope_sum[res.r0 : res.r1, p] += res.slope_sum
         if res.r0 == 0:
             covered[p] += res.covered_m2
             evaluated[p] += res.evaluated_m2
@@ -468,8 +475,7 @@ def run_confidence(
         parts = max(1, math.ceil(workers / max(len(windows), 1)))
         # spawn, not fork: the parent may hold GDAL or numba threads, which do not survive a fork
         mp = multiprocessing.get_context("spawn")
-        with ProcessPoolExecutor(max_workers=workers, mp_context=mp, initializer=_init_worker,
-                                 initargs=(ctx,)) as pool:
+        with ProcessPoolExecutor(max_workers=workers, mp_context=mp, initializer=_init_worker, initargs=(ctx,)) as pool:
             pending: deque = deque()
             for wd in prepared():
                 for r0, r1 in _chunks(n, parts):
@@ -488,8 +494,9 @@ def run_confidence(
                 if progress is not None:
                     progress.update(m)
 
-    return _tables(rules, pr, baseline, counted, varies, n, seed, conf, method,
-                   over, conflict, slope_sum, covered, evaluated)
+    return _tables(
+        rules, pr, baseline, counted, varies, n, seed, conf, method, over, conflict, slope_sum, covered, evaluated
+    )
 
 
 def _pct(a: np.ndarray) -> np.ndarray:
@@ -498,8 +505,7 @@ def _pct(a: np.ndarray) -> np.ndarray:
         return np.percentile(a, PERCENTILES, axis=0)
 
 
-def _tables(rules, pr, baseline, counted, varies, n, seed, conf, method, over, conflict, slope_sum, covered,
-            evaluated):
+def _tables(rules, pr, baseline, counted, varies, n, seed, conf, method, over, conflict, slope_sum, covered, evaluated):
     import pandas as pd
 
     from landcheck.verdicts.evaluate import is_breach  # the audit's verdict test, shared
@@ -512,17 +518,25 @@ def _tables(rules, pr, baseline, counted, varies, n, seed, conf, method, over, c
     ev = np.where(varies, evaluated, baseline["evaluated_m2"].to_numpy(float))
     conflict = np.where(varies[None, :], conflict, base_cf[None, :])
     with np.errstate(invalid="ignore", divide="ignore"):
-        over_share = np.where(varies[None, :], over / ev[None, :],
-                              baseline["over_limit_share"].to_numpy(float)[None, :])
+        over_share = np.where(
+            varies[None, :], over / ev[None, :], baseline["over_limit_share"].to_numpy(float)[None, :]
+        )
         conflict_share = np.where(cov[None, :] > 0, conflict / cov[None, :], np.nan)
-        slope_mean = np.where(varies[None, :], slope_sum / ev[None, :],
-                              baseline["slope_mean_pct"].to_numpy(float)[None, :])
+        slope_mean = np.where(
+            varies[None, :], slope_sum / ev[None, :], baseline["slope_mean_pct"].to_numpy(float)[None, :]
+        )
     is_conflict = is_breach(conflict, cov[None, :], pr.tol_share[None, :], pr.min_breach_m2[None, :])
     p = np.where(counted, is_conflict.mean(axis=0), np.nan)
     se = np.where(counted, probability_standard_error(np.nan_to_num(p), n), np.nan)
-    label = np.where(~counted, ConfidenceLabel.NOT_EVALUATED,
-             np.where(p >= ROBUST_CONFLICT_P, ConfidenceLabel.ROBUST_CONFLICT,
-             np.where(p <= ROBUST_CLEAR_P, ConfidenceLabel.ROBUST_CLEAR, ConfidenceLabel.UNCERTAIN)))
+    label = np.where(
+        ~counted,
+        ConfidenceLabel.NOT_EVALUATED,
+        np.where(
+            p >= ROBUST_CONFLICT_P,
+            ConfidenceLabel.ROBUST_CONFLICT,
+            np.where(p <= ROBUST_CLEAR_P, ConfidenceLabel.ROBUST_CLEAR, ConfidenceLabel.UNCERTAIN),
+        ),
+    )
     nan_rows = ~counted
     q_over, q_conf, q_slope = _pct(over_share), _pct(conflict_share), _pct(slope_mean)
     cols = {}
@@ -544,15 +558,19 @@ def _tables(rules, pr, baseline, counted, varies, n, seed, conf, method, over, c
     rows = []
     names = [c.name for c in rules.classes] + ([NO_RULE] if (pr.class_name == NO_RULE).any() else [])
     for name in names:
-        sel = (pr.class_name == name)
+        sel = pr.class_name == name
         cs = sel & counted
         cov_c = float(cov[cs].sum())
         with np.errstate(invalid="ignore", divide="ignore"):
             share_k = conflict[:, cs].sum(axis=1) / cov_c if cov_c > 0 else np.full(n, np.nan)
         q = _pct(share_k)
-        row = {"class_name": name, "parcels": int(sel.sum()), "parcels_evaluated": int(cs.sum()),
-               "slope_limited": bool((sel & varies).any()),
-               "expected_conflicts": float(np.nansum(p[cs])) if cs.any() else 0.0}
+        row = {
+            "class_name": name,
+            "parcels": int(sel.sum()),
+            "parcels_evaluated": int(cs.sum()),
+            "slope_limited": bool((sel & varies).any()),
+            "expected_conflicts": float(np.nansum(p[cs])) if cs.any() else 0.0,
+        }
         for lab in ConfidenceLabel.ALL:
             row[f"n_{lab}"] = int((label[sel] == lab).sum())
         for i, pc in enumerate(PERCENTILES):

@@ -18,10 +18,17 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from landcheck.overlay.sums import HIST_EDGES_PCT, OverlayPlan, Totals
 from landcheck.inputs.rulebook import NO_RULE, Rulebook
+from landcheck.overlay.sums import HIST_EDGES_PCT, OverlayPlan, Totals
 
-__all__ = ["Verdict", "is_breach", "evaluate_parcels", "summarise_classes", "sensitivity_table", "SENSITIVITY_LIMITS_PCT"]
+__all__ = [
+    "Verdict",
+    "is_breach",
+    "evaluate_parcels",
+    "summarise_classes",
+    "sensitivity_table",
+    "SENSITIVITY_LIMITS_PCT",
+]
 
 #: slope limits for the sensitivity curve, percent (10 to 30 in 1-point steps)
 SENSITIVITY_LIMITS_PCT = np.arange(10.0, 31.0, 1.0)
@@ -60,7 +67,9 @@ def parcel_rules(rules: Rulebook, class_values) -> ParcelRules:
     mapping = rules.class_of_value()
     names = np.array([mapping.get(str(v), NO_RULE) for v in class_values], dtype=object)
     by = {c.name: c for c in rules.classes}
-    lim = np.array([by[n].max_slope_pct if n in by and by[n].max_slope_pct is not None else np.nan for n in names], float)
+    lim = np.array(
+        [by[n].max_slope_pct if n in by and by[n].max_slope_pct is not None else np.nan for n in names], float
+    )
     band = np.array([by[n].review_band_pct if n in by else 0.0 for n in names], float)
     tol = np.array([by[n].tolerance_share if n in by else 0.0 for n in names], float)
     mb = np.array([by[n].min_breach_m2 if n in by else 0.0 for n in names], float)
@@ -92,10 +101,15 @@ def evaluate_parcels(
     is_near = is_breach(totals.near_conflict_m2, cov, pr.tol_share, pr.min_breach_m2)
     no_rule = pr.class_name == NO_RULE
     no_data = ~no_rule & (empty | (eval_share < rules.min_evaluated_share))
-    verdict = np.where(no_rule, Verdict.NO_RULE,
-              np.where(no_data, Verdict.NO_DATA,
-              np.where(is_conflict, Verdict.CONFLICT,
-              np.where(is_near, Verdict.REVIEW, Verdict.CONSISTENT))))
+    verdict = np.where(
+        no_rule,
+        Verdict.NO_RULE,
+        np.where(
+            no_data,
+            Verdict.NO_DATA,
+            np.where(is_conflict, Verdict.CONFLICT, np.where(is_near, Verdict.REVIEW, Verdict.CONSISTENT)),
+        ),
+    )
 
     by = {c.name: c for c in rules.classes}
     zone_of_col = [rules.zones[col.zone_index].name if col.zone_index is not None else None for col in zone_columns]
@@ -110,44 +124,56 @@ def evaluate_parcels(
             r.append("empty geometry: nothing to evaluate")
         else:
             if v == Verdict.NO_DATA:
-                r.append(f"only {100 * eval_share[i]:.1f} % of the parcel has a slope value (outside the DEM or next to "
-                         f"nodata); the rulebook needs {100 * rules.min_evaluated_share:.0f} %")
+                r.append(
+                    f"only {100 * eval_share[i]:.1f} % of the parcel has a slope value (outside the DEM or next to "
+                    f"nodata); the rulebook needs {100 * rules.min_evaluated_share:.0f} %"
+                )
             cls = by[name]
             tol_txt = f"tolerance {100 * cls.tolerance_share:g} %, minimum {cls.min_breach_m2:g} m²"
             if cls.max_slope_pct is not None and ev[i] > 0:
                 if over[i] > 0:
-                    r.append(f"slope ≥ {cls.max_slope_pct:g} % on {_fmt_m2(over[i])} "
-                             f"({100 * over_share[i]:.1f} % of evaluated area; {tol_txt})")
+                    r.append(
+                        f"slope ≥ {cls.max_slope_pct:g} % on {_fmt_m2(over[i])} "
+                        f"({100 * over_share[i]:.1f} % of evaluated area; {tol_txt})"
+                    )
                 if v == Verdict.REVIEW and near[i] > over[i]:
-                    r.append(f"slope within {cls.review_band_pct:g} points of the {cls.max_slope_pct:g} % limit "
-                             f"on {_fmt_m2(near[i] - over[i])}")
+                    r.append(
+                        f"slope within {cls.review_band_pct:g} points of the {cls.max_slope_pct:g} % limit "
+                        f"on {_fmt_m2(near[i] - over[i])}"
+                    )
             for ci, zn in enumerate(zone_of_col):
                 if zn is not None and zn in cls.forbidden_zones and totals.zone_m2[i, ci] > 0:
                     share = totals.zone_m2[i, ci] / cov[i] if cov[i] > 0 else np.nan
-                    r.append(f"inside {zone_columns[ci].label} on {_fmt_m2(totals.zone_m2[i, ci])} "
-                             f"({100 * share:.1f} % of the parcel)")
+                    r.append(
+                        f"inside {zone_columns[ci].label} on {_fmt_m2(totals.zone_m2[i, ci])} "
+                        f"({100 * share:.1f} % of the parcel)"
+                    )
             if v == Verdict.CONFLICT:
                 r.insert(0, f"breach {_fmt_m2(totals.conflict_m2[i])} = {100 * conflict_share[i]:.1f} % of the parcel")
             elif v == Verdict.CONSISTENT:
-                r.append("no breach above the tolerance" if totals.conflict_m2[i] > 0 else "no breach of the class rule")
+                r.append(
+                    "no breach above the tolerance" if totals.conflict_m2[i] > 0 else "no breach of the class rule"
+                )
         reasons.append(" | ".join(r))
 
-    df = pd.DataFrame({
-        "class_value": pd.array([str(v) for v in class_values], dtype="string"),
-        "class_name": pr.class_name.astype(str),
-        "area_m2": area_m2,
-        "covered_m2": cov,
-        "evaluated_m2": ev,
-        "evaluated_share": eval_share,
-        "slope_mean_pct": slope_mean,
-        "slope_max_pct": totals.slope_max_pct,
-        "max_slope_pct": pr.limit_pct,
-        "over_limit_m2": over,
-        "over_limit_share": over_share,
-        "near_limit_m2": near,
-        "conflict_m2": totals.conflict_m2,
-        "conflict_share": conflict_share,
-    })
+    df = pd.DataFrame(
+        {
+            "class_value": pd.array([str(v) for v in class_values], dtype="string"),
+            "class_name": pr.class_name.astype(str),
+            "area_m2": area_m2,
+            "covered_m2": cov,
+            "evaluated_m2": ev,
+            "evaluated_share": eval_share,
+            "slope_mean_pct": slope_mean,
+            "slope_max_pct": totals.slope_max_pct,
+            "max_slope_pct": pr.limit_pct,
+            "over_limit_m2": over,
+            "over_limit_share": over_share,
+            "near_limit_m2": near,
+            "conflict_m2": totals.conflict_m2,
+            "conflict_share": conflict_share,
+        }
+    )
     for ci, col in enumerate(zone_columns):
         df[f"zone_{col.name}_m2"] = totals.zone_m2[:, ci]
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -169,19 +195,24 @@ def summarise_classes(parcels: pd.DataFrame, rules: Rulebook) -> pd.DataFrame:
         ev = float(counted["evaluated_m2"].sum())
         conflict = float(counted["conflict_m2"].sum())
         cov = float(counted["covered_m2"].sum())
-        rows.append({
-            "class_name": name,
-            "label": by[name].label if name in by else "no rule in the rulebook",
-            "development": bool(by[name].development) if name in by else False,
-            "parcels": int(sel.sum()),
-            "area_m2": float(p["area_m2"].sum()),
-            "evaluated_m2": ev,
-            "compliant_m2": max(cov - conflict, 0.0),
-            "conflict_m2": conflict,
-            "conflict_share": conflict / cov if cov > 0 else np.nan,
-            "over_limit_m2": float(np.nansum(counted["over_limit_m2"])),
-            **{f"n_{v}": int((p["verdict"] == v).sum()) for v in (Verdict.CONSISTENT, Verdict.CONFLICT, Verdict.REVIEW, Verdict.NO_DATA)},
-        })
+        rows.append(
+            {
+                "class_name": name,
+                "label": by[name].label if name in by else "no rule in the rulebook",
+                "development": bool(by[name].development) if name in by else False,
+                "parcels": int(sel.sum()),
+                "area_m2": float(p["area_m2"].sum()),
+                "evaluated_m2": ev,
+                "compliant_m2": max(cov - conflict, 0.0),
+                "conflict_m2": conflict,
+                "conflict_share": conflict / cov if cov > 0 else np.nan,
+                "over_limit_m2": float(np.nansum(counted["over_limit_m2"])),
+                **{
+                    f"n_{v}": int((p["verdict"] == v).sum())
+                    for v in (Verdict.CONSISTENT, Verdict.CONFLICT, Verdict.REVIEW, Verdict.NO_DATA)
+                },
+            }
+        )
     return pd.DataFrame(rows)
 
 
@@ -196,13 +227,19 @@ def sensitivity_table(totals: Totals, plan: OverlayPlan, pr: ParcelRules, rules:
         sel = (pr.class_name == c.name) & counted
         dev_sel |= sel
         ev = totals.evaluated_m2[sel].sum()
-        out["classes"][c.name] = (totals.over_m2[sel][:, idx].sum(axis=0) / ev).tolist() if ev > 0 else [None] * len(idx)
+        out["classes"][c.name] = (
+            (totals.over_m2[sel][:, idx].sum(axis=0) / ev).tolist() if ev > 0 else [None] * len(idx)
+        )
     ev = totals.evaluated_m2[dev_sel].sum()
-    out["all_development"] = (totals.over_m2[dev_sel][:, idx].sum(axis=0) / ev).tolist() if ev > 0 else [None] * len(idx)
+    out["all_development"] = (
+        (totals.over_m2[dev_sel][:, idx].sum(axis=0) / ev).tolist() if ev > 0 else [None] * len(idx)
+    )
     return out
 
 
 def slope_histogram(totals: Totals, rules: Rulebook) -> dict:
     edges = [float(e) if np.isfinite(e) else None for e in HIST_EDGES_PCT]
-    return {"bin_edges_pct": edges,
-            "classes": {c.name: totals.class_hist_m2[i].tolist() for i, c in enumerate(rules.classes)}}
+    return {
+        "bin_edges_pct": edges,
+        "classes": {c.name: totals.class_hist_m2[i].tolist() for i, c in enumerate(rules.classes)},
+    }

@@ -42,8 +42,8 @@ import numpy as np
 
 from landcheck.errors import InputDataError, RuleFileError
 from landcheck.geo.grid import GridSpec, Window
-from landcheck.overlay.sums import ROLE_FORBIDDEN_PIECE, OverlayPlan
 from landcheck.inputs.rulebook import Rulebook
+from landcheck.overlay.sums import ROLE_FORBIDDEN_PIECE, OverlayPlan
 
 __all__ = ["PART_COMPLIANT", "PART_NON_COMPLIANT", "breach_mask", "draft_reclassification"]
 
@@ -53,8 +53,9 @@ PART_COMPLIANT = "compliant"
 PART_NON_COMPLIANT = "non_compliant"
 
 
-def breach_mask(slope_pct: np.ndarray, limit_pct: float | None, zone_bits: np.ndarray | None,
-                forbid_bits: int) -> np.ndarray:
+def breach_mask(
+    slope_pct: np.ndarray, limit_pct: float | None, zone_bits: np.ndarray | None, forbid_bits: int
+) -> np.ndarray:
     """Cells that break a class rule (pure kernel).
 
     Parameters
@@ -120,8 +121,10 @@ def _mask_polygons(mask: np.ndarray, transform):
 
     if not mask.any():
         return shapely.MultiPolygon()
-    geoms = [shapely.geometry.shape(g) for g, _ in
-             features.shapes(mask.astype(np.uint8), mask=mask, transform=transform, connectivity=4)]
+    geoms = [
+        shapely.geometry.shape(g)
+        for g, _ in features.shapes(mask.astype(np.uint8), mask=mask, transform=transform, connectivity=4)
+    ]
     return shapely.union_all(geoms)
 
 
@@ -146,13 +149,17 @@ def _apply_mmu(compliant, non_compliant, mmu_m2: float, crs_wkt: str, grid_size:
         small = _ground(parts, crs_wkt) < mmu_m2
         if small.any():
             compliant = shapely.union_all([compliant, *parts[small]], grid_size=grid_size)
-            non_compliant = shapely.union_all(parts[~small], grid_size=grid_size) if (~small).any() else shapely.MultiPolygon()
+            non_compliant = (
+                shapely.union_all(parts[~small], grid_size=grid_size) if (~small).any() else shapely.MultiPolygon()
+            )
     parts = shapely.get_parts(compliant)
     if len(parts):
         small = _ground(parts, crs_wkt) < mmu_m2
         if small.any():
             non_compliant = shapely.union_all([non_compliant, *parts[small]], grid_size=grid_size)
-            compliant = shapely.union_all(parts[~small], grid_size=grid_size) if (~small).any() else shapely.MultiPolygon()
+            compliant = (
+                shapely.union_all(parts[~small], grid_size=grid_size) if (~small).any() else shapely.MultiPolygon()
+            )
     return _polygonal(compliant), _polygonal(non_compliant)
 
 
@@ -223,22 +230,25 @@ def draft_reclassification(
     import pandas as pd
     import shapely
 
-    from landcheck.verdicts.evaluate import Verdict
-    from landcheck.terrain.slope import SlopeMethod, gradient_to_unit
     from landcheck.engine.windows import slope_window
+    from landcheck.terrain.slope import SlopeMethod, gradient_to_unit
+    from landcheck.verdicts.evaluate import Verdict
 
     try:
         mmu = float(mmu_m2)
     except (TypeError, ValueError):
         mmu = float("nan")
     if not math.isfinite(mmu) or mmu < 0:
-        raise InputDataError(f"drafted reclassification: minimum mapping unit {mmu_m2!r}; expected an area in m² >= 0 "
-                             "(e.g. 500).")
+        raise InputDataError(
+            f"drafted reclassification: minimum mapping unit {mmu_m2!r}; expected an area in m² >= 0 (e.g. 500)."
+        )
     method = SlopeMethod.from_user(getattr(settings, "method", settings))
     n = len(pr.class_name)
     if len(parcels) != n:
-        raise InputDataError(f"drafted reclassification: the parcel table has {len(parcels)} rows for {n} parcels; "
-                             "pass the audit's per-parcel table in parcel order.")
+        raise InputDataError(
+            f"drafted reclassification: the parcel table has {len(parcels)} rows for {n} parcels; "
+            "pass the audit's per-parcel table in parcel order."
+        )
     g = dem.grid
     crs_wkt = g.crs_wkt
     gs = _grid_size(g)
@@ -250,8 +260,9 @@ def draft_reclassification(
         counts = {m: int((pr.class_name[todo] == m).sum()) for m in missing}
         raise RuleFileError(
             f"{rules.path}: class {missing[0]!r} has {counts[missing[0]]} conflicting parcels but no designated_class; "
-            f"add designated_class = \"<class>\" to [classes.{missing[0]}] (the class proposed for the part that "
-            "breaks its rule)" + (f"; also missing for: {', '.join(missing[1:])}" if len(missing) > 1 else "") + ".")
+            f'add designated_class = "<class>" to [classes.{missing[0]}] (the class proposed for the part that '
+            "breaks its rule)" + (f"; also missing for: {', '.join(missing[1:])}" if len(missing) > 1 else "") + "."
+        )
     piece_of = {}
     for gi in np.flatnonzero(plan.geom_role == ROLE_FORBIDDEN_PIECE):
         piece_of.setdefault(int(plan.geom_parcel[gi]), []).append(geoms[gi])
@@ -280,10 +291,17 @@ def draft_reclassification(
         for part, geom, proposed in ((PART_COMPLIANT, compliant, cls), (PART_NON_COMPLIANT, non_compliant, target)):
             if geom.is_empty:
                 continue
-            rows.append({"parcel_id": ids[i], "part": part, "current_class": name, "proposed_class": proposed.name,
-                         "current_value": values[i],
-                         "proposed_value": values[i] if proposed is cls else proposed.values[0],
-                         "geometry": _as_multi(geom)})
+            rows.append(
+                {
+                    "parcel_id": ids[i],
+                    "part": part,
+                    "current_class": name,
+                    "proposed_class": proposed.name,
+                    "current_value": values[i],
+                    "proposed_value": values[i] if proposed is cls else proposed.values[0],
+                    "geometry": _as_multi(geom),
+                }
+            )
     cols = ["parcel_id", "part", "current_class", "proposed_class", "current_value", "proposed_value", "area_m2"]
     if not rows:
         empty = gpd.GeoDataFrame({c: [] for c in cols}, geometry=[], crs=crs_wkt)
@@ -292,9 +310,15 @@ def draft_reclassification(
     gdf["area_m2"] = _ground(gdf.geometry.values, crs_wkt)
     gdf = gdf[cols + ["geometry"]]
     nc = gdf[gdf["part"] == PART_NON_COMPLIANT]
-    moves = (nc.groupby(["current_class", "proposed_class"], sort=True)
-             .agg(parcels=("parcel_id", "nunique"), area_m2=("area_m2", "sum")).reset_index()
-             .rename(columns={"current_class": "from_class", "proposed_class": "to_class"}))
-    logger.info("drafted reclassification: %d conflicting parcels, %.0f m² proposed for other classes",
-                len(todo), float(nc["area_m2"].sum()))
+    moves = (
+        nc.groupby(["current_class", "proposed_class"], sort=True)
+        .agg(parcels=("parcel_id", "nunique"), area_m2=("area_m2", "sum"))
+        .reset_index()
+        .rename(columns={"current_class": "from_class", "proposed_class": "to_class"})
+    )
+    logger.info(
+        "drafted reclassification: %d conflicting parcels, %.0f m² proposed for other classes",
+        len(todo),
+        float(nc["area_m2"].sum()),
+    )
     return gdf.reset_index(drop=True), moves

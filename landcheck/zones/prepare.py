@@ -73,8 +73,18 @@ class ZoneSet:
         return ~self.sea[win.rows, win.cols]
 
     def describe(self) -> dict:
-        return {"columns": [{"name": c.name, "label": c.label, "kind": "raster" if c.raster_channel >= 0 else "vector",
-                             "rulebook_zone": c.zone_index is not None} for c in self.columns], **self.info}
+        return {
+            "columns": [
+                {
+                    "name": c.name,
+                    "label": c.label,
+                    "kind": "raster" if c.raster_channel >= 0 else "vector",
+                    "rulebook_zone": c.zone_index is not None,
+                }
+                for c in self.columns
+            ],
+            **self.info,
+        }
 
     def write_layers(self, folder: Path) -> None:
         from landcheck.outputs.writers import write_gpkg
@@ -89,10 +99,9 @@ class ZoneSet:
 def _local_metric_crs(geoms_ll):
     """A UTM CRS for geometries in lon/lat (pyproj's estimate from their bounds)."""
     import pyproj
+    import shapely
     from pyproj.aoi import AreaOfInterest
     from pyproj.database import query_utm_crs_info
-
-    import shapely
 
     xmin, ymin, xmax, ymax = shapely.total_bounds(geoms_ll)
     if xmax - xmin > 6.0:
@@ -103,7 +112,7 @@ def _local_metric_crs(geoms_ll):
     return pyproj.CRS.from_epsg(info[0].code)
 
 
-def buffer_ground(geoms: np.ndarray, width_m, grid: GridSpec) -> "object":
+def buffer_ground(geoms: np.ndarray, width_m, grid: GridSpec) -> object:
     """Union of the geometries buffered by ``width_m`` metres on the ground, in the grid's CRS.
 
     Parameters
@@ -133,7 +142,9 @@ def buffer_ground(geoms: np.ndarray, width_m, grid: GridSpec) -> "object":
         k = pyproj.Proj(utm).get_factors(cent.x, cent.y).meridional_scale
         buf = shapely.union_all(shapely.buffer(proj, width_m * k, quad_segs=16))
         buf = shapely.segmentize(buf, _DENSIFY_M)
-        return shapely.make_valid(shapely.transform(buf, lambda xy: np.column_stack(back.transform(xy[:, 0], xy[:, 1]))))
+        return shapely.make_valid(
+            shapely.transform(buf, lambda xy: np.column_stack(back.transform(xy[:, 0], xy[:, 1])))
+        )
     k = 1.0
     cent = shapely.centroid(shapely.union_all(geoms))
     try:
@@ -184,18 +195,22 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
             col, row = apply_transform(~g.transform, x, y)
             r, c = int(np.floor(row)), int(np.floor(col))
             if not (0 <= r < g.height and 0 <= c < g.width):
-                raise InputDataError(f"{rules.path}: sea_point {params['sea_point']} lies outside the DEM "
-                                     f"(bounds {tuple(round(b, 3) for b in g.bounds)}); give a point on the sea inside the DEM.")
+                raise InputDataError(
+                    f"{rules.path}: sea_point {params['sea_point']} lies outside the DEM "
+                    f"(bounds {tuple(round(b, 3) for b in g.bounds)}); give a point on the sea inside the DEM."
+                )
             seeds = [(r, c)]
-        return hydrology.sea_mask(elev, params.get("datum_m", 0.0), seed_cells=seeds,
-                                  nodata_is_sea=params.get("nodata_is_sea", False))
+        return hydrology.sea_mask(
+            elev, params.get("datum_m", 0.0), seed_cells=seeds, nodata_is_sea=params.get("nodata_is_sea", False)
+        )
 
-    def routing_for() -> "hydrology.FlowRouting":
+    def routing_for() -> hydrology.FlowRouting:
         nonlocal routing
         if routing is None:
             step("flow routing (depression filling, D8) on the whole DEM")
-            routing = hydrology.flow_directions(elev, g.transform, latlon=g.geographic,
-                                                outlet_mask=sea if sea is not None and sea.any() else None)
+            routing = hydrology.flow_directions(
+                elev, g.transform, latlon=g.geographic, outlet_mask=sea if sea is not None and sea.any() else None
+            )
         return routing
 
     def upstream() -> np.ndarray:
@@ -225,16 +240,20 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
                 if wf is not None:
                     # centrelines with a channel width: the easement is measured from the bank
                     if wf not in gdf.columns:
-                        raise InputDataError(f"{where}: no attribute {wf!r} (the rulebook's [zones.{z.name}].channel_width_field); "
-                                             f"attributes here: {', '.join(c for c in gdf.columns if c != gdf.geometry.name)}.")
+                        raise InputDataError(
+                            f"{where}: no attribute {wf!r} (the rulebook's [zones.{z.name}].channel_width_field); "
+                            f"attributes here: {', '.join(c for c in gdf.columns if c != gdf.geometry.name)}."
+                        )
                     import pandas as pd
 
                     cw = pd.to_numeric(gdf[wf], errors="coerce").to_numpy(float)
                     bad = ~np.isfinite(cw) | (cw < 0)
                     if bad.any():
                         rows = (np.flatnonzero(bad) + 1)[:10].tolist()
-                        raise InputDataError(f"{where}: attribute {wf!r} must be a width in metres >= 0; features (rows) {rows} hold "
-                                             f"{gdf[wf].iloc[rows[0] - 1]!r}.")
+                        raise InputDataError(
+                            f"{where}: attribute {wf!r} must be a width in metres >= 0; features (rows) {rows} hold "
+                            f"{gdf[wf].iloc[rows[0] - 1]!r}."
+                        )
                     half_channel = cw / 2.0
             elif z.params["derive"] == "shoreline":
                 lines = hydrology.mask_boundary_lines(sea, g.transform, g.crs_wkt)
@@ -251,28 +270,42 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
             variants = {ctx: buffer_ground(src_geoms, half_channel + w, g) for ctx, w in _widths(z).items()}
             columns.append(ZoneColumn(z.name, z.label, zi, -1, variants))
             layers[f"zone_{z.name}"] = gpd.GeoDataFrame(
-                {"context": [c.value if c is not None else "all" for c in variants],
-                 "width_m": [_widths(z)[c] for c in variants]},
-                geometry=list(variants.values()), crs=g.crs_wkt)
+                {
+                    "context": [c.value if c is not None else "all" for c in variants],
+                    "width_m": [_widths(z)[c] for c in variants],
+                },
+                geometry=list(variants.values()),
+                crs=g.crs_wkt,
+            )
         elif z.kind is ZoneKind.FLOOD_POLYGONS:
             gdf, where = _layer_geoms(rules, z.params["layer"], g, f"flood layer {z.params['layer']!r}")
             field_name = z.params["level_field"]
             if field_name not in gdf.columns:
-                raise InputDataError(f"{where}: no attribute {field_name!r} (the rulebook's [zones.{z.name}].level_field); "
-                                     f"attributes here: {', '.join(c for c in gdf.columns if c != gdf.geometry.name)}.")
+                raise InputDataError(
+                    f"{where}: no attribute {field_name!r} (the rulebook's [zones.{z.name}].level_field); "
+                    f"attributes here: {', '.join(c for c in gdf.columns if c != gdf.geometry.name)}."
+                )
             import pandas as pd
 
             levels = pd.to_numeric(gdf[field_name], errors="coerce")
             bad = levels.isna() & gdf[field_name].notna()
             if bad.any() or levels.isna().all():
                 rows = (np.flatnonzero(bad.to_numpy() | levels.isna().to_numpy()) + 1)[:10].tolist()
-                raise InputDataError(f"{where}: attribute {field_name!r} must be numeric; features (rows) {rows} hold "
-                                     f"{gdf[field_name].iloc[rows[0] - 1]!r}.")
+                raise InputDataError(
+                    f"{where}: attribute {field_name!r} must be numeric; features (rows) {rows} hold "
+                    f"{gdf[field_name].iloc[rows[0] - 1]!r}."
+                )
             sel = (levels >= z.params["min_level"]).to_numpy()
-            geom = shapely.make_valid(shapely.union_all(np.asarray(gdf.geometry.values)[sel])) if sel.any() else shapely.Polygon()
+            geom = (
+                shapely.make_valid(shapely.union_all(np.asarray(gdf.geometry.values)[sel]))
+                if sel.any()
+                else shapely.Polygon()
+            )
             geom = _polygonal(geom)
             columns.append(ZoneColumn(z.name, z.label, zi, -1, {None: geom}))
-            layers[f"zone_{z.name}"] = gpd.GeoDataFrame({"min_level": [z.params["min_level"]]}, geometry=[geom], crs=g.crs_wkt)
+            layers[f"zone_{z.name}"] = gpd.GeoDataFrame(
+                {"min_level": [z.params["min_level"]]}, geometry=[geom], crs=g.crs_wkt
+            )
         elif z.kind is ZoneKind.HAND:
             r = routing_for()
             area = upstream()
@@ -290,19 +323,26 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
             s = sea_for(z.params)
             rises = [z.params["rise_m"]] + [x for x in z.params.get("scenarios_m", ()) if x != z.params["rise_m"]]
             order = sorted(set(rises))
-            masks = hydrology.inundation_masks(elev, s, order, surge_m=z.params.get("surge_m", 0.0),
-                                               datum_m=z.params.get("datum_m", 0.0))
+            masks = hydrology.inundation_masks(
+                elev, s, order, surge_m=z.params.get("surge_m", 0.0), datum_m=z.params.get("datum_m", 0.0)
+            )
             by_rise = dict(zip(order, masks))
             columns.append(ZoneColumn(z.name, z.label, zi, len(raster_masks)))
             raster_masks.append(by_rise[z.params["rise_m"]])
-            layers[f"zone_{z.name}"] = hydrology.mask_to_polygons(by_rise[z.params["rise_m"]] & ~s, g.transform, g.crs_wkt)
+            layers[f"zone_{z.name}"] = hydrology.mask_to_polygons(
+                by_rise[z.params["rise_m"]] & ~s, g.transform, g.crs_wkt
+            )
             for rise in z.params.get("scenarios_m", ()):
-                columns.append(ZoneColumn(f"{z.name}_rise_{_rise_tag(rise)}", f"{z.label}: +{rise:g} m", None,
-                                          len(raster_masks)))
+                columns.append(
+                    ZoneColumn(f"{z.name}_rise_{_rise_tag(rise)}", f"{z.label}: +{rise:g} m", None, len(raster_masks))
+                )
                 raster_masks.append(by_rise[rise])
             info.setdefault("sea_rise", {})[z.name] = {
-                "datum_m": z.params.get("datum_m", 0.0), "surge_m": z.params.get("surge_m", 0.0),
-                "rises_m": order, "inundated_land_cells": [int((m & ~s).sum()) for m in masks]}
+                "datum_m": z.params.get("datum_m", 0.0),
+                "surge_m": z.params.get("surge_m", 0.0),
+                "rises_m": order,
+                "inundated_land_cells": [int((m & ~s).sum()) for m in masks],
+            }
     if len(raster_masks) > 32:
         raise InputDataError(f"{rules.path}: more than 32 cell-based zone layers (zones plus sea-rise scenarios).")
     raster_bits = None
