@@ -104,7 +104,8 @@ def prepare(dem_path, parcels_path, rules_path, tile_cells: int):
     """The audit's own preparation and window pass (baseline verdicts), without writing outputs."""
     import shapely
 
-    from landcheck.core.audit import _build_plan, _WindowJob
+    from landcheck.core.window_pass import WindowJob as _WindowJob
+    from landcheck.core.window_pass import build_plan as _build_plan
     from landcheck.geo.grid import iter_windows
     from landcheck.inputs.dem import open_dem
     from landcheck.inputs.layers import ground_areas, read_parcels

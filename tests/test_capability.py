@@ -11,7 +11,8 @@ import rasterio
 import shapely
 from _support import ramp_dem, write_parcels, write_rules
 
-from landcheck.core.audit import _build_plan, audit
+from landcheck.core.audit import audit
+from landcheck.core.window_pass import build_plan as _build_plan
 from landcheck.errors import RuleFileError
 from landcheck.geo.grid import iter_windows
 from landcheck.inputs.dem import open_dem

@@ -121,12 +121,12 @@ def test_permission_denied(tmp_path, inputs, monkeypatch):
 
 
 def test_internal_error_exit_4(tmp_path, inputs, monkeypatch):
-    from landcheck.core import audit as audit_mod
+    from landcheck.core import run as run_mod
 
     def boom(*a, **k):
         raise ZeroDivisionError("bug")
 
-    monkeypatch.setattr(audit_mod, "evaluate_parcels", boom)
+    monkeypatch.setattr(run_mod, "evaluate_parcels", boom)
     r = _audit(inputs, tmp_path / "out")
     assert r.exit_code == 4 and "internal error" in r.output and "-vv" in r.output
     assert not (tmp_path / "out").exists()

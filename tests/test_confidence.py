@@ -16,7 +16,8 @@ from _support import ramp_dem, write_parcels, write_raster
 from rasterio.transform import from_origin
 from scipy import stats
 
-from landcheck.core.audit import _build_plan, _WindowJob
+from landcheck.core.window_pass import WindowJob as _WindowJob
+from landcheck.core.window_pass import build_plan as _build_plan
 from landcheck.errors import RuleFileError
 from landcheck.geo.grid import iter_windows
 from landcheck.inputs.dem import open_dem

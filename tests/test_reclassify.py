@@ -8,7 +8,8 @@ import shapely
 from _support import ramp_dem, write_parcels, write_raster
 from rasterio.transform import from_origin
 
-from landcheck.core.audit import _build_plan, _WindowJob
+from landcheck.core.window_pass import WindowJob as _WindowJob
+from landcheck.core.window_pass import build_plan as _build_plan
 from landcheck.errors import InputDataError, RuleFileError
 from landcheck.geo.grid import iter_windows
 from landcheck.inputs.dem import open_dem

@@ -10,7 +10,7 @@ import click
 from landcheck.errors import LandcheckWarning
 
 from .main import handle_errors
-from .options import CAUTION_HELP, EXIT_CONFLICTS, dem_options, method_option, run_options
+from .options import CAUTION_HELP, EXIT_CONFLICTS, dem_options, engine_options, method_option, run_options
 
 
 def run_audit_and_report(ctx, *, as_json: bool, fail_on_conflict: bool, **kwargs):
@@ -26,7 +26,16 @@ def run_audit_and_report(ctx, *, as_json: bool, fail_on_conflict: bool, **kwargs
     with warnings.catch_warnings():
         # recorded in the result and printed below once; keep them out of the log stream
         warnings.simplefilter("ignore", LandcheckWarning)
-        result = audit(show_progress=None if not quiet else False, on_step=on_step, **kwargs)
+        result = audit(
+            kwargs.pop("dem_path"),
+            kwargs.pop("parcels_path"),
+            kwargs.pop("rulebook_path"),
+            kwargs.pop("out_dir"),
+            overwrite=kwargs.pop("overwrite", False),
+            show_progress=None if not quiet else False,
+            on_step=on_step,
+            **kwargs,
+        )
     t = result.summary["totals"]
     if as_json:
         click.echo(
@@ -101,21 +110,7 @@ Examples:
 @method_option
 @dem_options
 @run_options
-@click.option(
-    "--engine",
-    type=click.Choice(["threads", "dask"]),
-    default="threads",
-    show_default=True,
-    help="Run windows on local threads, or on a Dask cluster (a local one unless --scheduler is given).",
-)
-@click.option(
-    "--scheduler",
-    "scheduler_address",
-    default=None,
-    metavar="ADDRESS",
-    help="Dask scheduler address, e.g. tcp://10.0.0.5:8786 (implies --engine dask). Workers must read "
-    "the inputs by the same paths.",
-)
+@engine_options
 @click.option(
     "--dem-rmse",
     "dem_rmse_m",
@@ -216,7 +211,7 @@ def command(
         workers=workers,
         overwrite=overwrite,
         make_report=not no_report,
-        engine="dask" if scheduler_address else engine,
+        engine=engine,
         scheduler_address=scheduler_address,
         dem_rmse_m=dem_rmse_m,
         corr_length_m=corr_length_m,

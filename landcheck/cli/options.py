@@ -60,3 +60,24 @@ def run_options(f):
     )(f)
     f = click.option("--overwrite", is_flag=True, help="Replace existing outputs.")(f)
     return f
+
+
+def engine_options(f):
+    """``--engine`` and ``--scheduler``: where every window pass of the command runs."""
+    f = click.option(
+        "--scheduler",
+        "scheduler_address",
+        default=None,
+        metavar="ADDRESS",
+        help="Dask scheduler address, e.g. tcp://10.0.0.5:8786 (implies --engine dask). Workers must read "
+        "the inputs by the same paths.",
+    )(f)
+    f = click.option(
+        "--engine",
+        type=click.Choice(["threads", "processes", "dask"]),
+        default="threads",
+        show_default=True,
+        help="Run every window pass on local threads, local worker processes, or a Dask cluster "
+        "(a local one unless --scheduler is given). Results are the same on every engine.",
+    )(f)
+    return f

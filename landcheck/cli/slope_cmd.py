@@ -9,7 +9,7 @@ import click
 from landcheck.terrain.slope import SlopeUnit
 
 from .main import handle_errors
-from .options import CAUTION_HELP, dem_options, method_option, run_options
+from .options import CAUTION_HELP, dem_options, engine_options, method_option, run_options
 
 
 @click.command(
@@ -35,6 +35,7 @@ Examples:
 @method_option
 @dem_options
 @run_options
+@engine_options
 @click.option(
     "--class-raster",
     "class_out",
@@ -73,6 +74,8 @@ def slope(
     class_out,
     class_scheme,
     raster_format,
+    engine,
+    scheduler_address,
     as_json,
 ):
     from landcheck.core.slope_raster import derive_slope
@@ -104,6 +107,8 @@ def slope(
         class_out=class_out,
         class_scheme=scheme,
         raster_format=raster_format,
+        engine=engine,
+        scheduler_address=scheduler_address,
     )
     summary = {
         "output": str(info.path),

@@ -1,4 +1,4 @@
-"""Wiring of the steps.  No printing and no CLI here: functions take settings and return results."""
+"""The slope command's pass: a DEM in, a slope raster (and optionally slope classes) out, window by window."""
 
 from __future__ import annotations
 
@@ -10,7 +10,8 @@ from pathlib import Path
 
 import numpy as np
 
-from landcheck.engine.windows import progress_bar, run_windows, slope_window
+from landcheck.engine.backends import Engine
+from landcheck.engine.windows import progress_bar, slope_window
 from landcheck.geo.grid import iter_windows
 from landcheck.inputs.dem import ZUnit, open_dem
 from landcheck.outputs.writers import RasterFormat, RasterSink
@@ -36,6 +37,26 @@ class SlopeRunInfo:
     method: str
 
 
+class _SlopeTask:
+    """One window of the slope command: slope in the asked unit, classes, count and range (picklable)."""
+
+    def __init__(self, dem, method: SlopeMethod, unit: SlopeUnit, scheme: SlopeClassScheme | None):
+        self.dem = dem
+        self.method = method
+        self.unit = unit
+        self.scheme = scheme
+
+    def __call__(self, w):  # runs on a worker: everything but the writes
+        grad = slope_window(self.dem, w, self.method)
+        out = gradient_to_unit(grad, self.unit)
+        classes = (
+            classify_slope(gradient_to_unit(grad, SlopeUnit.PERCENT), self.scheme) if self.scheme is not None else None
+        )
+        n = int(np.count_nonzero(~np.isnan(out)))
+        lo, hi = (float(np.nanmin(out)), float(np.nanmax(out))) if n else (np.inf, -np.inf)
+        return out, classes, n, lo, hi
+
+
 def derive_slope(
     dem_path: str | os.PathLike,
     out_path: str | os.PathLike,
@@ -52,6 +73,8 @@ def derive_slope(
     class_out: str | os.PathLike | None = None,
     class_scheme: SlopeClassScheme | None = None,
     raster_format: RasterFormat | str = RasterFormat.COG,
+    engine: Engine | str = "threads",
+    scheduler_address: str | None = None,
 ) -> SlopeRunInfo:
     """Compute a slope raster from a DEM, window by window, and write it as a COG.
 
@@ -64,7 +87,12 @@ def derive_slope(
     (tiled GeoTIFF written straight from the windows, no overviews, the float slope uncompressed and
     the class raster ZSTD; faster, for batch runs);
     see :class:`landcheck.outputs.writers.RasterFormat` and docs/scale.md.
+
+    ``engine`` (``threads``, ``processes``, ``dask`` or an :class:`~landcheck.engine.backends.Engine`)
+    says where the windows run; the raster is the same on every engine.
     """
+    if not isinstance(engine, Engine):
+        engine = Engine.from_user(engine, workers, scheduler_address)
     raster_format = RasterFormat.from_user(raster_format)
     if raster_format is RasterFormat.NONE:
         raise ValueError("the slope command writes a raster: choose raster_format 'cog' or 'gtiff'")
@@ -103,17 +131,8 @@ def derive_slope(
                 )
             )
         bar = stack.enter_context(progress_bar(len(windows), "slope", enabled=show_progress))
-        want_classes = class_sink is not None
-
-        def task(w):  # runs in a worker thread: everything but the writes
-            grad = slope_window(dem, w, method)
-            out = gradient_to_unit(grad, unit)
-            classes = classify_slope(gradient_to_unit(grad, SlopeUnit.PERCENT), scheme) if want_classes else None
-            n = int(np.count_nonzero(~np.isnan(out)))
-            lo, hi = (float(np.nanmin(out)), float(np.nanmax(out))) if n else (np.inf, -np.inf)
-            return out, classes, n, lo, hi
-
-        for win, (out, classes, n, lo, hi) in run_windows(task, windows, workers=workers, progress=bar):
+        task = _SlopeTask(dem, method, unit, scheme if class_sink is not None else None)
+        for win, (out, classes, n, lo, hi) in engine.map(task, windows, progress=bar):
             sink.write(win, out)
             if class_sink is not None:
                 class_sink.write(win, classes)

@@ -14,7 +14,6 @@ figures and the same text otherwise.
 from __future__ import annotations
 
 import base64
-import hashlib
 import html
 import json
 import logging
@@ -36,6 +35,7 @@ from landcheck.evidence.maps import (
     sensitivity_chart,
     slope_distribution_chart,
 )
+from landcheck.hashing import sha256_file
 from landcheck.outputs.writers import write_bytes
 
 __all__ = ["build_report", "sha256_file"]
@@ -62,7 +62,6 @@ _CSP = (
     "default-src 'none'; img-src data:; style-src 'unsafe-inline'; script-src 'unsafe-inline'; "
     "base-uri 'none'; form-action 'none'"
 )
-_HASH_CHUNK_BYTES = 1 << 20
 _M2_PER_HA = 10_000.0
 
 # per-parcel table: (column, header, kind) ; kind: text | m2 | share | pct
@@ -101,15 +100,6 @@ _CLASS_COLUMNS = [
     ("n_review", "Review", "int"),
     ("n_no_data", "No data", "int"),
 ]
-
-
-def sha256_file(path: Path) -> str:
-    """SHA-256 of a file's bytes, as 64 lowercase hex digits (FIPS 180-4 via hashlib)."""
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        for chunk in iter(lambda: f.read(_HASH_CHUNK_BYTES), b""):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 # --------------------------------------------------------------------------- formatting

@@ -16,7 +16,7 @@ import numpy as np
 
 from landcheck.errors import InputDataError, LandcheckWarning
 
-__all__ = ["read_parcels", "read_layer", "ParcelSet"]
+__all__ = ["read_parcels", "read_layer", "validate_parcels", "ParcelSet"]
 
 logger = logging.getLogger(__name__)
 
@@ -125,10 +125,38 @@ def read_parcels(
     and flagged; empty geometries are kept and reported (their verdict is
     ``no_data``).  Parcel ids must be unique.
     """
+    gdf = read_layer(path, layer=layer, role="parcels", crs=crs)
+    return validate_parcels(
+        gdf, class_field=class_field, id_field=id_field, target_crs_wkt=target_crs_wkt, where=gdf.attrs["where"]
+    )
+
+
+def validate_parcels(
+    gdf,
+    *,
+    class_field: str,
+    id_field: str | None,
+    target_crs_wkt: str,
+    where: str = "parcels (GeoDataFrame)",
+    crs: str | None = None,
+) -> ParcelSet:
+    """Validate parcels already in memory (a GeoDataFrame) as :func:`read_parcels` does; the input is not modified.
+
+    A CRS is required (``crs`` is assumed when the frame has none); the result is reprojected to
+    ``target_crs_wkt``.
+    """
+    import geopandas as gpd
     import shapely
 
-    gdf = read_layer(path, layer=layer, role="parcels", crs=crs)
-    where = gdf.attrs["where"]
+    if not isinstance(gdf, gpd.GeoDataFrame):
+        raise InputDataError(f"{where}: expected a GeoDataFrame or a path to a vector file, got {type(gdf).__name__}.")
+    if len(gdf) == 0:
+        raise InputDataError(f"{where}: the parcels layer has no features.")
+    if gdf.crs is None:
+        if crs is None:
+            raise InputDataError(f"{where}: the parcels have no CRS; set one (gdf.set_crs(...)) or pass parcels_crs.")
+        gdf = gdf.set_crs(crs)
+    gdf = gdf.copy()
     notes = []
     if class_field not in gdf.columns:
         fields = [c for c in gdf.columns if c != gdf.geometry.name]

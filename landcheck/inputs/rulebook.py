@@ -27,6 +27,7 @@ else:  # pragma: no cover
     import tomli as tomllib
 
 __all__ = [
+    "rules_from_mapping",
     "Rulebook",
     "ClassRule",
     "ZoneRule",
@@ -303,6 +304,24 @@ def parse_rules(text: str, *, path: str = "<rulebook>", sha256: str | None = Non
         raise RuleFileError(
             f"{path}: not valid TOML: {exc}. Check quotes, brackets and '=' signs on that line."
         ) from None
+    return rules_from_mapping(data, path=path, text=text, sha256=sha256)
+
+
+def rules_from_mapping(
+    data: Mapping, *, path: str = "<rulebook mapping>", text: str | None = None, sha256: str | None = None
+) -> Rulebook:
+    """Validate a rulebook given as a mapping shaped like the parsed TOML (same rules as :func:`load_rules`).
+
+    ``text`` is the record kept in the manifest; by default the mapping as sorted JSON.
+    """
+    if not isinstance(data, Mapping):
+        raise RuleFileError(
+            f"{path}: a rulebook mapping must be a dict shaped like the TOML file, got {type(data).__name__}."
+        )
+    if text is None:
+        import json
+
+        text = json.dumps(data, sort_keys=True, indent=1, default=str)
     ctx = _Ctx(path, text)
     _unknown(ctx, None, data, _TOP_KEYS)
     base = Path(path).parent if path and not path.startswith("<") else Path(".")

@@ -398,6 +398,45 @@ def write_capability_legend(folder: str | os.PathLike, spec: CapabilitySpec) -> 
     return csv, js
 
 
+class _CapabilityTask:
+    """One window of the stand-alone capability pass (picklable for worker processes and Dask)."""
+
+    def __init__(self, dem, geoms, plan: OverlayPlan, spec: CapabilitySpec, method, zones):
+        self.dem = dem
+        self.geoms = np.asarray(geoms, dtype=object)
+        self.plan = plan
+        self.spec = spec
+        self.method = method
+        self.zones = zones
+        self.parcel_idx = np.flatnonzero(plan.geom_role == ROLE_PARCEL)
+        self._tree = None
+
+    def __getstate__(self):
+        state = self.__dict__.copy()
+        state["_tree"] = None  # rebuilt where the task runs
+        return state
+
+    def __call__(self, win: Window):
+        import shapely
+
+        from landcheck.engine.windows import slope_window
+        from landcheck.terrain.slope import gradient_to_unit
+
+        if self._tree is None:
+            self._tree = shapely.STRtree(self.geoms[self.parcel_idx])
+        g = self.dem.grid
+        zones = self.zones
+        slope_pct = gradient_to_unit(slope_window(self.dem, win, self.method), "percent")
+        zb = zones.bits(win) if zones is not None else None
+        land = zones.land(win) if zones is not None else None
+        codes = self.spec.window_codes(g, win, slope_pct, zb, land)
+        cand = self.parcel_idx[self._tree.query(shapely.box(*g.window_bounds(win)), predicate="intersects")]
+        cand.sort()
+        rows = np.arange(win.row_off, win.row_off + win.height)
+        trip = coverage_triplets(self.geoms[cand], g.window_transform(win), win.height, win.width)
+        return codes, accumulate_capability(codes, g.cell_area_m2(rows), cand, trip, self.plan)
+
+
 def run_capability(
     dem,
     windows,
@@ -410,13 +449,16 @@ def run_capability(
     method,
     zones=None,
     workers: int | None = None,
+    engine=None,
     progress=None,
     overwrite: bool = False,
 ):
     """A stand-alone window pass: slope, capability codes, per-class areas and (optionally) the COG.
 
-    The audit can instead call :meth:`CapabilitySpec.window_codes` and :func:`accumulate_capability`
-    inside its own window pass (same numbers, no second slope pass).
+    The audit folds the same classing into its own window pass instead
+    (:class:`landcheck.core.window_pass.WindowJob` with a capability spec: same numbers, no second
+    slope pass).  ``engine`` (:class:`landcheck.engine.backends.Engine`; default local threads with
+    ``workers``) says where the windows run; the result is the same on every engine.
 
     Returns
     -------
@@ -424,31 +466,15 @@ def run_capability(
         From :func:`capability_table`.
     totals : CapabilityTotals
     """
-    import shapely
+    from landcheck.engine.backends import Engine
 
-    from landcheck.engine.windows import run_windows, slope_window
-    from landcheck.terrain.slope import gradient_to_unit
-
-    g = dem.grid
-    geoms = np.asarray(geoms, dtype=object)
-    parcel_idx = np.flatnonzero(plan.geom_role == ROLE_PARCEL)
-    tree = shapely.STRtree(geoms[parcel_idx])
-
-    def job(win: Window):
-        slope_pct = gradient_to_unit(slope_window(dem, win, method), "percent")
-        zb = zones.bits(win) if zones is not None else None
-        land = zones.land(win) if zones is not None else None
-        codes = spec.window_codes(g, win, slope_pct, zb, land)
-        cand = parcel_idx[tree.query(shapely.box(*g.window_bounds(win)), predicate="intersects")]
-        cand.sort()
-        rows = np.arange(win.row_off, win.row_off + win.height)
-        trip = coverage_triplets(geoms[cand], g.window_transform(win), win.height, win.width)
-        return codes, accumulate_capability(codes, g.cell_area_m2(rows), cand, trip, plan)
-
+    if engine is None:
+        engine = Engine.from_user("threads", workers)
+    task = _CapabilityTask(dem, geoms, plan, spec, method, zones)
     totals = CapabilityTotals(plan.n_classes)
-    sink = capability_sink(out_tif, g, spec, overwrite=overwrite) if out_tif is not None else None
+    sink = capability_sink(out_tif, dem.grid, spec, overwrite=overwrite) if out_tif is not None else None
     try:
-        for win, (codes, sums) in run_windows(job, list(windows), workers=workers, progress=progress):
+        for win, (codes, sums) in engine.map(task, list(windows), progress=progress):
             totals.add(sums)
             if sink is not None:
                 sink.write(win, codes)

@@ -68,10 +68,7 @@ import dataclasses
 import itertools
 import logging
 import math
-import multiprocessing
 import numbers
-from collections import deque
-from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
@@ -327,16 +324,15 @@ def _realizations(ctx: _Context, wd: _WindowData, r0: int, r1: int) -> _TaskResu
     return _TaskResult(wd.index, r0, r1, parcels, covered, evaluated, over, conflict, slope_sum)
 
 
-_WORKER_CTX: _Context | None = None
+class _RealizationTask:
+    """The engine task: realizations ``r0 .. r1`` of one prepared window (picklable: the context is shipped once)."""
 
+    def __init__(self, ctx: _Context):
+        self.ctx = ctx
 
-def _init_worker(ctx: _Context) -> None:
-    global _WORKER_CTX
-    _WORKER_CTX = ctx
-
-
-def _worker_task(wd: _WindowData, r0: int, r1: int) -> _TaskResult:
-    return _realizations(_WORKER_CTX, wd, r0, r1)
+    def __call__(self, item: tuple[_WindowData, int, int]) -> _TaskResult:
+        wd, r0, r1 = item
+        return _realizations(self.ctx, wd, r0, r1)
 
 
 def _chunks(n: int, parts: int) -> list[tuple[int, int]]:
@@ -361,6 +357,7 @@ def run_confidence(
     *,
     zones=None,
     workers: int | None = 1,
+    engine=None,
     progress=None,
 ) -> tuple[pd.DataFrame, pd.DataFrame, dict]:
     """Monte Carlo confidence of every parcel's verdict (see the module notes).
@@ -388,9 +385,12 @@ def run_confidence(
     zones : landcheck.zones.prepare.ZoneSet, optional
         The audit's zones (raster zone bits per window).
     workers : int or None
-        Worker processes; 1 (default) runs in this process.  None uses every core when the run has at
-        least ``PROCESS_MIN_CELL_REALIZATIONS`` cell-realizations (cells x N) and this process otherwise:
-        starting a worker costs a few seconds.
+        Used only without ``engine``: 1 (default) runs in this process, more run on that many worker
+        processes; None uses every core when the run has at least ``PROCESS_MIN_CELL_REALIZATIONS``
+        cell-realizations (cells x N) and this process otherwise (starting a worker costs a few seconds).
+    engine : landcheck.engine.backends.Engine, optional
+        Where the realizations run (threads, processes or Dask; the audit passes its own engine).
+        Results are identical on every engine and worker count.
     progress : tqdm-like, optional
         ``update(n)`` is called with the number of window-realizations done.
 
@@ -410,7 +410,6 @@ def run_confidence(
     InputDataError
         ``baseline`` does not match the parcels of ``plan``.
     """
-    from landcheck.engine.windows import default_workers
     from landcheck.verdicts.evaluate import Verdict
 
     n = check_realizations(conf.realizations)
@@ -438,10 +437,9 @@ def run_confidence(
     covered = np.zeros(n_parcels)
     evaluated = np.zeros(n_parcels)
     windows = list(windows)
-    if workers is None:  # automatic: processes only when the work outweighs starting them
-        cells = sum(w.height * w.width for w in windows)
-        workers = default_workers() if cells * n >= PROCESS_MIN_CELL_REALIZATIONS else 1
-    workers = max(1, int(workers))
+    if engine is None:
+        engine = _default_engine(windows, n, workers)
+    n_workers = engine.n_workers
 
     def merge(res: _TaskResult) -> None:
         p = res.parcels
@@ -452,7 +450,11 @@ def run_confidence(
             covered[p] += res.covered_m2
             evaluated[p] += res.evaluated_m2
 
-    def prepared():
+    # several realization chunks per window when there are fewer windows than workers
+    parts = max(1, math.ceil(n_workers / max(len(windows), 1))) if n_workers > 1 else 1
+    chunks = _chunks(n, parts)
+
+    def items():
         import shapely
 
         if not len(keep):
@@ -460,43 +462,35 @@ def run_confidence(
         tree = shapely.STRtree(geoms[keep])
         for wi, win in enumerate(windows):
             wd = _prepare_window(dem, tree, keep, geoms, wi, win, zones)
-            if wd is not None:
-                yield wd
-            elif progress is not None:
-                progress.update(n)
-
-    if workers == 1:
-        for wd in prepared():
-            merge(_realizations(ctx, wd, 0, n))
-            if progress is not None:
-                progress.update(n)
-    else:
-        # several realization chunks per window when there are fewer windows than workers
-        parts = max(1, math.ceil(workers / max(len(windows), 1)))
-        # spawn, not fork: the parent may hold GDAL or numba threads, which do not survive a fork
-        mp = multiprocessing.get_context("spawn")
-        with ProcessPoolExecutor(max_workers=workers, mp_context=mp, initializer=_init_worker, initargs=(ctx,)) as pool:
-            pending: deque = deque()
-            for wd in prepared():
-                for r0, r1 in _chunks(n, parts):
-                    pending.append((pool.submit(_worker_task, wd, r0, r1), r1 - r0))
-                del wd
-                # bounded memory: at most about 2 windows per worker in flight; merged in submission
-                # order, so every realization adds its windows in window order (deterministic sums)
-                while len(pending) > 2 * workers:
-                    fut, m = pending.popleft()
-                    merge(fut.result())
-                    if progress is not None:
-                        progress.update(m)
-            while pending:
-                fut, m = pending.popleft()
-                merge(fut.result())
+            if wd is None:
                 if progress is not None:
-                    progress.update(m)
+                    progress.update(n)
+                continue
+            for r0, r1 in chunks:
+                yield wd, r0, r1
+
+    # results come back in submission order, so every realization adds its windows in window order
+    # (deterministic sums whatever the engine); at most 2 x workers items are in flight (bounded memory)
+    for (_, r0, r1), res in engine.map(_RealizationTask(ctx), items()):
+        merge(res)
+        if progress is not None:
+            progress.update(r1 - r0)
 
     return _tables(
         rules, pr, baseline, counted, varies, n, seed, conf, method, over, conflict, slope_sum, covered, evaluated
     )
+
+
+def _default_engine(windows, n: int, workers: int | None):
+    """The engine of a stand-alone call without one: this process, or worker processes for big runs."""
+    from landcheck.engine.backends import Engine
+    from landcheck.engine.windows import default_workers
+
+    if workers is None:  # automatic: processes only when the work outweighs starting them
+        cells = sum(w.height * w.width for w in windows)
+        workers = default_workers() if cells * n >= PROCESS_MIN_CELL_REALIZATIONS else 1
+    workers = max(1, int(workers))
+    return Engine.from_user("threads" if workers == 1 else "processes", workers)
 
 
 def _pct(a: np.ndarray) -> np.ndarray:

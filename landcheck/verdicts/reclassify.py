@@ -181,6 +181,42 @@ def _as_multi(g):
     return g
 
 
+class _SplitTask:
+    """Split one conflicting parcel (by index) into its compliant and non-compliant parts (picklable)."""
+
+    def __init__(self, dem, method, geoms, plan: OverlayPlan, zones, piece_of: dict, grid_size: float, mmu: float):
+        self.dem = dem
+        self.method = method
+        self.geoms = geoms
+        self.plan = plan
+        self.zones = zones
+        self.piece_of = piece_of
+        self.grid_size = grid_size
+        self.mmu = mmu
+
+    def __call__(self, i: int):
+        import shapely
+
+        from landcheck.engine.windows import slope_window
+        from landcheck.terrain.slope import gradient_to_unit
+
+        g, plan, zones, gs = self.dem.grid, self.plan, self.zones, self.grid_size
+        parcel = self.geoms[i]
+        breach = shapely.MultiPolygon()
+        win = _cell_window(g, parcel.bounds)
+        if win is not None:
+            slope_pct = gradient_to_unit(slope_window(self.dem, win, self.method), "percent")
+            limit = plan.thresholds_pct[plan.limit_index[i]] if plan.limit_index[i] >= 0 else None
+            zb = zones.bits(win) if zones is not None else None
+            mask = breach_mask(slope_pct, limit, zb, int(plan.raster_forbid_bits[i]))
+            breach = _mask_polygons(mask, g.window_transform(win))
+        if i in self.piece_of:
+            breach = shapely.union_all([breach, *self.piece_of[i]])
+        non_compliant = _polygonal(shapely.intersection(parcel, breach, grid_size=gs))
+        compliant = _polygonal(shapely.difference(parcel, non_compliant, grid_size=gs))
+        return _apply_mmu(compliant, non_compliant, self.mmu, g.crs_wkt, gs)
+
+
 def draft_reclassification(
     dem,
     settings,
@@ -192,6 +228,7 @@ def draft_reclassification(
     *,
     zones=None,
     mmu_m2: float = 0.0,
+    engine=None,
 ):
     """Split every conflicting parcel into a compliant and a non-compliant part (see the module notes).
 
@@ -210,6 +247,9 @@ def draft_reclassification(
     zones : landcheck.zones.prepare.ZoneSet, optional
     mmu_m2 : float
         Minimum mapping unit in ground m² (>= 0; 0 keeps every polygon).
+    engine : landcheck.engine.backends.Engine, optional
+        Where the per-parcel splits run (default: this thread); parts come back in parcel order, so
+        the result is the same on every engine.
 
     Returns
     -------
@@ -228,10 +268,8 @@ def draft_reclassification(
     """
     import geopandas as gpd
     import pandas as pd
-    import shapely
 
-    from landcheck.engine.windows import slope_window
-    from landcheck.terrain.slope import SlopeMethod, gradient_to_unit
+    from landcheck.terrain.slope import SlopeMethod
     from landcheck.verdicts.evaluate import Verdict
 
     try:
@@ -269,25 +307,16 @@ def draft_reclassification(
     ids = parcels["parcel_id"].to_numpy() if "parcel_id" in parcels.columns else np.arange(1, n + 1)
     values = parcels["class_value"].astype(str).to_numpy() if "class_value" in parcels.columns else np.full(n, "")
 
+    if engine is None:
+        from landcheck.engine.backends import Engine
+
+        engine = Engine.from_user("threads", 1)
+    task = _SplitTask(dem, method, geoms, plan, zones, piece_of, gs, mmu)
     rows = []
-    for i in todo:
-        parcel = geoms[i]
+    for i, (compliant, non_compliant) in engine.map(task, [int(i) for i in todo]):
         name = pr.class_name[i]
         cls = by[name]
         target = by[cls.designated_class]
-        breach = shapely.MultiPolygon()
-        win = _cell_window(g, parcel.bounds)
-        if win is not None:
-            slope_pct = gradient_to_unit(slope_window(dem, win, method), "percent")
-            limit = plan.thresholds_pct[plan.limit_index[i]] if plan.limit_index[i] >= 0 else None
-            zb = zones.bits(win) if zones is not None else None
-            mask = breach_mask(slope_pct, limit, zb, int(plan.raster_forbid_bits[i]))
-            breach = _mask_polygons(mask, g.window_transform(win))
-        if i in piece_of:
-            breach = shapely.union_all([breach, *piece_of[i]])
-        non_compliant = _polygonal(shapely.intersection(parcel, breach, grid_size=gs))
-        compliant = _polygonal(shapely.difference(parcel, non_compliant, grid_size=gs))
-        compliant, non_compliant = _apply_mmu(compliant, non_compliant, mmu, crs_wkt, gs)
         for part, geom, proposed in ((PART_COMPLIANT, compliant, cls), (PART_NON_COMPLIANT, non_compliant, target)):
             if geom.is_empty:
                 continue
