@@ -15,6 +15,7 @@ kernels (bit for bit what :func:`landcheck.core.audit.audit` writes to
 
 from __future__ import annotations
 
+import copy
 import datetime as _dt
 import logging
 import os
@@ -140,7 +141,11 @@ class AuditRun:
 
     def conflict_bits(self, win: Window | None = None) -> np.ndarray:
         """Conflict bits (uint8, ``conflict.tif``'s codes, docs/outputs.md) of ``win`` (default the whole DEM)."""
-        return self._job(self._window(win)).conflict
+        job = self._job
+        if not job.keep_rasters:
+            job = copy.copy(job)  # shares the prepared polygons; only the flag differs
+            job.keep_rasters = True
+        return job(self._window(win)).conflict
 
 
 class _RasterHook:

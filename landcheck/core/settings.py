@@ -35,8 +35,8 @@ from landcheck.terrain.slope_classes import SlopeClassScheme, get_scheme, scheme
 
 __all__ = ["AuditSettings", "CapabilityOptions", "ConfidenceOptions", "MIN_TILE_CELLS", "DEFAULT_TILE_CELLS"]
 
-#: smallest window side accepted (cells); the halo makes smaller windows mostly overhead
-MIN_TILE_CELLS = 16
+#: smallest window side accepted (cells); results do not depend on it, but below ~256 the halo is mostly overhead
+MIN_TILE_CELLS = 1
 DEFAULT_TILE_CELLS = 1024
 
 
@@ -141,7 +141,7 @@ class AuditSettings:
     method : SlopeMethod or str or None
         ``horn`` or ``zevenbergen-thorne``; None takes the rulebook's (``slope_method``), else Horn.
     tile_cells : int
-        Window side in cells (>= 16).  Memory is bounded by a few windows per worker.
+        Window side in cells (>= 1; the command line asks for >= 16).  Memory is bounded by a few windows per worker.
     dem_band, dem_crs, z_unit
         How to read the DEM when it is given as a path (:func:`landcheck.inputs.dem.open_dem`).
     parcels_layer, parcels_crs

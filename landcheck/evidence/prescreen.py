@@ -1,8 +1,9 @@
 """Pre-screen of one parcel: a one-page report before buying or designing.
 
 :func:`prescreen` takes a DEM, a rulebook and ONE parcel (a one-feature
-vector file, a parcel id in a layer, or polygon coordinates), runs the audit
-(:func:`landcheck.core.audit.audit`) on that parcel alone, and adds what a
+vector file, a parcel id in a layer, or polygon coordinates), runs the in-memory
+audit (:func:`landcheck.core.run.run_audit`, no temporary files) on that parcel
+alone, on a view of the DEM around it, and adds what a
 developer asks about a single lot:
 
 * the slope histogram of the parcel (area per slope bin, exact coverage
@@ -16,7 +17,7 @@ developer asks about a single lot:
   the audit.
 
 Verdicts, reasons, slope breaches and zone areas are the audit's own: this
-module reads them from the audit's outputs and never re-decides a rule.
+module takes them from the audit's result and never re-decides a rule.
 Everything is written into one output folder, staged and renamed into place
 (:func:`landcheck.outputs.writers.staged_folder`): ``prescreen.html`` (one A4 page,
 self-contained), ``map.png``, ``histogram.png``, ``prescreen.json`` and
@@ -31,7 +32,6 @@ import html
 import logging
 import math
 import os
-import tempfile
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -42,7 +42,7 @@ import numpy as np
 from landcheck.about import CAUTION, __version__
 from landcheck.errors import InputDataError, LandcheckWarning
 from landcheck.geo.grid import GridSpec, Window
-from landcheck.inputs.dem import DemSource, ZUnit, open_dem
+from landcheck.inputs.dem import ZUnit, open_dem
 from landcheck.inputs.rulebook import ClassRule, LandContext, Rulebook, ZoneKind, load_rules
 from landcheck.zones.prepare import pick_variant
 
@@ -400,33 +400,6 @@ def _needs_whole_dem(rules: Rulebook) -> bool:
     return any(z.kind in _RASTER_ZONE_KINDS or "derive" in z.params for z in rules.zones)
 
 
-def _write_crop(dem: DemSource, win: Window, path: Path) -> None:
-    """Elevations (metres, NaN for nodata) of ``win`` as a GeoTIFF on the same grid (scratch file)."""
-    import rasterio
-
-    z = dem.read(win)
-    with rasterio.open(
-        path,
-        "w",
-        driver="GTiff",
-        width=win.width,
-        height=win.height,
-        count=1,
-        dtype="float64",
-        crs=dem.grid.crs_wkt,
-        transform=dem.grid.window_transform(win),
-        nodata=np.nan,
-    ) as ds:
-        ds.write(z, 1)
-
-
-def _read_window(path: Path, win: Window) -> np.ndarray:
-    import rasterio
-
-    with rasterio.open(path) as ds:
-        return ds.read(1, window=win.to_rasterio())
-
-
 # --------------------------------------------------------------------------- result
 
 
@@ -533,7 +506,10 @@ def prescreen(
     """
     import shapely
 
-    from landcheck.core.audit import audit, sha256_file
+    from landcheck.core.run import run_audit
+    from landcheck.core.settings import AuditSettings
+    from landcheck.hashing import sha256_file
+    from landcheck.inputs.dem_crop import crop_dem
     from landcheck.outputs.writers import check_output_path, staged_folder, write_gpkg, write_json
 
     started = _dt.datetime.now(_dt.timezone.utc)
@@ -589,117 +565,103 @@ def prescreen(
 
     cell = abs(g.transform.a)
     view = _closeup_bounds(geom, cell)
-    with tempfile.TemporaryDirectory(prefix="landcheck-prescreen-") as tmp_text:
-        tmp = Path(tmp_text)
-        if _needs_whole_dem(rules):
-            audit_dem_path, audit_kw = Path(dem_path), {"dem_band": dem_band, "dem_crs": dem_crs, "z_unit": z_unit}
-            adem = dem
-            step("the rulebook has zones that need the whole DEM; the audit runs on all of it")
-        else:
-            crop = _cells_of_bounds(g, view, margin=2)
-            audit_dem_path, audit_kw = tmp / "dem_window.tif", {"z_unit": ZUnit.METRE}
-            _write_crop(dem, crop, audit_dem_path)
-            adem = open_dem(audit_dem_path, check_data=False)
-            step(f"DEM cropped to {crop.width}x{crop.height} cells around the parcel")
-        ag = adem.grid
-        import geopandas as gpd
+    if _needs_whole_dem(rules):
+        adem = dem
+        step("the rulebook has zones that need the whole DEM; the audit runs on all of it")
+    else:
+        crop = _cells_of_bounds(g, view, margin=2)
+        adem = crop_dem(dem, crop)  # a view on the same file: no scratch raster
+        step(f"DEM cropped to {crop.width}x{crop.height} cells around the parcel")
+    ag = adem.grid
+    import geopandas as gpd
 
-        cols = {rules.class_field: [cls.values[0]]}
-        if rules.id_field is not None:
-            cols[rules.id_field] = [parcel.parcel_id]
-        parcel_file = tmp / "parcel.gpkg"
-        gpd.GeoDataFrame(cols, geometry=[geom], crs=ag.crs_wkt).to_file(parcel_file, layer="parcel", driver="GPKG")
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", LandcheckWarning)
-            res = audit(
-                audit_dem_path,
-                parcel_file,
-                rulebook_path,
-                tmp / "audit",
-                method=method,
-                make_report=False,
-                show_progress=False,
-                workers=1,
-                on_step=lambda s: step(f"audit: {s}"),
-                **audit_kw,
-            )
-        notes += [w.replace(str(tmp), "<temporary folder>") for w in res.warnings]
-        row = res.parcels.iloc[0].to_dict()
-        figures, arrays = _figures(res, row, rules, cls, geom, ag, connectivity)
-        step(
-            f"buildable {figures['buildable']['area_m2']:,.0f} m², largest patch "
-            f"{figures['largest_patch']['area_m2']:,.0f} m²"
+    cols = {rules.class_field: [cls.values[0]]}
+    if rules.id_field is not None:
+        cols[rules.id_field] = [parcel.parcel_id]
+    parcel_frame = gpd.GeoDataFrame(cols, geometry=[geom], crs=ag.crs_wkt)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", LandcheckWarning)
+        res = run_audit(
+            adem,
+            parcel_frame,
+            rules,
+            AuditSettings(method=method, workers=1, show_progress=False),
+            on_step=lambda s: step(f"audit: {s}"),
         )
-        view_win = _cells_of_bounds(ag, view)
-        slope_view = _read_window(res.out_dir / "slope_pct.tif", view_win).astype(np.float64)
-        elev_view = adem.read(view_win)
-        zone_layers = _zone_layers(res.out_dir)
+    notes += res.warnings
+    row = res.table.iloc[0].to_dict()
+    figures, arrays = _figures(res, row, rules, cls, geom, ag, connectivity)
+    step(
+        f"buildable {figures['buildable']['area_m2']:,.0f} m², largest patch {figures['largest_patch']['area_m2']:,.0f} m²"
+    )
+    view_win = _cells_of_bounds(ag, view)
+    slope_view = res.slope_pct(view_win).astype(np.float64)
+    elev_view = adem.read(view_win)
+    zone_layers = _zone_layers(res)
 
-        figures.update(
-            {
-                "tool": "landcheck",
-                "version": __version__,
-                "caution": CAUTION,
-                "inputs": [
-                    {"role": "dem", "path": str(Path(dem_path).resolve()), "sha256": sha256_file(dem_path)},
-                    {"role": "rulebook", "path": str(Path(rulebook_path).resolve()), "sha256": rules.sha256},
+    figures.update(
+        {
+            "tool": "landcheck",
+            "version": __version__,
+            "caution": CAUTION,
+            "inputs": [
+                {"role": "dem", "path": str(Path(dem_path).resolve()), "sha256": sha256_file(dem_path)},
+                {"role": "rulebook", "path": str(Path(rulebook_path).resolve()), "sha256": rules.sha256},
+            ]
+            + (
+                [
+                    {
+                        "role": "parcels",
+                        "path": str(Path(parcels_path).resolve()),
+                        "sha256": sha256_file(parcels_path),
+                    }
                 ]
-                + (
-                    [
-                        {
-                            "role": "parcels",
-                            "path": str(Path(parcels_path).resolve()),
-                            "sha256": sha256_file(parcels_path),
-                        }
-                    ]
-                    if parcels_path is not None
-                    else []
-                ),
-                "parameters": {
-                    "slope_method": res.summary["manifest"]["parameters"]["slope_method"],
-                    "connectivity": connectivity,
-                    "z_unit": z_unit.value,
-                    "dem_band": dem.band,
-                    "dem_crs_override": dem_crs,
-                    "parcels_layer": parcels_layer,
-                    "parcels_crs": parcels_crs,
-                    "polygon_crs": polygon_crs,
-                    "dem_cropped": not _needs_whole_dem(rules),
-                },
-                "started_utc": started.isoformat(timespec="seconds"),
-                "crs_wkt": g.crs_wkt,
-                "warnings": notes,
-            }
-        )
-        figures["parcel"].update(
-            {
-                "id": parcel.parcel_id,
-                "source": parcel.source,
-                "class_source": class_source,
-                "class_value_in_file": parcel.class_value,
-            }
-        )
-        for n in notes:
-            warnings.warn(n, LandcheckWarning, stacklevel=2)
+                if parcels_path is not None
+                else []
+            ),
+            "parameters": {
+                "slope_method": res.summary["manifest"]["parameters"]["slope_method"],
+                "connectivity": connectivity,
+                "z_unit": z_unit.value,
+                "dem_band": dem.band,
+                "dem_crs_override": dem_crs,
+                "parcels_layer": parcels_layer,
+                "parcels_crs": parcels_crs,
+                "polygon_crs": polygon_crs,
+                "dem_cropped": not _needs_whole_dem(rules),
+            },
+            "started_utc": started.isoformat(timespec="seconds"),
+            "crs_wkt": g.crs_wkt,
+            "warnings": notes,
+        }
+    )
+    figures["parcel"].update(
+        {
+            "id": parcel.parcel_id,
+            "source": parcel.source,
+            "class_source": class_source,
+            "class_value_in_file": parcel.class_value,
+        }
+    )
+    for n in notes:
+        warnings.warn(n, LandcheckWarning, stacklevel=2)
 
-        with staged_folder(out, overwrite=overwrite) as stage:
-            patch_gdf = gpd.GeoDataFrame(
-                {
-                    "parcel_id": [parcel.parcel_id],
-                    "area_m2": [figures["largest_patch"]["area_m2"]],
-                    "cells": [figures["largest_patch"]["cells"]],
-                    "connectivity": [connectivity],
-                },
-                geometry=[arrays["patch_geom"]],
-                crs=g.crs_wkt,
-            )
-            write_gpkg(stage / "largest_patch.gpkg", patch_gdf, layer="largest_patch")
-            map_png = _draw_map(
-                stage, dpi, figures, geom, arrays, ag, view_win, slope_view, elev_view, zone_layers, res.out_dir
-            )
-            hist_png = _draw_histogram(stage, dpi, figures)
-            write_json(stage / "prescreen.json", figures)
-            _write_html(stage / "prescreen.html", figures, map_png, hist_png)
+    with staged_folder(out, overwrite=overwrite) as stage:
+        patch_gdf = gpd.GeoDataFrame(
+            {
+                "parcel_id": [parcel.parcel_id],
+                "area_m2": [figures["largest_patch"]["area_m2"]],
+                "cells": [figures["largest_patch"]["cells"]],
+                "connectivity": [connectivity],
+            },
+            geometry=[arrays["patch_geom"]],
+            crs=g.crs_wkt,
+        )
+        write_gpkg(stage / "largest_patch.gpkg", patch_gdf, layer="largest_patch")
+        map_png = _draw_map(stage, dpi, figures, geom, arrays, ag, view_win, slope_view, elev_view, zone_layers, None)
+        hist_png = _draw_histogram(stage, dpi, figures)
+        write_json(stage / "prescreen.json", figures)
+        _write_html(stage / "prescreen.html", figures, map_png, hist_png)
     step(f"outputs in {out}")
     return PrescreenResult(out, figures, notes)
 
@@ -707,13 +669,12 @@ def prescreen(
 # --------------------------------------------------------------------------- figures
 
 
-def _forbidden_vector_union(audit_dir: Path, rules: Rulebook, cls: ClassRule):
+def _forbidden_vector_union(zone_layers: dict, rules: Rulebook, cls: ClassRule):
     """Union of the vector zones (easement strips, flood polygons) the class forbids, as the audit built them.
 
-    Read from the audit's ``zones/zone_<name>.gpkg``; for per-context easement
+    Taken from the audit's zone layers (what ``zones/zone_<name>.gpkg`` holds); for per-context easement
     widths the strip is chosen by :func:`landcheck.zones.prepare.pick_variant`, as in the audit.
     """
-    import geopandas as gpd
     import shapely
 
     parts = []
@@ -721,8 +682,7 @@ def _forbidden_vector_union(audit_dir: Path, rules: Rulebook, cls: ClassRule):
         z = rules.zone_by_name(zname)
         if z.kind in _RASTER_ZONE_KINDS:
             continue
-        p = audit_dir / "zones" / f"zone_{zname}.gpkg"
-        gdf = gpd.read_file(p)
+        gdf = zone_layers[f"zone_{zname}"]
         if "context" in gdf.columns:
             variants = {None if c == "all" else LandContext(c): g for c, g in zip(gdf["context"], gdf.geometry.values)}
             geoms = [pick_variant(variants, cls.context)]
@@ -778,13 +738,13 @@ def _figures(res, row: dict, rules: Rulebook, cls: ClassRule, geom, grid: GridSp
     from landcheck.inputs.layers import ground_areas
 
     win = _cells_of_bounds(grid, geom.bounds)
-    slope = _read_window(res.out_dir / "slope_pct.tif", win).astype(np.float64)
-    bits = _read_window(res.out_dir / "conflict.tif", win)
+    slope = res.slope_pct(win).astype(np.float64)
+    bits = res.conflict_bits(win)
     _, factor = ground_areas(gpd.GeoDataFrame(geometry=[geom], crs=grid.crs_wkt), grid.crs_wkt)
     rows = np.arange(win.row_off, win.row_off + win.height)
     cell_m2 = (grid.cell_area_m2(rows) * float(factor[0]))[:, None] * np.ones((1, win.width))
     frac = _coverage_grid(geom, grid, win)
-    forbidden_vec = _forbidden_vector_union(res.out_dir, rules, cls)
+    forbidden_vec = _forbidden_vector_union(dict(_zone_layers(res)), rules, cls)
     free_geom = _polygonal(geom.difference(forbidden_vec)) if not forbidden_vec.is_empty else geom
     free = _coverage_grid(free_geom, grid, win) if not forbidden_vec.is_empty else frac
     valid = np.isfinite(slope)
@@ -893,11 +853,10 @@ def _figures(res, row: dict, rules: Rulebook, cls: ClassRule, geom, grid: GridSp
     return figures, arrays
 
 
-def _zone_layers(audit_dir: Path) -> list[tuple[str, object]]:
-    import geopandas as gpd
-
-    zdir = audit_dir / "zones"
-    return [(p.stem, gpd.read_file(p)) for p in sorted(zdir.glob("*.gpkg"))] if zdir.is_dir() else []
+def _zone_layers(res) -> list[tuple[str, object]]:
+    """The audit's zone layers (name, GeoDataFrame), sorted by name as ``zones/*.gpkg`` are listed."""
+    zones = res.zones
+    return sorted(zones.layers.items()) if zones is not None and zones.layers else []
 
 
 # --------------------------------------------------------------------------- drawing
@@ -914,7 +873,7 @@ def _draw_map(
     slope_view: np.ndarray,
     elev_view: np.ndarray,
     zone_layers,
-    audit_dir: Path,
+    audit_dir: Path | None = None,
 ) -> Path:
     """``map.png``: slope classes over relief, parcel, non-buildable parts, forbidden zones, largest patch."""
     from matplotlib.lines import Line2D
