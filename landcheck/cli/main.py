@@ -3,19 +3,18 @@
 from __future__ import annotations
 
 import atexit
-import functools
 import gc
 import logging
 import sys
-import traceback
 
 import click
 
 from landcheck.about import CAUTION, __version__
-from landcheck.errors import LandcheckError
 from landcheck.versions import show_versions
 
-from .options import CAUTION_HELP, EXIT_INTERNAL
+from . import audit_cmd, demo_cmd, prescreen_cmd, report_cmd, slope_cmd
+from .errors import handle_errors
+from .options import CAUTION_HELP
 
 logger = logging.getLogger("landcheck")
 
@@ -26,38 +25,6 @@ def _versions_callback(ctx, _param, value):
     for k, v in show_versions().items():
         click.echo(f"{k}: {v}")
     ctx.exit(0)
-
-
-def handle_errors(fn):
-    """Map library errors to exit codes; tracebacks only with -vv."""
-
-    @functools.wraps(fn)
-    def wrapper(*args, **kwargs):
-        ctx = click.get_current_context()
-        try:
-            return fn(*args, **kwargs)
-        except LandcheckError as exc:
-            click.echo(f"landcheck: error: {exc}", err=True)
-            ctx.exit(exc.exit_code)
-        except (click.exceptions.Exit, click.ClickException, click.Abort):
-            raise
-        except KeyboardInterrupt:
-            click.echo("landcheck: interrupted; no partial outputs were kept.", err=True)
-            ctx.exit(130)
-        except Exception as exc:  # internal error: say so plainly
-            verbosity = (ctx.find_root().obj or {}).get("verbosity", 0)
-            click.echo(f"landcheck: internal error: {type(exc).__name__}: {exc}", err=True)
-            if verbosity >= 2:
-                traceback.print_exc(file=sys.stderr)
-            else:
-                click.echo(
-                    "Run again with -vv for a traceback and include it in a bug report "
-                    "with the output of `landcheck --show-versions`.",
-                    err=True,
-                )
-            ctx.exit(EXIT_INTERNAL)
-
-    return wrapper
 
 
 @click.group(
@@ -102,20 +69,12 @@ def cli(ctx, verbose: int, quiet: bool):
     logging.captureWarnings(True)
 
 
-def _register():
-    from . import slope_cmd
-
-    cli.add_command(slope_cmd.slope)
-    for mod_name in ("audit_cmd", "demo_cmd", "report_cmd", "prescreen_cmd", "rulebook_cmd"):
-        try:
-            mod = __import__(f"landcheck.cli.{mod_name}", fromlist=["command"])
-        except ModuleNotFoundError as exc:
-            if exc.name != f"landcheck.cli.{mod_name}":
-                raise
-            continue
-        cli.add_command(mod.command)
-
-
-_register()
+# Command modules import nothing from this module (shared pieces live in .options and .errors), so each
+# imports on its own and a missing one fails loudly here.
+cli.add_command(slope_cmd.slope)
+cli.add_command(audit_cmd.command)
+cli.add_command(demo_cmd.command)
+cli.add_command(report_cmd.command)
+cli.add_command(prescreen_cmd.command)
 
 __all__ = ["cli", "CAUTION", "handle_errors"]
