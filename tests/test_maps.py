@@ -79,19 +79,18 @@ def test_overview_files_size_and_legend(audit, tmp_path):
     assert relief and "hillshade" in relief[0]
 
 
-def test_overview_custom_breaks_other_dpi_and_missing_dem(audit, tmp_path):
-    audit.dem_path.rename(audit.dem_path.with_suffix(".moved"))
-    try:
-        files = maps.overview_map(
-            audit.out_dir,
-            dest_dir=tmp_path,
-            dpi=300,
-            figsize_in=(5.0, 4.0),
-            formats=("png",),
-            slope_breaks_pct=[0, 10, 25, math.inf],
-        )
-    finally:
-        audit.dem_path.with_suffix(".moved").rename(audit.dem_path)
+def test_overview_custom_breaks_other_dpi_and_missing_dem(tmp_path):
+    # its own audit folder whose DEM is gone (the module-scoped fixture stays untouched)
+    own = build_audit_folder(tmp_path / "own")
+    own.dem_path.unlink()
+    files = maps.overview_map(
+        own.out_dir,
+        dest_dir=tmp_path,
+        dpi=300,
+        figsize_in=(5.0, 4.0),
+        formats=("png",),
+        slope_breaks_pct=[0, 10, 25, math.inf],
+    )
     assert list(files) == [tmp_path / "overview.png"]
     # Source: PNG spec IHDR; 5 x 4 in at 300 dpi
     assert png_size(tmp_path / "overview.png") == (1500, 1200)
