@@ -85,7 +85,7 @@ def test_areas_match_geodesic_area_projected(tmp_path):
 
 
 def test_areas_on_geographic_raster(tmp_path):
-    # Reference: pyproj.Geod polygon area; cell areas from the ellipsoid band formula (REFERENCES.md 5.2).
+    # Reference: pyproj.Geod polygon area; cell areas from the ellipsoid band formula (docs/references.md §12).
     import pyproj
     from _support import write_raster
     from rasterio.transform import from_origin
@@ -131,7 +131,7 @@ def test_verdicts_tolerance_min_breach_review(tmp_path):
 
 
 def test_parcel_order_and_tiles_do_not_change_results(tmp_path):
-    # Invariant (STYLE.md 6.4): shuffling parcel order and changing tile size / workers changes no per-parcel result.
+    # Invariant (common practice): shuffling parcel order and changing tile size / workers changes no per-parcel result.
     geoms = _parcels()
     a = _run(tmp_path, geoms, ["R", "R", "F", "R"], name="a", tile_cells=1024, workers=1)
     order = [2, 0, 3, 1]
@@ -150,7 +150,7 @@ def test_parcel_order_and_tiles_do_not_change_results(tmp_path):
 
 
 def test_raising_limit_never_adds_conflicts(tmp_path):
-    # Invariant (STYLE.md 6.4): a higher slope limit never adds conflicts or over-limit area.
+    # Invariant (common practice): a higher slope limit never adds conflicts or over-limit area.
     rng = np.random.default_rng(5)
     geoms = [
         affinity.rotate(shapely.box(X0 + x, Y0 - y, X0 + x + w, Y0 - y + 60), a, origin="centroid")

@@ -66,7 +66,7 @@ def test_overview_files_size_and_legend(audit, tmp_path):
         if e.group == "verdict":
             n = sum(r["verdict"] == e.key for r in csv_rows(audit.out_dir / "parcels.csv"))
             assert e.label.endswith(f"({n})")
-    # Source: REFERENCES.md 2.1, land-use planning slope classes 0-3-8-18-30-50-over
+    # Source: docs/references.md §7, land-use planning slope classes 0-3-8-18-30-50-over
     slope_keys = [e.key for e in files.legend_entries if e.group == "slope_class"]
     assert slope_keys == ["0-3", "3-8", "8-18", "18-30", "30-50", "50-inf"]
     # the fixture writes one polygon zone and one water line under zones/
@@ -168,7 +168,7 @@ def test_slope_colours_darken_monotonically(n):
 
 
 def test_classify_slope_boundaries():
-    # Source: REFERENCES.md 2.2 test boundary: "18 % or over" means exactly 18.0 counts
+    # Source: docs/references.md §8 test boundary: "18 % or over" means exactly 18.0 counts
     # as at/over, so 18.0 belongs to the 18-30 class and 17.999 to 8-18.
     s = np.array([0.0, 2.999, 3.0, 17.999, 18.0, 49.9, 50.0, 250.0, np.nan])
     assert maps.classify_slope(s).tolist() == [0, 0, 1, 2, 3, 4, 5, 5, -1]
@@ -222,6 +222,6 @@ def test_true_north_matches_meridian_convergence():
 
 
 def test_missing_folder_is_input_error(tmp_path):
-    # error contract: STYLE.md section 3 (InputDataError naming the missing file)
+    # error contract (common practice: InputDataError naming the missing file)
     with pytest.raises(InputDataError, match="summary.json"):
         maps.overview_map(tmp_path)
