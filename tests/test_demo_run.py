@@ -1,14 +1,13 @@
 """The audit on the shipped demo area, checked against independent computations.
 
-Reference 1: the demo generator's own planted-conflict summary (scripts/make_demo_area.py, `summarise`),
-which uses cell-centre membership, vector strips measured from the bank and a separate Horn slope —
+Reference 1: the demo oracle's planted-conflict counts (tests/demo_oracle.py, apart from the generator),
+which use cell-centre membership, vector strips measured from the bank and their own Horn slope —
 an independent, approximate count of the parcels that breach each rule.
 Reference 2: sea connectivity recomputed here with scipy.ndimage.label (Poulter & Halpin 2008 rule).
 """
 
 from __future__ import annotations
 
-import importlib.util
 from pathlib import Path
 
 import numpy as np
@@ -27,15 +26,9 @@ def demo(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def generator_summary():
-    spec = importlib.util.spec_from_file_location("make_demo_area", DEMO.parent / "scripts" / "make_demo_area.py")
-    mod = importlib.util.module_from_spec(spec)
-    import sys
+    from demo_oracle import demo_counts
 
-    sys.modules.setdefault("make_demo_area", mod)  # dataclasses need the module registered
-    spec.loader.exec_module(sys.modules["make_demo_area"])
-    mod = sys.modules["make_demo_area"]
-    terrain, layers, parcels = mod.build(7, 1000)
-    return mod.summarise(terrain, layers, parcels)
+    return demo_counts(7, 1000)
 
 
 def test_counts_per_rule_agree_with_generator(demo, generator_summary):
