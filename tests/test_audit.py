@@ -12,6 +12,7 @@ from _support import ramp_dem, write_parcels, write_rules
 from shapely import affinity
 
 from landcheck.core.audit import audit
+from landcheck.errors import LandcheckWarning
 
 X0, Y0 = 400000.0, 1600000.0
 # slope(x) = 0.04 x percent with x the distance east of the DEM's west edge (see ramp_dem): 18 % at x = 450 m,
@@ -192,7 +193,8 @@ def test_outputs_written_and_consistent(tmp_path):
     import rasterio
 
     geoms = _parcels()
-    res = _run(tmp_path, geoms, ["R", "R", "F", "X"])
+    with pytest.warns(LandcheckWarning, match=r"1 parcels have class values with no rule \('X'\)"):
+        res = _run(tmp_path, geoms, ["R", "R", "F", "X"])
     out = res.out_dir
     csv = pd.read_csv(out / "parcels.csv")
     gpkg = gpd.read_file(out / "parcels.gpkg", layer="parcels")

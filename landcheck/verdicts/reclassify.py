@@ -238,7 +238,7 @@ def draft_reclassification(
             f'add designated_class = "<class>" to [classes.{missing[0]}] (the class proposed for the part that '
             "breaks its rule)" + (f"; also missing for: {', '.join(missing[1:])}" if len(missing) > 1 else "") + "."
         )
-    piece_of = {}
+    piece_of: dict[int, list] = {}
     for gi in np.flatnonzero(plan.geom_role == ROLE_FORBIDDEN_PIECE):
         piece_of.setdefault(int(plan.geom_parcel[gi]), []).append(geoms[gi])
     ids = parcels["parcel_id"].to_numpy() if "parcel_id" in parcels.columns else np.arange(1, n + 1)
