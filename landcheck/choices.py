@@ -3,8 +3,11 @@
 from __future__ import annotations
 
 import enum
+from typing import TypeVar
 
 __all__ = ["UserChoice"]
+
+_C = TypeVar("_C", bound="UserChoice")
 
 
 class UserChoice(str, enum.Enum):
@@ -19,7 +22,7 @@ class UserChoice(str, enum.Enum):
         return "value"
 
     @classmethod
-    def from_user(cls, value):
+    def from_user(cls: type[_C], value: object) -> _C:
         if isinstance(value, cls):
             return value
         key = str(value).strip().lower()

@@ -10,7 +10,7 @@ def show_versions() -> dict:
     import importlib.metadata as md
     import platform
 
-    out = {"landcheck": __version__, "python": platform.python_version()}
+    out: dict[str, str | None] = {"landcheck": __version__, "python": platform.python_version()}
     for pkg in (
         "numpy",
         "rasterio",

@@ -63,14 +63,13 @@ placed before it):
 Planted conflicts (against the rulebook written alongside): development lots
 above the slope limit (subdivision, small steep lots, hill farms, lodges),
 lots reaching into the shore and river easement strips, housing kept inside
-the high flood-hazard strip, and lots on low ground open to the sea.  Run with
-``--summary`` for approximate counts per kind.
+the high flood-hazard strip, and lots on low ground open to the sea.  The tests
+count them independently (tests/demo_oracle.py).
 """
 
 from __future__ import annotations
 
 import argparse
-import json
 import math
 import os
 import sys
@@ -393,8 +392,7 @@ def make_terrain(seed: int, size: int) -> Terrain:
 def horn_slope_pct(elev_m: np.ndarray, cell_m: float) -> np.ndarray:
     """Slope in percent by Horn's 3x3 method; NaN on the outer ring and next to NaN.
 
-    Only used here to place lots and to print the planted-conflict summary; the
-    package computes its own slope.
+    Only used here to place lots; the package computes its own slope.
     """
     z = np.pad(elev_m.astype(np.float64), 1, constant_values=np.nan)
     z1, z2, z3 = z[:-2, :-2], z[:-2, 1:-1], z[:-2, 2:]
@@ -1158,145 +1156,6 @@ seed = 7
 """
 
 
-def _load_rulebook() -> dict:
-    try:
-        import tomllib
-    except ModuleNotFoundError:  # Python 3.10
-        import tomli as tomllib
-    return tomllib.loads(RULEBOOK_TOML)
-
-
-# --------------------------------------------------------------------------
-# summary of planted conflicts (approximate: cell centres, vector strips)
-# --------------------------------------------------------------------------
-
-
-def summarise(terrain: Terrain, layers: Layers, parcels: list[Parcel]) -> dict:
-    """Approximate per-kind conflict counts, to document what the demo contains.
-
-    Slope and raster zones use cell-centre membership; easements use vector
-    strips measured from the bank (centreline buffered by half the width).
-    ``flood_hand`` is not estimated here.
-    """
-    rules = _load_rulebook()
-    value_class = {v: name for name, c in rules["classes"].items() for v in c["values"]}
-    cell = terrain.cell_m
-    tr = _local_transform(cell)
-    elev = np.where(terrain.void, np.nan, terrain.elev_m.astype(np.float64))
-    slope = horn_slope_pct(elev, cell)
-    geoms = [shapely.make_valid(p.geom) for p in parcels]
-    ids = features.rasterize(
-        [(g, k + 1) for k, g in enumerate(geoms)], out_shape=elev.shape, transform=tr, dtype=np.int32
-    )
-    sea = terrain.elev_m < 0
-    with np.errstate(invalid="ignore"):
-        low = (elev <= 1.0) & ~terrain.void
-    connected = _open_to_sea(low, sea, cell) & ~sea
-    enclosed_low = low & ~connected & ~sea
-    flood3 = unary_union([g for g, lvl in layers.flood if lvl >= 3])
-    n = len(parcels) + 1
-    flat_ids = ids.ravel()
-
-    def per_parcel(mask):
-        return np.bincount(flat_ids, weights=mask.ravel().astype(np.float64), minlength=n)
-
-    frame = box(0.0, 0.0, EXTENT_M, EXTENT_M)
-    valid = per_parcel(np.isfinite(slope))
-    n_connected = per_parcel(connected)
-    n_enclosed = per_parcel(enclosed_low)
-    over_by_limit: dict = {}
-    hits_by_parcel = []
-    kinds = {"slope": 0, "shore_easement": 0, "river_easement": 0, "flood_high": 0, "sea_rise_1m": 0}
-    kinds_large = dict.fromkeys(kinds, 0)  # zone breaches of at least min_breach_m2 only
-    strips: dict = {}
-
-    def strip_for(zname: str, width_m: float):
-        if (zname, width_m) not in strips:
-            if zname == "shore_easement":
-                strips[zname, width_m] = layers.shoreline.buffer(width_m)
-            else:
-                strips[zname, width_m] = unary_union(
-                    [
-                        layers.river_upper.buffer(WIDTH_UPPER_M / 2 + width_m),
-                        layers.river_lower.buffer(WIDTH_LOWER_M / 2 + width_m),
-                    ]
-                )
-        return strips[zname, width_m]
-
-    per_class_conflict = {}
-    enclosed_only = 0
-    partly_outside = 0
-    cell_area = cell * cell
-    for k, (p, g) in enumerate(zip(parcels, geoms), start=1):
-        cls = rules["classes"][value_class[p.zoning]]
-        if not frame.contains(g):
-            partly_outside += 1
-        hit = set()
-        breach_m2 = {}
-        if cls.get("development") and "max_slope_pct" in cls:
-            limit = cls["max_slope_pct"]
-            if limit not in over_by_limit:
-                with np.errstate(invalid="ignore"):
-                    over_by_limit[limit] = per_parcel(slope >= limit)
-            over = over_by_limit[limit][k]
-            if valid[k] and over / valid[k] * 100 > cls["tolerance_pct"] and over * cell_area >= cls["min_breach_m2"]:
-                hit.add("slope")
-                breach_m2["slope"] = over * cell_area
-        forb = set(cls.get("forbidden_zones", []))
-        ctx = cls.get("context", "urban")
-        for zname in ("shore_easement", "river_easement"):
-            if zname not in forb:
-                continue
-            breach_m2[zname] = g.intersection(strip_for(zname, rules["zones"][zname]["width_m"][ctx])).area
-            if breach_m2[zname] > 1.0:
-                hit.add(zname)
-        if "flood_high" in forb:
-            breach_m2["flood_high"] = g.intersection(flood3).area
-            if breach_m2["flood_high"] > 1.0:
-                hit.add("flood_high")
-        if "sea_rise_1m" in forb and n_connected[k] > 0:
-            hit.add("sea_rise_1m")
-            breach_m2["sea_rise_1m"] = n_connected[k] * cell_area
-        for h in hit:
-            if breach_m2[h] >= cls.get("min_breach_m2", 0.0):
-                kinds_large[h] += 1
-        if n_enclosed[k] > 0 and n_connected[k] == 0:
-            enclosed_only += 1
-        hits_by_parcel.append(sorted(hit))
-        for h in hit:
-            kinds[h] += 1
-        if hit:
-            per_class_conflict[value_class[p.zoning]] = per_class_conflict.get(value_class[p.zoning], 0) + 1
-    zoning_counts = {}
-    for p in parcels:
-        zoning_counts[p.zoning] = zoning_counts.get(p.zoning, 0) + 1
-    tag_counts = {}
-    for p in parcels:
-        for t in p.tags:
-            tag_counts[t] = tag_counts.get(t, 0) + 1
-    return {
-        "parcels": len(parcels),
-        "multipolygons": sum(isinstance(g, MultiPolygon) for g in (p.geom for p in parcels)),
-        "invalid_rings": sum(not p.geom.is_valid for p in parcels),
-        "small_lots_under_0_5_ha": sum(g.area < 5000.0 for g in geoms),
-        "partly_outside_dem": partly_outside,
-        "zoning": dict(sorted(zoning_counts.items())),
-        "parcels_in_conflict_by_kind": kinds,
-        "parcels_in_conflict_by_kind_min_breach": kinds_large,
-        "parcels_in_conflict_by_class": dict(sorted(per_class_conflict.items())),
-        "parcels_with_conflicts": int(sum(per_class_conflict.values())),
-        "parcels_low_but_enclosed": enclosed_only,
-        "design_tags": dict(sorted(tag_counts.items())),
-        "elev_min_m": float(np.nanmin(elev)),
-        "elev_max_m": float(np.nanmax(elev)),
-        "connected_low_land_m2": float(np.count_nonzero(connected) * cell_area),
-        "enclosed_low_land_m2": float(np.count_nonzero(enclosed_low) * cell_area),
-        "land_share_slope_ge_18": float(np.nanmean(slope[~sea] >= 18.0)),
-        "land_share_slope_ge_40": float(np.nanmean(slope[~sea] >= 40.0)),
-        "_hits": hits_by_parcel,
-    }
-
-
 # --------------------------------------------------------------------------
 # writers
 # --------------------------------------------------------------------------
@@ -1410,19 +1269,12 @@ def main(argv: list[str] | None = None) -> int:
         default=1000,
         help="DEM cells per side over the fixed 10 km square (default: 1000 = 10 m cells)",
     )
-    parser.add_argument(
-        "--summary", action="store_true", help="also print an approximate count of the planted conflicts as JSON"
-    )
     args = parser.parse_args(argv)
     if args.size < 100:
         parser.error("--size must be at least 100 cells")
     terrain, layers, parcels = build(args.seed, args.size)
     write_outputs(args.out, terrain, layers, parcels, args.seed)
     print(f"wrote {args.out} ({len(parcels)} parcels, DEM {args.size} x {args.size} cells)", file=sys.stderr)
-    if args.summary:
-        summary = summarise(terrain, layers, parcels)
-        summary.pop("_hits")
-        print(json.dumps(summary, indent=2))
     return 0
 
 

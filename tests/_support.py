@@ -96,7 +96,7 @@ def write_rules(path, *, limit=18.0, tol=5.0, min_breach=0.0, band=0.0, text=Non
 def ramp_dem(path, *, n=120, h=10.0, gradient_per_m=0.0004, origin=(400000.0, 1600000.0), crs="EPSG:32651"):
     """DEM whose slope rises linearly eastwards: z = g/2 * x^2 gives slope 100*g*x percent at distance x.
 
-    Every 3x3 kernel is exact on a quadratic at the centre cell (REFERENCES.md 1.2), so the slope of the
+    Every 3x3 kernel is exact on a quadratic at the centre cell (docs/references.md §1), so the slope of the
     cell whose centre is at x is exactly 100*g*x percent.
     """
     x = (np.arange(n) + 0.5) * h

@@ -26,6 +26,8 @@ import rasterio.shutil
 from affine import Affine
 from shapely.geometry import LineString, Polygon, box
 
+from landcheck.about import __version__
+
 #: projected CRS of the fixture (UTM zone 51 north, metres)
 FIXTURE_EPSG = 32651
 CELL_M = 10.0
@@ -322,7 +324,7 @@ def build_audit_folder(root: Path, *, with_zones: bool = True) -> AuditFixture:
     total_cf = sum(r["conflict_m2"] for r in rows_out)
     summary = {
         "tool": "landcheck",
-        "version": "0.1.0",
+        "version": __version__,
         "caution": "Screening aid only - not a survey or legal determination.",
         "totals": {
             "parcels": len(rows_out),
@@ -368,7 +370,7 @@ def build_audit_folder(root: Path, *, with_zones: bool = True) -> AuditFixture:
             },
             "crs_wkt": rasterio.crs.CRS.from_epsg(FIXTURE_EPSG).to_wkt(),
             "software": {
-                "landcheck": "0.1.0",
+                "landcheck": __version__,
                 "numpy": np.__version__,
                 "rasterio": rasterio.__version__,
                 "geopandas": gpd.__version__,

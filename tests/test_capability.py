@@ -32,7 +32,7 @@ from landcheck.zones.prepare import ZoneColumn, ZoneSet
 
 X0, Y0 = 400000.0, 1600000.0
 H = 10.0
-# Source: land-use planning slope classes 0-3-8-18-30-50 % (REFERENCES.md 2.1), written out here
+# Source: land-use planning slope classes 0-3-8-18-30-50 % (docs/references.md §7), written out here
 # independently of landcheck.terrain.slope_classes; a class holds slopes from its lower edge ("or over").
 PLANNING_LOWER_EDGES_PCT = [3.0, 8.0, 18.0, 30.0, 50.0]
 

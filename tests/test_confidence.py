@@ -38,7 +38,7 @@ from landcheck.verdicts.evaluate import evaluate_parcels, parcel_rules
 
 X0, Y0 = 400000.0, 1600000.0
 H = 10.0
-#: Horn's false-gradient component std for iid error, times h / sigma: sqrt(3)/4 (REFERENCES.md 1.4(4))
+#: Horn's false-gradient component std for iid error, times h / sigma: sqrt(3)/4 (docs/references.md §3)
 HORN_STD_FACTOR = math.sqrt(3.0) / 4.0
 
 
@@ -105,10 +105,10 @@ def test_flat_dem_realizations_reproduce_horn_false_gradient(tmp_path):
     parcels, _, _ = _run(s, model, 10, seed=20240601)
 
     sigma_p_pct = 100.0 * HORN_STD_FACTOR * sigma / H
-    # Source: REFERENCES.md 1.4(4) [D]: mean false gradient (Rayleigh) = 0.5427 sigma / h for Horn, iid noise.
+    # Source: docs/references.md §3 [D]: mean false gradient (Rayleigh) = 0.5427 sigma / h for Horn, iid noise.
     # 14 400 cells x 10 realizations; SE of the mean slope ~0.3 % (neighbouring cells share noise); tol 2 %.
     assert parcels["slope_mean_pct_p50"].iloc[0] == pytest.approx(100.0 * 0.5427 * sigma / H, rel=0.02)
-    # Source: REFERENCES.md 1.4(4) [D]: per-component std = sqrt(3)/4 sigma / h = 0.4330 sigma / h; the gradient
+    # Source: docs/references.md §3 [D]: per-component std = sqrt(3)/4 sigma / h = 0.4330 sigma / h; the gradient
     # is Rayleigh, so the share of cells at or over t is exp(-t^2 / (2 std^2)) and std = t / sqrt(-2 ln share).
     # SE of the inferred std ~0.5 %; tol 2 %.
     for i, lim in enumerate(limits):
@@ -155,7 +155,7 @@ def test_robust_and_threshold_parcels(tmp_path):
     assert parcels["confidence"].tolist()[:2] == [ConfidenceLabel.ROBUST_CONFLICT, ConfidenceLabel.ROBUST_CLEAR]
     assert parcels["over_limit_share_p05"].iloc[0] == pytest.approx(1.0)
     # Source: noncentral chi-square (Rice) law of |grad| (scipy.stats.ncx2) with Horn's std from
-    # REFERENCES.md 1.4(4): expected share over 18 % = `expected` (0.5 plus the upward bias of |grad|).
+    # docs/references.md §3: expected share over 18 % = `expected` (0.5 plus the upward bias of |grad|).
     # SE of the median share over 100 realizations ~0.003; tol 0.012 (~4 SE).
     assert expected > 0.5
     assert parcels["over_limit_share_p50"].iloc[2] == pytest.approx(expected, abs=0.012)
@@ -164,7 +164,7 @@ def test_robust_and_threshold_parcels(tmp_path):
     p = parcels["p_conflict"].iloc[2]
     assert p == pytest.approx(0.5, abs=0.15)
     assert ROBUST_CLEAR_P < p < ROBUST_CONFLICT_P and parcels["confidence"].iloc[2] == ConfidenceLabel.UNCERTAIN
-    # Source: binomial standard error sqrt(P (1 - P) / N) (REFERENCES.md 4.2 step 2).
+    # Source: binomial standard error sqrt(P (1 - P) / N) (docs/references.md §11 step 2).
     assert parcels["p_conflict_se"].iloc[2] == pytest.approx(math.sqrt(p * (1 - p) / n))
     assert parcels["p_conflict_se"].iloc[0] == 0.0
     # a class holding one parcel has that parcel's conflict-share percentiles (invariant)

@@ -108,7 +108,7 @@ def _random_features(rng, t: Affine, height: int, width: int, n: int, snap=False
 
 @pytest.mark.parametrize("offset, centre_count", [((0.0, 0.0), 1), ((0.2, 0.2), 4), ((0.6, 0.6), 1), ((0.4, 0.6), 2)])
 def test_square_at_subcell_offsets_is_exact(offset, centre_count):
-    # Source: REFERENCES.md 6.2 [C]: a 1.5 x 1.5-cell square at sub-cell offsets (0,0), (0.2,0.2),
+    # Source: docs/references.md §15 [C]: a 1.5 x 1.5-cell square at sub-cell offsets (0,0), (0.2,0.2),
     # (0.6,0.6), (0.4,0.6) has area 2.25 cells; the cell-centre rule counts 1, 4, 1, 2 cells.
     t = _transform()
     ou, ov = offset
@@ -124,7 +124,7 @@ def test_square_at_subcell_offsets_is_exact(offset, centre_count):
 
 
 def test_hand_worked_triangle_on_a_4x4_grid():
-    # Hand-worked (STYLE.md 6.3): triangle (0,0), (2,0), (0,2) on a 1 m grid whose top-left corner
+    # Hand-worked: triangle (0,0), (2,0), (0,2) on a 1 m grid whose top-left corner
     # is (0, 4).  Row 3 col 0 lies wholly under x + y = 2 (1.0); row 3 col 1 and row 2 col 0 are
     # cut along their diagonal (0.5 each); the total is the triangle's area, 2 cells.
     tri = shapely.Polygon([(0, 0), (2, 0), (0, 2)])
@@ -280,12 +280,12 @@ def test_property_total_equals_shapely_clipped_area(values):
 
 
 # ---------------------------------------------------------------------------
-# Additivity and windowing (REFERENCES.md 6.2)
+# Additivity and windowing (docs/references.md §15)
 # ---------------------------------------------------------------------------
 
 
 def test_tiling_polygons_sum_to_one_per_cell():
-    # Source: REFERENCES.md 6.2 [D]: coverage fractions of polygons that tile a region sum to 1
+    # Source: docs/references.md §15 [D]: coverage fractions of polygons that tile a region sum to 1
     # in every cell inside it.  The tiles are shapely's Voronoi cells of random points clipped to a
     # box that is not aligned with the grid; per cell the expected sum is area(cell ∩ box) / cell
     # area (shapely), i.e. exactly 1 inside the box.
@@ -311,7 +311,7 @@ def test_tiling_polygons_sum_to_one_per_cell():
 
 
 def test_windows_that_do_not_divide_the_raster_merge_exactly():
-    # Source: STYLE.md 6.4 / REFERENCES.md 6.2: 7 x 5 windows on a 23 x 31 raster merged give the
+    # Source: docs/references.md §15: 7 x 5 windows on a 23 x 31 raster merged give the
     # whole-raster result.  Features include one larger than the raster (with a hole) that spans
     # every window.
     rng = np.random.default_rng(11)
@@ -453,7 +453,7 @@ def test_geopandas_input_and_threads_match_serial():
 
 
 def test_plain_python_kernel_matches_compiled():
-    # Invariant (STYLE.md 4: one copy of each formula): the kernel's Python source, run without
+    # Invariant (common practice: one copy of each formula): the kernel's Python source, run without
     # numba, gives the compiled result.
     rng = np.random.default_rng(9)
     t = _transform()

@@ -8,11 +8,9 @@ scipy.ndimage for connectivity and interpolation, shapely for geometry.
 
 from __future__ import annotations
 
-import importlib.util
 import re
 import shutil
 import subprocess
-import sys
 from pathlib import Path
 
 import geopandas as gpd
@@ -27,6 +25,8 @@ try:
     import tomllib
 except ModuleNotFoundError:  # Python 3.10
     import tomli as tomllib
+
+from demo_oracle import load_generator
 
 from landcheck.terrain.slope import slope_gradient
 
@@ -89,15 +89,6 @@ def _fractional_rowcol(transform, x, y):
     return (np.asarray(y) - transform.f) / transform.e, (np.asarray(x) - transform.c) / transform.a
 
 
-def _load_generator():
-    """Import scripts/make_demo_area.py as a module (it is a script, not part of the package)."""
-    spec = importlib.util.spec_from_file_location("make_demo_area", SCRIPT)
-    module = importlib.util.module_from_spec(spec)
-    sys.modules[spec.name] = module  # dataclasses look the module up while the class is built
-    spec.loader.exec_module(module)
-    return module
-
-
 def _parcel_id_raster(parcels, info):
     """Parcel index (1-based row number) of each cell whose centre falls in a parcel; 0 elsewhere."""
     shapes = [(shapely.make_valid(g), k) for k, g in enumerate(parcels.geometry, start=1)]
@@ -152,7 +143,7 @@ def test_dem_matches_regeneration_with_recorded_seed(dem, parcels, tmp_path):
     assert match, "dem.tif should record the generator's seed and size"
     seed, size = match.groups()
     # run the script's command-line entry point in this process (saves re-importing geopandas)
-    assert _load_generator().main(["--seed", seed, "--size", size, "--out", str(tmp_path)]) == 0
+    assert load_generator().main(["--seed", seed, "--size", size, "--out", str(tmp_path)]) == 0
     with rasterio.open(tmp_path / "dem.tif") as src:
         again = src.read(1).astype(np.float64)
         again[again == src.nodata] = np.nan

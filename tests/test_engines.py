@@ -1,4 +1,4 @@
-"""Engines: the Dask engine gives exactly the local-threads results (invariant, STYLE.md 6.4)."""
+"""Engines: the Dask engine gives exactly the local-threads results (invariant, common practice)."""
 
 from __future__ import annotations
 

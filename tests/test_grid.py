@@ -17,7 +17,7 @@ WGS84_WKT = "EPSG:4326"
 @pytest.mark.parametrize(
     "lat, m_per_deg_lat, m_per_deg_lon",
     [
-        # Source: REFERENCES.md 5.3 [C] (GeographicLib 2.1 closed form), asserted to 1e-3 m.
+        # Source: docs/references.md §13 [C] (GeographicLib 2.1 closed form), asserted to 1e-3 m.
         (0.0, 110_574.276, 111_319.491),
         (15.0, 110_648.696, 107_550.489),
         (45.0, 111_131.777, 78_846.835),
@@ -33,7 +33,7 @@ def test_metres_per_degree(lat, m_per_deg_lat, m_per_deg_lon):
 @pytest.mark.parametrize(
     "lat1, lat2, dlon, area",
     [
-        # Source: REFERENCES.md 5.3 [C] parallel-bounded cell areas, relative 1e-9.
+        # Source: docs/references.md §13 [C] parallel-bounded cell areas, relative 1e-9.
         (0.0, 1.0, 1.0, 12_308_463_893.975),
         (10.0, 11.0, 1.0, 12_108_188_648.308),
         (45.0, 46.0, 1.0, 8_686_494_956.670),
@@ -47,7 +47,7 @@ def test_band_area(lat1, lat2, dlon, area):
 
 
 def test_whole_ellipsoid_area():
-    # Source: REFERENCES.md 5.2 [C]: 510,065,621,724,088 m^2.
+    # Source: docs/references.md §12 [C]: 510,065,621,724,088 m^2.
     assert 2 * geodesy.band_area_m2(0.0, 90.0, 360.0) == pytest.approx(510_065_621_724_088, rel=1e-12)
 
 
@@ -65,7 +65,7 @@ def test_geographic_grid_cell_size_and_area_against_pyproj():
     _, _, dist_y = geod.inv(120.0, lat_c - d / 2, 120.0, lat_c + d / 2)
     assert hx[0] == pytest.approx(dist_x, rel=1e-6)
     assert hy[0] == pytest.approx(dist_y, rel=1e-6)
-    # Source: REFERENCES.md 5.3 [C]: 1"x1" at 14 N (14 .. 14+1") = 922.28374 m^2; row 49 spans exactly that band
+    # Source: docs/references.md §13 [C]: 1"x1" at 14 N (14 .. 14+1") = 922.28374 m^2; row 49 spans exactly that band
     area = g.cell_area_m2(np.array([row - 1]))[0]
     assert area == pytest.approx(922.28374, rel=1e-6)
 
@@ -81,7 +81,7 @@ def test_projected_grid_in_feet():
 @settings(max_examples=200, deadline=None)
 @given(h=st.integers(1, 60), w=st.integers(1, 60), tr=st.integers(1, 17), tc=st.integers(1, 17), halo=st.integers(0, 3))
 def test_windows_tile_raster_exactly_once(h, w, tr, tc, halo):
-    # Invariant (STYLE.md 6.4): windows cover every cell exactly once; grown windows pad back to full size.
+    # Invariant (common practice): windows cover every cell exactly once; grown windows pad back to full size.
     count = np.zeros((h, w), int)
     for win in iter_windows(h, w, tr, tc):
         count[win.rows, win.cols] += 1
@@ -94,7 +94,7 @@ def test_windows_tile_raster_exactly_once(h, w, tr, tc, halo):
 
 @pytest.mark.parametrize("method", ["horn", "zevenbergen-thorne"])
 def test_tiled_slope_equals_untiled(tmp_path, raster_writer, method):
-    # Invariant (STYLE.md 6.4): tile sizes that do not divide the raster (7x5 tiles on 23x31) give
+    # Invariant (common practice): tile sizes that do not divide the raster (7x5 tiles on 23x31) give
     # bit-identical results to one whole-array pass, nodata included.
     import rasterio
 

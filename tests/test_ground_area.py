@@ -103,7 +103,7 @@ def test_spherical_zone_closed_form():
 
 @pytest.mark.parametrize("lat0,want_m2", [(0.0, 12_308_463_893.975), (45.0, 8_686_494_956.670)])
 def test_degree_box_is_the_parallel_bounded_band(lat0, want_m2):
-    # Source: REFERENCES.md 5.3 (parallel-bounded cell areas on WGS 84, closed form of Snyder 1987):
+    # Source: docs/references.md §13 (parallel-bounded cell areas on WGS 84, closed form of Snyder 1987):
     # a 1 x 1 degree lon/lat box whose edges run along parallels and meridians has exactly the band area.
     box = shapely.box(120.0, lat0, 121.0, lat0 + 1.0)
     area, _ = ground_areas_fast(np.array([box], dtype=object), "EPSG:4326")

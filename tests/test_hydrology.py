@@ -1,7 +1,6 @@
 """Tests for landcheck.terrain.hydrology: sea mask, connected inundation, D8 routing, HAND, vector outputs.
 
-Every check names where its expected value comes from.  REFERENCES.md is
-/work/shared/REFERENCES.md (section numbers given).
+Every check names where its expected value comes from (docs/references.md sections given).
 """
 
 from __future__ import annotations
@@ -108,7 +107,7 @@ def d8_targets(routing):
 
 @pytest.mark.parametrize("orientation", ["as_built", "transposed", "flipped"])
 def test_hand_v_valley_matches_closed_form(orientation):
-    # Source: REFERENCES.md 3.1 (Renno et al. 2008 definition; test surface [D]):
+    # Source: docs/references.md §9 (Renno et al. 2008 definition; test surface [D]):
     # on z = s*|x| + g*y every hillside cell drains straight across to the channel
     # cell of its own row, so HAND = z(cell) - z(channel, same row) = s*|x| exactly.
     s, g, h, w = 0.2, 0.01, 10.0, 8
@@ -133,7 +132,7 @@ def test_hand_v_valley_matches_closed_form(orientation):
 
 
 def test_hand_plane_towards_edge_channel():
-    # Source: REFERENCES.md 3.1 test surfaces [D]: a plane tilted toward a single edge
+    # Source: docs/references.md §9 test surfaces [D]: a plane tilted toward a single edge
     # channel gives HAND = distance to the channel x gradient.
     h, grad, rows, cols = 5.0, 0.03, 12, 9
     z = 7.0 + grad * h * np.arange(rows)[:, None] * np.ones(cols)
@@ -147,7 +146,7 @@ def test_hand_plane_towards_edge_channel():
 
 
 def test_hand_without_drainage_is_nan_unless_outlets_drain():
-    # Source: REFERENCES.md 3.1 step 3 (follow the LDD to the first drainage cell):
+    # Source: docs/references.md §9 step 3 (follow the LDD to the first drainage cell):
     # with no drainage cell there is nothing to measure against -> NaN; when outlets
     # count as drainage, every path on the V-valley ends at the outlet (row 0, channel
     # column), so HAND = z - z(outlet) = s*|x| + g*y [derived here].
@@ -165,7 +164,7 @@ def test_hand_without_drainage_is_nan_unless_outlets_drain():
 
 
 def test_single_pit_bowl_fills_to_spill_level_and_drains_through_it():
-    # Source: REFERENCES.md 7 (Priority-Flood, Barnes et al. 2014; test [D]): a 5x5 bowl
+    # Source: docs/references.md §16 (Priority-Flood, Barnes et al. 2014; test [D]): a 5x5 bowl
     # with a single pit of depth d fills exactly to the lowest rim (spill) elevation.
     d, spill = 3.0, 11.0
     z = np.full((5, 5), 12.0)  # rim
@@ -175,7 +174,7 @@ def test_single_pit_bowl_fills_to_spill_level_and_drains_through_it():
     routing = flow_directions(z, Affine(1, 0, 0, 0, -1, 0))
     np.testing.assert_array_equal(routing.conditioned_m[1:4, 1:4], np.full((3, 3), spill))
     assert routing.fill_depth_m[2, 2] == pytest.approx(spill - (10.0 - d))
-    # Source: D8 definition, REFERENCES.md 7 (worked by hand): every rim cell has a lower
+    # Source: D8 definition, docs/references.md §16 (worked by hand): every rim cell has a lower
     # neighbour (the filled inside at 11 m, or the spill cell), so all 25 cells leave
     # through the spill cell, the only outlet
     area = upstream_area_m2(routing, 1.0)
@@ -185,7 +184,7 @@ def test_single_pit_bowl_fills_to_spill_level_and_drains_through_it():
 
 
 def test_tilted_plane_upstream_counts():
-    # Source: REFERENCES.md 7 (D8, O'Callaghan & Mark 1984) [derived here]: on a plane
+    # Source: docs/references.md §16 (D8, O'Callaghan & Mark 1984) [derived here]: on a plane
     # falling towards row 0 each cell's steepest drop is straight down-slope (drop/h
     # beats drop/(h*sqrt(2))), so upstream count = rows upslope + 1.
     rows, cols, h = 9, 7, 30.0
@@ -201,7 +200,7 @@ def test_tilted_plane_upstream_counts():
 
 
 def test_diagonal_plane_upstream_counts():
-    # Source: D8 definition (REFERENCES.md 7) [derived here]: on z = r + c the
+    # Source: D8 definition (docs/references.md §16) [derived here]: on z = r + c the
     # north-west neighbour drops 2 over h*sqrt(2) (1.41/h), steeper than the side
     # neighbours (1/h); each inner cell drains diagonally and collects the cells of its
     # diagonal further south-east: min(rows - r, cols - c).  Cells of row 0 and column 0
@@ -217,7 +216,7 @@ def test_diagonal_plane_upstream_counts():
 
 
 def test_square_funnel_upstream_counts():
-    # Source: D8 definition (REFERENCES.md 7) [derived here]: on z = max(|dr|, |dc|)
+    # Source: D8 definition (docs/references.md §16) [derived here]: on z = max(|dr|, |dc|)
     # with the centre as outlet, a face cell at ring k drains straight inwards and
     # collects the R - k + 1 cells of its line out to the rim; a corner-diagonal cell at
     # ring k drains diagonally and collects the (R - k + 1)^2 square beyond it.
@@ -246,12 +245,12 @@ def test_real_dem_routing_invariants_and_hand_walk():
     transform = Affine(step, 0, float(dem["xmin"]), 0, -step, top)
     routing = flow_directions(z, transform, latlon=True)
 
-    # Source: Priority-Flood (Barnes et al. 2014, REFERENCES.md 7) gives the unique
+    # Source: Priority-Flood (Barnes et al. 2014, docs/references.md §16) gives the unique
     # lowest depression-free surface; compared with an independent fixed-point fill.
     np.testing.assert_array_equal(routing.conditioned_m, filled_by_fixed_point(z))
     assert (routing.fill_depth_m > 0).sum() > 0  # this window has closed depressions to fill
 
-    # Source: D8 definition (REFERENCES.md 7): every cell drains to a neighbour that is
+    # Source: D8 definition (docs/references.md §16): every cell drains to a neighbour that is
     # not higher on the conditioned surface, paths end at outlets on the edge, and the
     # network has no loops (every cell is in pyflwdir's down-to-upstream sequence).
     target = d8_targets(routing)
@@ -263,13 +262,13 @@ def test_real_dem_routing_invariants_and_hand_walk():
     assert routing.flw.idxs_seq.size == z.size
 
     # mass balance: the upstream areas at the outlets add up to the whole area
-    # (cell areas from the ellipsoid band formula, REFERENCES.md 5.2)
+    # (cell areas from the ellipsoid band formula, docs/references.md §12)
     lat_top = top - step * np.arange(z.shape[0])
     row_area = geodesy.band_area_m2(lat_top, lat_top - step, step)
     area = upstream_area_m2(routing, row_area)
     assert area.ravel()[pits].sum() == pytest.approx(row_area.sum() * z.shape[1], rel=1e-12)
 
-    # Source: REFERENCES.md 3.1 steps 3-4: walk the D8 path cell by cell to the first
+    # Source: docs/references.md §9 steps 3-4: walk the D8 path cell by cell to the first
     # drainage cell (a plain loop, independent of the kernel's pointer jumping).
     streams = stream_mask(area, 0.5e6)
     hand = hand_m(routing.conditioned_m, routing, streams)
@@ -283,7 +282,7 @@ def test_real_dem_routing_invariants_and_hand_walk():
         else:
             assert np.isnan(hand.ravel()[idx])
     finite = hand[np.isfinite(hand)]
-    assert finite.min() >= 0  # never negative on the conditioned surface (REFERENCES.md 3.1)
+    assert finite.min() >= 0  # never negative on the conditioned surface (docs/references.md §9)
 
     # vector network: each segment runs over stream cells and, unless it ends at an
     # outlet, ends on the first cell of the segment it joins (common practice for
@@ -302,7 +301,7 @@ def test_real_dem_routing_invariants_and_hand_walk():
 
 
 def test_enclosed_depression_stays_dry_until_channel_is_cut():
-    # Source: REFERENCES.md 3.2 (Poulter & Halpin 2008; test [D]): flooded = at or below
+    # Source: docs/references.md §10 (Poulter & Halpin 2008; test [D]): flooded = at or below
     # the water level AND connected to the sea; a closed low basin behind a dike above
     # the level floods in neither connectivity.
     z = np.full((9, 9), 5.0)
@@ -324,7 +323,7 @@ def test_enclosed_depression_stays_dry_until_channel_is_cut():
 
 
 def test_corner_contact_floods_only_with_8_connectivity():
-    # Source: REFERENCES.md 3.2 test [D]: a low cell touching the sea only at a corner
+    # Source: docs/references.md §10 test [D]: a low cell touching the sea only at a corner
     # floods under 8-connectivity but not under 4-connectivity.
     z = np.full((5, 5), 4.0)
     z[0:2, 0] = -1.0  # sea: two cells on the west edge
@@ -338,7 +337,7 @@ def test_corner_contact_floods_only_with_8_connectivity():
 
 
 def test_plain_threshold_floods_more_than_connected_bathtub():
-    # Source: REFERENCES.md 3.2 (Poulter & Halpin 2008): thresholding without
+    # Source: docs/references.md §10 (Poulter & Halpin 2008): thresholding without
     # connectivity floods the most; connectivity can only remove cells.
     z = np.full((6, 6), 3.0)
     z[:, 0] = -1.0
@@ -377,7 +376,7 @@ def test_topobathy_sea_and_inundation_match_labelling():
     previous = sea
     for rise, water in zip(rises, masks):
         np.testing.assert_array_equal(water, _independent_flood(z, sea, rise))
-        # Source: REFERENCES.md 3.2: a higher level never floods less (nested masks)
+        # Source: docs/references.md §10: a higher level never floods less (nested masks)
         assert np.all(previous <= water)
         # every flooded part is connected to the sea
         lab, n = ndimage.label(water, structure=EIGHT)
@@ -397,7 +396,7 @@ def test_surge_adds_to_every_level():
 
 
 def test_seed_cells_select_the_sea():
-    # Source: REFERENCES.md 3.2 (connectivity to the sea) [worked by hand]: two basins
+    # Source: docs/references.md §10 (connectivity to the sea) [worked by hand]: two basins
     # below the datum; seeding one selects it alone, whatever touches the edge.
     z = np.full((5, 7), 2.0)
     z[1:4, 1:3] = -1.0
@@ -452,7 +451,7 @@ def test_shoreline_leaves_out_raster_edge():
 
 
 def test_streams_to_lines_on_v_valley():
-    # Source: V-valley of REFERENCES.md 3.1: the channel is one straight segment down
+    # Source: V-valley of docs/references.md §9: the channel is one straight segment down
     # the valley axis, (rows - 1) * h long, whose outlet collects the whole raster.
     s, g, h, w, rows = 0.2, 0.01, 10.0, 4, 11
     z, x, _ = v_valley(s, g, h, w, rows)
@@ -519,7 +518,7 @@ def test_all_nan_input_is_refused():
 
 
 def test_kernels_do_not_modify_inputs():
-    # STYLE.md 4: kernels never mutate their inputs
+    # common practice: kernels never mutate their inputs
     z, _, _ = v_valley(n_rows=6, half_width=3)
     z[0, 0] = np.nan
     before = z.copy()

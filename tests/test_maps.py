@@ -66,7 +66,7 @@ def test_overview_files_size_and_legend(audit, tmp_path):
         if e.group == "verdict":
             n = sum(r["verdict"] == e.key for r in csv_rows(audit.out_dir / "parcels.csv"))
             assert e.label.endswith(f"({n})")
-    # Source: REFERENCES.md 2.1, land-use planning slope classes 0-3-8-18-30-50-over
+    # Source: docs/references.md §7, land-use planning slope classes 0-3-8-18-30-50-over
     slope_keys = [e.key for e in files.legend_entries if e.group == "slope_class"]
     assert slope_keys == ["0-3", "3-8", "8-18", "18-30", "30-50", "50-inf"]
     # the fixture writes one polygon zone and one water line under zones/
@@ -79,19 +79,18 @@ def test_overview_files_size_and_legend(audit, tmp_path):
     assert relief and "hillshade" in relief[0]
 
 
-def test_overview_custom_breaks_other_dpi_and_missing_dem(audit, tmp_path):
-    audit.dem_path.rename(audit.dem_path.with_suffix(".moved"))
-    try:
-        files = maps.overview_map(
-            audit.out_dir,
-            dest_dir=tmp_path,
-            dpi=300,
-            figsize_in=(5.0, 4.0),
-            formats=("png",),
-            slope_breaks_pct=[0, 10, 25, math.inf],
-        )
-    finally:
-        audit.dem_path.with_suffix(".moved").rename(audit.dem_path)
+def test_overview_custom_breaks_other_dpi_and_missing_dem(tmp_path):
+    # its own audit folder whose DEM is gone (the module-scoped fixture stays untouched)
+    own = build_audit_folder(tmp_path / "own")
+    own.dem_path.unlink()
+    files = maps.overview_map(
+        own.out_dir,
+        dest_dir=tmp_path,
+        dpi=300,
+        figsize_in=(5.0, 4.0),
+        formats=("png",),
+        slope_breaks_pct=[0, 10, 25, math.inf],
+    )
     assert list(files) == [tmp_path / "overview.png"]
     # Source: PNG spec IHDR; 5 x 4 in at 300 dpi
     assert png_size(tmp_path / "overview.png") == (1500, 1200)
@@ -169,7 +168,7 @@ def test_slope_colours_darken_monotonically(n):
 
 
 def test_classify_slope_boundaries():
-    # Source: REFERENCES.md 2.2 test boundary: "18 % or over" means exactly 18.0 counts
+    # Source: docs/references.md §8 test boundary: "18 % or over" means exactly 18.0 counts
     # as at/over, so 18.0 belongs to the 18-30 class and 17.999 to 8-18.
     s = np.array([0.0, 2.999, 3.0, 17.999, 18.0, 49.9, 50.0, 250.0, np.nan])
     assert maps.classify_slope(s).tolist() == [0, 0, 1, 2, 3, 4, 5, 5, -1]
@@ -223,6 +222,6 @@ def test_true_north_matches_meridian_convergence():
 
 
 def test_missing_folder_is_input_error(tmp_path):
-    # error contract: STYLE.md section 3 (InputDataError naming the missing file)
+    # error contract (common practice: InputDataError naming the missing file)
     with pytest.raises(InputDataError, match="summary.json"):
         maps.overview_map(tmp_path)

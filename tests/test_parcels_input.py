@@ -11,6 +11,7 @@ from click.testing import CliRunner
 
 from landcheck.cli.main import cli
 from landcheck.core.audit import audit
+from landcheck.errors import LandcheckWarning
 
 X0, Y0 = 400000.0, 1600000.0
 
@@ -62,7 +63,8 @@ def test_partly_outside_dem_gets_no_data(tmp_path):
         shapely.box(X0 + 3000, Y0 - 300, X0 + 3100, Y0 - 200),
     ]  # fully outside
     p = write_parcels(tmp_path / "p.gpkg", geoms, pid=[1, 2, 3], zoning=["R", "R", "R"])
-    res = audit(dem, p, rules, tmp_path / "out", make_report=False)
+    with pytest.warns(LandcheckWarning, match="1 parcels lie entirely outside the DEM"):
+        res = audit(dem, p, rules, tmp_path / "out", make_report=False)
     assert res.parcels["verdict"].tolist() == ["no_data", "no_data", "no_data"]
     # covered area: exactly the part inside the DEM extent (x 0..100 and 1000..1200 m)
     assert res.parcels["covered_m2"][0] / res.parcels["area_m2"][0] == pytest.approx(0.25, abs=1e-6)

@@ -317,7 +317,7 @@ rise_m = 1.0
 
 def test_forbidden_cell_zone_uses_whole_dem(tmp_path):
     # Closed form: ramp_dem has z = 0.0002 x^2 m; with the sea at datum 1 m (cells touching the west edge) and a
-    # 1 m rise, land at or below 2 m connected to the sea floods (bathtub with connectivity, REFERENCES.md 3.2):
+    # 1 m rise, land at or below 2 m connected to the sea floods (bathtub with connectivity, docs/references.md §10):
     # cell centres x = 5..95 m (z(95) = 1.805 m, z(105) = 2.205 m), i.e. x < 100 m.  A parcel x 60..200 m thus
     # loses 40/140 of its area; its slope (<= 8 %) is under the limit everywhere.
     dem = ramp_dem(tmp_path / "dem.tif")
@@ -458,7 +458,7 @@ def test_existing_output_and_self_intersecting_polygon(inputs):
 
 
 def test_help_carries_caution_and_examples():
-    # common practice (STYLE.md 7): every command's --help has the caution and runnable examples
+    # common practice: every command's --help has the caution and runnable examples
     r = CliRunner().invoke(cli, ["prescreen", "--help"])
     assert r.exit_code == 0
     assert "not a survey or legal determination" in r.output and "Examples" in r.output

@@ -211,7 +211,7 @@ def test_changed_and_missing_inputs_are_flagged(built, tmp_path):
 
 
 def test_missing_output_folder(tmp_path):
-    # error contract: STYLE.md section 3 (errors derive from LandcheckError and name the path)
+    # error contract (common practice: errors derive from LandcheckError and name the path)
     with pytest.raises(InputDataError, match="not a folder"):
         build_report(tmp_path / "nope")
 

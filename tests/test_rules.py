@@ -27,7 +27,7 @@ def test_valid_minimal():
 
 
 def test_degrees_converted_to_percent():
-    # Source: REFERENCES.md 1.6 [C]: 15 degrees = 26.795 %; percent = 100 tan(angle).
+    # Source: docs/references.md §6 [C]: 15 degrees = 26.795 %; percent = 100 tan(angle).
     r = parse_rules(BASE.replace("max_slope_pct = 18", "max_slope_deg = 15"), path="r.toml")
     assert r.classes[0].max_slope_pct == pytest.approx(26.795, abs=1e-3)
     assert r.classes[0].max_slope_pct == pytest.approx(100 * math.tan(math.radians(15)))

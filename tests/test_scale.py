@@ -333,7 +333,7 @@ def test_audit_rasters_and_sums_do_not_depend_on_tiles_or_workers(tmp_path):
 
 def test_slope_formats_hold_the_same_cells(tmp_path):
     # Invariant: the slope command's raster format changes no cell (slope and class rasters).
-    # Source for the value: on the ramp z = g/2 x^2 every 3x3 kernel is exact at the centre (REFERENCES.md 1.2),
+    # Source for the value: on the ramp z = g/2 x^2 every 3x3 kernel is exact at the centre (docs/references.md §1),
     # so the slope of the cell centred at x is 100 g x percent.
     import rasterio
     from _support import ramp_dem

@@ -14,7 +14,7 @@ from landcheck.terrain.slope_classes import classify_slope, get_scheme, scheme_f
 
 
 def test_planning_scheme_breaks():
-    # Source: REFERENCES.md 2.1, land-use planning slope classes 0-3, 3-8, 8-18, 18-30, 30-50, >50 %.
+    # Source: docs/references.md §7, land-use planning slope classes 0-3, 3-8, 8-18, 18-30, 30-50, >50 %.
     s = get_scheme("planning-6")
     assert s.lower_pct == (0.0, 3.0, 8.0, 18.0, 30.0, 50.0)
     got = classify_slope(np.array([2.999, 3.0, 17.999, 18.0, 29.9, 50.0, 300.0]), s)
@@ -22,7 +22,7 @@ def test_planning_scheme_breaks():
 
 
 def test_fao_scheme_breaks():
-    # Source: FAO 2006, Guidelines for Soil Description (REFERENCES.md 2.1; table number from memory).
+    # Source: FAO 2006, Guidelines for Soil Description (docs/references.md §7; table number from memory).
     s = get_scheme("fao-2006")
     got = classify_slope(np.array([0.1, 0.3, 0.7, 1.5, 4.0, 9.0, 12.0, 20.0, 45.0, 61.0]), s)
     assert got.tolist() == list(range(10))
@@ -38,7 +38,7 @@ def test_user_breaks_and_validation():
 
 
 def test_cli_writes_class_raster(tmp_path, raster_writer):
-    # Analytic plane (REFERENCES.md 1.4(1)): z = 0.2 x is 20 % everywhere inside -> class 18-30 (index 3).
+    # Analytic plane (docs/references.md §2): z = 0.2 x is 20 % everywhere inside -> class 18-30 (index 3).
     x = np.arange(12) * 10.0
     dem = raster_writer(np.tile(0.2 * x, (9, 1)).astype("float32"))
     res = CliRunner().invoke(

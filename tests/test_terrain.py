@@ -1,4 +1,4 @@
-"""Slope kernels against analytic surfaces (REFERENCES.md section 1)."""
+"""Slope kernels against analytic surfaces (docs/references.md §1)."""
 
 from __future__ import annotations
 
@@ -23,7 +23,7 @@ def _sizes(n, h=H):
 
 @pytest.mark.parametrize("method", list(SlopeMethod))
 def test_tilted_plane_is_exact(method):
-    # Source: REFERENCES.md 1.4(1) [D, verified C]: every kernel returns a plane's gradient exactly;
+    # Source: docs/references.md §2 [D, verified C]: every kernel returns a plane's gradient exactly;
     # z = 0.12x + 0.09y has G = 0.15 (15 %).
     X, Y = _grid(40)
     z = 0.12 * X + 0.09 * Y
@@ -31,12 +31,12 @@ def test_tilted_plane_is_exact(method):
     g = slope_gradient(z, hx, hy, method, backend="numpy")
     np.testing.assert_allclose(g, 0.15, rtol=1e-6)  # float32 output
     np.testing.assert_allclose(gradient_to_unit(g, "percent"), 15.0, rtol=1e-6)
-    # Source: REFERENCES.md 1.6: 15 % = atan(0.15) = 8.5308 degrees (computed there to 3 decimals for other values)
+    # Source: docs/references.md §6: 15 % = atan(0.15) = 8.5308 degrees (computed there to 3 decimals for other values)
     np.testing.assert_allclose(gradient_to_unit(g, "degrees"), np.degrees(np.arctan(0.15)), rtol=1e-6)
 
 
 def test_eighteen_percent_plane_in_degrees():
-    # Source: REFERENCES.md 1.6 [C]: 18 % = 10.2040 degrees.
+    # Source: docs/references.md §6 [C]: 18 % = 10.2040 degrees.
     X, _ = _grid(10)
     z = 0.18 * X
     g = slope_gradient(z, *_sizes(10))
@@ -46,7 +46,7 @@ def test_eighteen_percent_plane_in_degrees():
 @pytest.mark.parametrize(
     "method, factor",
     [
-        # Source: REFERENCES.md 1.4(2) [D, verified C]: exact discrete identities for
+        # Source: docs/references.md §2 [D, verified C]: exact discrete identities for
         # z = A sin(kx) cos(ly), h = 10 m, wavelengths 200 m (k) and 300 m (l).
         (SlopeMethod.ZEVENBERGEN_THORNE, 0.983631643083466),
         (SlopeMethod.HORN, 0.9728842873857046),
@@ -70,7 +70,7 @@ def test_sinusoid_truncation_factor(method, factor):
 
 @pytest.mark.parametrize("method", list(SlopeMethod))
 def test_gaussian_hill_error_falls_with_cell_size(method):
-    # Source: REFERENCES.md 1.5 [D]: |grad z| = (H r / s^2) exp(-r^2 / 2 s^2) for z = H exp(-r^2 / 2 s^2);
+    # Source: docs/references.md §5 [D]: |grad z| = (H r / s^2) exp(-r^2 / 2 s^2) for z = H exp(-r^2 / 2 s^2);
     # maximum 0.60653 H/s at r = s (H = 100 m, s = 500 m gives 0.1213061). Second-order kernels:
     # error should fall roughly with h^2 (common practice: halving h divides the error by ~4).
     errors = []

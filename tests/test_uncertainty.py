@@ -29,7 +29,7 @@ from landcheck.terrain.dem_error import (
 )
 from landcheck.terrain.slope import _horn_pq, _zt_pq, slope_gradient
 
-# Horn (1981) east-derivative weights on the 3x3 window z1..z9 (REFERENCES.md 1.2), times 8 h
+# Horn (1981) east-derivative weights on the 3x3 window z1..z9 (docs/references.md §1), times 8 h
 HORN_P_WEIGHTS = np.array([[-1.0, 0.0, 1.0], [-2.0, 0.0, 2.0], [-1.0, 0.0, 1.0]])
 
 
@@ -43,7 +43,7 @@ def _pq(elev, h, formula):
 
 
 def _horn_var_p(sigma, h, corr_length):
-    """var(p) = w^T C w for Horn's weights w and the Gaussian covariance C (REFERENCES.md 1.4(4), derived).
+    """var(p) = w^T C w for Horn's weights w and the Gaussian covariance C (docs/references.md §3, derived).
 
     Written here from the definition rho(d) = exp(-(d/L)^2), independently of the module under test.
     """
@@ -71,13 +71,13 @@ def test_flat_dem_independent_error_gives_published_false_gradient():
     elev = 12.5 + e  # flat DEM at 12.5 m plus the error
     p, q = _pq(elev, h, _horn_pq)
     g = slope_gradient(elev, np.full(n, h), np.full(n, h), "horn", backend="numpy")
-    # Source: REFERENCES.md 1.4(4) [D]: Horn std(p) h / sigma = sqrt(3)/4 = 0.43301 for iid noise.
+    # Source: docs/references.md §3 [D]: Horn std(p) h / sigma = sqrt(3)/4 = 0.43301 for iid noise.
     # 160 000 cells; SE of the sample std is ~0.3 % (p is correlated with its neighbours); tolerance 2 % (~6 SE).
     assert np.std(p) * h / sigma == pytest.approx(math.sqrt(3.0) / 4.0, rel=0.02)
     assert np.std(q) * h / sigma == pytest.approx(math.sqrt(3.0) / 4.0, rel=0.02)
-    # Source: REFERENCES.md 1.4(4) [D]: mean gradient = std(p) sqrt(pi/2) = 0.5427 sigma / h (Rayleigh); tol 2 %.
+    # Source: docs/references.md §3 [D]: mean gradient = std(p) sqrt(pi/2) = 0.5427 sigma / h (Rayleigh); tol 2 %.
     assert float(np.mean(g)) * h / sigma == pytest.approx(0.5427, rel=0.02)
-    # Source: REFERENCES.md 1.4(4) [D]: Zevenbergen-Thorne std(p) h / sigma = 1/sqrt(2) = 0.70711; tol 2 %.
+    # Source: docs/references.md §3 [D]: Zevenbergen-Thorne std(p) h / sigma = 1/sqrt(2) = 0.70711; tol 2 %.
     p_zt, _ = _pq(elev, h, _zt_pq)
     assert np.std(p_zt) * h / sigma == pytest.approx(1.0 / math.sqrt(2.0), rel=0.02)
 
@@ -89,13 +89,13 @@ def test_field_std_and_correlation_match_the_stated_gaussian_model():
     sigma, h, length, n = 3.0, 10.0, 40.0, 500
     model = ErrorModel(rmse_m=sigma, corr_length_m=length, cell_size_m=h)
     fields = [error_field(model, Window(0, 0, n, n), n, n, seed=7, realization=k) for k in range(4)]
-    # Source: the model's definition, marginal std = RMSE (REFERENCES.md 4.2 step 1).
+    # Source: the model's definition, marginal std = RMSE (docs/references.md §11 step 1).
     # 10^6 cells, ~25 cells per independent sample at L = 4 cells: SE of the std ~0.4 %; tolerance 2 %.
     pooled = np.concatenate([f.ravel() for f in fields])
     assert float(np.std(pooled)) == pytest.approx(sigma, rel=0.02)
 
     # Source: the stated definition rho(d) = exp(-(d/L)^2), so rho(L) = 1/e (Gaussian covariance,
-    # REFERENCES.md 4.2 step 1).  SE of each estimated correlation ~0.008; absolute tolerance 0.03.
+    # docs/references.md §11 step 1).  SE of each estimated correlation ~0.008; absolute tolerance 0.03.
     def lag_corr(dr, dc):
         return float(np.mean([_corr(f[: n - dr, : n - dc], f[dr:, dc:]) for f in fields]))
 
@@ -107,7 +107,7 @@ def test_field_std_and_correlation_match_the_stated_gaussian_model():
 
 
 def test_rectangular_cells_keep_the_correlation_length_in_metres():
-    # Geographic grids have unequal cell sides (REFERENCES.md 1.4(5)); the length is in metres on both axes.
+    # Geographic grids have unequal cell sides (docs/references.md §4); the length is in metres on both axes.
     sigma, hx, hy, length, n = 1.0, 7.0, 10.0, 40.0, 500
     model = ErrorModel(rmse_m=sigma, corr_length_m=length, cell_size_m=hx, cell_size_y_m=hy)
     f = error_field(model, Window(0, 0, n, n), n, n, seed=3, realization=1)
@@ -152,19 +152,19 @@ def test_false_gradient_shrinks_as_the_correlation_length_grows():
             g_all.append(slope_gradient(elev, np.full(n, h), np.full(n, h), backend="numpy"))
         var_horn = _horn_var_p(sigma, h, length)
         rho_2h = 0.0 if length == 0 else math.exp(-((2.0 * h / length) ** 2))
-        # Source: REFERENCES.md 1.4(4) [D]: for Horn var(p) = w^T C w; tolerance 5 % (SE of the std <= 1 % at L = 8 cells).
+        # Source: docs/references.md §3 [D]: for Horn var(p) = w^T C w; tolerance 5 % (SE of the std <= 1 % at L = 8 cells).
         assert float(np.std(np.concatenate(p_all))) == pytest.approx(math.sqrt(var_horn), rel=0.05)
-        # Source: REFERENCES.md 1.4(4) [D]: for ZT var(p) = 2 sigma^2 [1 - rho(2h)] / (4 h^2); tolerance 5 %.
+        # Source: docs/references.md §3 [D]: for ZT var(p) = 2 sigma^2 [1 - rho(2h)] / (4 h^2); tolerance 5 %.
         want_zt = math.sqrt(2.0 * sigma**2 * (1.0 - rho_2h) / (4.0 * h**2))
         zt_std = float(np.std(np.concatenate(pzt_all)))
         assert zt_std == pytest.approx(want_zt, rel=0.05)
-        # Source: REFERENCES.md 1.4(4) [D]: p, q independent with equal variance, so mean |grad| = std(p) sqrt(pi/2).
+        # Source: docs/references.md §3 [D]: p, q independent with equal variance, so mean |grad| = std(p) sqrt(pi/2).
         mean_g = float(np.mean(np.concatenate(g_all)))
         assert mean_g == pytest.approx(math.sqrt(var_horn) * math.sqrt(math.pi / 2.0), rel=0.05)
         means.append(mean_g)
         zt_stds.append(zt_std)
-    # Source: REFERENCES.md 4.2 "As the correlation range grows, slope error shrinks toward 0".  For Horn this
-    # holds beyond about 2 cells; at L = 2 cells w^T C w (REFERENCES.md 1.4(4)) is *above* the independent case,
+    # Source: docs/references.md §11 "As the correlation range grows, slope error shrinks toward 0".  For Horn this
+    # holds beyond about 2 cells; at L = 2 cells w^T C w (docs/references.md §3) is *above* the independent case,
     # because Horn's 1-2-1 smoothing across the derivative no longer averages the error away.
     assert means[1] > 1.1 * means[0]
     assert all(a > 1.3 * b for a, b in zip(means[1:], means[2:]))
@@ -176,7 +176,7 @@ def test_false_gradient_shrinks_as_the_correlation_length_grows():
 
 @pytest.mark.parametrize("length", [0.0, 30.0])
 def test_windowed_equals_whole_raster_bit_for_bit_on_tiles_that_do_not_divide_it(length):
-    # Source: STYLE.md 6.4 invariant, tiled == untiled for 7x5 tiles on a 23x31 grid (common practice).
+    # Source: invariant, tiled == untiled for 7x5 tiles on a 23x31 grid (common practice).
     height, width = 23, 31
     model = ErrorModel(rmse_m=2.5, corr_length_m=length, cell_size_m=10.0)
     whole = error_field(model, Window(0, 0, height, width), height, width, seed=42, realization=3)
@@ -272,7 +272,7 @@ def test_mean_over_realizations_tends_to_zero_like_one_over_sqrt_n(length):
 
 def test_for_grid_takes_ellipsoidal_cell_sizes_of_the_centre_row():
     # 1 arc-second grid whose centre row is at 45 N.
-    # Source: REFERENCES.md 5.3 [C]: a 1" cell at 45 deg is 21.902 m (E-W) x 30.870 m (N-S).
+    # Source: docs/references.md §13 [C]: a 1" cell at 45 deg is 21.902 m (E-W) x 30.870 m (N-S).
     d = 1.0 / 3600.0
     height = 201
     grid = GridSpec(
@@ -348,6 +348,6 @@ def test_bad_seed_realization_window_and_halo_are_refused():
 
 
 def test_probability_standard_error():
-    # Source: binomial standard error sqrt(P (1 - P) / N) (REFERENCES.md 4.2 step 2).
+    # Source: binomial standard error sqrt(P (1 - P) / N) (docs/references.md §11 step 2).
     assert float(probability_standard_error(0.5, 100)) == pytest.approx(0.05, rel=1e-12)
     assert float(probability_standard_error(0.1, 400)) == pytest.approx(0.015, rel=1e-12)

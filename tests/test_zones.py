@@ -152,7 +152,7 @@ def test_zone_areas_are_exact_and_feed_verdicts(tmp_path):
     # flood: parcel 2 lies wholly in the level-3 polygon, parcel 5 only in the level-1 polygon (not forbidden)
     assert p.loc[1, "zone_flood_high_share"] == pytest.approx(1.0, abs=1e-12)
     assert p.loc[4, "zone_flood_high_share"] == 0.0
-    # sea-level rise (REFERENCES.md 3.2, connectivity): z = 0.02 (x - 200) is <= 1 m for x <= 250 m;
+    # sea-level rise (docs/references.md §10, connectivity): z = 0.02 (x - 200) is <= 1 m for x <= 250 m;
     # parcel 1 spans x 190..260 -> 60/70 of it; the closed basin (parcel 3) stays dry.
     assert p.loc[0, "zone_sea_1m_share"] == pytest.approx(60 / 70, abs=1e-9)
     assert p.loc[0, "zone_sea_1m_rise_0p5m_share"] == pytest.approx(40 / 70, abs=1e-9)
@@ -174,7 +174,7 @@ def test_zone_areas_are_exact_and_feed_verdicts(tmp_path):
 
 
 def test_hand_zone_and_derived_features(tmp_path):
-    # HAND (Renno et al. 2008) on a V-valley draining south: HAND = s |x - x_channel| (REFERENCES.md 3.1);
+    # HAND (Renno et al. 2008) on a V-valley draining south: HAND = s |x - x_channel| (docs/references.md §9);
     # with s = 0.1 and max_hand_m = 2 the zone is the strip within 20 m of the channel.
     n, h = 60, 10.0
     xc = (np.arange(n) + 0.5) * h

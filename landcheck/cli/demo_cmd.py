@@ -9,7 +9,7 @@ import click
 from landcheck.errors import InputDataError
 
 from .audit_cmd import run_audit_and_report
-from .handling import handle_errors
+from .errors import handle_errors
 from .options import CAUTION_HELP
 
 

@@ -12,7 +12,8 @@ import click
 from landcheck.about import CAUTION, __version__
 from landcheck.versions import show_versions
 
-from .handling import handle_errors
+from . import audit_cmd, demo_cmd, prescreen_cmd, report_cmd, slope_cmd
+from .errors import handle_errors
 from .options import CAUTION_HELP
 
 logger = logging.getLogger("landcheck")
@@ -68,16 +69,12 @@ def cli(ctx, verbose: int, quiet: bool):
     logging.captureWarnings(True)
 
 
-def _register():
-    # command modules import nothing from this module (handle_errors lives in .handling), so each
-    # imports on its own: `python -c "import landcheck.cli.audit_cmd"` works
-    from . import audit_cmd, demo_cmd, prescreen_cmd, report_cmd, slope_cmd
-
-    cli.add_command(slope_cmd.slope)
-    for mod in (audit_cmd, demo_cmd, report_cmd, prescreen_cmd):
-        cli.add_command(mod.command)
-
-
-_register()
+# Command modules import nothing from this module (shared pieces live in .options and .errors), so each
+# imports on its own and a missing one fails loudly here.
+cli.add_command(slope_cmd.slope)
+cli.add_command(audit_cmd.command)
+cli.add_command(demo_cmd.command)
+cli.add_command(report_cmd.command)
+cli.add_command(prescreen_cmd.command)
 
 __all__ = ["cli", "CAUTION", "handle_errors"]

@@ -9,7 +9,7 @@ import click
 
 from landcheck.errors import LandcheckWarning
 
-from .handling import handle_errors
+from .errors import handle_errors
 from .options import CAUTION_HELP, dem_options, method_option
 
 

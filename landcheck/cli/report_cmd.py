@@ -8,7 +8,7 @@ import click
 
 from landcheck.errors import InputDataError
 
-from .handling import handle_errors
+from .errors import handle_errors
 from .options import CAUTION_HELP
 
 

@@ -8,7 +8,7 @@ import click
 
 from landcheck.terrain.slope import SlopeUnit
 
-from .handling import handle_errors
+from .errors import handle_errors
 from .options import CAUTION_HELP, dem_options, engine_options, method_option, run_options
 
 

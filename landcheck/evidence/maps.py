@@ -35,6 +35,7 @@ import numpy as np
 from landcheck.about import CAUTION
 from landcheck.errors import InputDataError
 from landcheck.outputs.writers import write_bytes
+from landcheck.verdicts.labels import VERDICT_COLOURS, VERDICT_LABELS, VERDICT_LINES, VERDICTS
 
 __all__ = [
     "DEFAULT_SLOPE_BREAKS_PCT",
@@ -65,25 +66,9 @@ logger = logging.getLogger(__name__)
 #: moderately steep, 30-50 steep, 50 and over very steep.
 DEFAULT_SLOPE_BREAKS_PCT: tuple[float, ...] = (0.0, 3.0, 8.0, 18.0, 30.0, 50.0, math.inf)
 
-#: verdict values of parcels.csv, in legend order
-VERDICTS: tuple[str, ...] = ("conflict", "review", "consistent", "no_data", "no_rule")
-
-_VERDICT_TEXT = {
-    "conflict": "conflict",
-    "review": "review (near a limit)",
-    "consistent": "consistent",
-    "no_data": "no data (outside DEM)",
-    "no_rule": "no rule for its class",
-}
-# colour, line width (pt), dash pattern; every verdict differs in dash or width,
-# so the map still reads in greyscale
-_VERDICT_STYLE = {
-    "conflict": ("#161616", 2.6, "solid"),
-    "review": ("#2a9fb8", 2.0, (0, (5.0, 2.0))),
-    "consistent": ("#24509a", 1.3, "solid"),
-    "no_data": ("#8f8f8f", 1.4, (0, (1.0, 1.6))),
-    "no_rule": ("#7a3d96", 1.6, (0, (6.0, 2.0, 1.2, 2.0))),
-}
+# verdict vocabulary: landcheck.verdicts.labels
+_VERDICT_TEXT = VERDICT_LABELS
+_VERDICT_STYLE = {v: (VERDICT_COLOURS[v], *VERDICT_LINES[v]) for v in VERDICTS}
 _CONFLICT_HATCH = {1: "////", 2: "\\\\\\\\", 3: "xxxx"}
 _CONFLICT_TEXT = {
     1: "slope at or over the class limit",

@@ -42,8 +42,10 @@ import numpy as np
 from landcheck.about import CAUTION, __version__
 from landcheck.errors import InputDataError, LandcheckWarning
 from landcheck.geo.grid import GridSpec, Window
+from landcheck.geo.shapes import mask_union, polygonal_part
 from landcheck.inputs.dem import ZUnit, open_dem
 from landcheck.inputs.rulebook import ClassRule, LandContext, Rulebook, ZoneKind, load_rules
+from landcheck.verdicts.labels import verdict_badge_css
 from landcheck.zones.prepare import pick_variant
 
 __all__ = ["CONNECTIVITIES", "PrescreenResult", "largest_patch", "parse_polygon", "prescreen"]
@@ -212,17 +214,6 @@ def parse_polygon(text: str) -> tuple[np.ndarray, list[str]]:
     return np.asarray(pts, dtype=np.float64), notes
 
 
-def _polygonal(g):
-    import shapely
-
-    if g is None or g.is_empty:
-        return shapely.Polygon()
-    if g.geom_type in ("Polygon", "MultiPolygon"):
-        return g
-    parts = [p for p in shapely.get_parts(g) if p.geom_type in ("Polygon", "MultiPolygon")]
-    return shapely.union_all(parts) if parts else shapely.Polygon()
-
-
 def _checked_geometry(geom, where: str) -> tuple[object, list[str]]:
     """A non-empty valid polygon; invalid rings are repaired (``shapely.make_valid``) with a note."""
     import shapely
@@ -234,7 +225,7 @@ def _checked_geometry(geom, where: str) -> tuple[object, list[str]]:
     notes = []
     if not geom.is_valid:
         reason = shapely.is_valid_reason(geom)
-        geom = _polygonal(shapely.make_valid(geom))
+        geom = polygonal_part(shapely.make_valid(geom))
         if geom.is_empty or geom.area <= 0:
             raise InputDataError(
                 f"{where}: the polygon is invalid ({reason}) and has no area once repaired; check the vertex order."
@@ -689,7 +680,7 @@ def _forbidden_vector_union(zone_layers: dict, rules: Rulebook, cls: ClassRule):
         else:
             geoms = list(gdf.geometry.values)
         parts += [gg for gg in geoms if gg is not None and not gg.is_empty]
-    return _polygonal(shapely.union_all(parts)) if parts else shapely.Polygon()
+    return polygonal_part(shapely.union_all(parts)) if parts else shapely.Polygon()
 
 
 def _raster_forbidden_bits(rules: Rulebook, cls: ClassRule) -> int:
@@ -710,18 +701,6 @@ def _coverage_grid(geom, grid: GridSpec, win: Window) -> np.ndarray:
     _, rr, cc, f = coverage_triplets(np.array([geom], dtype=object), grid.window_transform(win), win.height, win.width)
     np.add.at(frac, (rr, cc), f)
     return frac
-
-
-def _cells_polygon(mask: np.ndarray, grid: GridSpec, win: Window):
-    """Union of the cells of ``mask`` as (multi)polygon in the grid's CRS."""
-    import rasterio.features
-    import shapely
-    from shapely.geometry import shape
-
-    if not mask.any():
-        return shapely.Polygon()
-    shapes = rasterio.features.shapes(mask.astype(np.uint8), mask=mask, transform=grid.window_transform(win))
-    return shapely.union_all([shape(s) for s, _ in shapes])
 
 
 def _histogram_edges(limit_pct: float | None) -> np.ndarray:
@@ -745,7 +724,7 @@ def _figures(res, row: dict, rules: Rulebook, cls: ClassRule, geom, grid: GridSp
     cell_m2 = (grid.cell_area_m2(rows) * float(factor[0]))[:, None] * np.ones((1, win.width))
     frac = _coverage_grid(geom, grid, win)
     forbidden_vec = _forbidden_vector_union(dict(_zone_layers(res)), rules, cls)
-    free_geom = _polygonal(geom.difference(forbidden_vec)) if not forbidden_vec.is_empty else geom
+    free_geom = polygonal_part(geom.difference(forbidden_vec)) if not forbidden_vec.is_empty else geom
     free = _coverage_grid(free_geom, grid, win) if not forbidden_vec.is_empty else frac
     valid = np.isfinite(slope)
     inside = frac > 0
@@ -766,8 +745,10 @@ def _figures(res, row: dict, rules: Rulebook, cls: ClassRule, geom, grid: GridSp
     at_over = float(hist[edges[:-1] >= limit].sum()) if limit is not None else None
 
     covered = float(row["covered_m2"])
-    free_geom_buildable = _polygonal(_cells_polygon(meets & (free > 0), grid, win).intersection(free_geom))
-    patch_geom = _polygonal(_cells_polygon(patch, grid, win).intersection(free_geom))
+    free_geom_buildable = polygonal_part(
+        mask_union(meets & (free > 0), grid.window_transform(win)).intersection(free_geom)
+    )
+    patch_geom = polygonal_part(mask_union(patch, grid.window_transform(win)).intersection(free_geom))
     zone_cols = {c["name"]: c for c in res.summary.get("zone_columns", [])}
     kinds = {c["name"]: c.get("kind") for c in (res.summary.get("zones") or {}).get("columns", [])}
     zones = []
@@ -846,8 +827,8 @@ def _figures(res, row: dict, rules: Rulebook, cls: ClassRule, geom, grid: GridSp
         "patch_geom": patch_geom,
         "buildable_geom": free_geom_buildable,
         "forbidden_vec": forbidden_vec,
-        "slope_breach_geom": _polygonal(_cells_polygon(slope_breach, grid, win).intersection(geom)),
-        "zone_cells_geom": _polygonal(_cells_polygon(zone_cells, grid, win).intersection(geom)),
+        "slope_breach_geom": polygonal_part(mask_union(slope_breach, grid.window_transform(win)).intersection(geom)),
+        "zone_cells_geom": polygonal_part(mask_union(zone_cells, grid.window_transform(win)).intersection(geom)),
         "window": win,
     }
     return figures, arrays
@@ -924,11 +905,11 @@ def _draw_map(
         zl.append(f"hazard zone: {name[5:].replace('_', ' ')}")
     # parts of the parcel that are not buildable, hatched like the audit's conflict cells
     slope_g = arrays["slope_breach_geom"]
-    zone_g = _polygonal(arrays["zone_cells_geom"].union(arrays["forbidden_vec"].intersection(geom)))
+    zone_g = polygonal_part(arrays["zone_cells_geom"].union(arrays["forbidden_vec"].intersection(geom)))
     kinds = {
-        1: _polygonal(slope_g.difference(zone_g)),
-        2: _polygonal(zone_g.difference(slope_g)),
-        3: _polygonal(slope_g.intersection(zone_g)),
+        1: polygonal_part(slope_g.difference(zone_g)),
+        2: polygonal_part(zone_g.difference(slope_g)),
+        3: polygonal_part(slope_g.intersection(zone_g)),
     }
     ch, cl = [], []
     for k, gk in kinds.items():
@@ -1053,10 +1034,6 @@ h2{font-size:10.5pt;margin:2.5mm 0 1mm;border-bottom:1.5px solid #1b1b1b}
 font-size:10pt}
 .verdict{margin:1.5mm 0}
 .badge{display:inline-block;padding:0 5px;border-radius:3px;border:1.5px solid;font-weight:700}
-.v-conflict{background:#161616;color:#fff;border-color:#161616}
-.v-review{border-style:dashed;border-color:#1f7f93;color:#0f4f5c}
-.v-consistent{border-color:#24509a;color:#24509a}
-.v-no_data{border-style:dotted;border-color:#6f6f6f;color:#4f4f4f}
 ul{margin:.5mm 0 0;padding-left:5mm}
 .cards{display:flex;gap:2mm;margin:1.5mm 0}
 .card{flex:1;border:1px solid #c9c9c9;border-radius:4px;padding:1.2mm 2mm;background:#f3f1ec}
@@ -1072,7 +1049,7 @@ td.n{text-align:right;white-space:nowrap;font-variant-numeric:tabular-nums}
 .small{font-size:7.5pt}
 footer{margin-top:2mm;border-top:1px solid #c9c9c9;padding-top:1mm}
 @media print{body{max-width:none}}
-"""
+""" + verdict_badge_css()
 
 
 def _e(text) -> str:

@@ -37,6 +37,7 @@ from landcheck.evidence.maps import (
 )
 from landcheck.hashing import sha256_file
 from landcheck.outputs.writers import write_bytes
+from landcheck.verdicts.labels import verdict_badge_css
 
 __all__ = ["build_report", "sha256_file"]
 
@@ -608,11 +609,6 @@ th button:focus-visible{outline:2px solid #1d4f91;outline-offset:2px}
 th[aria-sort=ascending] .arrow::after{content:" \\25B2"}
 th[aria-sort=descending] .arrow::after{content:" \\25BC"}
 .badge{display:inline-block;padding:0 6px;border-radius:3px;font-size:.85em;border:1.5px solid;white-space:nowrap}
-.v-conflict{background:#161616;color:#fff;border-color:#161616}
-.v-review{border-style:dashed;border-color:#1f7f93;color:#0f4f5c}
-.v-consistent{border-color:#24509a;color:#24509a}
-.v-no_data{border-style:dotted;border-color:#6f6f6f;color:#4f4f4f}
-.v-no_rule{border-style:dashed;border-color:#7a3d96;color:#5e2c75}
 .flag{border-left:5px solid var(--warn);padding:6px 10px;background:var(--warnbg)}
 ul.warnings li{margin:4px 0}
 li.report-warning{color:var(--warn)}
@@ -625,7 +621,7 @@ code{font-family:ui-monospace,"DejaVu Sans Mono",monospace;font-size:.92em;word-
 .st-ok{color:#1c5e2a}.st-bad{color:var(--warn);font-weight:600}.st-missing{color:var(--muted)}
 footer{margin-top:40px;padding-bottom:30px;border-top:1px solid var(--line)}
 @media print{nav,.table-wrap{max-height:none;overflow:visible}thead th{position:static}}
-"""
+""" + verdict_badge_css()
 
 # Table sorting: click a header to sort ascending, again for descending.  Numbers
 # compare numerically from data-value; text compares by UTF-16 code units.  Empty

@@ -18,6 +18,7 @@ __all__ = [
     "prime_vertical_radius_m",
     "metres_per_degree_lon",
     "metres_per_degree_lat",
+    "authalic_area_per_radian_m2",
     "band_area_m2",
 ]
 
@@ -50,16 +51,32 @@ def metres_per_degree_lat(lat_deg, a_m: float = WGS84_A_M, e2: float = _E2):
     return np.radians(1.0) * meridian_radius_m(lat_deg, a_m, e2)
 
 
-def _authalic_q(lat_deg, e2: float):
+def authalic_area_per_radian_m2(lat_rad, a_m: float = WGS84_A_M, e2: float = _E2):
+    """``F(phi)``: ellipsoid area (m^2) between the equator and latitude ``phi`` (radians) per radian of longitude.
+
+    F = (a^2 / 2) q(phi) with Snyder's authalic ``q`` (docs/references.md §12), written with ``arctanh``;
+    a sphere (``e2 = 0``) gives a^2 sin(phi).
+
+    >>> f"{4 * 3.141592653589793 * float(authalic_area_per_radian_m2(3.141592653589793 / 2)):.6e}"
+    '5.100656e+14'
+    """
+    s = np.sin(lat_rad)
+    if e2 == 0.0:
+        return a_m * a_m * s
     e = np.sqrt(e2)
-    s = np.sin(np.radians(lat_deg))
-    return (1.0 - e2) * (s / (1.0 - e2 * s * s) - (1.0 / (2.0 * e)) * np.log((1.0 - e * s) / (1.0 + e * s)))
+    return a_m * a_m * (1.0 - e2) / 2.0 * (s / (1.0 - e2 * s * s) + np.arctanh(e * s) / e)
 
 
 def band_area_m2(lat1_deg, lat2_deg, dlon_deg, a_m: float = WGS84_A_M, e2: float = _E2):
     """Exact area of the ellipsoid patch between two parallels and ``dlon_deg`` of longitude.
 
-    A = (a^2 * dlon / 2) * |q(lat2) - q(lat1)|  (Snyder 1987, authalic q).
+    A = dlon * |F(lat2) - F(lat1)| with F of :func:`authalic_area_per_radian_m2` (Snyder 1987).
+
+    >>> f"{float(band_area_m2(0.0, 1.0, 1.0)):.3f}"
+    '12308463893.975'
     """
-    dq = np.abs(_authalic_q(lat2_deg, e2) - _authalic_q(lat1_deg, e2))
-    return 0.5 * a_m * a_m * np.radians(np.abs(dlon_deg)) * dq
+    df = np.abs(
+        authalic_area_per_radian_m2(np.radians(lat2_deg), a_m, e2)
+        - authalic_area_per_radian_m2(np.radians(lat1_deg), a_m, e2)
+    )
+    return np.radians(np.abs(dlon_deg)) * df

@@ -42,6 +42,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from landcheck.geo.geodesy import authalic_area_per_radian_m2
+
 __all__ = ["ground_areas_fast", "polygon_areas_m2"]
 
 #: longest edge piece when densifying parcel edges before the area (metres / degrees)
@@ -49,15 +51,6 @@ DENSIFY_M = 20.0
 DENSIFY_DEG = 2e-4
 #: polygons of a projected layer at most this wide (m) take map-plane area x centroid factor
 SMALL_EXTENT_M = 2000.0
-
-
-def _authalic_f(lat_rad: np.ndarray, a_m: float, e2: float) -> np.ndarray:
-    """``F(phi)``: area (m^2) between the equator and latitude ``phi`` per radian of longitude."""
-    s = np.sin(lat_rad)
-    if e2 == 0.0:
-        return a_m * a_m * s
-    e = np.sqrt(e2)
-    return a_m * a_m * (1.0 - e2) / 2.0 * (s / (1.0 - e2 * s * s) + np.arctanh(e * s) / e)
 
 
 def polygon_areas_m2(
@@ -81,7 +74,7 @@ def polygon_areas_m2(
         Area of each ring in m^2, edges taken as straight lines of the equal-area cylindrical map.
     """
     lam = np.radians(lon_deg)
-    f = _authalic_f(np.radians(lat_deg), a_m, e2)
+    f = authalic_area_per_radian_m2(np.radians(lat_deg), a_m, e2)
     same = ring_of_vertex[1:] == ring_of_vertex[:-1]
     dlam = lam[1:] - lam[:-1]
     dlam = (dlam + np.pi) % (2.0 * np.pi) - np.pi  # shortest way round: rings may cross the antimeridian

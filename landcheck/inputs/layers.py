@@ -15,6 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from landcheck.errors import InputDataError, LandcheckWarning
+from landcheck.geo.shapes import polygonal_part
 
 __all__ = ["read_parcels", "read_layer", "validate_parcels", "ParcelSet"]
 
@@ -203,7 +204,7 @@ def validate_parcels(
     invalid = ~empty & ~shapely.is_valid(geom)
     if invalid.any():
         repaired = shapely.make_valid(geom[invalid])
-        repaired = np.array([_polygonal_part(g) for g in repaired], dtype=object)
+        repaired = np.array([polygonal_part(g) for g in repaired], dtype=object)
         geom = geom.copy()
         geom[invalid] = repaired
         gdf = gdf.set_geometry(geom, crs=gdf.crs)
@@ -225,21 +226,6 @@ def validate_parcels(
         warnings.warn(msg, LandcheckWarning, stacklevel=2)
     gdf = to_crs_checked(gdf, target_crs_wkt, where, "parcels")
     return ParcelSet(gdf, where, notes)
-
-
-def _polygonal_part(g):
-    """Keep the polygonal part of a repaired geometry (make_valid may add lines or points)."""
-    import shapely
-
-    if g is None or g.is_empty:
-        return shapely.Polygon()
-    t = g.geom_type
-    if t in ("Polygon", "MultiPolygon"):
-        return g
-    if t == "GeometryCollection":
-        polys = [p for p in g.geoms if p.geom_type in ("Polygon", "MultiPolygon")]
-        return shapely.union_all(polys) if polys else shapely.Polygon()
-    return shapely.Polygon()
 
 
 def ground_areas(gdf, crs_wkt: str) -> tuple[np.ndarray, np.ndarray]:

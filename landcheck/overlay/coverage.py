@@ -4,8 +4,8 @@ For every polygon and every raster cell this module computes the *coverage
 fraction*: the share of the cell's planar area (in the raster CRS) that lies
 inside the polygon, a number in (0, 1].  Weighting cell values by these
 fractions gives exact per-parcel area shares for straight-edged polygons, up
-to floating-point rounding; the cell-centre rule does not (REFERENCES.md
-section 6.2: a 1.5 x 1.5-cell square counts 1 to 4 cells under it).
+to floating-point rounding; the cell-centre rule does not (docs/references.md
+§15: a 1.5 x 1.5-cell square counts 1 to 4 cells under it).
 
 Method (Green's theorem, derived here)
 --------------------------------------

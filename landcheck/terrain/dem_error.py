@@ -314,7 +314,7 @@ def check_realizations(n) -> int:
     """
     if isinstance(n, bool) or not isinstance(n, numbers.Integral):
         if isinstance(n, numbers.Real) and not isinstance(n, bool) and float(n).is_integer():
-            n = int(n)
+            n = int(float(n))
         else:
             raise RuleFileError(
                 f"realizations = {n!r}; expected a whole number from {MIN_REALIZATIONS} to {MAX_REALIZATIONS}."

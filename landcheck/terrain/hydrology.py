@@ -44,7 +44,8 @@ from affine import Affine
 from scipy import ndimage
 
 from landcheck.errors import InputDataError
-from landcheck.geo import geodesy
+from landcheck.geo.grid import GridSpec
+from landcheck.geo.shapes import mask_parts
 
 _IDENTITY = Affine.identity()
 
@@ -379,9 +380,9 @@ def _row_cell_sizes_m(shape, transform: Affine, latlon: bool, cell_size_m):
         hx = np.broadcast_to(np.asarray(hx, dtype=np.float64), (rows,)).copy()
         hy = np.broadcast_to(np.asarray(hy, dtype=np.float64), (rows,)).copy()
     elif latlon:
-        lat = transform.f + transform.e * (np.arange(rows, dtype=np.float64) + 0.5)
-        hx = geodesy.metres_per_degree_lon(lat) * abs(transform.a)
-        hy = geodesy.metres_per_degree_lat(lat) * abs(transform.e)
+        # no CRS here: WGS84; callers with a grid pass its own ellipsoid's sizes as cell_size_m
+        grid = GridSpec(transform, "", shape[1], rows, geographic=True)
+        hx, hy = grid.cell_size_m(np.arange(rows))
     else:
         # projected: only the ratio matters for choosing a direction, so the CRS unit cancels
         hx = np.full(rows, abs(transform.a))
@@ -456,8 +457,8 @@ def flow_directions(
         Pixel-to-CRS transform of the raster (north-up).
     latlon : bool, default False
         True when the CRS is geographic (degrees); cell sizes in metres are
-        then taken per row on the WGS84 ellipsoid, unless ``cell_size_m`` is
-        given.
+        then taken per row on the WGS84 ellipsoid
+        (:meth:`landcheck.geo.grid.GridSpec.cell_size_m`), unless ``cell_size_m`` is given.
     cell_size_m : (hx, hy), optional
         East-west and north-south cell size in metres, scalars or one value
         per row (as :meth:`landcheck.geo.grid.GridSpec.cell_size_m` returns).
@@ -718,15 +719,6 @@ def streams_to_lines(
     return gpd.GeoDataFrame(data, geometry=geoms, crs=crs)
 
 
-def _pixel_polygons(mask: np.ndarray):
-    """Polygons of the 4-connected parts of ``mask`` in pixel coordinates (exact integers)."""
-    import rasterio.features
-    import shapely
-
-    shapes = rasterio.features.shapes(mask.astype(np.uint8), mask=mask, connectivity=4, transform=Affine.identity())
-    return [shapely.geometry.shape(geom) for geom, _ in shapes]
-
-
 def _to_crs_coords(geoms, transform: Affine):
     import shapely
 
@@ -764,7 +756,7 @@ def mask_to_polygons(mask: np.ndarray, transform: Affine, crs):
     columns = {"part_id": np.int64, "n_cells": np.int64}
     if not m.any():
         return _empty_frame(columns, crs)
-    pixel = _pixel_polygons(m)
+    pixel = mask_parts(m)
     n_cells = np.array([round(p.area) for p in pixel], dtype=np.int64)
     geoms = _to_crs_coords(pixel, transform)
     return gpd.GeoDataFrame(
@@ -804,7 +796,7 @@ def mask_boundary_lines(mask: np.ndarray, transform: Affine, crs):
     if not m.any() or m.all():
         return _empty_frame(columns, crs)
     rows, cols = m.shape
-    pixel = _pixel_polygons(m)
+    pixel = mask_parts(m)
     edges = shapely.union_all([p.boundary for p in pixel])
     frame = shapely.box(0, 0, cols, rows).boundary
     inner = shapely.line_merge(shapely.difference(edges, frame))

@@ -5,7 +5,7 @@ Scheme
 Each cell with a slope gets the number of its slope class, 1..n, from a
 slope-class scheme (:mod:`landcheck.terrain.slope_classes`).  The default is
 ``planning-6``, the land-use planning classes 0-3-8-18-30-50 %
-(REFERENCES.md 2.1; docs/references.md): 1 level to nearly level (0-3 %),
+(docs/references.md §7): 1 level to nearly level (0-3 %),
 2 gently sloping to undulating (3-8 %), 3 undulating to rolling (8-18 %),
 4 rolling to moderately steep (18-30 %), 5 steep (30-50 %), 6 very steep
 (>= 50 %).  Breaks are "or over" at the lower edge, as slope limits are

@@ -5,7 +5,7 @@ module repeats the slope part of the audit on ``N`` equally likely DEMs, each
 the DEM plus one seeded, spatially correlated error field
 (:mod:`landcheck.terrain.dem_error`), and reports how often each parcel comes out
 as a conflict (Hunter & Goodchild 1997; Fisher 1998; the recipe of
-REFERENCES.md 4.2).
+docs/references.md §11).
 
 For every realization ``k`` and every window of the audit:
 

@@ -42,6 +42,7 @@ import numpy as np
 
 from landcheck.errors import InputDataError, RuleFileError
 from landcheck.geo.grid import GridSpec, Window
+from landcheck.geo.shapes import mask_union, polygonal_part
 from landcheck.inputs.rulebook import Rulebook
 from landcheck.overlay.sums import ROLE_FORBIDDEN_PIECE, OverlayPlan
 
@@ -102,32 +103,6 @@ def _cell_window(grid: GridSpec, bounds) -> Window | None:
     return Window(r0, c0, r1 - r0, c1 - c0)
 
 
-def _polygonal(geom):
-    import shapely
-
-    if geom is None or geom.is_empty:
-        return shapely.MultiPolygon()
-    parts = [p for p in shapely.get_parts(geom) if p.geom_type in ("Polygon", "MultiPolygon") and not p.is_empty]
-    if not parts:
-        return shapely.MultiPolygon()
-    u = shapely.union_all(parts)
-    return u
-
-
-def _mask_polygons(mask: np.ndarray, transform):
-    """Union of the 4-connected regions of True cells as polygons in map coordinates."""
-    import shapely
-    from rasterio import features
-
-    if not mask.any():
-        return shapely.MultiPolygon()
-    geoms = [
-        shapely.geometry.shape(g)
-        for g, _ in features.shapes(mask.astype(np.uint8), mask=mask, transform=transform, connectivity=4)
-    ]
-    return shapely.union_all(geoms)
-
-
 def _ground(geoms, crs_wkt: str) -> np.ndarray:
     import geopandas as gpd
 
@@ -160,7 +135,7 @@ def _apply_mmu(compliant, non_compliant, mmu_m2: float, crs_wkt: str, grid_size:
             compliant = (
                 shapely.union_all(parts[~small], grid_size=grid_size) if (~small).any() else shapely.MultiPolygon()
             )
-    return _polygonal(compliant), _polygonal(non_compliant)
+    return polygonal_part(compliant), polygonal_part(non_compliant)
 
 
 #: overlay precision as a share of the cell size: the set operations snap-round to this grid
@@ -209,11 +184,11 @@ class _SplitTask:
             limit = plan.thresholds_pct[plan.limit_index[i]] if plan.limit_index[i] >= 0 else None
             zb = zones.bits(win) if zones is not None else None
             mask = breach_mask(slope_pct, limit, zb, int(plan.raster_forbid_bits[i]))
-            breach = _mask_polygons(mask, g.window_transform(win))
+            breach = mask_union(mask, g.window_transform(win))
         if i in self.piece_of:
             breach = shapely.union_all([breach, *self.piece_of[i]])
-        non_compliant = _polygonal(shapely.intersection(parcel, breach, grid_size=gs))
-        compliant = _polygonal(shapely.difference(parcel, non_compliant, grid_size=gs))
+        non_compliant = polygonal_part(shapely.intersection(parcel, breach, grid_size=gs))
+        compliant = polygonal_part(shapely.difference(parcel, non_compliant, grid_size=gs))
         return _apply_mmu(compliant, non_compliant, self.mmu, g.crs_wkt, gs)
 
 
@@ -301,7 +276,7 @@ def draft_reclassification(
             f'add designated_class = "<class>" to [classes.{missing[0]}] (the class proposed for the part that '
             "breaks its rule)" + (f"; also missing for: {', '.join(missing[1:])}" if len(missing) > 1 else "") + "."
         )
-    piece_of = {}
+    piece_of: dict[int, list] = {}
     for gi in np.flatnonzero(plan.geom_role == ROLE_FORBIDDEN_PIECE):
         piece_of.setdefault(int(plan.geom_parcel[gi]), []).append(geoms[gi])
     ids = parcels["parcel_id"].to_numpy() if "parcel_id" in parcels.columns else np.arange(1, n + 1)

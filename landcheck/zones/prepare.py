@@ -29,6 +29,7 @@ import numpy as np
 
 from landcheck.errors import InputDataError
 from landcheck.geo.grid import GridSpec, Window, apply_transform
+from landcheck.geo.shapes import polygonal_part
 from landcheck.inputs.rulebook import Rulebook, ZoneKind, ZoneRule
 
 __all__ = ["ZoneColumn", "ZoneSet", "prepare_zones", "buffer_ground", "pick_variant", "vector_pieces"]
@@ -209,7 +210,11 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
         if routing is None:
             step("flow routing (depression filling, D8) on the whole DEM")
             routing = hydrology.flow_directions(
-                elev, g.transform, latlon=g.geographic, outlet_mask=sea if sea is not None and sea.any() else None
+                elev,
+                g.transform,
+                latlon=g.geographic,
+                cell_size_m=g.cell_size_m(np.arange(g.height)) if g.geographic else None,  # the CRS's ellipsoid
+                outlet_mask=sea if sea is not None and sea.any() else None,
             )
         return routing
 
@@ -301,7 +306,7 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
                 if sel.any()
                 else shapely.Polygon()
             )
-            geom = _polygonal(geom)
+            geom = polygonal_part(geom)
             columns.append(ZoneColumn(z.name, z.label, zi, -1, {None: geom}))
             layers[f"zone_{z.name}"] = gpd.GeoDataFrame(
                 {"min_level": [z.params["min_level"]]}, geometry=[geom], crs=g.crs_wkt
@@ -357,15 +362,6 @@ def _rise_tag(rise: float) -> str:
     return f"{rise:g}m".replace(".", "p").replace("-", "m")
 
 
-def _polygonal(geom):
-    import shapely
-
-    if geom.geom_type in ("Polygon", "MultiPolygon"):
-        return geom
-    parts = [p for p in shapely.get_parts(geom) if p.geom_type in ("Polygon", "MultiPolygon")]
-    return shapely.union_all(parts) if parts else shapely.Polygon()
-
-
 def pick_variant(variants: dict, ctx):
     """The zone geometry that applies to a class of land-use context ``ctx``.
 
@@ -408,7 +404,7 @@ def vector_pieces(zones: ZoneSet, rules: Rulebook, parcel_geoms: np.ndarray, cla
             return
         inter = shapely.intersection(parcel_geoms[sel_idx][pi], parts[zi])
         keep = ~shapely.is_empty(inter) & (shapely.area(inter) > 0)
-        inter = np.array([_polygonal(x) for x in inter[keep]], dtype=object)
+        inter = np.array([polygonal_part(x) for x in inter[keep]], dtype=object)
         out_g.append(inter)
         out_p.append(sel_idx[pi[keep]])
         out_r.append(np.full(len(inter), role, np.int64))

@@ -1,4 +1,4 @@
-"""Error-to-exit-code mapping shared by every command (imports no command module, so no cycle)."""
+"""Map library errors to exit codes for every command; tracebacks only with -vv."""
 
 from __future__ import annotations
 
@@ -11,8 +11,6 @@ import click
 from landcheck.errors import LandcheckError
 
 from .options import EXIT_INTERNAL
-
-__all__ = ["handle_errors"]
 
 
 def handle_errors(fn):
