@@ -69,7 +69,7 @@ _EXTRA_FILES = (
 
 @pytest.mark.slow
 def test_every_pass_gives_identical_files_on_threads_processes_and_dask(tmp_path):
-    # Reference: the local-threads engine (invariant, STYLE.md 6.4: results come back in window order,
+    # Reference: the local-threads engine (invariant, common practice: results come back in window order,
     # so every reduction adds in the same order): the audit, the confidence realizations, the capability
     # areas (folded into the window pass) and the drafted reclassification must give byte-identical files.
     from distributed import LocalCluster
