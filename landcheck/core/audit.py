@@ -68,6 +68,7 @@ class AuditSettings:
     z_unit: ZUnit = ZUnit.METRE
     parcels_layer: str | None = None
     parcels_crs: str | None = None
+    zone_polygons: bool = False  # also write polygons of the raster zones to zones/*.gpkg
 
 
 @dataclass
@@ -142,7 +143,7 @@ def _build_plan(
             zbits |= 1 << zone_idx[zn]
             for col in columns:
                 if col.zone_index == zone_idx[zn] and col.raster_channel >= 0:
-                    rbits |= 1 << col.raster_channel
+                    rbits |= 1 << col.channel_for(c.context)
         raster_forbid[sel] = rbits
         zone_forbid[sel] = zbits
     piece_parcel = np.empty(0, np.int64) if piece_parcel is None else piece_parcel
@@ -166,6 +167,7 @@ def _build_plan(
         col_zone,
         rules.capability_limit_pct,
         ground_factor,
+        zones.parcel_channels(rules, class_names) if zones is not None else None,
     )
 
 
@@ -231,6 +233,7 @@ def audit(
     capability_scheme=None,
     draft_mmu_m2: float | None = None,
     skip_confidence: bool = False,
+    zone_polygons: bool = False,
 ) -> AuditResult:
     """Run the audit and write its output folder (docs/outputs.md).
 
@@ -256,6 +259,7 @@ def audit(
         ZUnit.from_user(z_unit),
         parcels_layer,
         parcels_crs,
+        zone_polygons=zone_polygons,
     )
     raster_format = RasterFormat.from_user(rasters)  # cog | gtiff | none (docs/scale.md)
     if raster_format is RasterFormat.NONE and make_report:
