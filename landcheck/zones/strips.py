@@ -39,7 +39,7 @@ import math
 import numpy as np
 from scipy import ndimage
 
-from landcheck.geo.grid import GridSpec, Window, iter_windows
+from landcheck.geo.grid import GridSpec, iter_windows
 from landcheck.zones.cells import MaskStore
 
 __all__ = ["ground_cell_sides", "write_strips"]
