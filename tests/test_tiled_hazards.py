@@ -1,7 +1,7 @@
 """Tiled hazard steps against whole-raster references.
 
 * Components: :func:`landcheck.terrain.tiled_components.seeded_components` against
-  ``scipy.ndimage.label`` on the whole array (8-connectivity; Source: docs/references.md §12,
+  ``scipy.ndimage.label`` on the whole array (8-connectivity; Source: docs/references.md, "Tiled hazard steps",
   labelling and union-find joins across tile edges), with tile sizes that do not divide the raster
   and components that wind through many tiles.
 * Sea and sea-level rise of ``prepare_zones`` (tiles of 7 and 13 cells) against the whole-raster
@@ -43,7 +43,7 @@ def _label_reference(cand, seeds):
 
 @pytest.mark.parametrize("tile", [1, 3, 7, 16, 64])
 def test_components_equal_whole_raster_labelling(tile):
-    # Source: docs/references.md §12 (8-connected components; tiles joined across edges and corners)
+    # Source: docs/references.md, "Tiled hazard steps" (8-connected components; tiles joined across edges and corners)
     rng = np.random.default_rng(tile)
     partial = 0
     for k in range(8):
@@ -114,7 +114,7 @@ def _coastal_dem(h, w, seed=0):
 
 @pytest.mark.parametrize("tile", [7, 13])
 def test_prepared_sea_and_rise_equal_whole_raster(tmp_path, tile):
-    # Source: docs/references.md §12 (tiled labelling) against the whole-raster bathtub with connectivity
+    # Source: docs/references.md, "Tiled hazard steps" (tiled labelling) against the whole-raster bathtub with connectivity
     # (binary propagation, hydrology.inundation_masks)
     from types import SimpleNamespace
 
