@@ -241,8 +241,8 @@ def tiled_fill(
         eb_all.append(np.where(eb > 0, eb + off, 0))
         ew_all.append(ew)
         next_id += n_labels - 1
-    for k, win in enumerate(wins):
-        ti, tj = divmod(k, n_tc)
+    for k in range(len(wins)):
+        tj = k % n_tc
         (gk, zk) = perims[k]
         pairs = []
         if tj + 1 < n_tc:

@@ -276,6 +276,7 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
             latlon=g.geographic,
             outlet_mask=sea_all if sea_all is not None and sea_all.any() else None,
         )
+        del elev
         area = hydrology.upstream_area_m2(routing, g.cell_area_m2(np.arange(g.height)) * 1.0)
         for zi, z in enumerate(rules.zones):
             if z.kind is ZoneKind.HAND or z.params.get("derive") == "streams":
@@ -300,7 +301,7 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
                     _write_array(store, nm, mask, g, tile)
                     hand_masks[zi] = nm
                     del mask
-        del routing, area, elev, sea_all  # nothing of the size of the raster is kept past this point
+        del routing, area, sea_all  # nothing of the size of the raster is kept past this point
 
     for zi, z in enumerate(rules.zones):
         if z.kind is ZoneKind.EASEMENT and "layer" not in z.params:
