@@ -204,7 +204,7 @@ def test_strips_equal_whole_raster_distance_transform(tile, shore):
 
 def test_geographic_strip_is_conservative():
     # On a geographic grid each tile uses the smallest ground cell sides of its rows (halo included):
-    # the strip contains the strip measured with each row's own sizes (docs/hazards.md).
+    # the strip contains the strip measured with each row's own sizes (docs/scale.md, "Hazard zones").
     h, w = 40, 30
     g = GridSpec(Affine(0.0001, 0, 20.0, 0, -0.0001, 60.0), "EPSG:4326", w, h, True)
     rng = np.random.default_rng(3)

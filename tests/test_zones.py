@@ -207,7 +207,7 @@ width_m = 15.0
     assert p.loc[0, "verdict"] == "conflict"
     assert (res.out_dir / "zones" / "derived_streams.gpkg").exists()
     assert (res.out_dir / "zones" / "zone_valley_floor.gpkg").exists()
-    # raster strip (docs/hazards.md): cell centres within 15 m on the ground of the channel centre x = 305 ->
+    # raster strip (docs/scale.md, "Hazard zones"): cell centres within 15 m on the ground of the channel centre x = 305 ->
     # the channel column and its two neighbours (10 m / 0.9996 UTM scale away), 30 of the parcel's 200 m
     assert p.loc[0, "zone_stream_strip_share"] == pytest.approx(30 / 200, abs=1e-9)
     # without the option the cell zones stay rasters: no polygons written

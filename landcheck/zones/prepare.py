@@ -305,7 +305,7 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
 
     for zi, z in enumerate(rules.zones):
         if z.kind is ZoneKind.EASEMENT and "layer" not in z.params:
-            # derived easement: a strip of cells per distinct width (docs/hazards.md, zones.strips)
+            # derived easement: a strip of cells per distinct width (docs/scale.md, "Hazard zones", zones.strips)
             widths = _widths(z)
             distinct = sorted(set(widths.values()))
             names = {w: f"ease_{zi}_{k}" for k, w in enumerate(distinct)}
