@@ -510,11 +510,13 @@ def _hazard_runs(args, work: Path, env, lc_cmd) -> list[dict]:
         )
         rows.append(row)
         ratio = row["lc_s"] / row["ref_s"] if row["ref_s"] else float("nan")
+        cpu_ratio = row["lc_cpu_s"] / row["ref_cpu_s"] if row["ref_cpu_s"] else float("nan")
         print(
             f"hazards {n:>6}^2 {count:>7} parcels: landcheck {row['lc_s']:7.2f} s (cpu {row['lc_cpu_s']:6.2f}) "
             f"peak {row['lc_peak_mib']:6.0f} MiB | by-hand {row['ref_s'] or float('nan'):7.2f} s "
+            f"(cpu {row['ref_cpu_s'] or float('nan'):6.2f}) "
             f"peak {row['ref_peak_mib'] or float('nan'):6.0f} MiB | ratio {ratio:5.2f} "
-            f"(target <= {HAZARD_RATIO_TARGET}) | peak {'within' if row['lc_peak_mib'] <= HAZARD_PEAK_TARGET_MIB else 'OVER'} "
+            f"(target <= {HAZARD_RATIO_TARGET}), cpu ratio {cpu_ratio:5.2f} | peak {'within' if row['lc_peak_mib'] <= HAZARD_PEAK_TARGET_MIB else 'OVER'} "
             f"{HAZARD_PEAK_TARGET_MIB} MiB | load {row['load']:.2f}",
             flush=True,
         )
