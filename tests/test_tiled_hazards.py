@@ -282,3 +282,77 @@ def test_tiled_fill_basin_across_many_tiles():
     assert np.array_equal(got, fill_whole(z), equal_nan=True)
     inside = d < 24
     assert np.all(got[inside] == np.maximum(z[inside], np.float32(1.5)))  # the basin fills to the gap level
+
+
+def test_audit_shares_equal_for_tiles_that_do_not_divide_the_raster(tmp_path):
+    # Per-parcel zone shares do not depend on the tiling: 7-cell tiles (many tiles, not dividing the 53 x 67
+    # raster) against one tile covering the whole raster (the whole-raster labelling and distance transform).
+    # Source: docs/references.md, "Tiled hazard steps" (tiled labelling and distance transforms are exact).
+    import shapely
+    from _support import write_parcels, write_raster
+
+    from landcheck.core.audit import audit
+
+    h, w = 53, 67
+    rng = np.random.default_rng(21)
+    x = np.arange(w)[None, :] * 10.0
+    y = np.arange(h)[:, None] * 10.0
+    z = 0.012 * (x - 120) + 0.4 * np.abs(y - 260) / 10 + rng.normal(0, 0.3, (h, w))  # coast west, valley E-W
+    z[:, :8] = np.minimum(z[:, :8], -0.5)
+    dem = write_raster(tmp_path / "dem.tif", z.astype(np.float32))
+    x0, y0 = 400000.0, 1600000.0
+    polys, zoning = [], []
+    for i in range(6):
+        for j in range(8):
+            polys.append(shapely.box(x0 + 20 + j * 80, y0 - 25 - i * 85, x0 + 85 + j * 80, y0 - 95 - i * 85))
+            zoning.append(["R", "A", "F"][(i + j) % 3])
+    parcels = write_parcels(tmp_path / "p.gpkg", polys, pid=list(range(1, 49)), zoning=zoning)
+    (tmp_path / "r.toml").write_text(
+        """
+[rulebook]
+class_field = "zoning"
+id_field = "pid"
+[classes.res]
+values = ["R"]
+context = "urban"
+forbidden_zones = ["shore", "streams", "hand", "slr"]
+[classes.agr]
+values = ["A"]
+context = "agricultural"
+forbidden_zones = ["shore", "streams", "hand", "slr"]
+[classes.forest]
+values = ["F"]
+context = "forest"
+forbidden_zones = ["shore", "streams"]
+[zones.shore]
+kind = "easement"
+derive = "shoreline"
+width_m = { urban = 3.0, agricultural = 20.0, forest = 40.0 }
+[zones.streams]
+kind = "easement"
+derive = "streams"
+channel_area_m2 = 20000.0
+width_m = { urban = 3.0, agricultural = 20.0, forest = 40.0 }
+[zones.hand]
+kind = "hand"
+max_hand_m = 1.5
+channel_area_m2 = 20000.0
+[zones.slr]
+kind = "sea_rise"
+rise_m = 1.0
+scenarios_m = [0.5, 1.0, 2.0]
+"""
+    )
+    small = audit(dem, parcels, tmp_path / "r.toml", tmp_path / "o7", make_report=False, tile_cells=7).parcels
+    whole = audit(dem, parcels, tmp_path / "r.toml", tmp_path / "o1", make_report=False, tile_cells=1024).parcels
+    cols = [c for c in whole.columns if c.startswith("zone_") and c.endswith("_m2")] + ["conflict_m2"]
+    assert len(cols) >= 7
+    for c in cols:
+        np.testing.assert_allclose(small[c].to_numpy(), whole[c].to_numpy(), rtol=1e-12, atol=1e-9, err_msg=c)
+        assert whole[c].sum() > 0, c  # every zone really covers some parcel
+    assert small["verdict"].tolist() == whole["verdict"].tolist()
+    # the context decides the strip: 40 m strips for forest lots, 3 m for urban ones
+    share = whole["zone_streams_m2"] / whole["covered_m2"]
+    forest = share[whole["class_name"] == "forest"].mean()
+    urban = share[whole["class_name"] == "res"].mean()
+    assert forest > 3 * urban > 0
