@@ -31,6 +31,20 @@ deletes it unless --keep-memory-dem.
 
     python scripts/benchmark.py --sizes 2000 5000 10000 --parcels 1000 10000 100000
     python scripts/benchmark.py --sizes --memory-run 30000                # 3.6 GB DEM, then deleted
+
+Hazards (``--hazards N ...``): the full audit with every hazard kind derived from the DEM
+(``/work/shared/bench/rules_hazards.toml``-style rulebook: slope limits, HAND, sea-level rise with
+scenarios, derived shore and stream easements; ``--rasters gtiff --no-report``) next to the
+by-hand hazard pipeline (pyflwdir fill + D8, upstream area, HAND; ``scipy.ndimage`` labelling for
+the sea and the 1 m rise; a raster distance transform and dilation for the 20 m strip), on the same
+DEM in the same run, each in a fresh child process.  Data come from the benchmark generator
+(``--bench-dir``: ``make_data.py``, ``byhand_hazards.py``, ``rules_hazards.toml``; data in
+``$BENCH_DATA``, default /tmp/bench-data, generated there first if missing): 5000 uses
+``dem_5000.tif`` with ``parcels_100k.gpkg``, 10000 ``dem_10000.tif`` with
+``parcels_100k_on10000.gpkg``, and 2500 a crop of the north-west corner of the 5000 DEM with
+the parcels inside it (written to the cache folder).
+
+    python scripts/benchmark.py --sizes --hazards 2500 5000 --bench-dir /work/shared/bench
 """
 
 from __future__ import annotations
@@ -212,6 +226,15 @@ def main(argv=None) -> int:
     ap.add_argument("--memory-parcels", type=int, default=100_000)
     ap.add_argument("--keep-memory-dem", action="store_true")
     ap.add_argument("--json", type=Path, default=None, help="also write the rows as JSON here")
+    ap.add_argument(
+        "--hazards", type=int, nargs="*", default=[], help="DEM sizes for the hazard audit (2500, 5000, 10000)"
+    )
+    ap.add_argument(
+        "--bench-dir",
+        type=Path,
+        default=Path("/work/shared/bench"),
+        help="folder with make_data.py, byhand_hazards.py and rules_hazards.toml",
+    )
     args = ap.parse_args(argv)
     if not args.no_reference and shutil.which("gdaldem") is None:
         print(
@@ -303,6 +326,8 @@ def main(argv=None) -> int:
                 print(_fmt_table(rows[-1:]).splitlines()[-1], flush=True)
         if args.memory_run:
             rows += _memory_run(args, work, env, rules, lc_cmd)
+        if args.hazards:
+            _hazard_runs(args, work, env, lc_cmd)
     finally:
         shutil.rmtree(work, ignore_errors=True)
     print()
@@ -395,6 +420,111 @@ def _memory_run(args, work: Path, env, rules: Path, lc_cmd) -> list[dict]:
     finally:
         if not args.keep_memory_dem:
             dem_path.unlink(missing_ok=True)
+    return rows
+
+
+HAZARD_PEAK_TARGET_MIB = 2048  # issue target: peak <= 2 GiB at 10000^2 with 100 000 parcels
+HAZARD_RATIO_TARGET = 0.3
+
+
+def _hazard_inputs(args, n: int) -> tuple[Path, Path]:
+    """(DEM, parcels) for size ``n`` from the benchmark generator's data (generated when missing)."""
+    data = Path(os.environ.get("BENCH_DATA", "/tmp/bench-data"))
+    base = 5000 if n <= 5000 else n
+    dem = data / f"dem_{base}.tif"
+    parcels = data / ("parcels_100k.gpkg" if base == 5000 else f"parcels_100k_on{base}.gpkg")
+    if not dem.exists() or not parcels.exists():
+        subprocess.run(
+            [sys.executable, str(args.bench_dir / "make_data.py"), "--sizes", str(base)],
+            check=True,
+            env=dict(os.environ, BENCH_DATA=str(data)),
+        )
+    if n == base:
+        return dem, parcels
+    # a crop of the north-west corner with the parcels inside it
+    import geopandas as gpd
+    import rasterio
+    import shapely
+
+    crop = args.cache / f"hazard_dem_{n}.tif"
+    crop_parcels = args.cache / f"hazard_parcels_{n}.gpkg"
+    if not crop.exists():
+        tmp = crop.with_suffix(".part.tif")
+        subprocess.run(
+            ["gdal_translate", "-q", "-srcwin", "0", "0", str(n), str(n), "-co", "TILED=YES", str(dem), str(tmp)],
+            check=True,
+        )
+        os.replace(tmp, crop)
+    if not crop_parcels.exists():
+        with rasterio.open(crop) as ds:
+            box = shapely.box(*ds.bounds)
+        gdf = gpd.read_file(parcels)
+        gdf[gdf.within(box)].to_file(crop_parcels, layer="parcels")
+    return crop, crop_parcels
+
+
+def _hazard_runs(args, work: Path, env, lc_cmd) -> list[dict]:
+    """The hazard audit next to the by-hand hazard pipeline, same DEM, same run (see module docstring)."""
+    rules = args.bench_dir / "rules_hazards.toml"
+    byhand = args.bench_dir / "byhand_hazards.py"
+    rows = []
+    for n in args.hazards:
+        dem, parcels = _hazard_inputs(args, n)
+        import pyogrio
+
+        count = int(pyogrio.read_info(parcels)["features"])
+        ref = None
+        if not args.no_reference:
+            ref = measure([sys.executable, str(byhand), str(n), str(dem)], env)
+        out = work / "out_hazard"
+        shutil.rmtree(out, ignore_errors=True)
+        lc = measure(
+            [
+                *lc_cmd,
+                "audit",
+                "--dem",
+                str(dem),
+                "--parcels",
+                str(parcels),
+                "--rulebook",
+                str(rules),
+                "--out",
+                str(out),
+                "--rasters",
+                "gtiff",
+                "--no-report",
+            ],
+            env,
+        )
+        shutil.rmtree(out, ignore_errors=True)
+        row = dict(
+            size=n,
+            parcels=count,
+            lc_s=lc["wall_s"],
+            lc_cpu_s=lc["cpu_s"],
+            lc_peak_mib=lc["peak_mib"],
+            ref_s=ref and ref["wall_s"],
+            ref_cpu_s=ref and ref["cpu_s"],
+            ref_peak_mib=ref and ref["peak_mib"],
+            load=os.getloadavg()[0],
+        )
+        rows.append(row)
+        ratio = row["lc_s"] / row["ref_s"] if row["ref_s"] else float("nan")
+        cpu_ratio = row["lc_cpu_s"] / row["ref_cpu_s"] if row["ref_cpu_s"] else float("nan")
+        print(
+            f"hazards {n:>6}^2 {count:>7} parcels: landcheck {row['lc_s']:7.2f} s (cpu {row['lc_cpu_s']:6.2f}) "
+            f"peak {row['lc_peak_mib']:6.0f} MiB | by-hand {row['ref_s'] or float('nan'):7.2f} s "
+            f"(cpu {row['ref_cpu_s'] or float('nan'):6.2f}) "
+            f"peak {row['ref_peak_mib'] or float('nan'):6.0f} MiB | ratio {ratio:5.2f} "
+            f"(target <= {HAZARD_RATIO_TARGET}), cpu ratio {cpu_ratio:5.2f} | peak {'within' if row['lc_peak_mib'] <= HAZARD_PEAK_TARGET_MIB else 'OVER'} "
+            f"{HAZARD_PEAK_TARGET_MIB} MiB | load {row['load']:.2f}",
+            flush=True,
+        )
+    print(
+        "hazards: landcheck = full audit (slope limits, HAND, sea-level rise with scenarios, derived shore and "
+        "stream easements; --rasters gtiff --no-report); by-hand = hazard stage only on the whole array "
+        "(pyflwdir fill + D8, upstream area, HAND; ndimage labelling; distance transform and dilation strip)."
+    )
     return rows
 
 

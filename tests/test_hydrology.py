@@ -532,3 +532,19 @@ def test_kernels_do_not_modify_inputs():
     np.testing.assert_array_equal(z, before)
     np.testing.assert_array_equal(sea, sea_before)
     assert outlet.sum() == 1 and not routing.valid[0, 1]
+
+
+def test_compiled_steepest_d8_equals_numpy_reference():
+    # the compiled D8 step adds nothing to the method: same codes and flags as the NumPy formulation
+    # (O'Callaghan & Mark 1984 steepest descent, docs/references.md "Hydrology and hazards"), ties and NaN neighbours included
+    from landcheck.terrain.hydrology import _steepest_d8, _steepest_d8_numpy
+
+    rng = np.random.default_rng(11)
+    z = np.round(rng.random((83, 61)) * 4, 1)  # rounded: many equal descents, so the tie rule matters
+    z[rng.random(z.shape) < 0.05] = np.nan
+    hx = rng.uniform(5, 10, 83)
+    hy = rng.uniform(5, 10, 83)
+    code, lower = _steepest_d8(z, hx, hy)
+    code_ref, lower_ref = _steepest_d8_numpy(z, hx, hy)
+    assert code.tolist() == code_ref.tolist() and lower.tolist() == lower_ref.tolist()
+    assert lower.sum() > 0.5 * z.size and (~lower).sum() > 50

@@ -198,15 +198,22 @@ channel_area_m2 = 20000
 kind = "easement"
 derive = "streams"
 channel_area_m2 = 20000
-width_m = 10.0
+width_m = 15.0
 """)
-    res = audit(dem, parcels, tmp_path / "r.toml", tmp_path / "out", make_report=False)
+    res = audit(dem, parcels, tmp_path / "r.toml", tmp_path / "out", make_report=False, zone_polygons=True)
     p = res.parcels
     # channel cells at x = 300..310 (centre 305); HAND <= 2 m for centres within 20 m: x in 280..330 -> 5 columns
     assert p.loc[0, "zone_valley_floor_share"] == pytest.approx(50 / 200, abs=1e-9)
     assert p.loc[0, "verdict"] == "conflict"
     assert (res.out_dir / "zones" / "derived_streams.gpkg").exists()
-    assert p.loc[0, "zone_stream_strip_m2"] > 0
+    assert (res.out_dir / "zones" / "zone_valley_floor.gpkg").exists()
+    # raster strip (docs/scale.md, "Hazard zones"): cell centres within 15 m on the ground of the channel centre x = 305 ->
+    # the channel column and its two neighbours (10 m / 0.9996 UTM scale away), 30 of the parcel's 200 m
+    assert p.loc[0, "zone_stream_strip_share"] == pytest.approx(30 / 200, abs=1e-9)
+    # without the option the cell zones stay rasters: no polygons written
+    res2 = audit(dem, parcels, tmp_path / "r.toml", tmp_path / "out2", make_report=False)
+    assert not (res2.out_dir / "zones").exists()
+    assert res2.parcels["zone_valley_floor_share"].tolist() == p["zone_valley_floor_share"].tolist()
 
 
 def test_bad_zone_inputs(tmp_path):

@@ -153,6 +153,12 @@ Examples:
     help="Slope and conflict rasters as Cloud-Optimized GeoTIFF, plain tiled GeoTIFF (faster for big "
     "runs), or none (tables only; needs --no-report).",
 )
+@click.option(
+    "--zone-polygons",
+    is_flag=True,
+    help="Also write polygons of the cell-based hazard zones (HAND, sea-level rise, derived easement "
+    "strips) to zones/*.gpkg; built tile by tile, slow on large DEMs.",
+)
 @click.option("--no-report", is_flag=True, help="Skip the HTML report and maps.")
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary on stdout.")
 @click.option("--fail-on-conflict", is_flag=True, help="Exit with status 1 when any parcel is in conflict.")
@@ -182,6 +188,7 @@ def command(
     capability_scheme,
     draft_mmu_m2,
     rasters,
+    zone_polygons,
     no_report,
     as_json,
     fail_on_conflict,
@@ -220,4 +227,5 @@ def command(
         capability_scheme=capability_scheme,
         draft_mmu_m2=draft_mmu_m2,
         rasters=rasters,
+        zone_polygons=zone_polygons,
     )

@@ -158,6 +158,8 @@ class AuditSettings:
     capability : CapabilityOptions or None
     draft_mmu_m2 : float or None
         Draft the reclassification of conflicting parcels with this minimum mapping unit (m², >= 0).
+    zone_polygons : bool
+        Also write polygons of the cell-based hazard zones (HAND, sea-level rise, derived strips) to ``zones/*.gpkg``.
     show_progress : bool or None
         Progress bars on stderr (None: when stderr is a terminal).
     """
@@ -178,6 +180,7 @@ class AuditSettings:
     capability: CapabilityOptions | None = None
     draft_mmu_m2: float | None = None
     show_progress: bool | None = False
+    zone_polygons: bool = False  # also write polygons of the cell-based zones to zones/*.gpkg
 
     def __post_init__(self):
         if self.method is not None:
@@ -223,5 +226,7 @@ class AuditSettings:
                     f"drafted reclassification: minimum mapping unit {v!r}; expected an area in m² >= 0 (e.g. 500)."
                 )
             _set(self, "draft_mmu_m2", float(v))
+        if not isinstance(self.zone_polygons, bool):
+            raise InputDataError(f"zone_polygons: got {self.zone_polygons!r}; expected True or False.")
         if self.show_progress is not None and not isinstance(self.show_progress, bool):
             raise InputDataError(f"show_progress: got {self.show_progress!r}; expected True, False or None.")

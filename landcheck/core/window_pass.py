@@ -72,7 +72,7 @@ def build_plan(
             zbits |= 1 << zone_idx[zn]
             for col in columns:
                 if col.zone_index == zone_idx[zn] and col.raster_channel >= 0:
-                    rbits |= 1 << col.raster_channel
+                    rbits |= 1 << col.channel_for(c.context)
         raster_forbid[sel] = rbits
         zone_forbid[sel] = zbits
     piece_parcel = np.empty(0, np.int64) if piece_parcel is None else piece_parcel
@@ -96,6 +96,7 @@ def build_plan(
         col_zone,
         rules.capability_limit_pct,
         ground_factor,
+        zones.parcel_channels(rules, class_names) if zones is not None else None,
     )
 
 

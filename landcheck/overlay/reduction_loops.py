@@ -67,6 +67,7 @@ def accumulate_pairs(
     class_index,
     n_classes,
     col_channel,
+    parcel_col_channel,
     col_zone,
     hist_edges_pct,
     conflict_tile,
@@ -202,7 +203,7 @@ def accumulate_pairs(
                     np_acc += a
                 if has_zones:
                     for c in range(n_cols):
-                        ch = col_channel[c]
+                        ch = parcel_col_channel[gp, c]
                         if ch >= 0 and ((zb >> ch) & 1) == 1:
                             zone_m2[loc, c] += a
                 if f > best_frac[cell] or (f == best_frac[cell] and gp < best_parcel[cell]):
@@ -261,7 +262,7 @@ def accumulate_pairs(
                 zb = zone_bits[row, col]
                 for c in range(n_cols):
                     z = col_zone[c]
-                    ch = col_channel[c]
+                    ch = parcel_col_channel[p, c]
                     if z >= 0 and ch >= 0 and ((zone_forbid_bits[p] >> z) & 1) == 1 and ((zb >> ch) & 1) == 1:
                         bits |= np.uint32(1 << (z + 1))
             bits |= vbits

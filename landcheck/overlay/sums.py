@@ -66,6 +66,10 @@ class OverlayPlan:
         Parcel index and role (ROLE_PARCEL, ROLE_FORBIDDEN_PIECE or a zone-column index).
     col_channel, col_zone : ndarray of int, per zone column
         Raster channel (-1 for vector columns) and rulebook zone index (-1 for report-only columns).
+    parcel_col_channel : ndarray of int (n_parcels, n_cols), optional
+        Raster channel of each zone column for each parcel, where it depends on the parcel's class
+        (derived easement strips with one width per land-use context); ``col_channel`` for every
+        parcel when absent.
     """
 
     thresholds_pct: np.ndarray
@@ -82,10 +86,23 @@ class OverlayPlan:
     col_zone: np.ndarray
     capability_limit_pct: float | None
     ground_factor: float = 1.0
+    parcel_col_channel: np.ndarray | None = None
 
     @property
     def n_cols(self) -> int:
         return len(self.col_channel)
+
+    def channel_table(self) -> np.ndarray:
+        """(n_parcels, n_cols) int64 raster channel per parcel and column (built once, then cached)."""
+        t = self.__dict__.get("_channel_table")
+        if t is None:
+            if self.parcel_col_channel is not None:
+                t = np.ascontiguousarray(self.parcel_col_channel, dtype=np.int64)
+            else:
+                n = len(self.limit_index)
+                t = np.ascontiguousarray(np.broadcast_to(self.col_channel.astype(np.int64), (n, self.n_cols)))
+            object.__setattr__(self, "_channel_table", t)
+        return t
 
 
 @dataclass
@@ -257,10 +274,12 @@ def accumulate_window(
     slope_conflict = np.bincount(lp, weights=avp * slope_breach[is_p], minlength=k)
 
     zone_m2 = np.zeros((k, plan.n_cols))
+    table = plan.channel_table()
     for c in range(plan.n_cols):
         ch = plan.col_channel[c]
         if ch >= 0:
-            inz = ((zb[is_p] >> np.uint32(ch)) & np.uint32(1)).astype(bool)
+            chp = table[gp[is_p], c].astype(np.uint32)
+            inz = ((zb[is_p] >> chp) & np.uint32(1)).astype(bool)
             zone_m2[:, c] = np.bincount(lp, weights=ap * inz, minlength=k)
         else:
             sel = role == c
@@ -288,7 +307,8 @@ def accumulate_window(
         forb = ((plan.zone_forbid_bits[gp] >> np.uint32(z)) & np.uint32(1)).astype(bool)
         ch = plan.col_channel[c]
         if ch >= 0:
-            hit = forb[pick] & (((zb[pick] >> np.uint32(ch)) & np.uint32(1)) == 1)
+            chp = table[gp[pick], c].astype(np.uint32)
+            hit = forb[pick] & (((zb[pick] >> chp) & np.uint32(1)) == 1)
             bits[hit] |= np.uint32(1 << (z + 1))
         else:
             sel = (role == c) & forb
@@ -427,6 +447,7 @@ def _accumulate(slope_pct, zb, has_zones, cell_area_m2, candidates, fi, rr, cc, 
         plan.class_index.astype(np.int64, copy=False),
         int(plan.n_classes),
         plan.col_channel.astype(np.int64, copy=False),
+        plan.channel_table(),
         plan.col_zone.astype(np.int64, copy=False),
         HIST_EDGES_PCT,
         conflict_tile,

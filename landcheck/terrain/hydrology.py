@@ -358,8 +358,14 @@ class FlowRouting:
 
     flw: object
     conditioned_m: np.ndarray
-    fill_depth_m: np.ndarray
+    elevation32_m: np.ndarray  # the DEM as float32, the values filling started from
     valid: np.ndarray
+
+    @property
+    def fill_depth_m(self) -> np.ndarray:
+        """Depth of the filled depressions in metres (computed on request, not held)."""
+        with np.errstate(invalid="ignore"):
+            return np.where(self.valid, self.conditioned_m - self.elevation32_m.astype(np.float64), np.nan)
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -393,7 +399,22 @@ def _row_cell_sizes_m(shape, transform: Affine, latlon: bool, cell_size_m):
 
 
 def _steepest_d8(z: np.ndarray, hx: np.ndarray, hy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Steepest downward D8 code per cell (0 where no neighbour is strictly lower)."""
+    """Steepest downward D8 code per cell (0 where no neighbour is strictly lower); compiled loop."""
+    from landcheck.terrain.routing_loops import steepest_d8
+
+    nb = np.array(_D8_NEIGHBOURS, dtype=np.int64)
+    return steepest_d8(
+        np.ascontiguousarray(z, dtype=np.float64),
+        np.ascontiguousarray(hx, dtype=np.float64),
+        np.ascontiguousarray(hy, dtype=np.float64),
+        nb[:, 0].copy(),
+        nb[:, 1].copy(),
+        nb[:, 2].astype(np.uint8),
+    )
+
+
+def _steepest_d8_numpy(z: np.ndarray, hx: np.ndarray, hy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Reference formulation of :func:`_steepest_d8` in NumPy (tests compare both)."""
     rows, cols = z.shape
     zp = np.pad(z, 1, constant_values=np.nan)
     hx2 = hx[:, None]
@@ -490,6 +511,7 @@ def flow_directions(
     # Work on float32 values: pyflwdir's priority queue compares float32 keys, so
     # rounding first makes the queue, the filled surface and the descent test agree.
     z32 = z.astype(np.float32)
+    del z
     filled32, d8_flood = pfdem.fill_depressions(z32, nodata=np.float32(np.nan))
     conditioned = np.where(valid, filled32.astype(np.float64), np.nan)
 
@@ -499,9 +521,7 @@ def flow_directions(
     d8[~valid] = _D8_NODATA
 
     flw = pyflwdir.from_array(d8, ftype="d8", check_ftype=False, transform=transform, latlon=latlon)
-    with np.errstate(invalid="ignore"):
-        fill_depth = np.where(valid, conditioned - z32.astype(np.float64), np.nan)
-    return FlowRouting(flw=flw, conditioned_m=conditioned, fill_depth_m=fill_depth, valid=valid)
+    return FlowRouting(flw=flw, conditioned_m=conditioned, elevation32_m=z32, valid=valid)
 
 
 def upstream_area_m2(routing: FlowRouting, cell_area_m2) -> np.ndarray:
@@ -609,8 +629,9 @@ def hand_m(
     drains = _mask(streams, routing.shape, "streams").ravel() & routing.valid.ravel()
 
     n = drains.size
-    own = np.arange(n, dtype=np.int64)
-    idxs_ds = np.asarray(routing.flw.idxs_ds, dtype=np.int64)
+    itype = np.int32 if n < 2**31 else np.int64  # half the bytes per cell; same indices
+    own = np.arange(n, dtype=itype)
+    idxs_ds = np.asarray(routing.flw.idxs_ds).astype(itype, copy=False)
     valid = routing.valid.ravel()
     nxt = np.where(valid, idxs_ds, own)
     stop = drains | (nxt == own)  # drainage cells and outlets end a path

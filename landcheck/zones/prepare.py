@@ -2,21 +2,29 @@
 
 Two families, both reported with exact area shares:
 
-* **vector zones** (easement buffers, flood polygons) are polygons.  Their
+* **vector zones** (easement buffers of user layers, flood polygons) are polygons.  Their
   area inside a parcel is the exact area of ``parcel ∩ zone``: the
   intersection pieces are extra geometries in the coverage step, so a zone
   boundary that crosses a cell is not rounded to the cell.
-* **raster zones** (HAND below a threshold, sea-level-rise inundation) are
-  sets of DEM cells.  Their area inside a parcel is the exact coverage of the
-  parcel over those cells.
+* **raster zones** (HAND below a threshold, sea-level-rise inundation, easement
+  strips along the *derived* shoreline and streams) are sets of DEM cells, kept as
+  tiled mask rasters on disk (:mod:`landcheck.zones.cells`) and read window by
+  window.  Their area inside a parcel is the exact coverage of the parcel over
+  those cells.  Polygons of them are written to ``zones/*.gpkg`` only on request
+  (``zone_polygons``), tile by tile.
 
 Easement widths are metres on the ground: on a projected CRS the width is
 scaled by the projection's point scale at the layer, on a geographic CRS the
-lines are buffered in a local UTM projection and brought back densified.
+lines are buffered in a local UTM projection and brought back densified.  Derived
+strips are measured between cell centres (:mod:`landcheck.zones.strips`); an
+easement with one width per land-use context gets one mask per distinct width,
+and each parcel is checked against the mask of its class's context.
 
-Global steps: sea connectivity, depression filling, flow routing and HAND need
-the whole DEM at once.  They run here, once, before the window pass; their
-memory grows with the raster (about 150 bytes per cell), see docs/scale.md.
+Bounded steps: the sea and sea-level-rise inundation are found by tiled
+labelling joined across tile edges (:mod:`landcheck.terrain.tiled_components`),
+strips by tiles with a halo.  Flow routing (depression filling, D8, upstream
+area, HAND) still runs on the whole DEM, once, when a HAND zone or a derived
+stream easement needs it; its memory grows with the raster (docs/scale.md).
 """
 
 from __future__ import annotations
@@ -28,9 +36,11 @@ from pathlib import Path
 import numpy as np
 
 from landcheck.errors import InputDataError
-from landcheck.geo.grid import GridSpec, Window, apply_transform
+from landcheck.geo.grid import GridSpec, Window, apply_transform, iter_windows
 from landcheck.geo.shapes import polygonal_part
 from landcheck.inputs.rulebook import Rulebook, ZoneKind, ZoneRule
+from landcheck.zones.cells import MaskStore
+from landcheck.zones.strips import write_strips
 
 __all__ = ["ZoneColumn", "ZoneSet", "prepare_zones", "buffer_ground", "pick_variant", "vector_pieces"]
 
@@ -47,8 +57,17 @@ class ZoneColumn:
     name: str
     label: str
     zone_index: int | None  # index in rules.zones; None for report-only scenario columns
-    raster_channel: int = -1  # bit in the raster-zone mask; -1 for vector zones
+    raster_channel: int = -1  # bit in the raster-zone mask; -1 for vector zones (widest strip if per context)
     variants: dict = field(default_factory=dict)  # vector: context (or None) -> shapely geometry in DEM CRS
+    context_channels: dict = field(default_factory=dict)  # raster strips: context (or None) -> channel
+
+    def channel_for(self, ctx) -> int:
+        """Raster channel that applies to a class of context ``ctx`` (rule of :func:`pick_variant`)."""
+        if not self.context_channels:
+            return self.raster_channel
+        if None in self.context_channels:
+            return self.context_channels[None]
+        return self.context_channels.get(ctx, self.raster_channel)
 
 
 @dataclass
@@ -57,21 +76,44 @@ class ZoneSet:
 
     grid: GridSpec
     columns: list[ZoneColumn]
-    raster_bits: np.ndarray | None  # (H, W) uint32, bit = raster channel
-    sea: np.ndarray | None  # (H, W) bool, cells of the sea (excluded from land figures)
+    raster_bits: np.ndarray | None  # (H, W) uint32, bit = raster channel (in-memory form, small rasters)
+    sea: np.ndarray | None  # (H, W) bool, cells of the sea (in-memory form)
     layers: dict  # name -> GeoDataFrame to write under zones/
     warnings: list[str]
     info: dict
+    store: MaskStore | None = None  # on-disk form: masks read window by window
+    channel_names: list = field(default_factory=list)  # mask name of each raster channel in ``store``
+    sea_name: str | None = None  # mask of the sea in ``store``
 
     def bits(self, win: Window) -> np.ndarray | None:
+        if self.store is not None:
+            return self.store.bits(self.channel_names, win) if self.channel_names else None
         if self.raster_bits is None:
             return None
         return self.raster_bits[win.rows, win.cols]
 
     def land(self, win: Window) -> np.ndarray | None:
+        if self.store is not None:
+            return None if self.sea_name is None else ~self.store.read(self.sea_name, win)
         if self.sea is None:
             return None
         return ~self.sea[win.rows, win.cols]
+
+    def parcel_channels(self, rules: Rulebook, class_names: np.ndarray) -> np.ndarray:
+        """Per parcel and zone column, the raster channel that applies (its class's context); -1 for vector columns."""
+        by = {c.name: c for c in rules.classes}
+        n = len(class_names)
+        out = np.empty((n, len(self.columns)), dtype=np.int64)
+        for ci, col in enumerate(self.columns):
+            out[:, ci] = col.raster_channel
+        per_ctx = [ci for ci, col in enumerate(self.columns) if col.context_channels]
+        if per_ctx:
+            ctx = np.array([by[nm].context if nm in by else None for nm in class_names], dtype=object)
+            for value in set(ctx.tolist()):
+                sel = np.array([x is value for x in ctx])
+                for ci in per_ctx:
+                    out[sel, ci] = self.columns[ci].channel_for(value)
+        return out
 
     def describe(self) -> dict:
         return {
@@ -170,108 +212,153 @@ def _layer_geoms(rules: Rulebook, name: str, grid: GridSpec, role: str):
     return to_crs_checked(gdf, grid.crs_wkt, where, role), where
 
 
-def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=None) -> ZoneSet:
-    """Build every zone the rulebook defines (reads layers; runs the global hydrology steps)."""
+def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=None, zone_polygons=None) -> ZoneSet:
+    """Build every zone the rulebook defines (reads layers; runs the hydrology steps).
+
+    Raster zones become cell masks on disk (:class:`landcheck.zones.cells.MaskStore`), written
+    tile by tile; polygons of them (``zones/*.gpkg``) are built only when ``zone_polygons`` (or
+    ``settings.zone_polygons``) is true, tile by tile.
+    """
     import geopandas as gpd
     import shapely
 
     from landcheck.terrain import hydrology
 
     step = step or (lambda s: logger.info(s))
+    if zone_polygons is None:
+        zone_polygons = bool(getattr(settings, "zone_polygons", False))
+    tile = int(getattr(settings, "tile_cells", 1024) or 1024)
     g: GridSpec = dem.grid
     warnings_out: list[str] = []
     info: dict = {}
     layers: dict = {}
     columns: list[ZoneColumn] = []
-    needs_elev = any(z.kind in (ZoneKind.HAND, ZoneKind.SEA_RISE) or "derive" in z.params for z in rules.zones)
-    elev = dem.read(Window(0, 0, g.height, g.width)) if needs_elev else None
-    raster_masks: list[np.ndarray] = []
-    sea = None
-    routing = None
+    channels: list[str] = []  # mask name of each raster channel
+    store = MaskStore(g)
 
-    def sea_for(params) -> np.ndarray:
-        seeds = None
-        if "sea_point" in params:
-            x, y = params["sea_point"]
-            col, row = apply_transform(~g.transform, x, y)
-            r, c = int(np.floor(row)), int(np.floor(col))
-            if not (0 <= r < g.height and 0 <= c < g.width):
-                raise InputDataError(
-                    f"{rules.path}: sea_point {params['sea_point']} lies outside the DEM "
-                    f"(bounds {tuple(round(b, 3) for b in g.bounds)}); give a point on the sea inside the DEM."
-                )
-            seeds = [(r, c)]
-        return hydrology.sea_mask(
-            elev, params.get("datum_m", 0.0), seed_cells=seeds, nodata_is_sea=params.get("nodata_is_sea", False)
+    # ---- sea: one mask per distinct definition, by tiled labelling, and their union
+    sea_zones = [z for z in rules.zones if z.kind is ZoneKind.SEA_RISE or z.params.get("derive") == "shoreline"]
+    sea_specs: dict = {}
+    for z in sea_zones:
+        sea_specs.setdefault(_sea_key(z.params), len(sea_specs))
+    sea_name = None
+    if sea_specs:
+        step("sea connectivity by tiles")
+        keys = list(sea_specs)
+        seeds = [_sea_seed(rules, g, dem, k) for k in keys]
+        names = ["sea"] if len(keys) == 1 else [f"sea_{i}" for i in range(len(keys))]
+        _write_components(store, g, tile, names, _sea_reader(dem, g, keys, seeds))
+        if len(keys) > 1:
+            with store.writer("sea") as w:
+                for win in iter_windows(g.height, g.width, tile):
+                    m = np.zeros((win.height, win.width), dtype=bool)
+                    for nm in names:
+                        m |= store.read(nm, win)
+                    w.write(win, m)
+        sea_name = "sea"
+        sea_of = {k: nm for k, nm in zip(keys, names)}
+        n_sea = _count(store, "sea", g, tile)
+        info["sea_cells"] = n_sea
+        if n_sea == 0:
+            warnings_out.append("no sea found: no cell at or below the datum touches the DEM edge or the sea point")
+
+    # ---- flow routing: whole raster (float32 elevations), only when HAND or derived streams need it
+    needs_routing = any(z.kind is ZoneKind.HAND or z.params.get("derive") == "streams" for z in rules.zones)
+    routing = area = elev = None
+    stream_masks: dict = {}  # channel area -> mask name
+    hand_masks: dict = {}  # zone index -> mask name
+    if needs_routing:
+        step("flow routing (depression filling, D8) on the whole DEM")
+        elev = dem.read(Window(0, 0, g.height, g.width), np.float32)
+        sea_all = store.read("sea", Window(0, 0, g.height, g.width)) if sea_name else None
+        routing = hydrology.flow_directions(
+            elev,
+            g.transform,
+            latlon=g.geographic,
+            cell_size_m=g.cell_size_m(np.arange(g.height)) if g.geographic else None,  # the CRS's ellipsoid
+            outlet_mask=sea_all if sea_all is not None and sea_all.any() else None,
         )
-
-    def routing_for() -> hydrology.FlowRouting:
-        nonlocal routing
-        if routing is None:
-            step("flow routing (depression filling, D8) on the whole DEM")
-            routing = hydrology.flow_directions(
-                elev,
-                g.transform,
-                latlon=g.geographic,
-                cell_size_m=g.cell_size_m(np.arange(g.height)) if g.geographic else None,  # the CRS's ellipsoid
-                outlet_mask=sea if sea is not None and sea.any() else None,
-            )
-        return routing
-
-    def upstream() -> np.ndarray:
-        return hydrology.upstream_area_m2(routing_for(), g.cell_area_m2(np.arange(g.height)) * 1.0)
-
-    # sea first: it shapes routing and the land figures
-    for z in rules.zones:
-        if z.kind is ZoneKind.SEA_RISE or z.params.get("derive") == "shoreline":
-            s = sea_for(z.params)
-            sea = s if sea is None else (sea | s)
-    if sea is not None:
-        info["sea_cells"] = int(sea.sum())
-        if not sea.any():
-            msg = "no sea found: no cell at or below the datum touches the DEM edge or the sea point"
-            warnings_out.append(msg)
+        del elev
+        area = hydrology.upstream_area_m2(routing, g.cell_area_m2(np.arange(g.height)) * 1.0)
+        for zi, z in enumerate(rules.zones):
+            if z.kind is ZoneKind.HAND or z.params.get("derive") == "streams":
+                ch_area = float(z.params.get("channel_area_m2", 1_000_000.0))
+                if ch_area not in stream_masks:
+                    streams = hydrology.stream_mask(area, ch_area)
+                    nm = f"streams_{len(stream_masks)}"
+                    _write_array(store, nm, streams, g, tile)
+                    stream_masks[ch_area] = nm
+                    if zone_polygons and "derived_streams" not in layers:
+                        layers["derived_streams"] = hydrology.streams_to_lines(
+                            routing, streams, g.crs_wkt, upstream_area_m2=area
+                        )
+                if z.kind is ZoneKind.HAND:
+                    streams = store.read(stream_masks[ch_area], Window(0, 0, g.height, g.width))
+                    hand = hydrology.hand_m(routing.conditioned_m, routing, streams, outlets_drain=True)
+                    mask = np.isfinite(hand) & (hand <= z.params["max_hand_m"])
+                    del hand, streams
+                    if sea_all is not None:
+                        mask &= ~sea_all
+                    nm = f"hand_{zi}"
+                    _write_array(store, nm, mask, g, tile)
+                    hand_masks[zi] = nm
+                    del mask
+        del routing, area, sea_all  # nothing of the size of the raster is kept past this point
 
     for zi, z in enumerate(rules.zones):
-        if z.kind is ZoneKind.EASEMENT:
+        if z.kind is ZoneKind.EASEMENT and "layer" not in z.params:
+            # derived easement: a strip of cells per distinct width (docs/scale.md, "Hazard zones", zones.strips)
+            widths = _widths(z)
+            distinct = sorted(set(widths.values()))
+            names = {w: f"ease_{zi}_{k}" for k, w in enumerate(distinct)}
+            shore = z.params["derive"] == "shoreline"
+            src = "sea" if shore else stream_masks[float(z.params.get("channel_area_m2", 1_000_000.0))]
+            step(f"easement strips of {z.name} by tiles")
+            write_strips(store, src, {names[w]: w for w in distinct}, shore=shore, tile=tile)
+            ctx_channel = {}
+            for ctx, w in widths.items():
+                if names[w] not in channels:
+                    channels.append(names[w])
+                ctx_channel[ctx] = channels.index(names[w])
+            widest = channels.index(names[distinct[-1]])
+            columns.append(ZoneColumn(z.name, z.label, zi, widest, context_channels=ctx_channel))
+            if zone_polygons:
+                layers[f"zone_{z.name}"] = _tiled_polygons(
+                    store,
+                    [names[widths[c]] for c in widths],
+                    g,
+                    tile,
+                    {
+                        "context": [c.value if c is not None else "all" for c in widths],
+                        "width_m": list(widths.values()),
+                    },
+                )
+        elif z.kind is ZoneKind.EASEMENT:
             half_channel = 0.0
-            if "layer" in z.params:
-                gdf, where = _layer_geoms(rules, z.params["layer"], g, f"easement layer {z.params['layer']!r}")
-                src_geoms = np.asarray(gdf.geometry.values)
-                types = set(shapely.get_type_id(src_geoms[~shapely.is_empty(src_geoms)]).tolist())
-                if not types <= {1, 2, 3, 5, 6}:
-                    raise InputDataError(f"{where}: an easement layer must hold lines or polygons.")
-                wf = z.params.get("channel_width_field")
-                if wf is not None:
-                    # centrelines with a channel width: the easement is measured from the bank
-                    if wf not in gdf.columns:
-                        raise InputDataError(
-                            f"{where}: no attribute {wf!r} (the rulebook's [zones.{z.name}].channel_width_field); "
-                            f"attributes here: {', '.join(c for c in gdf.columns if c != gdf.geometry.name)}."
-                        )
-                    import pandas as pd
+            gdf, where = _layer_geoms(rules, z.params["layer"], g, f"easement layer {z.params['layer']!r}")
+            src_geoms = np.asarray(gdf.geometry.values)
+            types = set(shapely.get_type_id(src_geoms[~shapely.is_empty(src_geoms)]).tolist())
+            if not types <= {1, 2, 3, 5, 6}:
+                raise InputDataError(f"{where}: an easement layer must hold lines or polygons.")
+            wf = z.params.get("channel_width_field")
+            if wf is not None:
+                # centrelines with a channel width: the easement is measured from the bank
+                if wf not in gdf.columns:
+                    raise InputDataError(
+                        f"{where}: no attribute {wf!r} (the rulebook's [zones.{z.name}].channel_width_field); "
+                        f"attributes here: {', '.join(c for c in gdf.columns if c != gdf.geometry.name)}."
+                    )
+                import pandas as pd
 
-                    cw = pd.to_numeric(gdf[wf], errors="coerce").to_numpy(float)
-                    bad = ~np.isfinite(cw) | (cw < 0)
-                    if bad.any():
-                        rows = (np.flatnonzero(bad) + 1)[:10].tolist()
-                        raise InputDataError(
-                            f"{where}: attribute {wf!r} must be a width in metres >= 0; features (rows) {rows} hold "
-                            f"{gdf[wf].iloc[rows[0] - 1]!r}."
-                        )
-                    half_channel = cw / 2.0
-            elif z.params["derive"] == "shoreline":
-                lines = hydrology.mask_boundary_lines(sea, g.transform, g.crs_wkt)
-                layers["derived_shoreline"] = lines
-                src_geoms = np.asarray(lines.geometry.values)
-            else:
-                r = routing_for()
-                area = upstream()
-                channel = z.params.get("channel_area_m2", 1_000_000.0)
-                streams = hydrology.stream_mask(area, channel)
-                lines = hydrology.streams_to_lines(r, streams, g.crs_wkt, upstream_area_m2=area)
-                layers["derived_streams"] = lines
-                src_geoms = np.asarray(lines.geometry.values)
+                cw = pd.to_numeric(gdf[wf], errors="coerce").to_numpy(float)
+                bad = ~np.isfinite(cw) | (cw < 0)
+                if bad.any():
+                    rows = (np.flatnonzero(bad) + 1)[:10].tolist()
+                    raise InputDataError(
+                        f"{where}: attribute {wf!r} must be a width in metres >= 0; features (rows) {rows} hold "
+                        f"{gdf[wf].iloc[rows[0] - 1]!r}."
+                    )
+                half_channel = cw / 2.0
             variants = {ctx: buffer_ground(src_geoms, half_channel + w, g) for ctx, w in _widths(z).items()}
             columns.append(ZoneColumn(z.name, z.label, zi, -1, variants))
             layers[f"zone_{z.name}"] = gpd.GeoDataFrame(
@@ -312,50 +399,194 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
                 {"min_level": [z.params["min_level"]]}, geometry=[geom], crs=g.crs_wkt
             )
         elif z.kind is ZoneKind.HAND:
-            r = routing_for()
-            area = upstream()
-            streams = hydrology.stream_mask(area, z.params["channel_area_m2"])
-            hand = hydrology.hand_m(r.conditioned_m, r, streams, outlets_drain=True)
-            mask = np.isfinite(hand) & (hand <= z.params["max_hand_m"])
-            if sea is not None:
-                mask &= ~sea
-            columns.append(ZoneColumn(z.name, z.label, zi, len(raster_masks)))
-            raster_masks.append(mask)
-            layers[f"zone_{z.name}"] = hydrology.mask_to_polygons(mask, g.transform, g.crs_wkt)
-            if "derived_streams" not in layers:
-                layers["derived_streams"] = hydrology.streams_to_lines(r, streams, g.crs_wkt, upstream_area_m2=area)
+            nm = hand_masks[zi]
+            channels.append(nm)
+            columns.append(ZoneColumn(z.name, z.label, zi, len(channels) - 1))
+            if zone_polygons:
+                layers[f"zone_{z.name}"] = _tiled_polygons(store, [nm], g, tile)
         elif z.kind is ZoneKind.SEA_RISE:
-            s = sea_for(z.params)
+            s_name = sea_of[_sea_key(z.params)]
             rises = [z.params["rise_m"]] + [x for x in z.params.get("scenarios_m", ()) if x != z.params["rise_m"]]
-            order = sorted(set(rises))
-            masks = hydrology.inundation_masks(
-                elev, s, order, surge_m=z.params.get("surge_m", 0.0), datum_m=z.params.get("datum_m", 0.0)
+            order = [float(r) for r in hydrology._scenario_rises(sorted(set(rises)))]
+            surge = hydrology._finite_number(z.params.get("surge_m", 0.0), "surge_m")
+            if surge < 0:
+                raise InputDataError(f"surge_m: got {surge:g} m; a surge height must be zero or positive.")
+            datum = hydrology._finite_number(z.params.get("datum_m", 0.0), "datum_m")
+            step(f"sea-level rise {z.name}: {len(order)} levels by tiles")
+            names = [f"slr_{zi}_{k}" for k in range(len(order))]
+            counts = _write_components(
+                store,
+                g,
+                tile,
+                names,
+                _level_reader(dem, store, s_name, [datum + r + surge for r in order]),
+                count_outside=s_name,
             )
-            by_rise = dict(zip(order, masks))
-            columns.append(ZoneColumn(z.name, z.label, zi, len(raster_masks)))
-            raster_masks.append(by_rise[z.params["rise_m"]])
-            layers[f"zone_{z.name}"] = hydrology.mask_to_polygons(
-                by_rise[z.params["rise_m"]] & ~s, g.transform, g.crs_wkt
-            )
-            for rise in z.params.get("scenarios_m", ()):
-                columns.append(
-                    ZoneColumn(f"{z.name}_rise_{_rise_tag(rise)}", f"{z.label}: +{rise:g} m", None, len(raster_masks))
+            by_rise = dict(zip(order, names))
+            channels.append(by_rise[float(z.params["rise_m"])])
+            columns.append(ZoneColumn(z.name, z.label, zi, len(channels) - 1))
+            if zone_polygons:
+                layers[f"zone_{z.name}"] = _tiled_polygons(
+                    store, [by_rise[float(z.params["rise_m"])]], g, tile, exclude=s_name
                 )
-                raster_masks.append(by_rise[rise])
+            for rise in z.params.get("scenarios_m", ()):
+                channels.append(by_rise[float(rise)])
+                columns.append(
+                    ZoneColumn(f"{z.name}_rise_{_rise_tag(rise)}", f"{z.label}: +{rise:g} m", None, len(channels) - 1)
+                )
             info.setdefault("sea_rise", {})[z.name] = {
                 "datum_m": z.params.get("datum_m", 0.0),
                 "surge_m": z.params.get("surge_m", 0.0),
                 "rises_m": order,
-                "inundated_land_cells": [int((m & ~s).sum()) for m in masks],
+                "inundated_land_cells": counts,
             }
-    if len(raster_masks) > 32:
+    if len(channels) > 32:
         raise InputDataError(f"{rules.path}: more than 32 cell-based zone layers (zones plus sea-rise scenarios).")
-    raster_bits = None
-    if raster_masks:
-        raster_bits = np.zeros((g.height, g.width), np.uint32)
-        for ch, m in enumerate(raster_masks):
-            raster_bits |= m.astype(np.uint32) << np.uint32(ch)
-    return ZoneSet(g, columns, raster_bits, sea, layers, warnings_out, info)
+    return ZoneSet(
+        g, columns, None, None, layers, warnings_out, info, store=store, channel_names=channels, sea_name=sea_name
+    )
+
+
+def _sea_key(params) -> tuple:
+    sp = params.get("sea_point")
+    return (
+        float(params.get("datum_m", 0.0)),
+        None if sp is None else (float(sp[0]), float(sp[1])),
+        bool(params.get("nodata_is_sea", False)),
+    )
+
+
+def _sea_seed(rules: Rulebook, g: GridSpec, dem, key) -> tuple[int, int] | None:
+    """The seed cell of a sea point (checked), or None for "the raster edge"."""
+    from landcheck.terrain import hydrology
+
+    datum, point, nodata_is_sea = key
+    hydrology._finite_number(datum, "datum_m")
+    if point is None:
+        return None
+    col, row = apply_transform(~g.transform, *point)
+    r, c = int(np.floor(row)), int(np.floor(col))
+    if not (0 <= r < g.height and 0 <= c < g.width):
+        raise InputDataError(
+            f"{rules.path}: sea_point {list(point)} lies outside the DEM "
+            f"(bounds {tuple(round(b, 3) for b in g.bounds)}); give a point on the sea inside the DEM."
+        )
+    z = float(dem.read(Window(r, c, 1, 1), np.float32)[0, 0])
+    if not (z <= datum or (np.isnan(z) and nodata_is_sea)):
+        what = "nodata" if np.isnan(z) else f"at {z:g} m"
+        raise InputDataError(
+            f"{rules.path}: sea point {list(point)} (row {r}, col {c}) is {what}, not at or below the "
+            f"datum {datum:g} m; move it onto open water" + (" or set nodata_is_sea" if np.isnan(z) else "") + "."
+        )
+    return (r, c)
+
+
+def _sea_reader(dem, g: GridSpec, keys, seeds):
+    def reader(win: Window):
+        z = dem.read(win, np.float32)
+        out = []
+        for (datum, _point, nodata_is_sea), seed in zip(keys, seeds):
+            with np.errstate(invalid="ignore"):
+                cand = z <= np.float64(datum)
+            if nodata_is_sea:
+                cand |= np.isnan(z)
+            s = np.zeros_like(cand)
+            if seed is None:
+                if win.row_off == 0:
+                    s[0, :] = True
+                if win.row_off + win.height == g.height:
+                    s[-1, :] = True
+                if win.col_off == 0:
+                    s[:, 0] = True
+                if win.col_off + win.width == g.width:
+                    s[:, -1] = True
+            else:
+                r, c = seed[0] - win.row_off, seed[1] - win.col_off
+                if 0 <= r < win.height and 0 <= c < win.width:
+                    s[r, c] = True
+            out.append((cand, s & cand))
+        return out
+
+    return reader
+
+
+def _level_reader(dem, store: MaskStore, sea_name: str, levels_m):
+    def reader(win: Window):
+        z = dem.read(win, np.float32)
+        sea = store.read(sea_name, win)
+        out = []
+        for level in levels_m:
+            with np.errstate(invalid="ignore"):
+                out.append(((z <= np.float64(level)) | sea, sea))
+        return out
+
+    return reader
+
+
+def _write_components(store, g, tile, names, reader, count_outside=None) -> list[int]:
+    """Resolve seeded components by tiles and write one mask per name; cells counted outside a mask."""
+    from landcheck.terrain.tiled_components import seeded_components
+
+    writers = [store.writer(n) for n in names]
+    counts = [0] * len(names)
+    try:
+        for win, masks in seeded_components(g.shape, tile, reader, n_masks=len(names)):
+            excl = store.read(count_outside, win) if count_outside else None
+            for k, (w, m) in enumerate(zip(writers, masks)):
+                w.write(win, m)
+                counts[k] += int((m & ~excl).sum()) if excl is not None else int(m.sum())
+    finally:
+        for w in writers:
+            w.close()
+    return counts
+
+
+def _write_array(store: MaskStore, name: str, mask: np.ndarray, g: GridSpec, tile: int) -> None:
+    with store.writer(name) as w:
+        for win in iter_windows(g.height, g.width, tile):
+            w.write(win, mask[win.rows, win.cols])
+
+
+def _count(store: MaskStore, name: str, g: GridSpec, tile: int) -> int:
+    return sum(int(store.read(name, win).sum()) for win in iter_windows(g.height, g.width, tile))
+
+
+def _tiled_polygons(store: MaskStore, names, g: GridSpec, tile: int, attrs=None, exclude=None):
+    """Polygons of masks, built tile by tile (pieces are cut at tile edges; areas add up exactly).
+
+    One row per mask in ``names`` (a MultiPolygon of its tile pieces) with ``attrs``, or, for a
+    single mask without ``attrs``, one row per piece with ``part_id`` and ``n_cells``.
+    """
+    import geopandas as gpd
+    import shapely
+
+    from landcheck.terrain import hydrology
+
+    per_mask = {n: [] for n in names}
+    for win in iter_windows(g.height, g.width, tile):
+        ex = store.read(exclude, win) if exclude else None
+        for n in dict.fromkeys(names):
+            m = store.read(n, win)
+            if ex is not None:
+                m &= ~ex
+            if m.any():
+                gdf = hydrology.mask_to_polygons(m, g.window_transform(win), g.crs_wkt)
+                per_mask[n].append(gdf)
+    if attrs is None and len(names) == 1:
+        parts = per_mask[names[0]]
+        if not parts:
+            return hydrology.mask_to_polygons(np.zeros((1, 1), bool), g.transform, g.crs_wkt)
+        import pandas as pd
+
+        out = pd.concat(parts, ignore_index=True)
+        out["part_id"] = np.arange(len(out), dtype=np.int64)
+        return gpd.GeoDataFrame(out, geometry="geometry", crs=g.crs_wkt)
+    geoms = [
+        shapely.MultiPolygon([p for gdf in per_mask[n] for p in gdf.geometry.values]) if per_mask[n] else None
+        for n in names
+    ]
+    geoms = [gg if gg is not None else shapely.MultiPolygon() for gg in geoms]
+    return gpd.GeoDataFrame(dict(attrs or {}), geometry=geoms, crs=g.crs_wkt)
 
 
 def _rise_tag(rise: float) -> str:

@@ -1,0 +1,291 @@
+"""Depression filling tile by tile: Priority-Flood per tile and a spill graph between tiles.
+
+The tiled Priority-Flood of Barnes (2016, "Parallel priority-flood depression
+filling for trillion cell digital elevation models"; docs/references.md §17, "Tiled
+hazard steps"), without the epsilon variant:
+
+1. **Per tile**: Priority-Flood (Barnes, Lehman & Mulla 2014) seeded with every
+   valid cell on the tile's perimeter and every *outlet* (a valid cell on the
+   raster border or next to a nodata cell: where water leaves the area, as in
+   pyflwdir's ``fill_depressions``).  Outlets carry the label 0 ("leaves the
+   area"), every other perimeter cell a label of its own; flooding spreads the
+   labels, so each label is the tile-local watershed of one perimeter cell.
+   Where two labels meet, the lower of ``max(f(c), f(n))`` over the meeting
+   cells is the spill height between them.
+2. **Spill graph**: the labels are joined by those spill heights and, across
+   tile edges, by ``max(z(a), z(b))`` between touching perimeter cells of
+   neighbouring tiles.  A minimax Dijkstra from label 0 gives each label the
+   lowest level at which its water can leave the area.
+3. **Per tile again**: the filled elevation is ``max(f_tile(c), level(label(c)))``.
+
+The filled surface is unique — every cell rises to the lowest, over all its
+paths to an outlet, of the highest cell on the path — so the result is the same
+cell for cell as one whole-raster fill, for any tiling (tests: against a
+whole-raster Priority-Flood and against pyflwdir).  Memory: one tile, plus
+the tile perimeters and the spill graph.
+
+Not yet wired into :func:`landcheck.terrain.hydrology.flow_directions`: D8
+directions across the flats that filling leaves, upstream area and HAND still
+need the whole raster (docs/scale.md).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterator
+
+import numba
+import numpy as np
+
+from landcheck.geo.grid import Window, iter_windows
+
+__all__ = ["tiled_fill", "fill_whole"]
+
+_DR = np.array([-1, -1, -1, 0, 0, 1, 1, 1], np.int64)
+_DC = np.array([-1, 0, 1, -1, 1, -1, 0, 1], np.int64)
+
+
+@numba.njit(cache=True, nogil=True)
+def _heap_push(keys, seqs, idx, size, k, s, i):
+    j = size
+    keys[j] = k
+    seqs[j] = s
+    idx[j] = i
+    while j > 0:
+        p = (j - 1) // 2
+        if keys[p] < keys[j] or (keys[p] == keys[j] and seqs[p] < seqs[j]):
+            break
+        keys[p], keys[j] = keys[j], keys[p]
+        seqs[p], seqs[j] = seqs[j], seqs[p]
+        idx[p], idx[j] = idx[j], idx[p]
+        j = p
+    return size + 1
+
+
+@numba.njit(cache=True, nogil=True)
+def _heap_pop(keys, seqs, idx, size):
+    top = idx[0]
+    size -= 1
+    keys[0] = keys[size]
+    seqs[0] = seqs[size]
+    idx[0] = idx[size]
+    j = 0
+    while True:
+        a = 2 * j + 1
+        b = a + 1
+        m = j
+        if a < size and (keys[a] < keys[m] or (keys[a] == keys[m] and seqs[a] < seqs[m])):
+            m = a
+        if b < size and (keys[b] < keys[m] or (keys[b] == keys[m] and seqs[b] < seqs[m])):
+            m = b
+        if m == j:
+            break
+        keys[m], keys[j] = keys[j], keys[m]
+        seqs[m], seqs[j] = seqs[j], seqs[m]
+        idx[m], idx[j] = idx[j], idx[m]
+        j = m
+    return top, size
+
+
+@numba.njit(cache=True, nogil=True)
+def _tile_flood(zh, drs, dcs):
+    """Priority-Flood of one tile given with a 1-cell halo ``zh`` (NaN off the raster and on nodata).
+
+    Returns ``(filled, label, n_labels, edge_a, edge_b, edge_w)``: labels 0 (outlet) and
+    1..n_labels-1 (perimeter cells, row-major along the perimeter), spill edges between labels.
+    """
+    H, W = zh.shape
+    h, w = H - 2, W - 2
+    n = h * w
+    filled = np.empty((h, w), np.float32)
+    label = np.full((h, w), -1, np.int64)
+    keys = np.empty(n, np.float32)
+    seqs = np.empty(n, np.int64)
+    idx = np.empty(n, np.int64)
+    size = 0
+    seq = 0
+    n_labels = 1
+    for r in range(h):
+        for c in range(w):
+            z = zh[r + 1, c + 1]
+            if np.isnan(z):
+                continue
+            outlet = False
+            for k in range(8):
+                if np.isnan(zh[r + 1 + drs[k], c + 1 + dcs[k]]):
+                    outlet = True
+                    break
+            perim = r == 0 or c == 0 or r == h - 1 or c == w - 1
+            if outlet or perim:
+                if outlet:
+                    label[r, c] = 0
+                else:
+                    label[r, c] = n_labels
+                    n_labels += 1
+                filled[r, c] = z
+                size = _heap_push(keys, seqs, idx, size, z, seq, r * w + c)
+                seq += 1
+    edges = dict()
+    edges[np.int64(-1)] = np.float32(0.0)  # typed by first insertion
+    while size > 0:
+        i, size = _heap_pop(keys, seqs, idx, size)
+        r0 = i // w
+        c0 = i % w
+        f0 = filled[r0, c0]
+        l0 = label[r0, c0]
+        for k in range(8):
+            r = r0 + drs[k]
+            c = c0 + dcs[k]
+            if r < 0 or r >= h or c < 0 or c >= w:
+                continue
+            z = zh[r + 1, c + 1]
+            if np.isnan(z):
+                continue
+            ln = label[r, c]
+            if ln >= 0:
+                if ln != l0:
+                    a = min(l0, ln)
+                    b = max(l0, ln)
+                    key = a * (n + 1) + b
+                    s = max(f0, filled[r, c])
+                    old = edges.get(key, np.float32(np.inf))
+                    if s < old:
+                        edges[key] = s
+                continue
+            f = z if z > f0 else f0
+            filled[r, c] = f
+            label[r, c] = l0
+            size = _heap_push(keys, seqs, idx, size, f, seq, r * w + c)
+            seq += 1
+    del edges[np.int64(-1)]
+    m = len(edges)
+    ea = np.empty(m, np.int64)
+    eb = np.empty(m, np.int64)
+    ew = np.empty(m, np.float32)
+    j = 0
+    for key, val in edges.items():
+        ea[j] = key // (n + 1)
+        eb[j] = key % (n + 1)
+        ew[j] = val
+        j += 1
+    return filled, label, n_labels, ea, eb, ew
+
+
+@numba.njit(cache=True, nogil=True)
+def _minimax_levels(n_nodes, indptr, nbr, wts):
+    """Lowest level at which each node drains to node 0 (minimax paths), -inf for node 0."""
+    level = np.full(n_nodes, np.inf, np.float32)
+    done = np.zeros(n_nodes, np.bool_)
+    cap = len(nbr) + 1
+    keys = np.empty(cap, np.float32)
+    seqs = np.empty(cap, np.int64)
+    idx = np.empty(cap, np.int64)
+    level[0] = -np.inf
+    size = _heap_push(keys, seqs, idx, 0, np.float32(-np.inf), 0, 0)
+    seq = 1
+    while size > 0:
+        u, size = _heap_pop(keys, seqs, idx, size)
+        if done[u]:
+            continue
+        done[u] = True
+        lu = level[u]
+        for j in range(indptr[u], indptr[u + 1]):
+            v = nbr[j]
+            cand = wts[j] if wts[j] > lu else lu
+            if cand < level[v]:
+                level[v] = cand
+                size = _heap_push(keys, seqs, idx, size, cand, seq, v)
+                seq += 1
+    return level
+
+
+def _perimeter(a: np.ndarray) -> dict:
+    return {"top": a[0, :].copy(), "bottom": a[-1, :].copy(), "left": a[:, 0].copy(), "right": a[:, -1].copy()}
+
+
+def _cross_edges(la, za, lb, zb):
+    """Edges between facing perimeter lines (8-connectivity: offsets -1, 0, +1 along the line)."""
+    out = []
+    for off in (-1, 0, 1):
+        if off < 0:
+            x, y, zx, zy = la[1:], lb[:-1], za[1:], zb[:-1]
+        elif off > 0:
+            x, y, zx, zy = la[:-1], lb[1:], za[:-1], zb[1:]
+        else:
+            x, y, zx, zy = la, lb, za, zb
+        sel = (x >= 0) & (y >= 0)
+        out.append((x[sel], y[sel], np.maximum(zx[sel], zy[sel])))
+    return out
+
+
+def tiled_fill(
+    shape: tuple[int, int], tile: int, read_with_halo: Callable[[Window], np.ndarray]
+) -> Iterator[tuple[Window, np.ndarray]]:
+    """Yield ``(win, filled)`` row-major: the depression-filled float32 elevations of each tile.
+
+    ``read_with_halo(win)`` returns the tile's float32 elevations grown by one cell on every side,
+    NaN for nodata and off the raster; it is called twice per tile.
+    """
+    rows, cols = shape
+    wins = list(iter_windows(rows, cols, tile))
+    n_tc = -(-cols // tile)
+    offsets, perims, ea_all, eb_all, ew_all = [], [], [], [], []
+    next_id = 1  # global node 0 = "leaves the area"
+    for win in wins:
+        zh = np.ascontiguousarray(read_with_halo(win), dtype=np.float32)
+        _, label, n_labels, ea, eb, ew = _tile_flood(zh, _DR, _DC)
+        off = next_id - 1  # local label k >= 1 -> global k + off; local 0 -> global 0
+        g = np.where(label > 0, label + off, label)  # -1 stays: nodata
+        perims.append((_perimeter(g), _perimeter(zh[1:-1, 1:-1])))
+        offsets.append(off)
+        ea_all.append(np.where(ea > 0, ea + off, 0))
+        eb_all.append(np.where(eb > 0, eb + off, 0))
+        ew_all.append(ew)
+        next_id += n_labels - 1
+    for k in range(len(wins)):
+        tj = k % n_tc
+        (gk, zk) = perims[k]
+        pairs = []
+        if tj + 1 < n_tc:
+            g2, z2 = perims[k + 1]
+            pairs += _cross_edges(gk["right"], zk["right"], g2["left"], z2["left"])
+        if k + n_tc < len(wins):
+            g2, z2 = perims[k + n_tc]
+            pairs += _cross_edges(gk["bottom"], zk["bottom"], g2["top"], z2["top"])
+            if tj + 1 < n_tc:
+                g3, z3 = perims[k + n_tc + 1]
+                pairs += _cross_edges(gk["bottom"][-1:], zk["bottom"][-1:], g3["top"][:1], z3["top"][:1])[1:2]
+            if tj > 0:
+                g3, z3 = perims[k + n_tc - 1]
+                pairs += _cross_edges(gk["bottom"][:1], zk["bottom"][:1], g3["top"][-1:], z3["top"][-1:])[1:2]
+        for a, b, wgt in pairs:
+            ea_all.append(a)
+            eb_all.append(b)
+            ew_all.append(wgt.astype(np.float32))
+    perims = None
+    a = np.concatenate(ea_all)
+    b = np.concatenate(eb_all)
+    wgt = np.concatenate(ew_all)
+    src = np.concatenate([a, b])
+    dst = np.concatenate([b, a])
+    ww = np.concatenate([wgt, wgt])
+    order = np.argsort(src, kind="stable")
+    indptr = np.zeros(next_id + 1, np.int64)
+    np.add.at(indptr, src + 1, 1)
+    indptr = np.cumsum(indptr)
+    level = _minimax_levels(next_id, indptr, dst[order].astype(np.int64), ww[order].astype(np.float32))
+    for k, win in enumerate(wins):
+        zh = np.ascontiguousarray(read_with_halo(win), dtype=np.float32)
+        filled, label, _, _, _, _ = _tile_flood(zh, _DR, _DC)
+        g = np.where(label > 0, label + offsets[k], 0)
+        out = np.maximum(filled, level[g])
+        out[label < 0] = np.nan
+        yield win, out
+
+
+def fill_whole(z: np.ndarray) -> np.ndarray:
+    """Whole-raster Priority-Flood with the same outlets (one tile covering the raster)."""
+    z = np.asarray(z, dtype=np.float32)
+    zh = np.pad(z, 1, constant_values=np.nan)
+    filled, label, *_ = _tile_flood(zh, _DR, _DC)
+    filled[label < 0] = np.nan
+    return filled
