@@ -71,7 +71,13 @@ def test_run_audit_on_a_geodataframe_matches_the_folder_and_writes_nothing(tmp_p
         warnings.simplefilter("ignore", landcheck.LandcheckWarning)
         run = landcheck.run_audit(DEMO / "dem.tif", parcels, DEMO / "rulebook.toml", settings)
         folder = landcheck.audit(
-            DEMO / "dem.tif", DEMO / "parcels.gpkg", DEMO / "rulebook.toml", tmp_path / "out", settings, rasters="none"
+            DEMO / "dem.tif",
+            DEMO / "parcels.gpkg",
+            DEMO / "rulebook.toml",
+            tmp_path / "out",
+            settings,
+            rasters="none",
+            report=False,
         )
     assert sorted(os.listdir(tmp_path)) == ["out"]  # run_audit wrote nothing (the folder is audit()'s)
     assert isinstance(run.parcels, gpd.GeoDataFrame) and run.parcels.crs == parcels.crs

@@ -1,1 +1,1 @@
-"""The core: one streamed audit pass from inputs to verdicts, and the slope raster."""
+"""The core: run_audit (in memory), audit (the output folder), their settings, and the slope raster pass."""

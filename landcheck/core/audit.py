@@ -73,7 +73,7 @@ def settings_from_options(settings: AuditSettings | None = None, **options) -> A
     ``capability_scheme``); unknown names are refused."""
     import dataclasses
 
-    base = settings if settings is not None else AuditSettings(report=True)
+    base = settings if settings is not None else AuditSettings()
     kw: dict = {}
     conf = {}
     for k, v in options.items():
@@ -184,7 +184,7 @@ def audit(
 
     ``dem``, ``parcels`` and ``rules`` are what :func:`landcheck.core.run.run_audit` takes (paths,
     an opened DEM, a GeoDataFrame, a mapping or a Rulebook).  Options come as ``settings``
-    (:class:`AuditSettings`; the folder writer's default has ``report=True``) or as keywords: any
+    (:class:`AuditSettings`) or as keywords: any
     AuditSettings field, or ``make_report``, ``skip_confidence``, ``dem_rmse_m``, ``corr_length_m``,
     ``realizations``, ``seed``, ``capability_scheme``.
 
@@ -198,6 +198,9 @@ def audit(
         Bad input or outputs that cannot be written; nothing is written then.
     """
     s = settings_from_options(settings, **options)  # every option validated here, before anything is read
+    if s.report:
+        # the report is a promise: fail now, not after the window pass, if it cannot be built
+        from landcheck.evidence.report import build_report
     rules = open_rules(rules)
     inputs = [p for p in (dem, parcels) if isinstance(p, (str, os.PathLike))]
     if not rules.path.startswith("<"):
@@ -216,8 +219,6 @@ def audit(
             hook.close()
         write_audit_folder(stage, run)
         if s.report:
-            from landcheck.evidence.report import build_report
-
             step("building the report")
             build_report(stage)
     step(f"outputs in {out}")

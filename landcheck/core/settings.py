@@ -151,9 +151,10 @@ class AuditSettings:
         Where every window pass runs (:class:`landcheck.engine.backends.Engine`).
     rasters : RasterFormat or str
         ``cog``, ``gtiff`` or ``none``: the slope and conflict rasters :func:`landcheck.core.audit.audit`
-        writes (``run_audit`` writes no file; see :class:`landcheck.core.run.AuditRun`).
+        writes (``run_audit`` writes no file and ignores this; see :class:`landcheck.core.run.AuditRun`).
     report : bool
-        Whether :func:`landcheck.core.audit.audit` writes ``report.html`` (needs rasters).
+        Whether :func:`landcheck.core.audit.audit` writes ``report.html`` (needs rasters; default True;
+        ignored by ``run_audit``).
     confidence : ConfidenceOptions
     capability : CapabilityOptions or None
     draft_mmu_m2 : float or None
@@ -175,7 +176,7 @@ class AuditSettings:
     workers: int | None = None
     scheduler_address: str | None = None
     rasters: RasterFormat | str = RasterFormat.COG
-    report: bool = False
+    report: bool = True
     confidence: ConfidenceOptions = field(default_factory=ConfidenceOptions)
     capability: CapabilityOptions | None = None
     draft_mmu_m2: float | None = None
@@ -212,9 +213,6 @@ class AuditSettings:
                 "rasters='none' writes no slope or conflict raster, and the report maps need them; "
                 "turn the report off (--no-report) or choose rasters 'cog' or 'gtiff'."
             )
-        if self.report:
-            # the report is a promise: fail now, not after the window pass, if it cannot be built
-            import landcheck.evidence.report  # noqa: F401
         if not isinstance(self.confidence, ConfidenceOptions):
             raise InputDataError(f"confidence: expected ConfidenceOptions, got {type(self.confidence).__name__}.")
         if self.capability is not None and not isinstance(self.capability, CapabilityOptions):
