@@ -45,7 +45,7 @@ from landcheck.geo.grid import GridSpec, Window
 from landcheck.geo.shapes import mask_union, polygonal_part
 from landcheck.inputs.dem import ZUnit, open_dem
 from landcheck.inputs.rulebook import ClassRule, LandContext, Rulebook, ZoneKind, load_rules
-from landcheck.verdicts.labels import verdict_badge_css
+from landcheck.verdicts.labels import VERDICTS, verdict_badge_css
 from landcheck.zones.prepare import pick_variant
 
 __all__ = ["CONNECTIVITIES", "PrescreenResult", "largest_patch", "parse_polygon", "prescreen"]
@@ -1123,7 +1123,7 @@ def _write_html(path: Path, figures: dict, map_png: Path, hist_png: Path) -> Non
         f"{_e(i['role'])} <code>{_e(Path(i['path']).name)}</code> sha256 {_e(i['sha256'][:_SHA_SHORT])}\u2026"
         for i in figures["inputs"]
     )
-    badge_cls = verdict if verdict in ("conflict", "review", "consistent", "no_data") else "no_data"
+    badge_cls = verdict if verdict in VERDICTS else "no_data"
     parts = [
         html_head(f"landcheck pre-screen - parcel {p['id']}", _CSS, _CSP),
         f"<header><h1>Pre-screen of parcel {_e(p['id'])}</h1>",

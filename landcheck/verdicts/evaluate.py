@@ -40,7 +40,7 @@ class Verdict:
     REVIEW = "review"
     NO_DATA = "no_data"
     NO_RULE = "no_rule"
-    ALL = ("consistent", "conflict", "review", "no_data", "no_rule")
+    ALL = (CONSISTENT, CONFLICT, REVIEW, NO_DATA, NO_RULE)
 
 
 def _fmt_m2(v: float) -> str:

@@ -113,28 +113,25 @@ def _ground(geoms, crs_wkt: str) -> np.ndarray:
     return ground_areas(gpd.GeoDataFrame(geometry=list(geoms), crs=crs_wkt), crs_wkt)[0]
 
 
-def _apply_mmu(compliant, non_compliant, mmu_m2: float, crs_wkt: str, grid_size: float):
-    """Merge slivers below ``mmu_m2`` (ground m²) into the other part (see the module notes)."""
+def _move_slivers(src, dst, mmu_m2: float, crs_wkt: str, grid_size: float):
+    """Move the parts of ``src`` smaller than ``mmu_m2`` (ground m²) into ``dst``."""
     import shapely
 
+    parts = shapely.get_parts(src)
+    if len(parts):
+        small = _ground(parts, crs_wkt) < mmu_m2
+        if small.any():
+            dst = shapely.union_all([dst, *parts[small]], grid_size=grid_size)
+            src = shapely.union_all(parts[~small], grid_size=grid_size) if (~small).any() else shapely.MultiPolygon()
+    return src, dst
+
+
+def _apply_mmu(compliant, non_compliant, mmu_m2: float, crs_wkt: str, grid_size: float):
+    """Merge slivers below ``mmu_m2`` (ground m²) into the other part (see the module notes)."""
     if mmu_m2 <= 0:
         return compliant, non_compliant
-    parts = shapely.get_parts(non_compliant)
-    if len(parts):
-        small = _ground(parts, crs_wkt) < mmu_m2
-        if small.any():
-            compliant = shapely.union_all([compliant, *parts[small]], grid_size=grid_size)
-            non_compliant = (
-                shapely.union_all(parts[~small], grid_size=grid_size) if (~small).any() else shapely.MultiPolygon()
-            )
-    parts = shapely.get_parts(compliant)
-    if len(parts):
-        small = _ground(parts, crs_wkt) < mmu_m2
-        if small.any():
-            non_compliant = shapely.union_all([non_compliant, *parts[small]], grid_size=grid_size)
-            compliant = (
-                shapely.union_all(parts[~small], grid_size=grid_size) if (~small).any() else shapely.MultiPolygon()
-            )
+    non_compliant, compliant = _move_slivers(non_compliant, compliant, mmu_m2, crs_wkt, grid_size)
+    compliant, non_compliant = _move_slivers(compliant, non_compliant, mmu_m2, crs_wkt, grid_size)
     return polygonal_part(compliant), polygonal_part(non_compliant)
 
 
