@@ -79,24 +79,23 @@ Examples:
   landcheck audit ... --json --fail-on-conflict   # for scripts: exit 1 when any parcel conflicts
 """,
 )
-@click.option(
-    "--dem", required=True, type=click.Path(dir_okay=False), help="Elevation raster (GeoTIFF or any GDAL raster)."
-)
+@click.option("--dem", required=True, type=click.Path(), help="Elevation raster (GeoTIFF or any GDAL raster).")
 @click.option(
     "--parcels",
     required=True,
-    type=click.Path(dir_okay=False),
+    type=click.Path(),
     help="Parcel polygons: GeoPackage, GeoJSON, Shapefile or GeoParquet.",
 )
 @click.option("--parcels-layer", default=None, help="Layer of a multi-layer parcels file.")
 @click.option("--parcels-crs", default=None, metavar="CRS", help="CRS to assume when the parcels have none.")
-@click.option("--rulebook", required=True, type=click.Path(dir_okay=False), help="Rulebook (TOML; docs/rules-file.md).")
+@click.option("--rulebook", required=True, type=click.Path(), help="Rulebook (TOML; docs/rules-file.md).")
 @click.option(
     "--out",
     "out_dir",
     required=True,
-    type=click.Path(file_okay=False),
-    help="Output folder (must not exist unless --overwrite).",
+    type=click.Path(),
+    help="Output folder (must not exist unless --overwrite; an existing one is replaced only when it holds "
+    "nothing but landcheck's own outputs).",
 )
 @method_option
 @dem_options
