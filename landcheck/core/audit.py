@@ -30,6 +30,7 @@ from landcheck.geo.grid import Window, iter_windows
 from landcheck.inputs.dem import DemSource, ZUnit, open_dem
 from landcheck.inputs.layers import areal_factor_at, ground_areas, read_parcels
 from landcheck.inputs.rulebook import Rulebook, load_rules
+from landcheck.outputs.folder import source_date_utc, write_run_times
 from landcheck.outputs.writers import (
     RasterFormat,
     RasterSink,
@@ -39,7 +40,7 @@ from landcheck.outputs.writers import (
     write_gpkg,
     write_json,
 )
-from landcheck.overlay.coverage import CoverageBuffers, coverage_triplets, prepare_polygons
+from landcheck.overlay.coverage import CoverageBuffers, coverage_triplets_aligned, prepare_polygons
 from landcheck.overlay.sums import CONFLICT_OUTSIDE, ROLE_PARCEL, OverlayPlan, Totals, accumulate_window_compiled
 from landcheck.terrain.slope import SlopeMethod, gradient_to_unit
 from landcheck.verdicts.evaluate import (
@@ -193,7 +194,7 @@ class _WindowJob(ThreadLocalHandles):
         buffers = getattr(self._local, "buffers", None)
         if buffers is None:
             buffers = self._local.buffers = CoverageBuffers()
-        trip = coverage_triplets(self.polygons, g.window_transform(win), win.height, win.width, buffers=buffers)
+        trip = coverage_triplets_aligned(self.polygons, g.transform, g.height, g.width, win, buffers=buffers)
         rows = np.arange(win.row_off, win.row_off + win.height)
         sums, conflict = accumulate_window_compiled(
             slope_pct, zone_bits, g.cell_area_m2(rows), self.all_index, tuple(trip), self.plan, land_mask
@@ -430,6 +431,7 @@ def audit(
             if build_report is not None:
                 step("building the report")
                 build_report(stage)
+        write_run_times(stage, started)
     step(f"outputs in {out}")
     return AuditResult(out, summary, parcels, classes, collected)
 
@@ -597,8 +599,8 @@ def _manifest(
         for f in _input_files(p):
             inputs.append({"role": f"layer:{name}", "path": str(Path(f).resolve()), "sha256": sha256_file(f)})
     return {
-        "started_utc": started.isoformat(timespec="seconds"),
-        "finished_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "run_times": "run_times.json (the only output a rerun changes; docs/outputs.md)",
+        **({"started_utc": source_date_utc()} if source_date_utc() else {}),  # SOURCE_DATE_EPOCH only
         "inputs": inputs,
         "rulebook": {"path": str(Path(rules.path).resolve()), "sha256": rules.sha256, "text": rules.text},
         "parameters": {

@@ -48,6 +48,7 @@ __all__ = [
     "foreign_files",
     "write_file_list",
     "write_run_times",
+    "source_date_utc",
     "verify_folder",
     "sha256_file",
 ]
@@ -269,7 +270,7 @@ def _mark(folder: Path) -> None:
     )
 
 
-def write_file_list(folder: str | os.PathLike, *, out_name: str | None = None) -> list[dict]:
+def write_file_list(folder: str | os.PathLike) -> list[dict]:
     """Write ``files.json`` and ``SHA256SUMS`` for every file in ``folder`` (run times excepted).
 
     Returns the listed entries.  Both files hold only names, sizes and hashes, so a rerun writes
@@ -280,7 +281,7 @@ def write_file_list(folder: str | os.PathLike, *, out_name: str | None = None) -
     entries = [{"path": n, "bytes": (folder / n).stat().st_size, "sha256": sha256_file(folder / n)} for n in names]
     from landcheck.about import __version__
 
-    where = out_name or "OUT"
+    where = "OUT"  # not the folder's name: a rerun into another folder writes the same bytes
     doc = {
         "tool": "landcheck",
         "version": __version__,
@@ -312,6 +313,22 @@ def write_run_times(folder: str | os.PathLike, started: _dt.datetime) -> Path:
         encoding="utf-8",
     )
     return path
+
+
+def source_date_utc() -> str | None:
+    """``SOURCE_DATE_EPOCH`` (reproducible-builds convention) as ISO UTC text, or None when unset or invalid.
+
+    The one time that may appear inside reproducible outputs: fixed by whoever runs the audit.
+    """
+    raw = os.environ.get("SOURCE_DATE_EPOCH", "").strip()
+    if not raw:
+        return None
+    try:
+        t = _dt.datetime.fromtimestamp(int(raw), _dt.timezone.utc)
+    except (ValueError, OverflowError, OSError):
+        logger.warning("SOURCE_DATE_EPOCH=%r is not a whole number of seconds; ignored", raw)
+        return None
+    return t.isoformat(timespec="seconds")
 
 
 def verify_folder(folder: str | os.PathLike) -> tuple[list[str], list[str], list[str]]:
@@ -360,7 +377,7 @@ def staged_folder(final: str | os.PathLike, *, overwrite: bool = False) -> Itera
             raise OutputWriteError(f"{final}: cannot create the output folder ({exc.strerror or exc}).") from exc
         try:
             yield stage
-            write_file_list(stage, out_name=final.name)
+            write_file_list(stage)
             (stage / PARTIAL_MARKER).unlink()
             _check_target(final, overwrite, when="appeared while this run was working")
             _publish(stage, final)

@@ -112,8 +112,27 @@ def write_csv(path: str | os.PathLike, frame, *, overwrite: bool = True) -> Path
 def write_gpkg(path: str | os.PathLike, gdf, layer: str, *, overwrite: bool = True) -> Path:
     with atomic_file(path, overwrite=overwrite, suffix=".gpkg") as tmp:
         tmp.unlink()  # GDAL wants to create the file itself
-        gdf.to_file(tmp, layer=layer, driver="GPKG")
+        with fixed_gpkg_date():
+            gdf.to_file(tmp, layer=layer, driver="GPKG")
     return Path(path)
+
+
+#: the time GeoPackages carry in gpkg_contents.last_change: fixed so a rerun writes the same bytes
+#: (GDAL's OGR_CURRENT_DATE; the run's own times are in run_times.json)
+GPKG_FIXED_DATE = "2000-01-01T00:00:00.000Z"
+
+
+@contextlib.contextmanager
+def fixed_gpkg_date():
+    """Within: GeoPackages written through GDAL carry :data:`GPKG_FIXED_DATE` instead of the wall clock."""
+    import pyogrio
+
+    before = pyogrio.get_gdal_config_option("OGR_CURRENT_DATE")
+    pyogrio.set_gdal_config_options({"OGR_CURRENT_DATE": GPKG_FIXED_DATE})
+    try:
+        yield
+    finally:
+        pyogrio.set_gdal_config_options({"OGR_CURRENT_DATE": before})
 
 
 class RasterFormat(UserChoice):
