@@ -15,7 +15,7 @@ import os
 import threading
 import warnings
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -82,6 +82,16 @@ class AuditResult:
     @property
     def n_conflicts(self) -> int:
         return int((self.parcels["verdict"] == Verdict.CONFLICT).sum())
+
+
+def _rewarn(caught) -> list[str]:
+    """Messages of the LandcheckWarnings recorded in ``caught``, warned again to the caller."""
+    out = []
+    for w in caught:
+        if issubclass(w.category, LandcheckWarning):
+            out.append(str(w.message))
+            warnings.warn(str(w.message), LandcheckWarning, stacklevel=3)
+    return out
 
 
 def sha256_file(path: str | os.PathLike) -> str:
@@ -214,7 +224,7 @@ def audit(
     parcels_crs: str | None = None,
     dem_band: int | None = None,
     dem_crs: str | None = None,
-    z_unit: ZUnit | str = ZUnit.METRE,
+    z_unit: ZUnit | str | None = None,
     method: SlopeMethod | str | None = None,
     tile_cells: int = 1024,
     workers: int | None = None,
@@ -254,7 +264,7 @@ def audit(
         tile_cells,
         dem_band,
         dem_crs,
-        ZUnit.from_user(z_unit),
+        ZUnit.from_user(z_unit) if z_unit is not None else None,
         parcels_layer,
         parcels_crs,
     )
@@ -264,7 +274,12 @@ def audit(
             "rasters='none' writes no slope or conflict raster, and the report maps need them; "
             "turn the report off (--no-report) or choose rasters 'cog' or 'gtiff'."
         )
-    dem = open_dem(dem_path, band=dem_band, crs=dem_crs, z_unit=settings.z_unit)
+    collected: list[str] = []
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", LandcheckWarning)
+        dem = open_dem(dem_path, band=dem_band, crs=dem_crs, z_unit=settings.z_unit)
+    collected += _rewarn(caught)
+    settings = replace(settings, z_unit=dem.z_unit)  # the unit read from the data when none was given
     g = dem.grid
     from landcheck.verdicts.confidence import confidence_settings
 
@@ -278,7 +293,6 @@ def audit(
     if draft_mmu_m2 is not None and draft_mmu_m2 < 0:
         raise InputDataError(f"minimum mapping unit: got {draft_mmu_m2} m²; give 0 or a positive area.")
     step(f"DEM {g.width}x{g.height} cells, {'geographic' if g.geographic else 'projected'}")
-    collected: list[str] = []
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", LandcheckWarning)
         ps = read_parcels(
@@ -609,6 +623,7 @@ def _manifest(
             "dem_band": dem.band,
             "dem_crs_override": settings.dem_crs,
             "z_unit": settings.z_unit.value,
+            "z_unit_source": dem.z_unit_source,
             "parcels_layer": settings.parcels_layer,
             "parcels_crs_override": settings.parcels_crs,
             "workers": workers,

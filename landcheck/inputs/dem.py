@@ -72,6 +72,7 @@ class DemSource(ThreadLocalHandles):
     nodata: float | None
     z_unit: ZUnit = ZUnit.METRE
     crs_override: str | None = None
+    z_unit_source: str = ""
     _local: threading.local = field(default_factory=threading.local, repr=False, compare=False)
 
     def _dataset(self):
@@ -186,12 +187,116 @@ def grid_from_dataset(ds, path: str, crs=None) -> GridSpec:
     return GridSpec(t, pcrs.to_wkt(), ds.width, ds.height, False, float(unit_m), a_m, e2)
 
 
+_UNIT_WORDS = {
+    ZUnit.METRE: ("m", "metre", "meter", "metres", "meters", "metre (m)"),
+    ZUnit.FOOT: ("ft", "foot", "feet", "international foot", "international feet", "foot (international)"),
+    ZUnit.US_SURVEY_FOOT: (
+        "us-ft",
+        "us_ft",
+        "ftus",
+        "us ft",
+        "us survey foot",
+        "us survey feet",
+        "us_survey_foot",
+        "us-survey-foot",
+        "foot_us",
+        "us foot",
+        "us feet",
+        "survey foot",
+        "survey feet",
+    ),
+}
+
+
+def _unit_from_text(text: str) -> ZUnit | None:
+    t = " ".join(text.strip().lower().replace("u.s.", "us").split())
+    for unit, words in _UNIT_WORDS.items():
+        if t in words:
+            return unit
+    return None
+
+
+def _unit_from_factor(factor: float) -> ZUnit | None:
+    for unit in ZUnit:
+        if abs(factor - unit.to_m) <= 1e-9 * unit.to_m:
+            return unit
+    return None
+
+
+def _declared_z_unit(ds, band: int, crs_wkt: str, path: str) -> tuple[ZUnit | None, str]:
+    """The elevation unit the file declares: the band's unit, else the vertical axis of a compound CRS."""
+    import pyproj
+
+    text = (ds.units[band - 1] or "").strip() if ds.units else ""
+    if text:
+        unit = _unit_from_text(text)
+        if unit is None:
+            raise InputDataError(
+                f"{path}: band {band} declares its elevation unit as {text!r}, which landcheck does not know; "
+                "give the unit with --z-unit m|ft|us-ft (converting the DEM to metres first if it is none of these)."
+            )
+        return unit, f"band {band} unit {text!r}"
+    pcrs = pyproj.CRS.from_user_input(crs_wkt)
+    for sub in pcrs.sub_crs_list if pcrs.is_compound else []:
+        if sub.is_vertical and sub.axis_info:
+            ax = sub.axis_info[0]
+            unit = _unit_from_factor(float(ax.unit_conversion_factor or 0.0))
+            if unit is None:
+                raise InputDataError(
+                    f"{path}: the vertical CRS {sub.name!r} has unit {ax.unit_name!r}, which landcheck does not "
+                    "know; give the unit with --z-unit m|ft|us-ft."
+                )
+            return unit, f"vertical CRS {sub.name!r} ({ax.unit_name})"
+    return None, ""
+
+
+def resolve_z_unit(ds, band: int, grid: GridSpec, path: str, given: ZUnit | None) -> tuple[ZUnit, str]:
+    """Elevation unit from the data, or the one given; refuse rather than guess (docs/cli.md, --z-unit).
+
+    * declared by the file (band unit or vertical CRS axis) and not given: the declared unit;
+    * given and declared differently: refused, naming both;
+    * given: the given unit;
+    * neither, horizontal unit the metre (or a geographic CRS, whose global DEMs are in metres): metres,
+      said in a warning;
+    * neither, horizontal unit not the metre (feet, ...): refused, asking for --z-unit.
+    """
+    declared, source = _declared_z_unit(ds, band, grid.crs_wkt, path)
+    if given is not None:
+        if declared is not None and declared is not given:
+            raise InputDataError(
+                f"{path}: --z-unit {given.value} given, but the file declares {declared.value} ({source}); "
+                "fix the file's unit or drop --z-unit."
+            )
+        return given, "--z-unit" if declared is None else f"--z-unit, agreeing with {source}"
+    if declared is not None:
+        return declared, source
+    if grid.geographic or abs(grid.unit_m - 1.0) < 1e-12:
+        import warnings
+
+        from landcheck.errors import LandcheckWarning
+
+        kind = "geographic (degrees)" if grid.geographic else "in metres"
+        warnings.warn(
+            f"{path}: the DEM declares no elevation unit; taken as metres because its CRS is {kind}. "
+            "Give --z-unit ft or us-ft if the elevations are in feet.",
+            LandcheckWarning,
+            stacklevel=3,
+        )
+        return ZUnit.METRE, f"not declared; metres assumed for a CRS {kind}"
+    raise InputDataError(
+        f"{path}: the DEM declares no elevation unit and its horizontal unit is not the metre "
+        f"({grid.unit_m:g} m per CRS unit); landcheck will not guess. Give the elevation unit with "
+        "--z-unit m, --z-unit ft or --z-unit us-ft (or set the band's unit, e.g. "
+        "`gdal_edit.py -units ft dem.tif` on a copy)."
+    )
+
+
 def open_dem(
     path: str | os.PathLike,
     *,
     band: int | None = None,
     crs: str | None = None,
-    z_unit: ZUnit | str = ZUnit.METRE,
+    z_unit: ZUnit | str | None = None,
     check_data: bool = True,
 ) -> DemSource:
     """Open and validate a DEM.
@@ -204,8 +309,10 @@ def open_dem(
         1-based band number; required when the raster has more than one band.
     crs : str, optional
         CRS to assume when the file has none (e.g. ``"EPSG:32651"``).
-    z_unit : ZUnit or str
-        Unit of the elevation values (``m``, ``ft``, ``us-ft``); converted to metres on read.
+    z_unit : ZUnit or str, optional
+        Unit of the elevation values (``m``, ``ft``, ``us-ft``); converted to metres on read.  Default:
+        read from the data (:func:`resolve_z_unit`); a file whose unit cannot be known and whose
+        horizontal unit is not the metre is refused.
     check_data : bool
         Scan for at least one valid cell (stops at the first one found).
 
@@ -218,7 +325,7 @@ def open_dem(
     from rasterio.errors import RasterioIOError
 
     path = os.fspath(path)
-    z_unit = ZUnit.from_user(z_unit)
+    z_unit = ZUnit.from_user(z_unit) if z_unit is not None else None
     if not os.path.exists(path) and "://" not in path and not path.startswith("/vsi"):
         raise InputDataError(f"{path}: DEM file not found.")
     try:
@@ -243,7 +350,8 @@ def open_dem(
         crs_obj = RioCRS.from_user_input(crs) if crs else None
         grid = grid_from_dataset(ds, path, crs_obj)
         nodata = ds.nodatavals[band - 1]
-    src = DemSource(path, band, grid, nodata, z_unit, crs)
+        z_unit, z_source = resolve_z_unit(ds, band, grid, path, z_unit)
+    src = DemSource(path, band, grid, nodata, z_unit, crs, z_source)
     if check_data and not _has_valid_cell(src):
         raise InputDataError(f"{path}: every cell of band {band} is nodata or NaN; there is no elevation to work with.")
     logger.info(
