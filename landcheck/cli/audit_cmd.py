@@ -157,6 +157,12 @@ Examples:
     help="Slope and conflict rasters as Cloud-Optimized GeoTIFF, plain tiled GeoTIFF (faster for big "
     "runs), or none (tables only; needs --no-report).",
 )
+@click.option(
+    "--mask-implausible",
+    is_flag=True,
+    help="Treat DEM elevations below -500 m or above 9000 m as no data (with a warning) instead of refusing "
+    "the DEM (docs/cli.md).",
+)
 @click.option("--no-report", is_flag=True, help="Skip the HTML report and maps.")
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary on stdout.")
 @click.option("--fail-on-conflict", is_flag=True, help="Exit with status 1 when any parcel is in conflict.")
@@ -186,6 +192,7 @@ def command(
     capability_scheme,
     draft_mmu_m2,
     rasters,
+    mask_implausible,
     no_report,
     as_json,
     fail_on_conflict,
@@ -224,4 +231,5 @@ def command(
         capability_scheme=capability_scheme,
         draft_mmu_m2=draft_mmu_m2,
         rasters=rasters,
+        mask_implausible=mask_implausible,
     )

@@ -242,6 +242,7 @@ def audit(
     capability_scheme=None,
     draft_mmu_m2: float | None = None,
     skip_confidence: bool = False,
+    mask_implausible: bool = False,
 ) -> AuditResult:
     """Run the audit and write its output folder (docs/outputs.md).
 
@@ -277,7 +278,7 @@ def audit(
     collected: list[str] = []
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", LandcheckWarning)
-        dem = open_dem(dem_path, band=dem_band, crs=dem_crs, z_unit=settings.z_unit)
+        dem = open_dem(dem_path, band=dem_band, crs=dem_crs, z_unit=settings.z_unit, mask_implausible=mask_implausible)
     collected += _rewarn(caught)
     settings = replace(settings, z_unit=dem.z_unit)  # the unit read from the data when none was given
     g = dem.grid
@@ -624,6 +625,7 @@ def _manifest(
             "dem_crs_override": settings.dem_crs,
             "z_unit": settings.z_unit.value,
             "z_unit_source": dem.z_unit_source,
+            "mask_implausible": dem.mask_implausible,
             "parcels_layer": settings.parcels_layer,
             "parcels_crs_override": settings.parcels_crs,
             "workers": workers,

@@ -27,6 +27,10 @@ logger = logging.getLogger(__name__)
 FOOT_M = 0.3048
 #: metres per US survey foot (1200/3937 m by definition)
 US_SURVEY_FOOT_M = 1200.0 / 3937.0
+#: elevations outside this range (metres) are refused as implausible: the land surface spans about
+#: -430 m .. 8 849 m (docs/references.md, "Units and numbers"); values beyond are fill values or wrong units
+PLAUSIBLE_MIN_M = -500.0
+PLAUSIBLE_MAX_M = 9000.0
 
 
 class ZUnit(UserChoice):
@@ -73,6 +77,8 @@ class DemSource(ThreadLocalHandles):
     z_unit: ZUnit = ZUnit.METRE
     crs_override: str | None = None
     z_unit_source: str = ""
+    #: treat elevations outside PLAUSIBLE_MIN_M .. PLAUSIBLE_MAX_M as no data (``--mask-implausible``)
+    mask_implausible: bool = False
     _local: threading.local = field(default_factory=threading.local, repr=False, compare=False)
 
     def _dataset(self):
@@ -112,6 +118,12 @@ class DemSource(ThreadLocalHandles):
             arr[invalid] = np.nan
         if self.z_unit is not ZUnit.METRE:
             arr = arr * self.z_unit.to_m
+        if self.mask_implausible:
+            with np.errstate(invalid="ignore"):
+                bad = (arr < PLAUSIBLE_MIN_M) | (arr > PLAUSIBLE_MAX_M)
+            if bad.any():
+                arr = arr.copy() if not arr.flags.writeable else arr
+                arr[bad] = np.nan
         return arr
 
     def _float32_exact(self, ds) -> bool:
@@ -298,6 +310,7 @@ def open_dem(
     crs: str | None = None,
     z_unit: ZUnit | str | None = None,
     check_data: bool = True,
+    mask_implausible: bool = False,
 ) -> DemSource:
     """Open and validate a DEM.
 
@@ -314,7 +327,10 @@ def open_dem(
         read from the data (:func:`resolve_z_unit`); a file whose unit cannot be known and whose
         horizontal unit is not the metre is refused.
     check_data : bool
-        Scan for at least one valid cell (stops at the first one found).
+        Scan the band once, window by window (memory bounded): at least one valid cell, and no
+        elevation outside :data:`PLAUSIBLE_MIN_M` .. :data:`PLAUSIBLE_MAX_M`.
+    mask_implausible : bool
+        Treat elevations outside that range as no data (with a warning) instead of refusing the DEM.
 
     Raises
     ------
@@ -352,8 +368,9 @@ def open_dem(
         nodata = ds.nodatavals[band - 1]
         z_unit, z_source = resolve_z_unit(ds, band, grid, path, z_unit)
     src = DemSource(path, band, grid, nodata, z_unit, crs, z_source)
-    if check_data and not _has_valid_cell(src):
-        raise InputDataError(f"{path}: every cell of band {band} is nodata or NaN; there is no elevation to work with.")
+    if check_data:
+        _check_values(src, mask_implausible)
+    src.mask_implausible = mask_implausible
     logger.info(
         "DEM %s: %d x %d cells, %s, band %d, nodata=%s",
         path,
@@ -364,6 +381,49 @@ def open_dem(
         nodata,
     )
     return src
+
+
+def _check_values(src: DemSource, mask_implausible: bool) -> None:
+    """One streamed pass over the band: refuse an empty band, and implausible elevations unless masked."""
+    import warnings
+
+    from landcheck.errors import LandcheckWarning
+
+    n_valid = n_bad = 0
+    lo, hi = np.inf, -np.inf
+    for win in iter_windows(src.grid.height, src.grid.width, 1024):
+        arr = src.read(win)
+        finite = np.isfinite(arr)
+        bad = finite & ((arr < PLAUSIBLE_MIN_M) | (arr > PLAUSIBLE_MAX_M))
+        n_valid += int(np.count_nonzero(finite))
+        k = int(np.count_nonzero(bad))
+        if k:
+            n_bad += k
+            lo = min(lo, float(arr[bad].min()))
+            hi = max(hi, float(arr[bad].max()))
+    path, band = src.path, src.band
+    if n_valid == 0:
+        raise InputDataError(f"{path}: every cell of band {band} is nodata or NaN; there is no elevation to work with.")
+    if not n_bad:
+        return
+    unit = src.z_unit.value
+    scale = src.z_unit.to_m
+    values = f"{lo / scale:g}" if lo == hi else f"{lo / scale:g} .. {hi / scale:g}"
+    what = (
+        f"{n_bad} of {n_valid} cells of band {band} hold elevations outside the plausible range "
+        f"{PLAUSIBLE_MIN_M:g} m .. {PLAUSIBLE_MAX_M:g} m (values {values} {unit})"
+    )
+    if n_bad == n_valid:
+        raise InputDataError(
+            f"{path}: {what}: every elevation is implausible. Check --z-unit and the file's no-data value."
+        )
+    if not mask_implausible:
+        raise InputDataError(
+            f"{path}: {what}, probably an undeclared no-data (fill) value. Declare it as no-data "
+            f"(e.g. `gdal_translate -a_nodata {hi / scale if hi > PLAUSIBLE_MAX_M else lo / scale:g} in.tif fixed.tif`), "
+            "or pass --mask-implausible to treat these cells as no data."
+        )
+    warnings.warn(f"{path}: {what}; treated as no data (--mask-implausible).", LandcheckWarning, stacklevel=3)
 
 
 def _has_valid_cell(src: DemSource) -> bool:
