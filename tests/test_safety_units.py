@@ -71,7 +71,14 @@ def test_feet_crs_without_declared_unit_is_refused_asking_for_z_unit(tmp_path):
     assert r.exit_code == 3 and "--z-unit" in r.output and not (tmp_path / "o").exists()
     # given explicitly, it runs and gives the unitless slope
     res = audit(
-        dem, parcels, rules, tmp_path / "o2", z_unit="us-ft", make_report=False, skip_confidence=True, show_progress=False
+        dem,
+        parcels,
+        rules,
+        tmp_path / "o2",
+        z_unit="us-ft",
+        make_report=False,
+        skip_confidence=True,
+        show_progress=False,
     )
     assert float(res.parcels["slope_mean_pct"].iloc[0]) == pytest.approx(60.0, abs=0.5)
 

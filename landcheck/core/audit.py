@@ -27,7 +27,7 @@ from landcheck.engine.handles import ThreadLocalHandles
 from landcheck.engine.windows import progress_bar, slope_window
 from landcheck.errors import InputDataError, LandcheckWarning
 from landcheck.geo.grid import Window, iter_windows
-from landcheck.inputs.dem import DemSource, ZUnit, open_dem
+from landcheck.inputs.dem import DemSource, ZUnit, open_dem, refuse_if_nothing_evaluated
 from landcheck.inputs.layers import areal_factor_at, ground_areas, read_parcels
 from landcheck.inputs.rulebook import Rulebook, load_rules
 from landcheck.outputs.folder import source_date_utc, write_run_times
@@ -317,7 +317,7 @@ def audit(
     inside = shapely.intersects(geoms, dem_box)
     if not inside.any():
         raise InputDataError(
-            f"{ps.where}: no parcel overlaps the DEM (DEM bounds {tuple(round(b, 3) for b in g.bounds)} "
+            f"{ps.where}: no parcel overlaps the DEM {dem.path} (DEM bounds {tuple(round(b, 3) for b in g.bounds)} "
             "in its CRS); check that the parcels and the DEM cover the same area and CRS."
         )
     n_out = int((~inside & ~empty).sum())
@@ -327,10 +327,11 @@ def audit(
         warnings.warn(msg, LandcheckWarning, stacklevel=2)
     area_m2, area_factor = ground_areas(frame, g.crs_wkt)
     pr = parcel_rules(rules, frame["class_value"].to_numpy())
-    unmatched = sorted(set(frame["class_value"][pr.class_name == "no_rule"].astype(str)))
+    no_rule_valued = (pr.class_name == "no_rule") & frame["class_value"].notna().to_numpy()  # NULLs: warned on read
+    unmatched = sorted(set(frame["class_value"][no_rule_valued].astype(str)))
     if unmatched:
         msg = (
-            f"{ps.where}: {int((pr.class_name == 'no_rule').sum())} parcels have class values with no rule "
+            f"{ps.where}: {int(no_rule_valued.sum())} parcels have class values with no rule "
             f"({', '.join(map(repr, unmatched[:10]))}); they are listed with verdict no_rule."
         )
         collected.append(msg)
@@ -388,6 +389,7 @@ def audit(
                 conflict_sink.write(win, conflict)
         step("window pass done")
         parcels = evaluate_parcels(totals, plan, rules, pr, area_m2, empty, frame["class_value"].to_numpy(), columns)
+        refuse_if_nothing_evaluated(dem, parcels["evaluated_m2"].to_numpy(), area_m2, ps.where)
         parcels.insert(0, "parcel_id", frame["parcel_id"].to_numpy())
         parcels["geometry_note"] = frame["geometry_note"].to_numpy()
         classes = summarise_classes(parcels, rules)

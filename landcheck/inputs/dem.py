@@ -105,14 +105,25 @@ class DemSource(ThreadLocalHandles):
             the values are the same numbers, so kernels that widen to float64 give
             identical results from both.
         """
+        from rasterio.errors import RasterioError
+
         ds = self._dataset()
         out_dtype = np.float32 if np.dtype(dtype) == np.float32 and self._float32_exact(ds) else np.float64
-        arr = ds.read(self.band, window=win.to_rasterio(), masked=False).astype(out_dtype, copy=False)
+        try:
+            arr = ds.read(self.band, window=win.to_rasterio(), masked=False).astype(out_dtype, copy=False)
+            has_mask = _has_mask_band(ds, self.band)
+            mask = ds.read_masks(self.band, window=win.to_rasterio()) if has_mask else None
+        except RasterioError as exc:
+            raise InputDataError(
+                f"{self.path}: cannot read rows {win.row_off}..{win.row_off + win.height - 1} of band {self.band} "
+                f"({exc}); the file is truncated or damaged. Copy or download it again "
+                "(`gdalinfo -checksum` reads every block and shows where it breaks)."
+            ) from None
         invalid = ~np.isfinite(arr)
         if self.nodata is not None and not np.isnan(self.nodata) and out_dtype(self.nodata) == self.nodata:
             invalid |= arr == out_dtype(self.nodata)
-        if _has_mask_band(ds, self.band):
-            invalid |= ds.read_masks(self.band, window=win.to_rasterio()) == 0
+        if mask is not None:
+            invalid |= mask == 0
         if invalid.any():
             arr = arr.copy() if not arr.flags.writeable else arr
             arr[invalid] = np.nan
@@ -152,6 +163,45 @@ def _has_mask_band(ds, band: int) -> bool:
     return MaskFlags.per_dataset in flags and MaskFlags.alpha not in flags
 
 
+#: smallest DEM side in cells: a 3 x 3 kernel needs a cell with all 8 neighbours
+MIN_DEM_CELLS = 3
+
+
+def _check_coordinates(t, width: int, height: int, pcrs, path: str) -> None:
+    """Refuse a DEM whose corner coordinates are impossible in its CRS (e.g. UTM metres tagged EPSG:4326)."""
+    import pyproj
+
+    xs = [t.c, t.c + t.a * width]
+    ys = [t.f, t.f + t.e * height]
+    if pcrs.is_geographic:
+        lat_ok = all(-90.0 - 1e-9 <= y <= 90.0 + 1e-9 for y in ys)
+        lon_ok = all(-360.0 - 1e-9 <= x <= 360.0 + 1e-9 for x in xs)
+        if not (lat_ok and lon_ok):
+            raise InputDataError(
+                f"{path}: the DEM's CRS {pcrs.name!r} is geographic (degrees), but its corners lie at "
+                f"x {xs[0]:.6g} .. {xs[1]:.6g}, y {ys[1]:.6g} .. {ys[0]:.6g}, outside longitude/latitude range; "
+                "the file is probably tagged with the wrong CRS (metres of a projected CRS tagged as degrees). "
+                "Fix the tag on a copy (e.g. `gdal_edit.py -a_srs EPSG:326NN dem.tif`) or give --dem-crs."
+            )
+        return
+    try:
+        tr = pyproj.Transformer.from_crs(pcrs, pcrs.geodetic_crs, always_xy=True)
+        lon, lat = tr.transform(
+            [xs[0], xs[1], xs[0], xs[1], (xs[0] + xs[1]) / 2],
+            [ys[0], ys[0], ys[1], ys[1], (ys[0] + ys[1]) / 2],
+            errcheck=True,
+        )
+        ok = np.all(np.isfinite(lon)) and np.all(np.isfinite(lat)) and np.all(np.abs(lat) <= 90.0)
+    except Exception:  # pyproj.exceptions.ProjError and friends: the point cannot be projected back
+        ok = False
+    if not ok:
+        raise InputDataError(
+            f"{path}: the DEM's corners (x {xs[0]:.6g} .. {xs[1]:.6g}, y {ys[1]:.6g} .. {ys[0]:.6g}) lie outside "
+            f"the valid range of its CRS {pcrs.name!r}; the file is probably tagged with the wrong CRS. Fix the "
+            "tag on a copy (`gdal_edit.py -a_srs ...`) or give --dem-crs."
+        )
+
+
 def grid_from_dataset(ds, path: str, crs=None) -> GridSpec:
     """Build and validate a :class:`GridSpec` from an open rasterio dataset."""
     import pyproj
@@ -183,6 +233,13 @@ def grid_from_dataset(ds, path: str, crs=None) -> GridSpec:
     inv_f = ell.inverse_flattening if ell is not None and ell.inverse_flattening else 0.0
     f = 1.0 / inv_f if inv_f else 0.0
     e2 = f * (2.0 - f)
+    if ds.width < MIN_DEM_CELLS or ds.height < MIN_DEM_CELLS:
+        raise InputDataError(
+            f"{path}: the DEM has {ds.width} x {ds.height} cells; slope needs each cell's 8 neighbours, so a DEM "
+            f"smaller than {MIN_DEM_CELLS} x {MIN_DEM_CELLS} cells has no slope anywhere. Give a DEM that covers "
+            "the parcels with several cells across each."
+        )
+    _check_coordinates(t, ds.width, ds.height, pcrs, path)
     if pcrs.is_geographic:
         unit_name = pcrs.axis_info[0].unit_name if pcrs.axis_info else "degree"
         if "degree" not in unit_name.lower():
@@ -381,6 +438,25 @@ def open_dem(
         nodata,
     )
     return src
+
+
+def refuse_if_nothing_evaluated(src: DemSource, evaluated_m2, area_m2, parcels_where: str) -> None:
+    """Refuse a DEM too small or too coarse for the parcels: no parcel got a single cell with a slope."""
+    evaluated_m2 = np.asarray(evaluated_m2, dtype=float)
+    area_m2 = np.asarray(area_m2, dtype=float)
+    if len(evaluated_m2) == 0 or np.any(evaluated_m2 > 0):
+        return
+    g = src.grid
+    hx, hy = g.cell_size_m(np.array([g.height // 2]))
+    cell_m2 = float(hx[0] * hy[0])
+    positive = area_m2[area_m2 > 0]
+    median = float(np.median(positive)) if len(positive) else 0.0
+    raise InputDataError(
+        f"{src.path}: no parcel of {parcels_where} has any area with a slope: the DEM ({g.width} x {g.height} "
+        f"cells of about {float(hx[0]):.4g} m x {float(hy[0]):.4g} m, {cell_m2:.4g} m² each) is too small or too "
+        f"coarse for parcels of median area {median:.4g} m² (slope needs a cell with all 8 neighbours valid). "
+        "Give a DEM covering the parcels with several cells across each."
+    )
 
 
 def _check_values(src: DemSource, mask_implausible: bool) -> None:
