@@ -332,6 +332,9 @@ _WORKER_CTX: _Context | None = None
 
 def _init_worker(ctx: _Context) -> None:
     global _WORKER_CTX
+    from landcheck.engine.interrupt import ignore_sigint
+
+    ignore_sigint()  # Ctrl-C reaches the whole process group; the parent stops the pool (docs/cli.md)
     _WORKER_CTX = ctx
 
 
@@ -475,7 +478,8 @@ def run_confidence(
         parts = max(1, math.ceil(workers / max(len(windows), 1)))
         # spawn, not fork: the parent may hold GDAL or numba threads, which do not survive a fork
         mp = multiprocessing.get_context("spawn")
-        with ProcessPoolExecutor(max_workers=workers, mp_context=mp, initializer=_init_worker, initargs=(ctx,)) as pool:
+        pool = ProcessPoolExecutor(max_workers=workers, mp_context=mp, initializer=_init_worker, initargs=(ctx,))
+        try:
             pending: deque = deque()
             for wd in prepared():
                 for r0, r1 in _chunks(n, parts):
@@ -493,6 +497,12 @@ def run_confidence(
                 merge(fut.result())
                 if progress is not None:
                     progress.update(m)
+        except BaseException:  # Ctrl-C or an error: stop the worker processes now, not after their queue
+            from landcheck.engine.interrupt import abandon_pool
+
+            abandon_pool(pool)
+            raise
+        pool.shutdown(wait=True)
 
     return _tables(
         rules, pr, baseline, counted, varies, n, seed, conf, method, over, conflict, slope_sum, covered, evaluated
