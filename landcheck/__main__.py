@@ -1,6 +1,11 @@
 """``python -m landcheck`` runs the command line."""
 
-from .cli.main import cli
+import sys
+
+try:
+    from .cli.main import cli
+except KeyboardInterrupt:  # Ctrl-C while starting up: nothing was written yet (docs/cli.md, exit 130)
+    sys.exit(130)
 
 if __name__ == "__main__":
     cli()

@@ -88,24 +88,23 @@ Examples:
   landcheck audit ... --json --fail-on-conflict   # for scripts: exit 1 when any parcel conflicts
 """,
 )
-@click.option(
-    "--dem", required=True, type=click.Path(dir_okay=False), help="Elevation raster (GeoTIFF or any GDAL raster)."
-)
+@click.option("--dem", required=True, type=click.Path(), help="Elevation raster (GeoTIFF or any GDAL raster).")
 @click.option(
     "--parcels",
     required=True,
-    type=click.Path(dir_okay=False),
+    type=click.Path(),
     help="Parcel polygons: GeoPackage, GeoJSON, Shapefile or GeoParquet.",
 )
 @click.option("--parcels-layer", default=None, help="Layer of a multi-layer parcels file.")
 @click.option("--parcels-crs", default=None, metavar="CRS", help="CRS to assume when the parcels have none.")
-@click.option("--rulebook", required=True, type=click.Path(dir_okay=False), help="Rulebook (TOML; docs/rules-file.md).")
+@click.option("--rulebook", required=True, type=click.Path(), help="Rulebook (TOML; docs/rules-file.md).")
 @click.option(
     "--out",
     "out_dir",
     required=True,
-    type=click.Path(file_okay=False),
-    help="Output folder (must not exist unless --overwrite).",
+    type=click.Path(),
+    help="Output folder (must not exist unless --overwrite; an existing one is replaced only when it holds "
+    "nothing but landcheck's own outputs).",
 )
 @method_option
 @dem_options
@@ -159,6 +158,12 @@ Examples:
     help="Also write polygons of the cell-based hazard zones (HAND, sea-level rise, derived easement "
     "strips) to zones/*.gpkg; built tile by tile, slow on large DEMs.",
 )
+@click.option(
+    "--mask-implausible",
+    is_flag=True,
+    help="Treat DEM elevations below -500 m or above 9000 m as no data (with a warning) instead of refusing "
+    "the DEM (docs/cli.md).",
+)
 @click.option("--no-report", is_flag=True, help="Skip the HTML report and maps.")
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary on stdout.")
 @click.option("--fail-on-conflict", is_flag=True, help="Exit with status 1 when any parcel is in conflict.")
@@ -189,6 +194,7 @@ def command(
     draft_mmu_m2,
     rasters,
     zone_polygons,
+    mask_implausible,
     no_report,
     as_json,
     fail_on_conflict,
@@ -228,4 +234,5 @@ def command(
         draft_mmu_m2=draft_mmu_m2,
         rasters=rasters,
         zone_polygons=zone_polygons,
+        mask_implausible=mask_implausible,
     )

@@ -29,9 +29,10 @@ def dem_options(f):
     f = click.option(
         "--z-unit",
         type=click.Choice([u.value for u in ZUnit]),
-        default=ZUnit.METRE.value,
-        show_default=True,
-        help="Unit of the DEM's elevation values (m, ft, us-ft).",
+        default=None,
+        help="Unit of the DEM's elevation values: m, ft (international foot) or us-ft (US survey foot). "
+        "Default: the unit the file declares (band unit or vertical CRS); without one, metres only when "
+        "the CRS is in metres or degrees, otherwise landcheck refuses and asks for this option.",
     )(f)
     return f
 

@@ -9,6 +9,7 @@ replaces the target in one rename; nothing is written when any error is raised.
 
 from __future__ import annotations
 
+import datetime as _dt
 import logging
 import os
 from collections.abc import Callable, Mapping
@@ -21,6 +22,7 @@ import pandas as pd
 from landcheck.core.run import AuditRun, _RasterHook, _run_audit, open_rules
 from landcheck.core.settings import AuditSettings, CapabilityOptions
 from landcheck.inputs.rulebook import Rulebook
+from landcheck.outputs.folder import write_run_times
 from landcheck.outputs.writers import (
     RasterFormat,
     RasterSink,
@@ -207,6 +209,7 @@ def audit(
         inputs.append(rules.path)
     out = check_output_path(out_dir, [*inputs, *rules.layers.values()], overwrite=overwrite)
     step = on_step or (lambda m: logger.info(m))
+    started = _dt.datetime.now(_dt.timezone.utc)
     with staged_folder(out, overwrite=overwrite) as stage:
         hook = _FolderRasters(stage, s.rasters) if _needs_rasters(s) else None
         try:
@@ -221,5 +224,6 @@ def audit(
         if s.report:
             step("building the report")
             build_report(stage)
+        write_run_times(stage, started)  # the one file a rerun changes (docs/outputs.md)
     step(f"outputs in {out}")
     return AuditResult(out, run.summary, run.table, run.classes, run.warnings, run)

@@ -35,9 +35,10 @@ from landcheck.engine.windows import progress_bar, slope_window
 from landcheck.errors import InputDataError, LandcheckWarning, RuleFileError
 from landcheck.geo.grid import Window, iter_windows
 from landcheck.hashing import sha256_file
-from landcheck.inputs.dem import DemSource, open_dem
+from landcheck.inputs.dem import DemSource, open_dem, refuse_if_nothing_evaluated
 from landcheck.inputs.layers import areal_factor_at, ground_areas, read_parcels, validate_parcels
 from landcheck.inputs.rulebook import Rulebook, load_rules, rules_from_mapping
+from landcheck.outputs.folder import source_date_utc
 from landcheck.overlay.sums import Totals
 from landcheck.terrain.slope import gradient_to_unit
 from landcheck.verdicts.evaluate import (
@@ -72,7 +73,7 @@ def _open_dem(dem, s: AuditSettings) -> DemSource:
     if isinstance(dem, DemSource):
         return dem
     if isinstance(dem, (str, os.PathLike)):
-        return open_dem(dem, band=s.dem_band, crs=s.dem_crs, z_unit=s.z_unit)
+        return open_dem(dem, band=s.dem_band, crs=s.dem_crs, z_unit=s.z_unit, mask_implausible=s.mask_implausible)
     raise InputDataError(f"dem: expected a path or an opened DEM (open_dem), got {type(dem).__name__}.")
 
 
@@ -235,7 +236,11 @@ def _run_audit(
         import dataclasses
 
         s = dataclasses.replace(s, method=rules.slope_method)
-    dem = _open_dem(dem, s)
+    collected: list[str] = []
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", LandcheckWarning)
+        dem = _open_dem(dem, s)
+    collected += _rewarn(caught)
     g = dem.grid
     from landcheck.verdicts.confidence import confidence_settings
 
@@ -248,7 +253,6 @@ def _run_audit(
         else None
     )
     step(f"DEM {g.width}x{g.height} cells, {'geographic' if g.geographic else 'projected'}")
-    collected: list[str] = []
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", LandcheckWarning)
         if isinstance(parcels, gpd.GeoDataFrame):
@@ -270,10 +274,7 @@ def _run_audit(
             )
         else:
             raise InputDataError(f"parcels: expected a path or a GeoDataFrame, got {type(parcels).__name__}.")
-    for w in caught:
-        if issubclass(w.category, LandcheckWarning):
-            collected.append(str(w.message))
-            warnings.warn(str(w.message), LandcheckWarning, stacklevel=3)
+    collected += _rewarn(caught)
     frame = ps.frame
     geoms = np.asarray(frame.geometry.values)
 
@@ -282,7 +283,7 @@ def _run_audit(
     inside = shapely.intersects(geoms, dem_box)
     if not inside.any():
         raise InputDataError(
-            f"{ps.where}: no parcel overlaps the DEM (DEM bounds {tuple(round(b, 3) for b in g.bounds)} "
+            f"{ps.where}: no parcel overlaps the DEM {dem.path} (DEM bounds {tuple(round(b, 3) for b in g.bounds)} "
             "in its CRS); check that the parcels and the DEM cover the same area and CRS."
         )
     n_out = int((~inside & ~empty).sum())
@@ -292,10 +293,11 @@ def _run_audit(
         warnings.warn(msg, LandcheckWarning, stacklevel=3)
     area_m2, area_factor = ground_areas(frame, g.crs_wkt)
     pr = parcel_rules(rules, frame["class_value"].to_numpy())
-    unmatched = sorted(set(frame["class_value"][pr.class_name == "no_rule"].astype(str)))
+    no_rule_valued = (pr.class_name == "no_rule") & frame["class_value"].notna().to_numpy()  # NULLs: warned on read
+    unmatched = sorted(set(frame["class_value"][no_rule_valued].astype(str)))
     if unmatched:
         msg = (
-            f"{ps.where}: {int((pr.class_name == 'no_rule').sum())} parcels have class values with no rule "
+            f"{ps.where}: {int(no_rule_valued.sum())} parcels have class values with no rule "
             f"({', '.join(map(repr, unmatched[:10]))}); they are listed with verdict no_rule."
         )
         collected.append(msg)
@@ -345,6 +347,7 @@ def _run_audit(
                 raster_hook.write(win, out)
     step("window pass done")
     table = evaluate_parcels(totals, plan, rules, pr, area_m2, empty, frame["class_value"].to_numpy(), columns)
+    refuse_if_nothing_evaluated(dem, table["evaluated_m2"].to_numpy(), area_m2, ps.where)
     table.insert(0, "parcel_id", frame["parcel_id"].to_numpy())
     table["geometry_note"] = frame["geometry_note"].to_numpy()
     classes = summarise_classes(table, rules)
@@ -449,6 +452,16 @@ def _zone_shares_by_class(parcels: pd.DataFrame, rules: Rulebook, columns) -> di
     return out
 
 
+def _rewarn(caught) -> list[str]:
+    """Messages of the LandcheckWarnings recorded in ``caught``, warned again to the caller."""
+    out = []
+    for w in caught:
+        if issubclass(w.category, LandcheckWarning):
+            out.append(str(w.message))
+            warnings.warn(str(w.message), LandcheckWarning, stacklevel=4)
+    return out
+
+
 def _resolved(path: str) -> str:
     return path if path.startswith("<") else str(Path(path).resolve())
 
@@ -465,8 +478,8 @@ def _manifest(started, dem: DemSource, parcels, rules: Rulebook, s: AuditSetting
             inputs.append({"role": f"layer:{name}", "path": str(Path(f).resolve()), "sha256": sha256_file(f)})
     cap = s.capability
     return {
-        "started_utc": started.isoformat(timespec="seconds"),
-        "finished_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "run_times": "run_times.json (the only output a rerun changes; docs/outputs.md)",
+        **({"started_utc": source_date_utc()} if source_date_utc() else {}),  # SOURCE_DATE_EPOCH only
         "inputs": inputs,
         "rulebook": {"path": _resolved(rules.path), "sha256": rules.sha256, "text": rules.text},
         "parameters": {
@@ -475,6 +488,8 @@ def _manifest(started, dem: DemSource, parcels, rules: Rulebook, s: AuditSetting
             "dem_band": dem.band,
             "dem_crs_override": dem.crs_override,
             "z_unit": dem.z_unit.value,
+            "z_unit_source": dem.z_unit_source,
+            "mask_implausible": dem.mask_implausible,
             "parcels_layer": s.parcels_layer,
             "parcels_crs_override": s.parcels_crs,
             "parcels_source": "file" if isinstance(parcels, (str, os.PathLike)) else "in-memory GeoDataFrame",

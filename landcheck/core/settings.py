@@ -169,7 +169,8 @@ class AuditSettings:
     tile_cells: int = DEFAULT_TILE_CELLS
     dem_band: int | None = None
     dem_crs: str | None = None
-    z_unit: ZUnit | str = ZUnit.METRE
+    z_unit: ZUnit | str | None = None  # None: the unit the DEM declares (inputs.dem.open_dem)
+    mask_implausible: bool = False  # implausible elevations as no data, with a warning, instead of refusing
     parcels_layer: str | None = None
     parcels_crs: str | None = None
     engine: Engine | EngineKind | str = EngineKind.THREADS
@@ -194,7 +195,10 @@ class AuditSettings:
             isinstance(self.dem_band, bool) or not isinstance(self.dem_band, numbers.Integral) or self.dem_band < 1
         ):
             raise InputDataError(f"DEM band: got {self.dem_band!r}; expected a band number >= 1.")
-        _set(self, "z_unit", _choice(ZUnit, self.z_unit, "elevation unit"))
+        if self.z_unit is not None:
+            _set(self, "z_unit", _choice(ZUnit, self.z_unit, "elevation unit"))
+        if not isinstance(self.mask_implausible, bool):
+            raise InputDataError(f"mask_implausible: got {self.mask_implausible!r}; expected True or False.")
         eng = self.engine
         if not isinstance(eng, Engine):
             eng = Engine.from_user(eng, self.workers, self.scheduler_address)

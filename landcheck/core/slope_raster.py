@@ -65,7 +65,7 @@ def derive_slope(
     unit: SlopeUnit | str = SlopeUnit.PERCENT,
     band: int | None = None,
     dem_crs: str | None = None,
-    z_unit: ZUnit | str = ZUnit.METRE,
+    z_unit: ZUnit | str | None = None,
     tile_cells: int = DEFAULT_TILE_CELLS,
     workers: int | None = None,
     overwrite: bool = False,

@@ -21,7 +21,7 @@ from landcheck.errors import InputDataError
 from landcheck.geo.grid import Window
 from landcheck.inputs.dem import DemSource
 from landcheck.inputs.rulebook import Rulebook
-from landcheck.overlay.coverage import CoverageBuffers, coverage_triplets, prepare_polygons
+from landcheck.overlay.coverage import CoverageBuffers, coverage_triplets_aligned, prepare_polygons
 from landcheck.overlay.sums import ROLE_PARCEL, OverlayPlan, accumulate_window_compiled
 from landcheck.terrain.slope import SlopeMethod, gradient_to_unit
 from landcheck.verdicts.evaluate import SENSITIVITY_LIMITS_PCT
@@ -156,7 +156,7 @@ class WindowJob(ThreadLocalHandles):
         buffers = getattr(self._local, "buffers", None)
         if buffers is None:
             buffers = self._local.buffers = CoverageBuffers()
-        trip = coverage_triplets(self.polygons, g.window_transform(win), win.height, win.width, buffers=buffers)
+        trip = coverage_triplets_aligned(self.polygons, g.transform, g.height, g.width, win, buffers=buffers)
         rows = np.arange(win.row_off, win.row_off + win.height)
         cell_area = g.cell_area_m2(rows)
         sums, conflict = accumulate_window_compiled(

@@ -137,6 +137,9 @@ _WORKER_TASK = None
 
 def _init_process(task) -> None:
     global _WORKER_TASK
+    from landcheck.engine.interrupt import ignore_sigint
+
+    ignore_sigint()  # Ctrl-C reaches the whole process group; the parent stops the pool (docs/cli.md)
     _WORKER_TASK = task
 
 
@@ -150,8 +153,15 @@ def _process_map(task, items, n_workers: int, progress):
         return
     # spawn, not fork: the parent may hold GDAL or numba threads, which do not survive a fork
     mp = multiprocessing.get_context("spawn")
-    with ProcessPoolExecutor(max_workers=n_workers, mp_context=mp, initializer=_init_process, initargs=(task,)) as pool:
+    pool = ProcessPoolExecutor(max_workers=n_workers, mp_context=mp, initializer=_init_process, initargs=(task,))
+    try:
         yield from ordered_results(lambda it: pool.submit(_process_call, it), items, 2 * n_workers, progress)
+    except BaseException:  # Ctrl-C, an error, or the consumer stopped: stop the workers now, not after their queue
+        from landcheck.engine.interrupt import abandon_pool
+
+        abandon_pool(pool)
+        raise
+    pool.shutdown(wait=True)
 
 
 # --------------------------------------------------------------------------- dask

@@ -63,8 +63,15 @@ def run_windows(
                 progress.update(1)
             yield win, res
         return
-    with ThreadPoolExecutor(max_workers=workers, thread_name_prefix="landcheck-window") as pool:
+    pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="landcheck-window")
+    try:
         yield from ordered_results(lambda w: pool.submit(task, w), wins, 2 * workers, progress)
+    except BaseException:  # Ctrl-C, an error, or the consumer stopped: drop queued windows at once
+        from landcheck.engine.interrupt import abandon_pool
+
+        abandon_pool(pool)
+        raise
+    pool.shutdown(wait=True)
 
 
 def ordered_results(submit, windows: Iterable[Window], in_flight: int, progress=None):

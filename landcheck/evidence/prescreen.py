@@ -436,7 +436,7 @@ def prescreen(
     connectivity: int = DEFAULT_CONNECTIVITY,
     dem_band: int | None = None,
     dem_crs: str | None = None,
-    z_unit: ZUnit | str = ZUnit.METRE,
+    z_unit: ZUnit | str | None = None,
     method: str | None = None,
     overwrite: bool = False,
     dpi: int = DEFAULT_DPI,
@@ -517,8 +517,8 @@ def prescreen(
     out = check_output_path(
         out_dir, [dem_path, parcels_path, rulebook_path, *rules.layers.values()], overwrite=overwrite
     )
-    z_unit = ZUnit.from_user(z_unit)
     dem = open_dem(dem_path, band=dem_band, crs=dem_crs, z_unit=z_unit)
+    z_unit = dem.z_unit  # read from the data when not given
     g = dem.grid
     notes: list[str] = []
     if polygon is not None:

@@ -19,7 +19,6 @@ import json
 import logging
 import math
 from collections.abc import Iterable, Sequence
-from datetime import datetime, timezone
 from pathlib import Path
 
 from landcheck.about import CAUTION, __version__
@@ -36,6 +35,7 @@ from landcheck.evidence.maps import (
     slope_distribution_chart,
 )
 from landcheck.hashing import sha256_file
+from landcheck.outputs.folder import source_date_utc
 from landcheck.outputs.writers import write_bytes
 from landcheck.verdicts.labels import verdict_badge_css
 
@@ -463,7 +463,6 @@ def _manifest_section(folder: AuditFolder, verify_inputs: bool, built_utc: str) 
         f'<tr><th scope="row">Audit tool</th><td>{_e(folder.summary.get("tool", "landcheck"))} '
         f"{_e(folder.summary.get('version', ''))}</td></tr>",
         f'<tr><th scope="row">Report tool</th><td>landcheck {_e(__version__)}</td></tr>',
-        f'<tr><th scope="row">Output folder</th><td><code>{_e(folder.out_dir.parent / _final_name(folder.out_dir))}</code></td></tr>',
         "</tbody></table>",
     ]
 
@@ -726,7 +725,8 @@ def build_report(
     report_path = Path(report_path) if report_path is not None else folder.out_dir / "report.html"
     figures_dir = Path(figures_dir) if figures_dir is not None else folder.out_dir / "figures"
     formats = tuple(dict.fromkeys(("png", *figure_formats)))
-    built_utc = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    # no wall-clock time inside a reproducible output (docs/outputs.md): SOURCE_DATE_EPOCH or nothing
+    built_utc = source_date_utc() or "not recorded (run times: run_times.json)"
 
     # validate the tables before drawing anything
     _ = folder.parcels, folder.classes
@@ -765,8 +765,7 @@ def build_report(
     parts = [
         html_head(f"{title} - audit run {folder.run_date_text}", _CSS, _CSP),
         f"<header><h1>{_e(title)}</h1>",
-        f'<p class="sub">Audit run {_e(folder.run_date_text)} \u00b7 output folder '
-        f"<code>{_e(_final_name(folder.out_dir))}</code></p>",
+        f'<p class="sub">Audit run {_e(folder.run_date_text)}</p>',
         f'<div class="caution" role="note" id="caution"><span aria-hidden="true">\u26a0 </span>{_e(CAUTION)}</div>',
         '<nav aria-label="Sections"><ul><li><a href="#summary">Summary</a></li>'
         '<li><a href="#capability">Capability</a></li><li><a href="#classes">Per class</a></li>'

@@ -66,9 +66,13 @@ def read_layer(path: str | os.PathLike, *, layer: str | None = None, role: str =
         raise InputDataError(f"{where}: the {role} layer has no features.")
     if gdf.crs is None:
         if crs is None:
-            raise InputDataError(
-                f"{where}: the {role} layer has no CRS; give one (e.g. --parcels-crs EPSG:32651) or fix the file."
+            how = (
+                "give one (e.g. --parcels-crs EPSG:32651) or fix the file"
+                if role in ("parcels", "parcel")
+                else "give the file a CRS, e.g. `ogr2ogr -a_srs EPSG:32651 fixed.gpkg in.gpkg`, and point the "
+                "rulebook at the fixed file"
             )
+            raise InputDataError(f"{where}: the {role} layer has no CRS; {how}.")
         gdf = gdf.set_crs(crs)
     gdf.attrs["where"] = where
     return gdf
@@ -180,15 +184,29 @@ def validate_parcels(
             )
         dup = ids[ids.duplicated(keep=False)]
         if len(dup):
-            first = dup.iloc[0]
-            rows = (np.flatnonzero((ids == first).to_numpy()) + 1).tolist()
+            groups = []
+            for value in dict.fromkeys(dup.tolist()):  # every duplicated id, in order of first appearance
+                rows = (np.flatnonzero((ids == value).to_numpy()) + 1).tolist()
+                groups.append(f"{value!r} (rows {', '.join(map(str, rows))})")
             raise InputDataError(
-                f"{where}: {len(rows)} parcels share {id_field} {first} (rows {', '.join(map(str, rows[:10]))}); ids must be unique."
+                f"{where}: {len(groups)} {id_field} values are used by more than one parcel: "
+                f"{'; '.join(groups)}; ids must be unique."
             )
         gdf["parcel_id"] = ids.to_numpy()
     else:
         gdf["parcel_id"] = gdf["row"]
-    gdf["class_value"] = gdf[class_field].astype("string").fillna("")
+    # NULL stays NULL (pandas <NA>): never the empty string, so it never matches a class value ""
+    gdf["class_value"] = gdf[class_field].astype("string")
+    null_class = gdf["class_value"].isna().to_numpy()
+    if null_class.any():
+        ids_null = gdf.loc[null_class, "parcel_id"].tolist()
+        shown = ", ".join(map(str, ids_null[:50])) + (f" and {len(ids_null) - 50} more" if len(ids_null) > 50 else "")
+        msg = (
+            f"{where}: {len(ids_null)} parcels have no {class_field} value (NULL): "
+            f"{id_field or 'row'} {shown}; they are listed with verdict no_rule."
+        )
+        notes.append(msg)
+        warnings.warn(msg, LandcheckWarning, stacklevel=2)
 
     geom = gdf.geometry.values
     gdf["geometry_note"] = ""

@@ -12,9 +12,8 @@ import contextlib
 import json
 import logging
 import os
-import shutil
 import tempfile
-from collections.abc import Callable, Iterable, Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import numpy as np
@@ -23,6 +22,7 @@ from landcheck.choices import UserChoice
 from landcheck.errors import OutputExistsError, OutputWriteError
 from landcheck.geo.grid import GridSpec, Window
 from landcheck.inputs.gdal_cache import cap_gdal_cache
+from landcheck.outputs.folder import check_output_path, staged_folder
 
 __all__ = [
     "atomic_file",
@@ -65,64 +65,6 @@ def atomic_file(final: str | os.PathLike, *, overwrite: bool = False, suffix: st
         raise OutputWriteError(f"{final}: writing failed ({exc.strerror or exc}); nothing was left behind.") from exc
     except BaseException:
         tmp_path.unlink(missing_ok=True)
-        raise
-
-
-def check_output_path(out: str | os.PathLike, inputs: Iterable[str | os.PathLike], *, overwrite: bool) -> Path:
-    """Refuse an output folder that exists (without ``overwrite``) or that holds or is an input."""
-    out = Path(out).resolve()
-    for p in inputs:
-        if p is None:
-            continue
-        ip = Path(p).resolve()
-        if ip == out or out in ip.parents:
-            raise OutputWriteError(
-                f"{out}: the output folder would contain or replace the input {ip}; choose an output folder outside the inputs."
-            )
-    if out.exists() and not overwrite:
-        raise OutputExistsError(
-            f"{out}: output folder already exists; pass --overwrite to replace it, or choose another."
-        )
-    if out.exists() and not out.is_dir():
-        raise OutputWriteError(f"{out}: exists and is not a folder.")
-    return out
-
-
-@contextlib.contextmanager
-def staged_folder(final: str | os.PathLike, *, overwrite: bool = False) -> Iterator[Path]:
-    """Yield a hidden sibling folder; on success it replaces ``final`` in one rename.
-
-    On any error the staged folder is removed and an existing ``final`` is untouched.
-    """
-    final = Path(final)
-    if final.exists() and not overwrite:
-        raise OutputExistsError(
-            f"{final}: output folder already exists; pass --overwrite to replace it, or choose another."
-        )
-    try:
-        final.parent.mkdir(parents=True, exist_ok=True)
-        stage = Path(tempfile.mkdtemp(prefix=f".{final.name}.partial-", dir=final.parent))
-        os.chmod(stage, 0o777 & ~_umask())
-    except OSError as exc:
-        raise OutputWriteError(f"{final}: cannot create the output folder ({exc.strerror or exc}).") from exc
-    try:
-        yield stage
-        if final.exists():
-            old = final.with_name(f".{final.name}.old-{os.getpid()}")
-            os.replace(final, old)
-            os.replace(stage, final)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.replace(stage, final)
-    except OSError as exc:
-        shutil.rmtree(stage, ignore_errors=True)
-        if isinstance(exc, (OutputExistsError, OutputWriteError)):
-            raise
-        raise OutputWriteError(
-            f"{final}: writing the outputs failed ({exc.strerror or exc}); nothing was left behind."
-        ) from exc
-    except BaseException:
-        shutil.rmtree(stage, ignore_errors=True)
         raise
 
 
@@ -170,8 +112,27 @@ def write_csv(path: str | os.PathLike, frame, *, overwrite: bool = True) -> Path
 def write_gpkg(path: str | os.PathLike, gdf, layer: str, *, overwrite: bool = True) -> Path:
     with atomic_file(path, overwrite=overwrite, suffix=".gpkg") as tmp:
         tmp.unlink()  # GDAL wants to create the file itself
-        gdf.to_file(tmp, layer=layer, driver="GPKG")
+        with fixed_gpkg_date():
+            gdf.to_file(tmp, layer=layer, driver="GPKG")
     return Path(path)
+
+
+#: the time GeoPackages carry in gpkg_contents.last_change: fixed so a rerun writes the same bytes
+#: (GDAL's OGR_CURRENT_DATE; the run's own times are in run_times.json)
+GPKG_FIXED_DATE = "2000-01-01T00:00:00.000Z"
+
+
+@contextlib.contextmanager
+def fixed_gpkg_date():
+    """Within: GeoPackages written through GDAL carry :data:`GPKG_FIXED_DATE` instead of the wall clock."""
+    import pyogrio
+
+    before = pyogrio.get_gdal_config_option("OGR_CURRENT_DATE")
+    pyogrio.set_gdal_config_options({"OGR_CURRENT_DATE": GPKG_FIXED_DATE})
+    try:
+        yield
+    finally:
+        pyogrio.set_gdal_config_options({"OGR_CURRENT_DATE": before})
 
 
 class RasterFormat(UserChoice):

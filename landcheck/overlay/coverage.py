@@ -88,6 +88,8 @@ from landcheck.errors import InputDataError
 
 __all__ = [
     "MIN_FRACTION",
+    "COVERAGE_BLOCK_CELLS",
+    "coverage_triplets_aligned",
     "CoverageBuffers",
     "CoverageTriplets",
     "PreparedPolygons",
@@ -716,3 +718,61 @@ def coverage_triplets(
     if buffers is not None and fi is not out[0]:  # the kernel grew them: keep the larger arrays
         buffers.arrays = (fi, ro, co, fr)
     return CoverageTriplets(fi[:n], ro[:n], co[:n], fr[:n])
+
+
+#: coverage is computed in blocks of this many cells aligned to the raster's own origin (see below)
+COVERAGE_BLOCK_CELLS = 256
+
+
+def coverage_triplets_aligned(
+    polygons: PreparedPolygons | Sequence,
+    raster_transform,
+    raster_height: int,
+    raster_width: int,
+    win,
+    *,
+    buffers: CoverageBuffers | None = None,
+    block: int = COVERAGE_BLOCK_CELLS,
+) -> CoverageTriplets:
+    """Coverage triplets of window ``win`` that do not depend on how the raster is cut into windows.
+
+    :func:`coverage_triplets` works in cell units measured from the window's corner, so the
+    rounding of a cell's fraction (~1e-12) depends on where the window starts.  Here every
+    fraction is computed inside the fixed ``block`` x ``block`` block of the raster holding the
+    cell (blocks aligned to the raster's origin, clipped to its extent), whatever ``win`` is, so
+    any tiling gives every (feature, cell) pair the same fraction bit for bit.  Rows and columns
+    are returned relative to ``win``; entries are grouped by feature (ascending), rows and columns
+    within a feature in block order.  Windows that are multiples of ``block`` cost nothing extra;
+    other windows compute the whole of each block they touch.
+    """
+    if not isinstance(polygons, PreparedPolygons):
+        polygons = prepare_polygons(polygons)
+    a, c, e, f = _transform_terms(raster_transform)
+    from affine import Affine
+
+    from landcheck.geo.grid import _compose
+
+    base = Affine(a, 0.0, c, 0.0, e, f)
+    parts = []
+    r_first = (win.row_off // block) * block
+    c_first = (win.col_off // block) * block
+    for br in range(r_first, win.row_off + win.height, block):
+        for bc in range(c_first, win.col_off + win.width, block):
+            bh = min(block, raster_height - br)
+            bw = min(block, raster_width - bc)
+            t = _compose(base, Affine.translation(bc, br))
+            fi, ro, co, fr = coverage_triplets(polygons, t, bh, bw, buffers=buffers)
+            rows = ro.astype(np.int64) + (br - win.row_off)
+            cols = co.astype(np.int64) + (bc - win.col_off)
+            keep = (rows >= 0) & (rows < win.height) & (cols >= 0) & (cols < win.width)
+            parts.append((fi[keep], rows[keep].astype(np.int32), cols[keep].astype(np.int32), fr[keep]))
+    if not parts:
+        return CoverageTriplets(np.empty(0, np.int64), np.empty(0, np.int32), np.empty(0, np.int32), np.empty(0))
+    fi = np.concatenate([p[0] for p in parts])
+    ro = np.concatenate([p[1] for p in parts])
+    co = np.concatenate([p[2] for p in parts])
+    fr = np.concatenate([p[3] for p in parts])
+    if len(parts) > 1 and fi.size and np.any(fi[1:] < fi[:-1]):
+        order = np.argsort(fi, kind="stable")
+        fi, ro, co, fr = fi[order], ro[order], co[order], fr[order]
+    return CoverageTriplets(fi, ro, co, fr)

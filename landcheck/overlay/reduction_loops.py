@@ -1,7 +1,9 @@
 """Compiled (numba) window reduction: the loop behind :func:`landcheck.overlay.sums.accumulate_window_compiled`.
 
 One pass over the (geometry, cell, fraction) triplets of a window adds every
-pair straight into per-parcel accumulators, in the order of the triplets, with
+pair, rounded to a fixed quantum (so sums are exact and independent of their
+order; :data:`landcheck.overlay.sums.AREA_QUANTUM_M2`), straight into per-parcel
+accumulators, in the order of the triplets, with
 the same arithmetic as the NumPy reference :func:`landcheck.overlay.sums.accumulate_window`
 (``np.bincount`` and ``np.add.at`` also add in input order), so the two give
 bit-identical sums (tests check this).  The loop releases the GIL, so worker
@@ -18,6 +20,11 @@ import numpy as np
 
 _ROLE_PARCEL = -2
 _ROLE_FORBIDDEN_PIECE = -1
+# fixed-point quanta of the pair terms (see landcheck.overlay.sums.AREA_QUANTUM_M2); numba folds them in
+_AREA_SCALE = 2.0**20
+_AREA_QUANTUM = 2.0**-20
+_SLOPE_AREA_SCALE = 2.0**20
+_SLOPE_AREA_QUANTUM = 2.0**-20
 
 
 @numba.njit(cache=True, nogil=True)
@@ -182,7 +189,7 @@ def accumulate_pairs(
                 cell = row * w + col
                 f = frac[i]
                 s = np.float64(slope_pct[row, col])
-                a = f * cell_area_m2[row] * af
+                a = np.rint(f * cell_area_m2[row] * af * _AREA_SCALE) * _AREA_QUANTUM
                 valid = np.isfinite(s)
                 zb = zone_bits[row, col] if has_zones else np.uint32(0)
                 raster_breach = (zb & rforbid) != 0
@@ -190,7 +197,7 @@ def accumulate_pairs(
                 cov_acc += a
                 if valid:
                     eval_acc += a
-                    sum_acc += a * s
+                    sum_acc += np.rint(a * s * _SLOPE_AREA_SCALE) * _SLOPE_AREA_QUANTUM
                     max_acc = max(max_acc, s)
                     over[loc, _count_le(thresholds_pct, s)] += a
                     if slope_breach:
@@ -221,7 +228,7 @@ def accumulate_pairs(
                 row = rr[i]
                 col = cc[i]
                 s = np.float64(slope_pct[row, col])
-                a = frac[i] * cell_area_m2[row] * af
+                a = np.rint(frac[i] * cell_area_m2[row] * af * _AREA_SCALE) * _AREA_QUANTUM
                 valid = np.isfinite(s)
                 zb = zone_bits[row, col] if has_zones else np.uint32(0)
                 raster_breach = (zb & rforbid) != 0
@@ -238,7 +245,7 @@ def accumulate_pairs(
                 col = cc[i]
                 cell = row * w + col
                 if vector_column:
-                    zone_m2[loc, role] += frac[i] * cell_area_m2[row] * af
+                    zone_m2[loc, role] += np.rint(frac[i] * cell_area_m2[row] * af * _AREA_SCALE) * _AREA_QUANTUM
                 vector_bits[cell] |= bit
 
     # ---- conflict raster: the parcel covering most of each cell (ties: lower parcel index)

@@ -11,6 +11,19 @@ many windows therefore gets the same numbers as in one whole-raster pass.
 Coverage fractions come from :func:`landcheck.overlay.coverage.coverage_triplets`
 (exact polygon/cell intersection areas, never cell centres).
 
+Order-independent sums.  Every pair's area ``fraction x cell area x factor`` is
+rounded to a multiple of :data:`AREA_QUANTUM_M2` (2^-20 m², about 1 mm²) and every
+pair's slope-area product to :data:`SLOPE_AREA_QUANTUM` (2^-20 m²·%) before it is
+added.  Sums of such multiples are exact in float64 while they stay below
+2^53 quanta (2^33 m² ≈ 8 590 km² per parcel and window, likewise 2^33 m²·% for
+the slope-area sum, e.g. 100 km² at a mean slope of 86 %), and :class:`Totals`
+adds the window sums as 64-bit integers of quanta (exact up to 2^63 quanta,
+8.8e12 m²).  Exact sums do not depend on the order of their terms, so tile size,
+worker count and engine cannot change a bit of any per-parcel, per-class or
+whole-area figure.  The rounding moves each pair term by at most half a quantum
+(4.8e-7 m²): for 10 m cells at most 4.8e-9 of a whole cell's area, a bias that
+can add up over a parcel's cells to the same relative amount of its area.
+
 Two implementations give the same numbers bit for bit (tests check it):
 :func:`accumulate_window` in NumPy is the readable reference;
 :func:`accumulate_window_compiled` runs one compiled loop over the pairs
@@ -21,7 +34,7 @@ GIL, and is what the audit uses.
 from __future__ import annotations
 
 import threading
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -31,6 +44,22 @@ __all__ = ["OverlayPlan", "WindowSums", "Totals", "accumulate_window", "accumula
 CONFLICT_OUTSIDE = 255
 #: slope-histogram bin edges (percent) used for charts: 1-point bins to 100 %, then one open bin
 HIST_EDGES_PCT = np.concatenate([np.arange(0.0, 101.0, 1.0), [np.inf]])
+
+
+#: every pair's area is rounded to a multiple of this before it is added (exact, order-free sums)
+AREA_QUANTUM_M2 = 2.0**-20
+#: likewise every pair's slope x area product (m² x percent)
+SLOPE_AREA_QUANTUM = 2.0**-20
+
+
+def quantize_area(a):
+    """Round areas (m²) to multiples of :data:`AREA_QUANTUM_M2` (round half to even)."""
+    return np.rint(np.asarray(a, dtype=np.float64) * (1.0 / AREA_QUANTUM_M2)) * AREA_QUANTUM_M2
+
+
+def _to_quanta(x, quantum: float) -> np.ndarray:
+    """Exact integer count of quanta in sums that are multiples of ``quantum`` (see module doc)."""
+    return np.rint(np.asarray(x, dtype=np.float64) * (1.0 / quantum)).astype(np.int64)
 
 
 #: role of a geometry in the coverage step: the parcel itself
@@ -124,54 +153,70 @@ class WindowSums:
     land_within_m2: float
 
 
-@dataclass
 class Totals:
-    """Whole-run accumulators; :meth:`add` merges one window."""
+    """Whole-run accumulators; :meth:`add` merges one window.
 
-    n_parcels: int
-    n_thresholds: int
-    n_cols: int
-    n_classes: int
-    covered_m2: np.ndarray = field(init=False)
-    evaluated_m2: np.ndarray = field(init=False)
-    slope_area_sum: np.ndarray = field(init=False)
-    slope_max_pct: np.ndarray = field(init=False)
-    over_m2: np.ndarray = field(init=False)
-    conflict_m2: np.ndarray = field(init=False)
-    near_conflict_m2: np.ndarray = field(init=False)
-    slope_conflict_m2: np.ndarray = field(init=False)
-    zone_m2: np.ndarray = field(init=False)
-    class_hist_m2: np.ndarray = field(init=False)
-    land_m2: float = 0.0
-    land_within_m2: float = 0.0
+    Sums are kept as 64-bit integer counts of :data:`AREA_QUANTUM_M2` (slope-area sums of
+    :data:`SLOPE_AREA_QUANTUM`), so merging is exact and the order windows arrive in does not
+    matter; the attributes read as float arrays in m² (m² x % for ``slope_area_sum``).
+    """
 
-    def __post_init__(self):
-        n = self.n_parcels
-        self.covered_m2 = np.zeros(n)
-        self.evaluated_m2 = np.zeros(n)
-        self.slope_area_sum = np.zeros(n)
+    _AREA_FIELDS = (
+        "covered_m2",
+        "evaluated_m2",
+        "over_m2",
+        "conflict_m2",
+        "near_conflict_m2",
+        "slope_conflict_m2",
+        "zone_m2",
+        "class_hist_m2",
+    )
+
+    def __init__(self, n_parcels: int, n_thresholds: int, n_cols: int, n_classes: int):
+        n = self.n_parcels = n_parcels
+        self.n_thresholds = n_thresholds
+        self.n_cols = n_cols
+        self.n_classes = n_classes
+        shapes = {
+            "over_m2": (n, n_thresholds),
+            "zone_m2": (n, n_cols),
+            "class_hist_m2": (n_classes, len(HIST_EDGES_PCT) - 1),
+        }
+        self._q = {f: np.zeros(shapes.get(f, (n,)), np.int64) for f in self._AREA_FIELDS}
+        self._q_slope = np.zeros(n, np.int64)
+        self._q_land = 0
+        self._q_land_within = 0
         self.slope_max_pct = np.full(n, np.nan)
-        self.over_m2 = np.zeros((n, self.n_thresholds))
-        self.conflict_m2 = np.zeros(n)
-        self.near_conflict_m2 = np.zeros(n)
-        self.slope_conflict_m2 = np.zeros(n)
-        self.zone_m2 = np.zeros((n, self.n_cols))
-        self.class_hist_m2 = np.zeros((self.n_classes, len(HIST_EDGES_PCT) - 1))
+
+    def __getattr__(self, name):
+        q = self.__dict__.get("_q")
+        if q is not None and name in q:
+            return q[name] * AREA_QUANTUM_M2
+        raise AttributeError(name)
+
+    @property
+    def slope_area_sum(self) -> np.ndarray:
+        return self._q_slope * SLOPE_AREA_QUANTUM
+
+    @property
+    def land_m2(self) -> float:
+        return float(self._q_land * AREA_QUANTUM_M2)
+
+    @property
+    def land_within_m2(self) -> float:
+        return float(self._q_land_within * AREA_QUANTUM_M2)
 
     def add(self, s: WindowSums) -> None:
         p = s.parcels
-        self.covered_m2[p] += s.covered_m2
-        self.evaluated_m2[p] += s.evaluated_m2
-        self.slope_area_sum[p] += s.slope_area_sum
+        for f in self._AREA_FIELDS:
+            if f == "class_hist_m2":
+                self._q[f] += _to_quanta(s.class_hist_m2, AREA_QUANTUM_M2)
+            else:
+                self._q[f][p] += _to_quanta(getattr(s, f), AREA_QUANTUM_M2)
+        self._q_slope[p] += _to_quanta(s.slope_area_sum, SLOPE_AREA_QUANTUM)
         self.slope_max_pct[p] = np.fmax(self.slope_max_pct[p], s.slope_max_pct)
-        self.over_m2[p] += s.over_m2
-        self.conflict_m2[p] += s.conflict_m2
-        self.near_conflict_m2[p] += s.near_conflict_m2
-        self.slope_conflict_m2[p] += s.slope_conflict_m2
-        self.zone_m2[p] += s.zone_m2
-        self.class_hist_m2 += s.class_hist_m2
-        self.land_m2 += s.land_m2
-        self.land_within_m2 += s.land_within_m2
+        self._q_land += int(_to_quanta(s.land_m2, AREA_QUANTUM_M2))
+        self._q_land_within += int(_to_quanta(s.land_within_m2, AREA_QUANTUM_M2))
 
 
 def accumulate_window(
@@ -238,7 +283,7 @@ def accumulate_window(
     k = len(local_ids)
     s = slope_pct[rr, cc].astype(np.float64)
     valid = np.isfinite(s)
-    a = frac * cell_area_m2[rr] * plan.area_factor[gp]
+    a = quantize_area(frac * cell_area_m2[rr] * plan.area_factor[gp])
     reach = np.searchsorted(plan.thresholds_pct, np.where(valid, s, -np.inf), side="right")  # thresholds <= s
     li = plan.limit_index[gp]
     ni = plan.near_index[gp]
@@ -255,7 +300,9 @@ def accumulate_window(
     sp = np.where(vp, s[is_p], 0.0)
     covered = np.bincount(lp, weights=ap, minlength=k)
     evaluated = np.bincount(lp, weights=avp, minlength=k)
-    slope_sum = np.bincount(lp, weights=avp * sp, minlength=k)
+    slope_sum = np.bincount(
+        lp, weights=np.rint(avp * sp * (1.0 / SLOPE_AREA_QUANTUM)) * SLOPE_AREA_QUANTUM, minlength=k
+    )
     smax = np.full(k, -np.inf)
     np.maximum.at(smax, lp[vp], s[is_p][vp])
     smax[np.isneginf(smax)] = np.nan
@@ -340,9 +387,15 @@ def _land_sums(slope_pct, cell_area_m2, plan: OverlayPlan, land_mask, counts=Non
     capability limit, in m2: exact per-row cell counts times the row's ground cell area."""
     if counts is None:
         counts = _land_counts(slope_pct, land_mask, plan.capability_limit_pct)
-    row_area = cell_area_m2 * plan.ground_factor
-    land_m2 = float((row_area * counts[0]).sum())
-    land_within_m2 = float((row_area * counts[1]).sum()) if plan.capability_limit_pct is not None else 0.0
+    # each row's cell area rounded to the quantum first: times an integer count it stays an exact
+    # multiple, so the window's sum is exact whatever columns and rows the window holds
+    row_q = _to_quanta(quantize_area(cell_area_m2 * plan.ground_factor), AREA_QUANTUM_M2)
+    land_m2 = float(int((row_q * counts[0].astype(np.int64)).sum()) * AREA_QUANTUM_M2)
+    land_within_m2 = (
+        float(int((row_q * counts[1].astype(np.int64)).sum()) * AREA_QUANTUM_M2)
+        if plan.capability_limit_pct is not None
+        else 0.0
+    )
     return land_m2, land_within_m2
 
 

@@ -44,8 +44,8 @@ import numpy as np
 from landcheck.errors import RuleFileError
 from landcheck.geo.grid import GridSpec, Window
 from landcheck.inputs.rulebook import NO_RULE, Rulebook
-from landcheck.overlay.coverage import coverage_triplets
-from landcheck.overlay.sums import ROLE_PARCEL, OverlayPlan
+from landcheck.overlay.coverage import coverage_triplets, coverage_triplets_aligned
+from landcheck.overlay.sums import ROLE_PARCEL, OverlayPlan, quantize_area
 from landcheck.terrain.slope_classes import (
     NO_CLASS,
     SlopeClassScheme,
@@ -315,7 +315,7 @@ def accumulate_capability(
     is_p = plan.geom_role[gi] == ROLE_PARCEL
     gp = plan.geom_parcel[gi[is_p]]
     rr, cc = rr[is_p], cc[is_p]
-    a = frac[is_p] * cell_area_m2[rr] * plan.area_factor[gp]
+    a = quantize_area(frac[is_p] * cell_area_m2[rr] * plan.area_factor[gp])  # the audit's exact terms
     row = plan.class_index[gp]
     row = np.where(row < 0, plan.n_classes, row)
     flat = np.bincount(
@@ -433,7 +433,7 @@ class _CapabilityTask:
         cand = self.parcel_idx[self._tree.query(shapely.box(*g.window_bounds(win)), predicate="intersects")]
         cand.sort()
         rows = np.arange(win.row_off, win.row_off + win.height)
-        trip = coverage_triplets(self.geoms[cand], g.window_transform(win), win.height, win.width)
+        trip = coverage_triplets_aligned(self.geoms[cand], g.transform, g.height, g.width, win)
         return codes, accumulate_capability(codes, g.cell_area_m2(rows), cand, trip, self.plan)
 
 

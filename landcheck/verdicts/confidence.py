@@ -77,7 +77,7 @@ import numpy as np
 from landcheck.errors import InputDataError, RuleFileError
 from landcheck.geo.grid import GridSpec, Window
 from landcheck.inputs.rulebook import NO_RULE, Rulebook
-from landcheck.overlay.coverage import coverage_triplets
+from landcheck.overlay.coverage import coverage_triplets_aligned
 from landcheck.overlay.sums import (
     ROLE_FORBIDDEN_PIECE,
     ROLE_PARCEL,
@@ -291,7 +291,7 @@ def _prepare_window(
     if len(cand) == 0:
         return None
     cand.sort()
-    trip = coverage_triplets(geoms[cand], g.window_transform(win), win.height, win.width)
+    trip = coverage_triplets_aligned(geoms[cand], g.transform, g.height, g.width, win)
     if len(trip[0]) == 0:
         return None
     zb = zones.bits(win) if zones is not None else None

@@ -65,7 +65,8 @@ class ParcelRules:
 
 def parcel_rules(rules: Rulebook, class_values) -> ParcelRules:
     mapping = rules.class_of_value()
-    names = np.array([mapping.get(str(v), NO_RULE) for v in class_values], dtype=object)
+    # a NULL class value (None, NaN, pandas <NA>) matches no class, not even values = [""]
+    names = np.array([NO_RULE if pd.isna(v) else mapping.get(str(v), NO_RULE) for v in class_values], dtype=object)
     by = {c.name: c for c in rules.classes}
     lim = np.array(
         [by[n].max_slope_pct if n in by and by[n].max_slope_pct is not None else np.nan for n in names], float
@@ -119,7 +120,11 @@ def evaluate_parcels(
         name = pr.class_name[i]
         v = verdict[i]
         if v == Verdict.NO_RULE:
-            r.append(f"class value {str(class_values[i])!r} has no rule in the rulebook")
+            r.append(
+                "class value is NULL (empty attribute)"
+                if pd.isna(class_values[i])
+                else f"class value {str(class_values[i])!r} has no rule in the rulebook"
+            )
         elif empty[i]:
             r.append("empty geometry: nothing to evaluate")
         else:
@@ -158,7 +163,7 @@ def evaluate_parcels(
 
     df = pd.DataFrame(
         {
-            "class_value": pd.array([str(v) for v in class_values], dtype="string"),
+            "class_value": pd.array([None if pd.isna(v) else str(v) for v in class_values], dtype="string"),
             "class_name": pr.class_name.astype(str),
             "area_m2": area_m2,
             "covered_m2": cov,
