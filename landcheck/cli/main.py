@@ -106,7 +106,7 @@ def _register():
     from . import slope_cmd
 
     cli.add_command(slope_cmd.slope)
-    for mod_name in ("audit_cmd", "demo_cmd", "report_cmd", "prescreen_cmd", "rulebook_cmd"):
+    for mod_name in ("audit_cmd", "demo_cmd", "report_cmd", "prescreen_cmd", "rulebook_cmd", "app_cmd"):
         try:
             mod = __import__(f"landcheck.cli.{mod_name}", fromlist=["command"])
         except ModuleNotFoundError as exc:
