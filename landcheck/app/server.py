@@ -140,7 +140,7 @@ def create_app(
         out = dict(r)
         for k in ("options", "made_from", "summary"):
             out[k] = json.loads(r[k]) if r.get(k) else None
-        out["live"] = runs.live(r["id"]) if r["state"] == "running" else None
+        out["live"] = runs.live(r["id"])  # kept after the end while the app runs: the finished bars
         out["outputs"] = (
             ws.q("SELECT path, size, sha256 FROM outputs WHERE run_id = ? ORDER BY path", (r["id"],))
             if r["state"] == "done"

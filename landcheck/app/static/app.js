@@ -307,7 +307,7 @@
     const cap = h("select", { id: "opt-capability" }, ["", "planning-6", "fao-2006"].map(v => h("option", { value: v, text: v || "none" })));
     const mmu = h("input", { type: "number", step: "any", id: "opt-mmu", placeholder: "off" });
     const pre = h("input", { type: "text", id: "opt-prescreen", size: 10, placeholder: "parcel id" });
-    const tile = h("select", { id: "opt-tile" }, [256, 512, 1024, 2048].map(v => h("option", { value: v, text: v, selected: v === 512 })));
+    const tile = h("select", { id: "opt-tile" }, [256, 512, 1024, 2048].map(v => h("option", { value: v, text: v, selected: v === 1024 })));
     const out = h("div", { id: "run-start-msg" });
     const start = h("button", { id: "start-run", text: "Run the audit", disabled: true });
     start.addEventListener("click", async () => {
@@ -342,6 +342,7 @@
     drawMadeFrom(made, r);
     if (r.state === "queued" || r.state === "running") return pollRun(rid, prog);
     drawFinished(prog, r);
+    if (r.live && r.live.stages.length) { const bars = h("div", { id: "final-stages" }); drawStages(bars, r); bars.querySelector("#cancel-run").remove(); bars.querySelector("h2").remove(); prog.append(bars); }
     if (r.state === "done") await drawResults(r, parcelId);
   }
 

@@ -1,0 +1,384 @@
+"""The browser app (``landcheck app``): refusals through its HTTP API, and the whole job in headless Chromium.
+
+The refusals are checked against the CLI's own messages for the same files (``open_dem``, ``load_rules``);
+the end-to-end run's ``parcels.csv`` is checked byte for byte against ``landcheck audit`` on the same
+inputs and rulebook.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+import subprocess
+import sys
+import zipfile
+from io import BytesIO
+from pathlib import Path
+
+import pytest
+from _support import require_tool
+
+pytest.importorskip("starlette")
+pytest.importorskip("httpx")
+from starlette.testclient import TestClient  # noqa: E402
+
+from landcheck.about import CAUTION  # noqa: E402
+from landcheck.app.server import TOKEN_HEADER, create_app  # noqa: E402
+from landcheck.app.uploads import UploadRefused, safe_name  # noqa: E402
+from landcheck.errors import InputDataError, RuleFileError  # noqa: E402
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "demo_area"
+TWO_CLASSES = {
+    "rulebook": {"class_field": "zoning", "id_field": "parcel_id"},
+    "classes": {
+        "residential": {"values": ["RES-1", "RES-2"], "max_slope_pct": 18.0, "tolerance_pct": 5.0},
+        "forest": {"values": ["FOR"], "development": False},
+    },
+}
+
+
+@pytest.fixture
+def app_client(tmp_path):
+    app = create_app(tmp_path / "ws", max_upload_bytes=200_000, token="t0ken")
+    with TestClient(app) as c:
+        c.headers[TOKEN_HEADER] = "t0ken"
+        yield c, app, tmp_path / "ws"
+
+
+def _project(c) -> int:
+    r = c.post("/api/projects", json={"name": "Alderwane test"})
+    assert r.status_code == 200, r.text
+    return r.json()["id"]
+
+
+def _files_under(folder: Path) -> set[str]:
+    return {str(p.relative_to(folder)) for p in folder.rglob("*") if p.is_file()}
+
+
+def test_page_carries_the_caution_and_the_token(app_client):
+    c, _, _ = app_client
+    page = c.get("/").text
+    assert CAUTION in page
+    assert 'name="landcheck-token" content="t0ken"' in page
+    assert "http://" not in page.replace("http://www.w3.org", "") and "https://" not in page  # nothing from a network
+
+
+def test_request_without_token_is_refused(app_client):
+    c, app, ws = app_client
+    for headers in ({TOKEN_HEADER: ""}, {TOKEN_HEADER: "wrong"}):
+        r = c.post("/api/projects", json={"name": "x"}, headers=headers)
+        assert r.status_code == 403 and "token" in r.json()["error"]
+    bare = TestClient(app)  # no token header at all
+    assert bare.post("/api/projects", json={"name": "x"}).status_code == 403
+    assert c.get("/api/projects").json()["projects"] == []  # nothing was created
+    assert _project(c) == 1  # the same request with the token goes through
+
+
+def test_foreign_host_header_is_refused(tmp_path):
+    app = create_app(tmp_path / "ws", allowed_hosts=["127.0.0.1", "localhost"], token="k")
+    with TestClient(app, base_url="http://127.0.0.1") as c:
+        assert c.get("/").status_code == 200
+        assert c.get("/", headers={"host": "attacker.example"}).status_code == 400
+
+
+def test_corrupt_dem_is_refused_with_the_cli_message(app_client, tmp_path):
+    c, _, ws = app_client
+    pid = _project(c)
+    junk = b"II*\x00" + b"\x00garbage" * 100  # a TIFF signature and nothing valid after it
+    r = c.post(f"/api/projects/{pid}/inputs/dem", files={"file": ("survey.tif", junk)})
+    assert r.status_code == 400
+    # the CLI's message for the same bytes, naming the file as the user named it
+    (tmp_path / "cli").mkdir()
+    cli_file = tmp_path / "cli" / "survey.tif"
+    cli_file.write_bytes(junk)
+    from landcheck.inputs.dem import open_dem
+
+    with pytest.raises(InputDataError) as exc:
+        open_dem(cli_file)
+    assert r.json()["error"] == str(exc.value).replace(str(cli_file), "survey.tif")
+    assert r.json()["error"].startswith("survey.tif: not a raster GDAL can open")
+    assert _files_under(ws / "projects" / str(pid) / "inputs") == set()  # nothing kept
+
+
+def test_rulebook_with_unknown_key_gets_the_cli_line_and_key(app_client, tmp_path):
+    c, _, _ = app_client
+    pid = _project(c)
+    text = '[rulebook]\nclass_field = "zoning"\n\n[classes.residential]\nvalues = ["R"]\nmax_slope = 18.0\n'
+    got = c.post(f"/api/projects/{pid}/rulebook/load", json={"text": text}).json()
+    assert got["ok"] is False
+    f = tmp_path / "rulebook.toml"
+    f.write_text(text)
+    from landcheck.inputs.rulebook import load_rules
+
+    with pytest.raises(RuleFileError) as exc:
+        load_rules(f)
+    assert got["message"] == str(exc.value).replace(str(f), "rulebook.toml")
+    assert got["message"].startswith("rulebook.toml, line 6, [classes.residential].max_slope: unknown key 'max_slope'")
+    # the same refusal when the form's state carries the key, and a run is not accepted with it
+    state = {"rulebook": {"class_field": "zoning"}, "classes": {"residential": {"values": ["R"], "max_slope": 18.0}}}
+    rendered = c.post(f"/api/projects/{pid}/rulebook/render", json={"state": state}).json()
+    assert rendered["ok"] is False and "unknown key 'max_slope'" in rendered["message"]
+    r = c.post(f"/api/projects/{pid}/runs", json={"rulebook": text, "options": {}})
+    assert r.status_code == 400 and "max_slope" in r.json()["error"]
+
+
+def test_rulebook_layer_outside_the_project_is_refused(app_client):
+    c, _, _ = app_client
+    pid = _project(c)
+    text = (
+        '[rulebook]\nclass_field = "zoning"\n\n[layers]\nflood = "../../../../etc/hosts"\n\n'
+        '[classes.r]\nvalues = ["R"]\nforbidden_zones = ["f"]\n\n'
+        '[zones.f]\nkind = "flood_polygons"\nlayer = "flood"\nlevel_field = "x"\nmin_level = 1\n'
+    )
+    got = c.post(f"/api/projects/{pid}/rulebook/load", json={"text": text}).json()
+    assert got["ok"] is False
+    assert got["message"].startswith("rulebook.toml, line 5, [layers].flood: 'hosts' is not a layer uploaded")
+
+
+@pytest.mark.parametrize(
+    "name",
+    [
+        "../evil.tif",
+        "..%2fevil.tif",
+        "%2e%2e%2fevil.tif",
+        "/etc/evil.tif",
+        "sub/../../evil.tif",
+        "C:\\evil.tif",
+        ".hidden.tif",
+    ],
+)
+def test_path_traversal_upload_names_are_refused(app_client, name):
+    c, _, ws = app_client
+    pid = _project(c)
+    before = _files_under(ws.parent)
+    r = c.post(f"/api/projects/{pid}/inputs/dem", files={"file": (name, b"x" * 100)})
+    assert r.status_code == 400
+    if name.startswith("C:"):  # python-multipart keeps only the last part of a Windows path (then: not a raster)
+        assert r.json()["error"].startswith("evil.tif: not a raster")
+    else:
+        assert "not a plain file name" in r.json()["error"]
+    after = _files_under(ws.parent)
+    assert {p for p in after - before if not p.endswith(("-wal", "-shm"))} == set()  # nothing written anywhere
+    assert not (ws.parent / "evil.tif").exists() and not Path("/etc/evil.tif").exists()
+
+
+def test_safe_name_keeps_plain_names():
+    assert safe_name("Alderwane DEM (2024) v2.tif") == "Alderwane DEM (2024) v2.tif"
+    with pytest.raises(UploadRefused):
+        safe_name("a\x00b.tif")
+
+
+def test_oversized_upload_is_refused_and_nothing_is_left(app_client):
+    c, _, ws = app_client
+    pid = _project(c)
+    r = c.post(f"/api/projects/{pid}/inputs/dem", files={"file": ("big.tif", b"\x00" * 300_000)})
+    assert r.status_code == 413 and "upload limit (0.2 MB)" in r.json()["error"]
+    assert _files_under(ws / "projects" / str(pid) / "inputs") == set()
+
+
+def test_download_paths_stay_inside_the_run_output(app_client):
+    c, app, ws = app_client
+    pid = _project(c)
+    w = app.state.workspace
+    # a finished run as the app records one: an output folder, and files beside it that are not output
+    rb = w.x(
+        "INSERT INTO rulebooks (project_id, version, path, text, sha256, created_utc) VALUES (?, 1, 'x', '', '', '')",
+        (pid,),
+    )
+    rid = w.x(
+        "INSERT INTO runs (project_id, rulebook_id, state, options, made_from, created_utc) "
+        "VALUES (?, ?, 'done', '{}', '{\"inputs\": []}', '')",
+        (pid, rb),
+    )
+    out = w.run_dir(pid, rid) / "output"
+    out.mkdir(parents=True)
+    (out / "parcels.csv").write_text("parcel_id,verdict\n1,conflict\n")
+    (w.run_dir(pid, rid) / "job.json").write_text('{"secret": 1}')
+    (ws.parent / "outside.txt").write_text("outside")
+    assert c.get(f"/runs/{rid}/files/parcels.csv").text.startswith("parcel_id,verdict")
+    for bad in (
+        "../job.json",
+        "..%2fjob.json",
+        "%2e%2e/job.json",
+        "%2e%2e%2f%2e%2e%2f%2e%2e%2f%2e%2e%2f%2e%2e%2foutside.txt",
+        "%2Fetc%2Fpasswd",
+        "/etc/passwd",
+        f"{ws.parent / 'outside.txt'}",
+    ):
+        r = c.get(f"/runs/{rid}/files/{bad}")
+        assert r.status_code == 404, (bad, r.status_code)
+        assert "secret" not in r.text and "outside" != r.text and "root:" not in r.text
+    z = zipfile.ZipFile(BytesIO(c.get(f"/runs/{rid}/download.zip").content))
+    assert z.namelist() == [f"landcheck-run-{rid}/parcels.csv"]
+
+
+# --------------------------------------------------------------------------- the whole job in a browser
+
+
+def _start_app(workspace: Path):
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "landcheck", "app", "--workspace", str(workspace), "--port", "0"],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        cwd=str(ROOT),
+    )
+    line = proc.stdout.readline()
+    m = re.search(r"http://127\.0\.0\.1:(\d+)/", line)
+    if not m:
+        proc.kill()
+        raise AssertionError(f"no address printed: {line!r} {proc.stderr.read()}")
+    return proc, f"http://127.0.0.1:{m.group(1)}"
+
+
+def _chrome(tmp_path):
+    chromium = require_tool("chromium")
+    chromedriver = require_tool("chromedriver")
+    from selenium import webdriver
+    from selenium.webdriver.chrome.service import Service
+
+    opts = webdriver.ChromeOptions()
+    opts.binary_location = chromium
+    for arg in (
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        "--no-first-run",
+        "--window-size=1400,1800",
+        f"--user-data-dir={tmp_path / 'profile'}",
+    ):
+        opts.add_argument(arg)
+    return webdriver.Chrome(service=Service(executable_path=chromedriver), options=opts)
+
+
+@pytest.mark.reference_tool
+def test_whole_job_in_headless_chromium(tmp_path):
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support import expected_conditions as EC
+    from selenium.webdriver.support.ui import Select, WebDriverWait
+
+    driver = _chrome(tmp_path)
+    proc, base = _start_app(tmp_path / "ws")
+    try:
+        wait = WebDriverWait(driver, 60)
+        driver.get(base + "/")
+        assert CAUTION in driver.find_element(By.ID, "caution").text
+        driver.find_element(By.ID, "new-project-name").send_keys("Alderwane hills")
+        driver.find_element(By.ID, "new-project-btn").click()
+        # inputs: the demo DEM and parcels, each checked and described at once
+        for role, f in (("dem", DEMO / "dem.tif"), ("parcels", DEMO / "parcels.gpkg")):
+            wait.until(EC.presence_of_element_located((By.ID, f"file-{role}"))).send_keys(str(f))
+            driver.find_element(By.ID, f"upload-{role}").click()
+            card = wait.until(EC.presence_of_element_located((By.ID, f"card-{role}")))
+            assert "EPSG:32651" in card.text  # Source: demo_area/README.md (EPSG:32651)
+        assert "1000 × 1000 cells" in driver.find_element(By.ID, "card-dem").text
+        assert (
+            "453 (MultiPolygon)" in driver.find_element(By.ID, "card-parcels").text
+        )  # demo_area/README.md: 453 parcels
+
+        # the rulebook, built in the form
+        Select(driver.find_element(By.ID, "class-field")).select_by_value("zoning")
+        wait.until(EC.text_to_be_present_in_element((By.ID, "class-values"), "RES-1"))
+        Select(driver.find_element(By.ID, "id-field")).select_by_value("parcel_id")
+
+        def add_class(name):
+            box = driver.find_element(By.ID, "new-class-name")
+            box.clear()
+            box.send_keys(name)
+            driver.find_element(By.ID, "add-class").click()
+            return wait.until(EC.presence_of_element_located((By.CSS_SELECTOR, f'.block[data-class="{name}"]')))
+
+        def block(name):
+            return driver.find_element(By.CSS_SELECTOR, f'.block[data-class="{name}"]')
+
+        add_class("residential")
+        for v in ("RES-1", "RES-2"):
+            block("residential").find_element(By.CSS_SELECTOR, f'input[name="value"][value="{v}"]').click()
+        block("residential").find_element(By.NAME, "max_slope_pct").send_keys("18")
+        block("residential").find_element(By.NAME, "tolerance_pct").send_keys("5")
+        add_class("forest")
+        block("forest").find_element(By.CSS_SELECTOR, 'input[name="value"][value="FOR"]').click()
+        block("forest").find_element(By.NAME, "development").click()
+        wait.until(EC.text_to_be_present_in_element((By.ID, "toml-preview"), "development = false"))
+        wait.until(EC.presence_of_element_located((By.ID, "rulebook-ok")))
+        toml = driver.find_element(By.ID, "toml-preview").text
+        assert (
+            "[classes.residential]" in toml and 'values = ["RES-1", "RES-2"]' in toml and "max_slope_pct = 18" in toml
+        )
+
+        # run, and watch the bars fill
+        wait.until(EC.element_to_be_clickable((By.ID, "start-run"))).click()
+        wait.until(EC.presence_of_element_located((By.CSS_SELECTOR, "#progress-panel .stage")))
+        WebDriverWait(driver, 150).until(EC.presence_of_element_located((By.ID, "run-done")))
+        bars = driver.find_elements(By.CSS_SELECTOR, "#final-stages .stage")
+        assert [b.get_attribute("data-stage") for b in bars] == ["inputs", "audit", "report"]
+        assert all(b.get_attribute("data-state") == "done" for b in bars)
+        assert all(
+            b.find_element(By.CSS_SELECTOR, "[role=progressbar]").get_attribute("aria-valuenow") == "100" for b in bars
+        )
+        run_url = driver.current_url
+
+        # the same job on the command line, with the rulebook version the run was made from
+        m = re.search(r"#/r/(\d+)", run_url)
+        rid = int(m.group(1))
+        import httpx
+
+        run = httpx.get(f"{base}/api/runs/{rid}").json()
+        rb_text = httpx.get(f"{base}/api/projects/{run['project_id']}/rulebooks/{run['rulebook_version']}.toml").text
+        assert rb_text == toml.rstrip("\n") + "\n" or rb_text.strip().endswith("development = false")
+        (tmp_path / "cli").mkdir()
+        (tmp_path / "cli" / "rulebook.toml").write_text(rb_text)
+        cli = subprocess.run(
+            [sys.executable, "-m", "landcheck", "-q", "audit", "--dem", str(DEMO / "dem.tif"), "--parcels",
+             str(DEMO / "parcels.gpkg"), "--rulebook", str(tmp_path / "cli" / "rulebook.toml"), "--out",
+             str(tmp_path / "cli" / "out"), "--no-report", "--json"],
+            capture_output=True, text=True, cwd=str(ROOT),
+        )  # fmt: skip
+        assert cli.returncode == 0, cli.stderr
+        cli_csv = (tmp_path / "cli" / "out" / "parcels.csv").read_bytes()
+        verdict_of = {}
+        for row in cli_csv.decode().splitlines()[1:]:
+            cells = row.split(",")
+            verdict_of[cells[0]] = row
+        conflicts = [k for k, row in verdict_of.items() if ",conflict," in row]
+        assert len(conflicts) == json.loads(cli.stdout)["totals"]["verdict_counts"]["conflict"] > 0
+
+        # click a conflicting parcel on the map and read its verdict
+        path = wait.until(
+            EC.presence_of_element_located((By.CSS_SELECTOR, f'#parcel-map path[data-id="{conflicts[0]}"]'))
+        )
+        driver.execute_script("arguments[0].scrollIntoView({block: 'center'});", path)
+        try:
+            path.click()
+        except Exception:  # a neighbour drawn on top: send the click to the shape itself
+            driver.execute_script("arguments[0].dispatchEvent(new MouseEvent('click', {bubbles: true}));", path)
+        assert wait.until(EC.presence_of_element_located((By.ID, "panel-id"))).text == conflicts[0]
+        assert driver.find_element(By.ID, "panel-verdict").text == "conflict"
+        # filters: conflict only shows as many rows as the CLI found
+        Select(driver.find_element(By.ID, "filter-verdict")).select_by_value("conflict")
+        assert len(driver.find_elements(By.CSS_SELECTOR, "#parcel-rows tr")) == len(conflicts)
+        assert CAUTION in driver.find_element(By.ID, "caution").text
+        shot = tmp_path / "app.png"
+        driver.save_screenshot(str(shot))
+        assert shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+        # download the zip the page links to; its parcels.csv is the CLI's, byte for byte
+        href = driver.find_element(By.ID, "download-zip").get_attribute("href")
+        z = zipfile.ZipFile(BytesIO(httpx.get(href, timeout=60).content))
+        assert z.read(f"landcheck-run-{rid}/parcels.csv") == cli_csv
+        assert f"landcheck-run-{rid}/report.html" in z.namelist()
+        # reopening the run shows what it was made from
+        driver.get(run_url)
+        made = wait.until(EC.presence_of_element_located((By.ID, "made-from-table"))).text
+        import hashlib
+
+        assert hashlib.sha256((DEMO / "dem.tif").read_bytes()).hexdigest() in made
+        assert hashlib.sha256((DEMO / "parcels.gpkg").read_bytes()).hexdigest() in made
+    finally:
+        driver.quit()
+        proc.terminate()
+        proc.wait(30)
