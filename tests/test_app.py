@@ -8,7 +8,9 @@ inputs and rulebook.
 from __future__ import annotations
 
 import json
+import os
 import re
+import shutil
 import subprocess
 import sys
 import zipfile
@@ -358,13 +360,15 @@ def test_whole_job_in_headless_chromium(tmp_path):
             driver.execute_script("arguments[0].dispatchEvent(new MouseEvent('click', {bubbles: true}));", path)
         assert wait.until(EC.presence_of_element_located((By.ID, "panel-id"))).text == conflicts[0]
         assert driver.find_element(By.ID, "panel-verdict").text == "conflict"
+        shot = tmp_path / "app.png"
+        driver.save_screenshot(str(shot))
+        assert shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+        if os.environ.get("LANDCHECK_APP_SCREENSHOT"):  # docs/img/app.png is made this way (docs/app.md)
+            shutil.copyfile(shot, os.environ["LANDCHECK_APP_SCREENSHOT"])
         # filters: conflict only shows as many rows as the CLI found
         Select(driver.find_element(By.ID, "filter-verdict")).select_by_value("conflict")
         assert len(driver.find_elements(By.CSS_SELECTOR, "#parcel-rows tr")) == len(conflicts)
         assert CAUTION in driver.find_element(By.ID, "caution").text
-        shot = tmp_path / "app.png"
-        driver.save_screenshot(str(shot))
-        assert shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 
         # download the zip the page links to; its parcels.csv is the CLI's, byte for byte
         href = driver.find_element(By.ID, "download-zip").get_attribute("href")

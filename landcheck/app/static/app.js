@@ -446,7 +446,7 @@
       const pre = r.outputs.find(o => o.path === "prescreen/prescreen.html");
       panelBox.replaceChildren(h("h3", {}, "Parcel ", h("span", { id: "panel-id", text: parcelId }), " ", h("span", { id: "panel-verdict", class: "badge v-" + row.verdict, text: row.verdict })),
         h("dl", { class: "facts", id: "parcel-facts" }, Object.entries(row).flatMap(([k, v]) => [h("dt", { text: k }), h("dd", { text: v === "" ? "–" : v })])),
-        pre ? h("a", { href: `/runs/${r.id}/files/prescreen/prescreen.html`, target: "_blank", rel: "noopener", text: "Open the pre-screen page" }) : null);
+        ...(pre ? [h("a", { href: `/runs/${r.id}/files/prescreen/prescreen.html`, target: "_blank", rel: "noopener", text: "Open the pre-screen page" })] : []));
       if (paths[parcelId]) svg.append(paths[parcelId]);
     } else {
       panelBox.replaceChildren(h("p", { class: "muted", text: "Click a parcel on the map or in the table to see its figures." }));
