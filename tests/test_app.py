@@ -11,8 +11,10 @@ import json
 import os
 import re
 import shutil
+import signal
 import subprocess
 import sys
+import time
 import zipfile
 from io import BytesIO
 from pathlib import Path
@@ -386,3 +388,75 @@ def test_whole_job_in_headless_chromium(tmp_path):
         driver.quit()
         proc.terminate()
         proc.wait(30)
+
+
+# --------------------------------------------------------------------------- runs: queue, cancel, stop
+
+
+def _upload_demo(post, pid):
+    for role, f in (("dem", DEMO / "dem.tif"), ("parcels", DEMO / "parcels.gpkg")):
+        with open(f, "rb") as fh:
+            r = post(f"/api/projects/{pid}/inputs/{role}", files={"file": (f.name, fh)})
+        assert r.status_code == 200, r.text
+
+
+def _wait(get, rid, states, timeout=90):
+    t0 = time.monotonic()
+    while time.monotonic() - t0 < timeout:
+        r = get(f"/api/runs/{rid}").json()
+        if r["state"] in states:
+            return r
+        time.sleep(0.2)
+    raise AssertionError(f"run {rid} did not reach {states}: {r['state']}")
+
+
+def test_one_run_at_a_time_and_cancel_keeps_nothing(app_client):
+    c, app, ws = app_client
+    pid = _project(c)
+    # the fixture limits uploads to 0.2 MB; copy the demo in through a second app on the same workspace
+    app2 = create_app(ws, token="t0ken")
+    with TestClient(app2) as up:
+        up.headers[TOKEN_HEADER] = "t0ken"
+        _upload_demo(up.post, pid)
+    text = c.post(f"/api/projects/{pid}/rulebook/render", json={"state": TWO_CLASSES}).json()["toml"]
+    first = c.post(f"/api/projects/{pid}/runs", json={"rulebook": text, "options": {"tile_cells": 256}}).json()
+    second = c.post(f"/api/projects/{pid}/runs", json={"rulebook": text, "options": {}}).json()
+    assert first["state"] == "running" and second["state"] == "queued"  # one run at a time per project
+    assert c.post(f"/api/runs/{second['id']}/cancel").json()["state"] == "cancelled"
+    _wait(c.get, first["id"], ("running",))
+    assert c.post(f"/api/runs/{first['id']}/cancel").json()["state"] == "cancelling"
+    done = _wait(c.get, first["id"], ("cancelled", "failed", "done"))
+    assert done["state"] == "cancelled" and done["outputs"] == []
+    rd = app.state.workspace.run_dir(pid, first["id"])
+    assert sorted(p.name for p in rd.iterdir()) == ["job.json", "worker.log"]  # no output, no staged folder
+    assert c.get(f"/runs/{first['id']}/files/parcels.csv").status_code == 404
+    assert c.get(f"/api/runs/{second['id']}").json()["state"] == "cancelled"  # the queued one never started
+
+
+def test_stopping_the_server_mid_run_publishes_nothing(tmp_path):
+    import httpx
+
+    proc, base = _start_app(tmp_path / "ws")
+    try:
+        page = httpx.get(base + "/").text
+        tok = re.search(r'name="landcheck-token" content="([^"]+)"', page).group(1)
+        cl = httpx.Client(base_url=base, headers={TOKEN_HEADER: tok}, timeout=60)
+        pid = cl.post("/api/projects", json={"name": "stop"}).json()["id"]
+        _upload_demo(cl.post, pid)
+        text = cl.post(f"/api/projects/{pid}/rulebook/render", json={"state": TWO_CLASSES}).json()["toml"]
+        rid = cl.post(f"/api/projects/{pid}/runs", json={"rulebook": text, "options": {"tile_cells": 256}}).json()["id"]
+        _wait(cl.get, rid, ("running",))
+        time.sleep(1.0)
+    finally:
+        proc.terminate()  # what Ctrl+C or a service manager does
+        # uvicorn shuts down gracefully (the app stops its workers), then re-raises the signal it caught
+        assert proc.wait(60) in (0, -signal.SIGTERM)
+    import sqlite3
+
+    db = sqlite3.connect(tmp_path / "ws" / "landcheck-workspace.sqlite")
+    state, msg = db.execute("SELECT state, message FROM runs WHERE id = ?", (rid,)).fetchone()
+    assert state == "interrupted" and "nothing of it was kept" in msg
+    assert db.execute("SELECT COUNT(*) FROM outputs").fetchone()[0] == 0
+    db.close()
+    rd = tmp_path / "ws" / "projects" / str(pid) / "runs" / str(rid)
+    assert sorted(p.name for p in rd.iterdir()) == ["job.json", "worker.log"]
