@@ -460,3 +460,79 @@ def test_stopping_the_server_mid_run_publishes_nothing(tmp_path):
     db.close()
     rd = tmp_path / "ws" / "projects" / str(pid) / "runs" / str(rid)
     assert sorted(p.name for p in rd.iterdir()) == ["job.json", "worker.log"]
+
+
+# --------------------------------------------------------------------------- more inputs, and a failing run
+
+
+def test_hazard_layer_and_zone_in_the_form(app_client):
+    c, _, _ = app_client
+    pid = _project(c)
+    with open(DEMO / "rivers.gpkg", "rb") as fh:
+        r = c.post(f"/api/projects/{pid}/inputs/hazard", files={"file": ("rivers.gpkg", fh)})
+    assert r.status_code == 200, r.text
+    info = r.json()["info"]
+    assert info["key"] == "rivers" and info["epsg"] == 32651  # Source: demo_area/README.md (EPSG:32651)
+    assert "width_m" in [f["name"] for f in info["fields"]] and info["features"] == 2  # README: two LineStrings
+    state = json.loads(json.dumps(TWO_CLASSES))
+    state["layers"] = c.get(f"/api/projects/{pid}").json()["layer_files"]
+    state["zones"] = {"river_strip": {"kind": "easement", "layer": "rivers", "width_m": 20.0}}
+    state["classes"]["residential"]["forbidden_zones"] = ["river_strip"]
+    got = c.post(f"/api/projects/{pid}/rulebook/render", json={"state": state}).json()
+    assert got["ok"] is True, got["message"]
+    assert '[layers]\nrivers = "rivers.gpkg"' in got["toml"] and "[zones.river_strip]" in got["toml"]
+    # and a zone that names a layer the project does not have gets the CLI's line-and-key message
+    state["zones"]["river_strip"]["layer"] = "canals"
+    bad = c.post(f"/api/projects/{pid}/rulebook/render", json={"state": state}).json()
+    assert re.match(
+        r"rulebook\.toml, line \d+, \[zones\.river_strip\]\.layer: layer 'canals' is not listed", bad["message"]
+    )
+
+
+def test_zipped_shapefile_upload_and_zip_slip(app_client, tmp_path):
+    from _support import write_parcels
+    from shapely.geometry import box
+
+    c, _, ws = app_client
+    pid = _project(c)
+    shp_dir = tmp_path / "shp"
+    shp_dir.mkdir()
+    write_parcels(shp_dir / "lots.shp", [box(0, 0, 10, 10), box(10, 0, 20, 10)], zoning=["R", "F"], pid=[1, 2])
+    good = tmp_path / "lots.zip"
+    with zipfile.ZipFile(good, "w") as z:
+        for f in shp_dir.iterdir():
+            z.write(f, f.name)
+    r = c.post(f"/api/projects/{pid}/inputs/parcels", files={"file": ("lots.zip", good.read_bytes())})
+    assert r.status_code == 200, r.text
+    assert r.json()["info"]["features"] == 2 and [f["name"] for f in r.json()["info"]["fields"]] == ["zoning", "pid"]
+    evil = tmp_path / "evil.zip"
+    with zipfile.ZipFile(evil, "w") as z:
+        for f in shp_dir.iterdir():
+            z.write(f, "../../" + f.name)
+    r = c.post(f"/api/projects/{pid}/inputs/parcels", files={"file": ("evil.zip", evil.read_bytes())})
+    # member names are cut to their last part: the Shapefile lands inside the project, nowhere else
+    assert r.status_code == 200, r.text
+    stored = [i["path"] for i in c.get(f"/api/projects/{pid}").json()["inputs"]]
+    assert stored == [f"projects/{pid}/inputs/evil/lots.shp"]
+    assert not (ws.parent / "lots.shp").exists() and not (ws.parent.parent / "lots.shp").exists()  # nothing escaped
+
+
+def test_failed_run_shows_its_message_and_keeps_nothing(app_client, tmp_path):
+    from _support import ramp_dem, write_parcels
+    from shapely.geometry import box
+
+    c, app, _ = app_client
+    pid = _project(c)
+    dem = ramp_dem(tmp_path / "ramp.tif", n=40)  # 400 m square at easting 400000
+    far = write_parcels(tmp_path / "far.gpkg", [box(500000, 1500000, 500100, 1500100)], zoning=["R"], pid=[1])
+    for role, f in (("dem", dem), ("parcels", far)):
+        r = c.post(f"/api/projects/{pid}/inputs/{role}", files={"file": (f.name, f.read_bytes())})
+        assert r.status_code == 200, r.text
+    state = {"rulebook": {"class_field": "zoning"}, "classes": {"r": {"values": ["R"], "max_slope_pct": 18.0}}}
+    text = c.post(f"/api/projects/{pid}/rulebook/render", json={"state": state}).json()["toml"]
+    rid = c.post(f"/api/projects/{pid}/runs", json={"rulebook": text, "options": {}}).json()["id"]
+    run = _wait(c.get, rid, ("done", "failed", "cancelled"))
+    assert run["state"] == "failed"
+    assert run["message"].startswith(f"projects/{pid}/inputs/far.gpkg (layer parcels): no parcel overlaps the DEM")
+    rd = app.state.workspace.run_dir(pid, rid)
+    assert sorted(p.name for p in rd.iterdir()) == ["job.json", "worker.log"]

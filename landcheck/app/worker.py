@@ -140,7 +140,7 @@ def main(argv: list[str] | None = None) -> int:
 
 def _plain(msg: str, job: dict) -> str:
     """Messages name files as the user knows them (workspace-relative), not by absolute paths."""
-    return msg.replace(job["workspace"].rstrip("/") + "/", "")
+    return msg.replace(job["workspace"].rstrip("/") + "/", "").replace("/work/output", "/output")
 
 
 def _run(job: dict, events: _Events) -> int:
