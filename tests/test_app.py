@@ -268,7 +268,7 @@ def test_whole_job_in_headless_chromium(tmp_path):
     driver = _chrome(tmp_path)
     proc, base = _start_app(tmp_path / "ws")
     try:
-        wait = WebDriverWait(driver, 60)
+        wait = WebDriverWait(driver, 120)
         driver.get(base + "/")
         assert CAUTION in driver.find_element(By.ID, "caution").text
         driver.find_element(By.ID, "new-project-name").send_keys("Alderwane hills")
@@ -317,7 +317,7 @@ def test_whole_job_in_headless_chromium(tmp_path):
         # run, and watch the bars fill
         wait.until(EC.element_to_be_clickable((By.ID, "start-run"))).click()
         wait.until(EC.presence_of_element_located((By.CSS_SELECTOR, "#progress-panel .stage")))
-        WebDriverWait(driver, 150).until(EC.presence_of_element_located((By.ID, "run-done")))
+        WebDriverWait(driver, 240).until(EC.presence_of_element_located((By.ID, "run-done")))
         bars = driver.find_elements(By.CSS_SELECTOR, "#final-stages .stage")
         assert [b.get_attribute("data-stage") for b in bars] == ["inputs", "audit", "report"]
         assert all(b.get_attribute("data-state") == "done" for b in bars)
@@ -377,6 +377,11 @@ def test_whole_job_in_headless_chromium(tmp_path):
         z = zipfile.ZipFile(BytesIO(httpx.get(href, timeout=60).content))
         assert z.read(f"landcheck-run-{rid}/parcels.csv") == cli_csv
         assert f"landcheck-run-{rid}/report.html" in z.namelist()
+        # the run's own report shows in the frame (sandboxed: its scripts run, the app's API is out of reach)
+        driver.switch_to.frame(driver.find_element(By.ID, "report-frame"))
+        assert driver.execute_script("return document.title").startswith("landcheck screening report")
+        assert CAUTION in driver.execute_script("return document.body.innerText")
+        driver.switch_to.default_content()
         # reopening the run shows what it was made from
         driver.get(run_url)
         made = wait.until(EC.presence_of_element_located((By.ID, "made-from-table"))).text
@@ -536,3 +541,14 @@ def test_failed_run_shows_its_message_and_keeps_nothing(app_client, tmp_path):
     assert run["message"].startswith(f"projects/{pid}/inputs/far.gpkg (layer parcels): no parcel overlaps the DEM")
     rd = app.state.workspace.run_dir(pid, rid)
     assert sorted(p.name for p in rd.iterdir()) == ["job.json", "worker.log"]
+
+
+def test_cli_refuses_a_public_address_without_the_flag():
+    from click.testing import CliRunner
+
+    from landcheck.cli.main import cli
+
+    res = CliRunner().invoke(cli, ["app", "--host", "0.0.0.0", "--port", "0"])
+    assert res.exit_code == 2 and "--allow-remote" in res.output
+    helptext = CliRunner().invoke(cli, ["app", "--help"]).output
+    assert "127.0.0.1" in helptext and "CAUTION: a screening aid" in helptext
