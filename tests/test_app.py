@@ -552,3 +552,76 @@ def test_cli_refuses_a_public_address_without_the_flag():
     assert res.exit_code == 2 and "--allow-remote" in res.output
     helptext = CliRunner().invoke(cli, ["app", "--help"]).output
     assert "127.0.0.1" in helptext and "CAUTION: a screening aid" in helptext
+
+
+def test_run_with_every_option(app_client, tmp_path):
+    from _support import ramp_dem, write_parcels
+    from shapely.geometry import box
+
+    c, app, _ = app_client
+    pid = _project(c)
+    # slope = 100 * g * x percent at x metres east of the west edge (tests/_support.ramp_dem; Source:
+    # docs/references.md, Terrain: Horn's 3x3 kernel is exact on a quadratic surface): 0 to 40 % over 400 m
+    dem = ramp_dem(tmp_path / "ramp.tif", n=40, gradient_per_m=0.001)
+    x0, y0 = 400000.0, 1600000.0
+    lots = write_parcels(
+        tmp_path / "lots.gpkg",
+        [box(x0 + 20, y0 - 380, x0 + 150, y0 - 20), box(x0 + 250, y0 - 380, x0 + 380, y0 - 20)],
+        zoning=["F", "R"],
+        pid=[1, 2],
+    )
+    for role, f in (("dem", dem), ("parcels", lots)):
+        assert c.post(f"/api/projects/{pid}/inputs/{role}", files={"file": (f.name, f.read_bytes())}).status_code == 200
+    state = {
+        "rulebook": {"class_field": "zoning", "id_field": "pid"},
+        "classes": {
+            "r": {"values": ["R"], "max_slope_pct": 18.0, "designated_class": "f"},
+            "f": {"values": ["F"], "development": False},
+        },
+    }
+    text = c.post(f"/api/projects/{pid}/rulebook/render", json={"state": state}).json()["toml"]
+    opts = {
+        "confidence": "custom",
+        "rmse_m": 0.5,
+        "corr_length_m": 0,
+        "realizations": 10,
+        "seed": 3,
+        "capability_scheme": "planning-6",
+        "draft_mmu_m2": 0,
+        "prescreen_parcel": "2",
+    }
+    rid = c.post(f"/api/projects/{pid}/runs", json={"rulebook": text, "options": opts}).json()["id"]
+    run = _wait(c.get, rid, ("done", "failed", "cancelled"), timeout=240)
+    assert run["state"] == "done", run["message"]
+    assert [s["key"] for s in run["live"]["stages"]] == [
+        "inputs",
+        "audit",
+        "confidence",
+        "capability",
+        "reclassification",
+        "report",
+        "prescreen",
+    ]
+    files = {o["path"] for o in run["outputs"]}
+    for f in ("confidence.csv", "capability.tif", "reclassification_moves.csv", "prescreen/prescreen.html"):
+        assert f in files
+    rows = {r["parcel_id"]: r for r in c.get(f"/api/runs/{rid}/parcels").json()["rows"]}
+    # parcel 2 spans x = 250..380 m: slope 25..38 % everywhere, over the 18 % limit
+    assert rows["2"]["verdict"] == "conflict" and rows["1"]["verdict"] == "consistent"
+    assert run["made_from"]["options"]["capability_scheme"] == "planning-6"
+
+
+def test_run_options_are_checked():
+    from landcheck.app.server import _run_options
+
+    assert _run_options({})["confidence"] == "off"
+    assert _run_options({"capability_scheme": "8,18,30"})["capability_scheme"] == [8.0, 18.0, 30.0]
+    for bad, words in (
+        ({"confidence": "maybe"}, "confidence"),
+        ({"confidence": "custom", "rmse_m": -1}, "rmse_m"),
+        ({"capability_scheme": "steep"}, "capability map"),
+        ({"draft_mmu_m2": -5}, "minimum mapping unit"),
+        ({"tile_cells": 4}, "tile size"),
+    ):
+        with pytest.raises(ValueError, match=words):
+            _run_options(bad)
