@@ -389,6 +389,20 @@ def test_whole_job_in_headless_chromium(tmp_path):
 
         assert hashlib.sha256((DEMO / "dem.tif").read_bytes()).hexdigest() in made
         assert hashlib.sha256((DEMO / "parcels.gpkg").read_bytes()).hexdigest() in made
+        # loading a rulebook with an unknown key into the form: the CLI's line-and-key message, line marked
+        bad = tmp_path / "bad.toml"
+        bad.write_text(
+            '[rulebook]\nclass_field = "zoning"\n\n[classes.residential]\nvalues = ["RES-1"]\nslope_limit = 18\n'
+        )
+        from landcheck.inputs.rulebook import load_rules
+
+        with pytest.raises(RuleFileError) as exc:
+            load_rules(bad)
+        driver.get(f"{base}/#/p/{run['project_id']}")
+        wait.until(EC.presence_of_element_located((By.ID, "toml-load"))).send_keys(str(bad))
+        shown = wait.until(EC.presence_of_element_located((By.ID, "rulebook-error"))).text
+        assert shown == str(exc.value).replace(str(bad), "rulebook.toml")
+        assert driver.find_element(By.CSS_SELECTOR, "#toml-preview span.hit").text == "slope_limit = 18"
     finally:
         driver.quit()
         proc.terminate()

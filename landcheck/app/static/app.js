@@ -7,6 +7,7 @@
   const VERDICTS = ["consistent", "conflict", "review", "no_data", "no_rule"];
   const KINDS = ["easement", "flood_polygons", "hand", "sea_rise"];
   let timer = null;
+  let routeGen = 0; // a page drawn for an older address never overwrites the current one
 
   // ------------------------------------------------------------------ small helpers
   function h(tag, attrs, ...kids) {
@@ -40,6 +41,7 @@
   // ------------------------------------------------------------------ router
   async function route() {
     stopTimer();
+    routeGen++;
     const m = location.hash.match(/^#\/(p|r)\/(\d+)(?:\/parcel\/(.+))?$/);
     try {
       if (!m) await projectsPage();
@@ -51,8 +53,10 @@
 
   // ------------------------------------------------------------------ projects
   async function projectsPage() {
+    const my = routeGen;
     setCrumbs(h("span", { text: "Projects" }));
     const data = await api("GET", "/api/projects");
+    if (my !== routeGen) return;
     const name = h("input", { type: "text", id: "new-project-name", placeholder: "e.g. Alderwane hillsides", size: 34 });
     const out = h("div");
     const create = async () => {
@@ -77,7 +81,10 @@
   let lastToml = "";
 
   async function projectPage(pid) {
-    P = await api("GET", "/api/projects/" + pid);
+    const my = routeGen;
+    const got = await api("GET", "/api/projects/" + pid);
+    if (my !== routeGen) return;
+    P = got;
     setCrumbs(h("a", { href: "#/", text: "Projects" }), h("span", { text: P.project.name }));
     if (!RB || RB._pid !== pid) {
       RB = { _pid: pid, rulebook: { title: P.project.name }, slope: { method: "horn" }, classes: {}, zones: {} };
@@ -85,6 +92,7 @@
         try { const l = await api("POST", `/api/projects/${pid}/rulebook/load`, { text: P.latest_rulebook }); if (l.state) RB = Object.assign({ _pid: pid }, l.state); } catch (e) { /* keep empty */ }
       }
     }
+    if (my !== routeGen) return;
     const inputsPanel = h("section", { class: "panel", id: "inputs-panel" }, h("h2", {}, h("span", { class: "n", text: "1" }), "Inputs"));
     const rbPanel = h("section", { class: "panel", id: "rulebook-panel" }, h("h2", {}, h("span", { class: "n", text: "2" }), "Rulebook"));
     const tomlPanel = h("section", { class: "panel", id: "toml-panel" }, h("h2", { text: "Rulebook file (TOML)" }));
@@ -333,8 +341,10 @@
 
   // ------------------------------------------------------------------ one run
   async function runPage(rid, parcelId) {
+    const my = routeGen;
     const r = await api("GET", "/api/runs/" + rid);
     const proj = await api("GET", "/api/projects/" + r.project_id);
+    if (my !== routeGen) return;
     setCrumbs(h("a", { href: "#/", text: "Projects" }), h("a", { href: "#/p/" + r.project_id, text: proj.project.name }), h("span", { text: "Run #" + rid }));
     const prog = h("section", { class: "panel", id: "progress-panel" });
     const made = h("section", { class: "panel", id: "made-from" });
@@ -343,7 +353,7 @@
     if (r.state === "queued" || r.state === "running") return pollRun(rid, prog);
     drawFinished(prog, r);
     if (r.live && r.live.stages.length) { const bars = h("div", { id: "final-stages" }); drawStages(bars, r); bars.querySelector("#cancel-run").remove(); bars.querySelector("h2").remove(); prog.append(bars); }
-    if (r.state === "done") await drawResults(r, parcelId);
+    if (r.state === "done") await drawResults(r, parcelId, my);
   }
 
   function drawMadeFrom(panel, r) {
@@ -370,9 +380,11 @@
   }
 
   function pollRun(rid, panel) {
+    const my = routeGen;
     const tick = async () => {
       let r;
       try { r = await api("GET", "/api/runs/" + rid); } catch (e) { timer = setTimeout(tick, 1500); return; }
+      if (my !== routeGen) return;
       if (r.state === "queued" || r.state === "running") { drawStages(panel, r); document.getElementById("run-state").textContent = r.state; timer = setTimeout(tick, 600); }
       else route();
     };
@@ -394,8 +406,9 @@
     }
   }
 
-  async function drawResults(r, parcelId) {
+  async function drawResults(r, parcelId, my) {
     const [tab, map] = await Promise.all([api("GET", `/api/runs/${r.id}/parcels`), api("GET", `/api/runs/${r.id}/map`)]);
+    if (my !== routeGen) return;
     const byId = Object.fromEntries(tab.rows.map(row => [row.parcel_id, row]));
     const classes = [...new Set(tab.rows.map(x => x.class_name))].sort();
     const fv = h("select", { id: "filter-verdict" }, h("option", { value: "", text: "all verdicts" }), VERDICTS.map(v => h("option", { value: v, text: v })));
