@@ -12,7 +12,7 @@ import click
 from landcheck.about import CAUTION, __version__
 from landcheck.versions import show_versions
 
-from . import audit_cmd, demo_cmd, prescreen_cmd, report_cmd, slope_cmd, verify_cmd
+from . import app_cmd, audit_cmd, demo_cmd, prescreen_cmd, report_cmd, slope_cmd, verify_cmd
 from .errors import handle_errors
 from .options import CAUTION_HELP
 
@@ -77,5 +77,6 @@ cli.add_command(demo_cmd.command)
 cli.add_command(report_cmd.command)
 cli.add_command(prescreen_cmd.command)
 cli.add_command(verify_cmd.command)
+cli.add_command(app_cmd.command)
 
 __all__ = ["cli", "CAUTION", "handle_errors"]
