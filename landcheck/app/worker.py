@@ -181,7 +181,7 @@ def _run(job: dict, events: _Events) -> int:
             parcels_crs=job.get("parcels_crs"),
             dem_band=job.get("dem_band"),
             dem_crs=job.get("dem_crs"),
-            z_unit=job.get("z_unit") or "m",
+            z_unit=job.get("z_unit"),  # None: the unit the DEM declares
             tile_cells=int(o.get("tile_cells") or 1024),
             workers=o.get("workers"),
             show_progress=True,
@@ -205,7 +205,7 @@ def _run(job: dict, events: _Events) -> int:
                 parcels_crs=job.get("parcels_crs"),
                 dem_band=job.get("dem_band"),
                 dem_crs=job.get("dem_crs"),
-                z_unit=job.get("z_unit") or "m",
+                z_unit=job.get("z_unit"),  # None: the unit the DEM declares
                 on_step=lambda m: events.emit(ev="step", msg=_plain(m, job), stage="prescreen"),
             )
             os.replace(work / "prescreen", out / "prescreen")
