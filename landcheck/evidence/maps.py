@@ -494,6 +494,23 @@ class AuditFolder:
                     raise InputDataError(f"{p}: cannot be read ({exc}); rerun `landcheck audit`.") from exc
         return out
 
+    @cached_property
+    def zone_labels(self) -> dict[str, str]:
+        """Reader's name per zone layer file stem (``zones/<stem>.gpkg``) and per zone key."""
+        out: dict[str, str] = {"derived_streams": "streams derived from the DEM"}
+        for col in self.section("zone_columns", default=[]) or []:
+            if isinstance(col, dict) and col.get("name"):
+                label = str(col.get("label") or col["name"]).replace("_", " ")
+                out[str(col["name"])] = label
+                out["zone_" + str(col["name"])] = label
+        return out
+
+    def zone_label(self, stem: str) -> str:
+        """Reader's name of a zone layer: its rulebook label, else the key in plain words."""
+        if stem in self.zone_labels:
+            return self.zone_labels[stem]
+        return (stem[5:] if stem.startswith("zone_") else stem).replace("_", " ")
+
     @property
     def run_started(self) -> datetime | None:
         text = self.section("manifest", "started_utc")
@@ -960,6 +977,11 @@ class _MapData:
     relief_note: str
 
 
+def load_map_data(folder: AuditFolder, bounds=None, max_px: int = 1600) -> _MapData:
+    """Slope, conflict bits and relief of ``bounds`` (default the whole raster), reduced to ``max_px``."""
+    return _load_map_data(folder, bounds, max_px)
+
+
 def _load_map_data(folder: AuditFolder, bounds, max_px: int) -> _MapData:
     slope = _read_reduced(folder.require("slope_pct.tif"), bounds, max_px, "mean")
     if slope is None:
@@ -1022,25 +1044,25 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
             continue
         colour, hatch = _ZONE_STYLE[i % len(_ZONE_STYLE)]
         kinds = set(gdf.geom_type.str.replace("Multi", ""))
-        pretty = name.replace("_", " ")
+        pretty = folder.zone_label(name)
         poly = gdf[gdf.geom_type.isin(["Polygon", "MultiPolygon"])]
         if not poly.empty:
             _add_polygons(
                 ax, poly.geometry, facecolors="none", edgecolors=colour, hatch=hatch, linewidths=1.0, zorder=3
             )
             zh.append(Patch(facecolor="none", edgecolor=colour, hatch=hatch, lw=1.0))
-            zl.append(f"hazard zone: {pretty}")
+            zl.append(pretty)
             entries.append(LegendEntry("zone", name, zl[-1]))
         lines = gdf[gdf.geom_type.isin(["LineString", "MultiLineString"])]
         if not lines.empty:
             _add_lines(ax, lines.geometry, colors=_WATER_COLOUR, linewidths=1.8, zorder=3)
             zh.append(Line2D([0], [0], color=_WATER_COLOUR, lw=1.8))
-            zl.append(f"water feature: {pretty}")
+            zl.append(f"water: {pretty}")
             entries.append(LegendEntry("zone", name, zl[-1]))
         if "Point" in kinds:
             pts = [g for g in _simple_parts(gdf.geometry) if g.geom_type == "Point"]
             ax.plot([g.x for g in pts], [g.y for g in pts], "o", color=colour, ms=3, zorder=3)
-    groups.append(("Zones and water", zh, zl))
+    groups.append(("Hazard zones and water", zh, zl))
 
     # conflict cells, hatched
     ch, cl = [], []
@@ -1146,6 +1168,7 @@ def overview_map(
     max_px: int = 1600,
     formats: Sequence[str] = ("png", "svg"),
     title: str | None = None,
+    map_data: _MapData | None = None,
 ) -> FigureFiles:
     """Draw the whole audit area: slope classes over relief, parcels by verdict, conflict cells, zones.
 
@@ -1166,6 +1189,9 @@ def overview_map(
         integer factor (slope: block mean; conflict: any conflict in the block).
     formats : sequence of {"png", "svg"}
     title : str, optional
+    map_data : _MapData, optional
+        Rasters already read by :func:`load_map_data` (the report reads them once for
+        this map and the interactive map).
 
     Returns
     -------
@@ -1174,7 +1200,7 @@ def overview_map(
     """
     folder = load_audit_folder(out_dir)
     breaks = _check_breaks(slope_breaks_pct)
-    data = _load_map_data(folder, None, max_px)
+    data = map_data if map_data is not None else _load_map_data(folder, None, max_px)
     fig = _new_figure(figsize_in, dpi)
     view = _grid_bounds(data.slope)
     ax, groups, entries = _draw_map(fig, [0.085, 0.115, 0.62, 0.79], data, breaks, view)

@@ -23,6 +23,8 @@ from collections.abc import Iterable, Sequence
 from datetime import datetime, timezone
 from pathlib import Path
 
+import numpy as np
+
 from landcheck.about import CAUTION, __version__
 from landcheck.evidence.maps import (
     DEFAULT_SLOPE_BREAKS_PCT,
@@ -31,11 +33,13 @@ from landcheck.evidence.maps import (
     FigureItem,
     class_share_chart,
     load_audit_folder,
+    load_map_data,
     overview_map,
     parcel_closeup_maps,
     sensitivity_chart,
     slope_distribution_chart,
 )
+from landcheck.evidence.webmap import WEBMAP_CSS, webmap_section
 from landcheck.outputs.writers import write_bytes
 
 __all__ = ["build_report", "sha256_file"]
@@ -172,8 +176,13 @@ def _table(
     rows: Iterable[dict],
     caption: str,
     numeric_text_cols: set[str] = frozenset(),
+    row_key: str | None = None,
 ) -> str:
-    """A sortable table: every header is a button; cells carry data-value sort keys."""
+    """A sortable table: every header is a button; cells carry data-value sort keys.
+
+    With ``row_key``, every row carries ``data-pid`` (that column's text) and is focusable,
+    so the interactive map can find it and a click on it can find the map feature.
+    """
     out = [
         f'<div class="table-wrap"><table id="{_e(table_id)}" class="sortable">',
         f"<caption>{caption}</caption><thead><tr>",
@@ -187,7 +196,10 @@ def _table(
         )
     out.append("</tr></thead><tbody>")
     for i, row in enumerate(rows):
-        out.append(f'<tr data-row="{i}">')
+        if row_key is not None:
+            out.append(f'<tr data-row="{i}" data-pid="{_e(row.get(row_key, ""))}" tabindex="0">')
+        else:
+            out.append(f'<tr data-row="{i}">')
         for key, _, kind in columns:
             v = row.get(key)
             if key in numeric_text_cols:
@@ -292,6 +304,17 @@ def _capability_section(folder: AuditFolder) -> str:
         )
     parts.append("</section>")
     return "".join(parts)
+
+
+def _class_labels(folder: AuditFolder) -> dict[str, str]:
+    """Rulebook label per class key (classes.csv), the key in plain words when there is none."""
+    df = folder.classes
+    out = {}
+    for rec in df.to_dict("records"):
+        name = str(rec["class_name"])
+        label = str(rec.get("label") or "").strip()
+        out[name] = label if label and label.lower() != "nan" else name.replace("_", " ")
+    return out
 
 
 def _classes_section(folder: AuditFolder) -> str:
@@ -447,6 +470,7 @@ def _parcels_section(folder: AuditFolder, max_rows: int) -> tuple[str, list[str]
         records,
         f"{len(records):,d} parcels (parcels.csv); click a header to sort, click again to reverse.",
         numeric_text_cols={"parcel_id"} if numeric_ids else set(),
+        row_key="parcel_id",
     )
     return f'<section id="parcels"><h2>Per parcel</h2>{html_table}</section>', notes
 
@@ -745,7 +769,10 @@ def build_report(
     # validate the tables before drawing anything
     _ = folder.parcels, folder.classes
     kw = dict(dest_dir=figures_dir, dpi=dpi, formats=formats)
-    overview = overview_map(folder, slope_breaks_pct=slope_breaks_pct, **kw)
+    map_data = load_map_data(folder)
+    overview = overview_map(folder, slope_breaks_pct=slope_breaks_pct, map_data=map_data, **kw)
+    breaks = np.asarray([float(b) for b in slope_breaks_pct])
+    webmap_html = webmap_section(folder, map_data, breaks, _class_labels(folder))
     # close-ups are many: PNG by default (SVG on request) to keep the audit quick
     closeups = parcel_closeup_maps(
         folder,
@@ -777,7 +804,7 @@ def build_report(
 
     title = "landcheck screening report"
     parts = [
-        html_head(f"{title} - audit run {folder.run_date_text}", _CSS, _CSP),
+        html_head(f"{title} - audit run {folder.run_date_text}", _CSS + WEBMAP_CSS, _CSP),
         f"<header><h1>{_e(title)}</h1>",
         f'<p class="sub">Audit run {_e(folder.run_date_text)} \u00b7 output folder '
         f"<code>{_e(_final_name(folder.out_dir))}</code></p>",
@@ -797,7 +824,9 @@ def build_report(
     for ff in charts:
         for it in ff.items:
             parts.append(_figure_html(it, it.caption))
-    parts.append('</section><section id="maps"><h2>Maps</h2>')
+    parts.append('</section><section id="maps"><h2>Maps</h2><h3 id="interactive-map">Interactive map</h3>')
+    parts.append(webmap_html)
+    parts.append("<h3>Overview map</h3>")
     for it in overview.items:
         parts.append(_figure_html(it, "Overview map: " + it.caption))
     if closeups.items:
