@@ -12,6 +12,7 @@ import math
 __all__ = [
     "VERDICT_TEXT",
     "CONFIDENCE_TEXT",
+    "CONFIDENCE_SHORT",
     "yes_no",
     "count_text",
     "area_ha_text",
@@ -32,6 +33,15 @@ CONFIDENCE_TEXT = {
     "uncertain": "uncertain (depends on DEM error)",
     "robust_clear": "clear in at least 95 % of DEM-error runs",
     "not_evaluated": "not assessed (no data or no rule)",
+    "": "",
+}
+
+#: shorter confidence words for table cells
+CONFIDENCE_SHORT = {
+    "robust_conflict": "conflict in \u2265 95 % of runs",
+    "uncertain": "uncertain",
+    "robust_clear": "clear in \u2265 95 % of runs",
+    "not_evaluated": "not assessed",
     "": "",
 }
 

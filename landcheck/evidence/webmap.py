@@ -82,13 +82,13 @@ _JS_ESCAPES = {"<": "\\u003c", ">": "\\u003e", "&": "\\u0026"}
 def leaflet_assets() -> tuple[str, str, str]:
     """(css, js, licence) of the vendored Leaflet, ready to inline.
 
-    The source-map comment and CSS ``url(images/...)`` rules are dropped so the page
+    The source-map comment and every CSS ``url(...)`` is blanked so the page
     never asks for another file (the report uses no marker images).
     """
     css = (_VENDOR_DIR / "leaflet.css").read_text(encoding="utf-8")
     js = (_VENDOR_DIR / "leaflet.js").read_text(encoding="utf-8")
     lic = (_VENDOR_DIR / "LICENSE").read_text(encoding="utf-8")
-    css = re.sub(r"url\(images/[^)]*\)", "none", css)
+    css = re.sub(r"url\([^)]*\)", "none", css)
     js = re.sub(r"//# sourceMappingURL=\S+\s*$", "", js)
     return css, js, lic
 
