@@ -101,9 +101,9 @@ def test_no_network_resource_referenced(built):
     assert "connect-src" not in csp[0]  # so fetch/XHR fall back to 'none'
     # the vendored map library is the npm file byte for byte (minus its source-map comment);
     # it holds URLs only as text (its home page, the SVG namespace) and the CSP above blocks any fetch
-    vendored = (
-        Path(landcheck.__file__).parent / "evidence" / "vendor" / "leaflet-1.9.4" / "leaflet.js"
-    ).read_text(encoding="utf-8")
+    vendored = (Path(landcheck.__file__).parent / "evidence" / "vendor" / "leaflet-1.9.4" / "leaflet.js").read_text(
+        encoding="utf-8"
+    )
     vendored = vendored.rsplit("//# sourceMappingURL=", 1)[0]
     leaflet = [sc for sc in c.scripts if sc.startswith("/*! Leaflet 1.9.4")]
     assert len(leaflet) == 1 and leaflet[0].endswith(vendored)

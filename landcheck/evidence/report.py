@@ -370,7 +370,7 @@ def _classes_section(folder: AuditFolder) -> str:
         rows.append(rec)
     cols = [c for c in _CLASS_COLUMNS if c[0] in df.columns or c[0] == "limit_pct"]
     return (
-        '<section id="classes"><h2>Per class</h2>'
+        '<section id="classes" class="wide-table"><h2>Per class</h2>'
         + _table("class-table", cols, rows, "One row per rulebook class (classes.csv); click a header to sort.")
         + "</section>"
     )

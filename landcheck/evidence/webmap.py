@@ -334,6 +334,10 @@ tr.picked td{background:#ffe9a8 !important}
 _WEBMAP_JS = r"""
 (function () {
   'use strict';
+  if (document.readyState === 'loading') {
+    document.addEventListener('DOMContentLoaded', start);
+  } else { start(); }
+  function start() {
   var el = document.getElementById('webmap');
   var src = document.getElementById('webmap-data');
   if (!el || !src || !window.L) { return; }
@@ -480,6 +484,7 @@ _WEBMAP_JS = r"""
     });
   }
   window.landcheckMapReady = true;
+  }
 })();
 """
 
