@@ -103,6 +103,12 @@ _NODATA_GREY = np.array([0.86, 0.86, 0.86])
 _PNG_METADATA = {"Software": None}
 #: permission bits of written figures (mkstemp creates 0600; common practice for shared outputs is 0644)
 _WATER_COLOUR = "#1f5fa0"
+#: above this many parcels in view, outlines are burnt into one image at the map's pixel size
+#: (a 100 000-parcel SVG of paths would be ~50 MB and take tens of seconds to draw)
+_MANY_PARCELS = 3000
+#: above this many conflict display cells, conflict cells are tinted, not hatched polygons
+_MANY_CONFLICT_CELLS = 40_000
+_CONFLICT_TINT = {1: (0.09, 0.09, 0.09, 0.5), 2: (0.42, 0.0, 0.36, 0.5), 3: (0.0, 0.0, 0.0, 0.78)}
 _LEGEND_WRAP_CHARS = 34
 _SVG_METADATA = {"Date": None}
 _RC = {"svg.hashsalt": "landcheck", "font.size": 9.0, "hatch.linewidth": 0.8, "axes.titlesize": 10.0}
@@ -729,17 +735,22 @@ def _composite(slope_pct: np.ndarray, shade: np.ndarray, breaks: np.ndarray, col
     return np.dstack([rgb, alpha.astype(np.float64)])
 
 
-def _conflict_shapes(bits: _Grid, n_zone_bits: int) -> list[tuple[object, int]]:
-    """Polygons of display cells by conflict kind (1 slope, 2 zone, 3 both)."""
-    import rasterio.features
-    from shapely.geometry import shape
-
+def _conflict_kinds(bits: _Grid, n_zone_bits: int) -> np.ndarray:
+    """Conflict kind per display cell: 0 none, 1 slope, 2 zone, 3 both."""
     b = bits.data
     inside = b != 255
     slope_hit = inside & ((b & 1) > 0)
     zone_mask = (((1 << (1 + n_zone_bits)) - 1) & ~1) if n_zone_bits else 0
     zone_hit = inside & ((b & zone_mask) > 0)
-    kind = (slope_hit.astype(np.uint8) + 2 * zone_hit.astype(np.uint8)).astype(np.uint8)
+    return (slope_hit.astype(np.uint8) + 2 * zone_hit.astype(np.uint8)).astype(np.uint8)
+
+
+def _conflict_shapes(bits: _Grid, n_zone_bits: int) -> list[tuple[object, int]]:
+    """Polygons of display cells by conflict kind (1 slope, 2 zone, 3 both)."""
+    import rasterio.features
+    from shapely.geometry import shape
+
+    kind = _conflict_kinds(bits, n_zone_bits)
     if not kind.any():
         return []
     return [(shape(g), int(v)) for g, v in rasterio.features.shapes(kind, mask=kind > 0, transform=bits.transform)]
@@ -782,8 +793,26 @@ def _polygon_paths(geoms) -> list:
 
 def _line_segments(geoms) -> list[np.ndarray]:
     """Vertex arrays of line parts and of polygon rings (for outlines)."""
+    import shapely
+
+    arr = np.asarray([g for g in geoms if g is not None], dtype=object)
+    if arr.size == 0:
+        return []
+    arr = arr[~shapely.is_empty(arr)]
+    kind = shapely.get_type_id(arr)
+    # polygons -> their rings, lines as they are: vectorized in GEOS (1 LineString, 2 LinearRing,
+    # 3 Polygon, 5 MultiLineString, 6 MultiPolygon); collections go the slow way below
+    lines = np.concatenate(
+        [
+            shapely.get_parts(shapely.boundary(arr[np.isin(kind, (3, 6))])),
+            shapely.get_parts(arr[np.isin(kind, (1, 2, 5))]),
+        ]
+    )
     segs = []
-    for g in _simple_parts(geoms):
+    if lines.size:
+        xy, idx = shapely.get_coordinates(lines, return_index=True)
+        segs = np.split(xy, np.flatnonzero(np.diff(idx)) + 1)
+    for g in _simple_parts(arr[kind == 7]):
         if g.geom_type == "Polygon":
             segs += [np.asarray(r.coords, dtype=np.float64)[:, :2] for r in (g.exterior, *g.interiors)]
         elif g.geom_type in ("LineString", "LinearRing"):
@@ -846,10 +875,15 @@ def _legend_column(fig, lax, groups) -> None:
     """Stack one titled legend per group, top to bottom, in the axes ``lax``."""
     renderer = fig.canvas.get_renderer()
     y = 1.0
+    # wrap to the legend column's width: 7.5 pt text averages about 0.55 em a character,
+    # less the handle (2.6 em) and padding
+    width_pt = lax.get_position().width * fig.get_figwidth() * 72.0
+    wrap = max(12, min(_LEGEND_WRAP_CHARS, int(width_pt / (7.5 * 0.55)) - 8))
     for title, handles, labels in groups:
         if not handles:
             continue
-        labels = [textwrap.fill(lab, _LEGEND_WRAP_CHARS, subsequent_indent="  ") for lab in labels]
+        labels = [textwrap.fill(lab, wrap, subsequent_indent="  ") for lab in labels]
+        title = textwrap.fill(title, wrap + 4)
         leg = lax.legend(
             handles,
             labels,
@@ -938,7 +972,7 @@ def _crs_note(crs) -> str:
 
 
 def _format_axes(ax, crs, extent) -> None:
-    from matplotlib.ticker import FuncFormatter, MaxNLocator
+    from matplotlib.ticker import FixedLocator, FuncFormatter, MaxNLocator
 
     crs = _crs(crs)
     x0, x1 = sorted(extent[:2])
@@ -957,10 +991,24 @@ def _format_axes(ax, crs, extent) -> None:
         unit = crs.axis_info[0].unit_name if crs.axis_info else ""
         ax.set_xlabel(f"{names[0]} ({unit})")
         ax.set_ylabel(f"{names[1] if len(names) > 1 else 'y'} ({unit})")
-    ax.xaxis.set_major_locator(MaxNLocator(5))
-    ax.yaxis.set_major_locator(MaxNLocator(5, prune="lower"))
-    for axis in (ax.xaxis, ax.yaxis):
-        axis.set_major_formatter(fmt)
+    # ticks only away from the corners (8 % of the span), so the lowest x and y labels never
+    # meet; on geographic maps as few decimals as the tick step needs
+    for axis, lo, hi, n in ((ax.xaxis, x0, x1, 4 if crs.is_geographic else 5), (ax.yaxis, y0, y1, 5)):
+        ticks = MaxNLocator(n).tick_values(lo, hi)
+        margin = 0.08 * (hi - lo)
+        ticks = [t for t in ticks if lo + margin <= t <= hi - margin]
+        axis.set_major_locator(FixedLocator(ticks))
+        if crs.is_geographic and len(ticks) > 1:
+            step = min(b - a for a, b in zip(ticks[:-1], ticks[1:]))
+            dec = max(
+                0,
+                min(
+                    6, -math.floor(math.log10(step)) + (0 if step / 10 ** math.floor(math.log10(step)) % 1 == 0 else 1)
+                ),
+            )
+            axis.set_major_formatter(FuncFormatter(lambda v, _, d=dec: f"{v:.{d}f}\u00b0"))
+        else:
+            axis.set_major_formatter(fmt)
     ax.tick_params(labelsize=7)
     for lab in ax.get_yticklabels():
         lab.set_rotation(90)
@@ -998,7 +1046,7 @@ def _grid_bounds(g: _Grid) -> tuple[float, float, float, float]:
     return min(left, right), min(bottom, top), max(left, right), max(bottom, top)
 
 
-def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str | None = None):
+def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str | None = None):  # noqa: C901
     """Draw the map layers into a new axes; return (axes, legend groups, legend entries)."""
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
@@ -1068,7 +1116,19 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
     ch, cl = [], []
     if data.bits is not None:
         n_zone_bits = max(0, len(folder.section("conflict_raster_bits", default=["slope"]) or ["slope"]) - 1)
-        shapes = _conflict_shapes(data.bits, n_zone_bits)
+        kinds = _conflict_kinds(data.bits, n_zone_bits)
+        many_cells = int((kinds > 0).sum()) > _MANY_CONFLICT_CELLS
+        shapes = [] if many_cells else _conflict_shapes(data.bits, n_zone_bits)
+        if many_cells:
+            # tens of thousands of hatched polygons take matplotlib minutes: tint the cells instead
+            rgba = np.zeros((*kinds.shape, 4))
+            for kind, colour in _CONFLICT_TINT.items():
+                rgba[kinds == kind] = colour
+                if (kinds == kind).any():
+                    ch.append(Patch(facecolor=colour, edgecolor="#161616", lw=0.4))
+                    cl.append(_CONFLICT_TEXT[kind])
+                    entries.append(LegendEntry("conflict", {1: "slope", 2: "zone", 3: "slope+zone"}[kind], cl[-1]))
+            ax.imshow(rgba, extent=data.bits.extent, origin="upper", interpolation="nearest", zorder=4)
         for kind in (1, 2, 3):
             sub = [g for g, k in shapes if k == kind]
             if not sub:
@@ -1081,6 +1141,7 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
                 hatch=_CONFLICT_HATCH[kind],
                 linewidths=0.4,
                 zorder=4,
+                rasterized=len(sub) > _MANY_PARCELS,
             )
             ch.append(Patch(facecolor=(1, 1, 1, 0.28), edgecolor="#161616", hatch=_CONFLICT_HATCH[kind], lw=0.4))
             cl.append(_CONFLICT_TEXT[kind])
@@ -1098,12 +1159,23 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
     vh, vl = [], []
     present = [v for v in VERDICTS if (gdf["verdict"] == v).any()]
     present += sorted(set(gdf["verdict"]) - set(VERDICTS) - {""})
-    for v in reversed(present):  # conflict drawn last, on top
-        colour, lw, ls = _VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))
-        sub = gdf[gdf["verdict"] == v]
-        _add_lines(
-            ax, sub.geometry, colors=colour, linewidths=lw, linestyles=[ls], zorder=5, path_effects=_halo(lw + 2.2)
-        )
+    many = len(gdf) > _MANY_PARCELS
+    geoms = gdf.geometry.values
+    verdicts = gdf["verdict"].to_numpy()
+    if many:
+        _burn_outlines(fig, ax, rect, geoms, verdicts, present, view)
+    else:
+        for v in reversed(present):  # conflict drawn last, on top
+            colour, lw, ls = _VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))
+            _add_lines(
+                ax,
+                geoms[verdicts == v],
+                colors=colour,
+                linewidths=lw,
+                linestyles=[ls],
+                zorder=5,
+                path_effects=_halo(lw + 2.2),
+            )
     for v in present:
         colour, lw, ls = _VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))
         n = int((gdf["verdict"] == v).sum())
@@ -1114,10 +1186,15 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
 
     in_view = gdf
     if 0 < len(in_view) <= 60 or focus_id is not None:
+        # labels only for points well inside the frame, clipped to it: a neighbour's id never
+        # lands on the subtitle, legend or caution
+        mx, my = 0.04 * (x1 - x0), 0.04 * (y1 - y0)
         for pid, geom in zip(in_view["parcel_id"], in_view.geometry):
             if geom is None or geom.is_empty:
                 continue
             pt = geom.representative_point()
+            if not (x0 + mx <= pt.x <= x1 - mx and y0 + my <= pt.y <= y1 - my):
+                continue
             bold = focus_id is not None and pid == focus_id
             ax.text(
                 pt.x,
@@ -1129,11 +1206,45 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
                 fontweight="bold" if bold else "normal",
                 zorder=6,
                 path_effects=_halo(2.2),
+                clip_on=True,
             )
     extent = (x0, x1, y0, y1)
     _format_axes(ax, crs, extent)
     _draw_scale_and_north(ax, crs, extent)
     return ax, groups, entries
+
+
+def _burn_outlines(fig, ax, rect, geoms, verdicts, present, view) -> None:
+    """Many parcels: burn their outlines into one image at the axes' pixel size (GDAL rasterize).
+
+    Drawing 100 000 outlines as vector paths takes matplotlib tens of seconds and makes a
+    50 MB SVG; at overview scale an outline is about one pixel wide anyway, so one image
+    (conflict burnt last, on top) shows the same and keeps the SVG small.
+    """
+    import rasterio.features
+    import shapely
+    from affine import Affine
+    from matplotlib.colors import to_rgba
+
+    x0, y0, x1, y1 = view
+    w_px = max(1, int(round(fig.get_figwidth() * fig.dpi * rect[2])))
+    h_px = max(1, int(round(w_px * (y1 - y0) / max(x1 - x0, 1e-12))))
+    tr = Affine((x1 - x0) / w_px, 0.0, x0, 0.0, -(y1 - y0) / h_px, y1)
+    codes = np.zeros((h_px, w_px), dtype=np.uint8)
+    palette = np.zeros((len(present) + 1, 4))
+    for code, v in enumerate(reversed(present), start=1):
+        palette[code] = to_rgba(_VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))[0])
+        sub = geoms[verdicts == v]
+        sub = sub[~shapely.is_empty(sub) & ~shapely.is_missing(sub)] if len(sub) else sub
+        if len(sub) == 0:
+            continue
+        rasterio.features.rasterize(
+            ((g, code) for g in shapely.boundary(sub)),
+            out=codes,
+            transform=tr,
+            all_touched=True,
+        )
+    ax.imshow(palette[codes], extent=(x0, x1, y0, y1), origin="upper", interpolation="nearest", zorder=5)
 
 
 def _figure_frame(fig, title: str, subtitle: str, notes: Sequence[str]) -> None:
@@ -1487,14 +1598,17 @@ def slope_distribution_chart(
                 else f"reference {_fmt_num(line)} % (no class limit)"
             )
             share = area_ha[over].sum() / area_ha.sum() if area_ha.sum() else 0.0
+            right_side = line > 0.55 * xmax  # keep the label inside the panel
             ax.text(
                 line,
                 0.97,
-                f" {txt}\n {share:.1%} at or over",
+                f"{txt} \n{share:.1%} at or over " if right_side else f" {txt}\n {share:.1%} at or over",
                 transform=ax.get_xaxis_transform(),
                 va="top",
-                ha="left",
+                ha="right" if right_side else "left",
+                multialignment="right" if right_side else "left",
                 fontsize=7,
+                clip_on=True,
             )
         ax.set_xlim(0, xmax)
         ax.set_title(_class_label(folder, name), fontsize=8.5, loc="left")
