@@ -26,6 +26,7 @@ from pathlib import Path
 import numpy as np
 
 from landcheck.about import CAUTION, __version__
+from landcheck.engine.windows import progress_bar
 from landcheck.evidence.maps import (
     DEFAULT_SLOPE_BREAKS_PCT,
     VERDICTS,
@@ -68,6 +69,9 @@ _CSP = (
     "base-uri 'none'; form-action 'none'"
 )
 _HASH_CHUNK_BYTES = 1 << 20
+#: progress-bar steps besides the close-ups: tables, rasters, overview, interactive map,
+#: charts, parcel table, hashes, writing
+_FIXED_STEPS = 8
 #: printed sheet sizes (ISO 216 A4, ANSI Letter)
 PAGE_SIZES = {"a4": "A4", "letter": "Letter"}
 _M2_PER_HA = 10_000.0
@@ -513,20 +517,21 @@ def _parcels_section(folder: AuditFolder, max_rows: int) -> tuple[str, list[str]
     cols += [(z, f"In {folder.zone_label(z[5:-6])}", "share") for z in zone_cols]
     cols += [c for c in _PARCEL_TAIL if c[0] in df.columns and (c[0] == "reasons" or (df[c[0]] != "").any())]
     labels = _class_labels(folder)
+    notes = []
+    if len(df) > max_rows:
+        # the largest conflict areas, largest first (ties in file order: stable sort)
+        key = -df["conflict_m2"].fillna(0.0).to_numpy()
+        keep = np.argsort(key, kind="stable")[:max_rows]
+        notes.append(
+            f"The per-parcel table shows the {max_rows:,d} parcels with the largest conflict area of "
+            f"{len(df):,d}; parcels.csv holds all of them."
+        )
+        df = df.iloc[keep]
     records = df.to_dict("records")
     for r in records:
         r["class_name"] = labels.get(str(r["class_name"]), r["class_name"])
         if "confidence" in r:
             r["confidence"] = CONFIDENCE_SHORT.get(str(r["confidence"] or ""), str(r["confidence"]).replace("_", " "))
-    notes = []
-    if len(records) > max_rows:
-        order = sorted(range(len(records)), key=lambda i: (-(_num(records[i].get("conflict_m2")) or 0.0), i))
-        keep = sorted(order[:max_rows], key=lambda i: order.index(i))
-        records = [records[i] for i in keep]
-        notes.append(
-            f"The per-parcel table shows the {max_rows:,d} parcels with the largest conflict area of "
-            f"{len(df):,d}; parcels.csv holds all of them."
-        )
     ids = [str(r.get("parcel_id", "")) for r in records]
     numeric_ids = bool(ids) and all(_is_number(i) for i in ids)
     html_table = _table(
@@ -838,6 +843,7 @@ def build_report(
     closeup_formats: Sequence[str] = ("png",),
     verify_inputs: bool = True,
     page_size: str = "A4",
+    show_progress: bool | None = None,
 ) -> Path:
     """Write a self-contained HTML report of an audit output folder.
 
@@ -868,6 +874,8 @@ def build_report(
     page_size : {"A4", "Letter"}
         Printed sheet; wide tables print on landscape sheets of the same size and the
         caution stands at the foot of every page.
+    show_progress : bool, optional
+        A progress bar on stderr (default: when stderr is a terminal).
 
     Returns
     -------
@@ -889,13 +897,23 @@ def build_report(
     formats = tuple(dict.fromkeys(("png", *figure_formats)))
     built_utc = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
 
+    bar = progress_bar(_FIXED_STEPS + max(0, int(max_closeups)), "report", enabled=show_progress, unit="step")
+
+    def done(what: str) -> None:
+        bar.set_postfix_str(what, refresh=False)
+        bar.update(1)
+
     # validate the tables before drawing anything
-    _ = folder.parcels, folder.classes
+    _ = folder.parcels, folder.classes, folder.parcels_gdf
+    done("tables read")
     kw = dict(dest_dir=figures_dir, dpi=dpi, formats=formats)
     map_data = load_map_data(folder)
+    done("rasters read")
     overview = overview_map(folder, slope_breaks_pct=slope_breaks_pct, map_data=map_data, **kw)
+    done("overview map")
     breaks = np.asarray([float(b) for b in slope_breaks_pct])
     webmap_html = webmap_section(folder, map_data, breaks, _class_labels(folder))
+    done("interactive map")
     # close-ups are many: PNG by default (SVG on request) to keep the audit quick
     closeups = parcel_closeup_maps(
         folder,
@@ -904,8 +922,11 @@ def build_report(
         dest_dir=figures_dir,
         dpi=dpi,
         formats=tuple(dict.fromkeys(("png", *closeup_formats))),
+        on_drawn=lambda: done("close-ups"),
     )
+    bar.update(max(0, int(max_closeups)) - len(closeups.items))
     charts = [class_share_chart(folder, **kw), slope_distribution_chart(folder, **kw), sensitivity_chart(folder, **kw)]
+    done("charts")
 
     extra_warnings: list[str] = []
     relief = [e for e in overview.legend_entries if e.group == "relief" and e.key == "relief"]
@@ -925,7 +946,9 @@ def build_report(
         )
     parcels_html, notes = _parcels_section(folder, max_table_rows)
     extra_warnings += notes
+    done("parcel table")
     manifest_html, manifest_warnings = _manifest_section(folder, verify_inputs, built_utc)
+    done("hashes")
     extra_warnings = manifest_warnings + extra_warnings
     recorded = [str(w) for w in (folder.section("warnings", default=[]) or [])]
 
@@ -976,5 +999,7 @@ def build_report(
     )
     parts.append(f"<script>{_JS}</script></body></html>\n")
     write_bytes(report_path, "\n".join(parts).encode("utf-8"))
+    done("written")
+    bar.close()
     logger.info("report written: %s (%d close-ups)", report_path, len(closeups.items))
     return report_path

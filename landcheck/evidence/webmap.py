@@ -97,7 +97,8 @@ def _png_data_uri(rgba: np.ndarray) -> str:
     from PIL import Image
 
     buf = io.BytesIO()
-    Image.fromarray(rgba, mode="RGBA").save(buf, format="PNG", compress_level=9)
+    # zlib level 6: within a few per cent of level 9 in size at a fifth of the time
+    Image.fromarray(rgba, mode="RGBA").save(buf, format="PNG", compress_level=6)
     return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
 
 
@@ -167,20 +168,21 @@ def _feature_collection(geom_texts: Sequence[str], props: Sequence[str]) -> str:
 
 def _dictionary(values) -> tuple[list[str], list[int]]:
     """Dictionary-encode a text column: (unique values in first-seen order, index per row)."""
-    table: dict[str, int] = {}
-    idx = [table.setdefault(str(v), len(table)) for v in values]
-    return list(table), idx
+    import pandas as pd
+
+    codes, uniques = pd.factorize(pd.Series(values, dtype=object).astype(str), sort=False)
+    return [str(u) for u in uniques], codes.tolist()
 
 
 def _rounded(values, digits: int) -> list:
-    out = []
-    for v in values:
-        try:
-            f = float(v)
-        except (TypeError, ValueError):
-            f = math.nan
-        out.append(None if math.isnan(f) or math.isinf(f) else round(f, digits))
-    return out
+    """Numbers rounded for display; None (JSON null) for missing or infinite values."""
+    import pandas as pd
+
+    f = pd.to_numeric(pd.Series(values), errors="coerce").to_numpy(dtype=np.float64)
+    ok = np.isfinite(f)
+    r = np.round(np.where(ok, f, 0.0), digits)
+    vals = r.astype(np.int64).tolist() if digits == 0 else r.tolist()
+    return [v if k else None for v, k in zip(vals, ok.tolist())]
 
 
 def _conflict_overlay(data: _MapData, n_zone_bits: int) -> str | None:
