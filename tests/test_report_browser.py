@@ -287,3 +287,48 @@ def test_nothing_beyond_the_right_margin_in_print(demo_report, tmp_path):
     finally:
         d.quit()
     assert bad == {"portrait": [], "landscape": []}
+
+
+def test_demo_prescreen_prints_on_one_a4_sheet(tmp_path):
+    pypdf = pytest.importorskip("pypdf")
+    import subprocess
+    import sys
+
+    out = tmp_path / "lot1051"
+    subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "landcheck",
+            "-q",
+            "prescreen",
+            "--dem",
+            str(DEMO / "dem.tif"),
+            "--rulebook",
+            str(DEMO / "rulebook.toml"),
+            "--parcels",
+            str(DEMO / "parcels.gpkg"),
+            "--parcel-id",
+            "1051",
+            "--out",
+            str(out),
+        ],
+        check=True,
+        capture_output=True,
+        timeout=300,
+    )
+    d = _driver(tmp_path)
+    try:
+        pdf = _print_pdf(d, out / "prescreen.html", (A4_MM[0] / MM_PER_IN, A4_MM[1] / MM_PER_IN))
+    finally:
+        d.quit()
+    reader = pypdf.PdfReader(io.BytesIO(pdf))
+    assert len(reader.pages) == 1
+    page = reader.pages[0]
+    sheet = (A4_MM[0] / MM_PER_IN * PT_PER_IN, A4_MM[1] / MM_PER_IN * PT_PER_IN)
+    assert (float(page.mediabox.width), float(page.mediabox.height)) == pytest.approx(sheet, abs=1.0)
+    text = " ".join((page.extract_text() or "").split())
+    # the sheet ends with the footer: the caution again and the input hashes
+    assert text.count(landcheck.CAUTION[:40]) >= 2 and "Inputs:" in text
+    # rulebook labels, not keys, in the rule text (demo rulebook: zone keys flood_high, sea_rise_1m)
+    assert "flood_high" not in text and "sea_rise_1m" not in text
