@@ -19,21 +19,34 @@ and conflict cells are hatched rather than coloured.
 from __future__ import annotations
 
 import io
-import json
 import logging
 import math
 import re
 import textwrap
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
-from functools import cached_property
 from pathlib import Path
 
 import numpy as np
 
 from landcheck.about import CAUTION
 from landcheck.errors import InputDataError
+from landcheck.evidence.folder import (
+    AuditFolder,
+    _isnan,
+    _parse_float,
+    load_audit_folder,
+)
+from landcheck.evidence.hillshade import SUN_ALTITUDE_DEG, hillshade
+from landcheck.evidence.style import (
+    DEFAULT_SLOPE_BREAKS_PCT,
+    VERDICT_TEXT,
+    _check_breaks,
+    _fmt_num,
+    classify_slope,
+    slope_class_colours,
+    slope_class_labels,
+)
 from landcheck.outputs.writers import write_bytes
 
 __all__ = [
@@ -60,21 +73,10 @@ __all__ = [
 
 logger = logging.getLogger(__name__)
 
-#: slope-class breaks in percent, land-use planning classes (docs/report.md):
-#: 0-3 level, 3-8 gently sloping, 8-18 undulating to rolling, 18-30 rolling to
-#: moderately steep, 30-50 steep, 50 and over very steep.
-DEFAULT_SLOPE_BREAKS_PCT: tuple[float, ...] = (0.0, 3.0, 8.0, 18.0, 30.0, 50.0, math.inf)
 
 #: verdict values of parcels.csv, in legend order
 VERDICTS: tuple[str, ...] = ("conflict", "review", "consistent", "no_data", "no_rule")
 
-_VERDICT_TEXT = {
-    "conflict": "conflict",
-    "review": "review (near a limit)",
-    "consistent": "consistent",
-    "no_data": "no data (outside DEM)",
-    "no_rule": "no rule for its class",
-}
 # colour, line width (pt), dash pattern; every verdict differs in dash or width,
 # so the map still reads in greyscale
 _VERDICT_STYLE = {
@@ -112,9 +114,6 @@ _CONFLICT_TINT = {1: (0.09, 0.09, 0.09, 0.5), 2: (0.42, 0.0, 0.36, 0.5), 3: (0.0
 _LEGEND_WRAP_CHARS = 34
 _SVG_METADATA = {"Date": None}
 _RC = {"svg.hashsalt": "landcheck", "font.size": 9.0, "hatch.linewidth": 0.8, "axes.titlesize": 10.0}
-#: sun position for relief shading: azimuth clockwise from north, altitude above horizon (degrees)
-SUN_AZIMUTH_DEG = 315.0
-SUN_ALTITUDE_DEG = 45.0
 
 
 # --------------------------------------------------------------------------- results
@@ -176,139 +175,6 @@ class ScaleBar:
 
 
 # --------------------------------------------------------------------------- pure helpers
-
-
-def hillshade(
-    elev: np.ndarray,
-    dx_m: float,
-    dy_m: float,
-    *,
-    azimuth_deg: float = SUN_AZIMUTH_DEG,
-    altitude_deg: float = SUN_ALTITUDE_DEG,
-    north_up: bool = True,
-) -> np.ndarray:
-    """Lambertian illumination of a gridded surface (relief shading).
-
-    The surface normal is (-p, -q, 1)/sqrt(1 + p^2 + q^2) with p = dz/dx (east)
-    and q = dz/dy (north) from central differences; the sun vector is
-    (sin A cos h, cos A cos h, sin h).  Their dot product, clipped at 0, is the
-    brightness (Horn 1981, "Hill shading and the reflectance map").
-
-    Parameters
-    ----------
-    elev : ndarray, 2-D
-        Elevations; NaN gives NaN.  Same linear unit as ``dx_m`` and ``dy_m``.
-    dx_m, dy_m : float
-        Cell width and height (m), positive.
-    azimuth_deg, altitude_deg : float
-        Sun direction, clockwise from north, and height above the horizon (degrees).
-    north_up : bool
-        True when row 0 is the northern edge (the usual GeoTIFF layout).
-
-    Returns
-    -------
-    ndarray, float32
-        Brightness 0-1; flat ground gives sin(altitude).
-    """
-    z = np.asarray(elev, dtype=np.float64)
-    alt, az = math.radians(altitude_deg), math.radians(azimuth_deg)
-    if z.ndim != 2 or min(z.shape) < 2:
-        return np.where(np.isnan(z), np.nan, math.sin(alt)).astype(np.float32)
-    d_row, d_col = np.gradient(z)
-    p = d_col / dx_m
-    q = (-d_row if north_up else d_row) / dy_m
-    num = math.sin(alt) - math.cos(alt) * (p * math.sin(az) + q * math.cos(az))
-    return np.clip(num / np.sqrt(1.0 + p * p + q * q), 0.0, 1.0).astype(np.float32)
-
-
-def _check_breaks(breaks_pct: Sequence[float]) -> np.ndarray:
-    b = np.asarray([float(v) for v in breaks_pct], dtype=np.float64)
-    if b.ndim != 1 or b.size < 2 or np.any(np.isnan(b)) or np.any(np.diff(b) <= 0) or b[0] < 0:
-        raise ValueError(
-            f"slope_breaks_pct: got {list(breaks_pct)}; expected at least two strictly increasing "
-            "percent values starting at 0 or more, e.g. [0, 3, 8, 18, 30, 50, inf]"
-        )
-    return b
-
-
-def classify_slope(slope_pct: np.ndarray, breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT) -> np.ndarray:
-    """Slope class index per cell: class i holds breaks[i] <= slope < breaks[i+1].
-
-    Parameters
-    ----------
-    slope_pct : ndarray
-        Slope in percent; NaN for no slope.
-    breaks_pct : sequence of float
-        Strictly increasing class breaks (%); the last may be ``inf``.
-
-    Returns
-    -------
-    ndarray, int16
-        Class index, -1 for NaN or values outside the breaks.
-    """
-    b = _check_breaks(breaks_pct)
-    s = np.asarray(slope_pct, dtype=np.float64)
-    idx = np.searchsorted(b, s, side="right") - 1
-    bad = np.isnan(s) | (s < b[0]) | (s >= b[-1]) | (idx >= b.size - 1)
-    return np.where(bad, -1, idx).astype(np.int16)
-
-
-def _fmt_num(v: float) -> str:
-    return f"{v:g}"
-
-
-def slope_class_labels(breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT) -> list[str]:
-    """Legend text per slope class, e.g. ``"3 to under 8 %"`` and ``"50 % and over"``."""
-    b = _check_breaks(breaks_pct)
-    out = []
-    for lo, hi in zip(b[:-1], b[1:]):
-        out.append(f"{_fmt_num(lo)} % and over" if math.isinf(hi) else f"{_fmt_num(lo)} to under {_fmt_num(hi)} %")
-    return out
-
-
-# Anchor colours in CIELAB (L*, a*, b*), pale straw to dark plum; L* falls
-# strictly, so the ramp reads in greyscale and for every colour-vision type.
-_SLOPE_RAMP_LAB = np.array(
-    [
-        [96.0, -5.0, 28.0],
-        [84.0, 4.0, 52.0],
-        [70.0, 22.0, 55.0],
-        [56.0, 38.0, 38.0],
-        [42.0, 40.0, 8.0],
-        [27.0, 24.0, -18.0],
-    ]
-)
-_D65_WHITE = (0.95047, 1.0, 1.08883)
-
-
-def _lab_to_srgb(lab: np.ndarray) -> np.ndarray:
-    """CIELAB (D65) to gamma-encoded sRGB 0-1 (CIE 1976 L*a*b*; IEC 61966-2-1), clipped to gamut."""
-    lab = np.asarray(lab, dtype=np.float64)
-    fy = (lab[..., 0] + 16.0) / 116.0
-    fx = fy + lab[..., 1] / 500.0
-    fz = fy - lab[..., 2] / 200.0
-    delta = 6.0 / 29.0
-
-    def finv(t):
-        return np.where(t > delta, t**3, 3.0 * delta**2 * (t - 4.0 / 29.0))
-
-    xyz = np.stack([finv(fx) * _D65_WHITE[0], finv(fy) * _D65_WHITE[1], finv(fz) * _D65_WHITE[2]], axis=-1)
-    m = np.array([[3.2406, -1.5372, -0.4986], [-0.9689, 1.8758, 0.0415], [0.0557, -0.2040, 1.0570]])
-    lin = np.clip(xyz @ m.T, 0.0, 1.0)
-    return np.where(lin <= 0.0031308, 12.92 * lin, 1.055 * lin ** (1.0 / 2.4) - 0.055)
-
-
-def slope_class_colours(n_classes: int) -> list[str]:
-    """``n_classes`` hex colours from light (gentle) to dark (steep), evenly spaced along the ramp."""
-    if n_classes < 1:
-        raise ValueError(f"n_classes: got {n_classes}; expected 1 or more")
-    t = np.linspace(0.0, 1.0, n_classes) if n_classes > 1 else np.array([0.0])
-    pos = t * (len(_SLOPE_RAMP_LAB) - 1)
-    i0 = np.minimum(np.floor(pos).astype(int), len(_SLOPE_RAMP_LAB) - 2)
-    frac = (pos - i0)[:, None]
-    lab = _SLOPE_RAMP_LAB[i0] * (1 - frac) + _SLOPE_RAMP_LAB[i0 + 1] * frac
-    rgb = _lab_to_srgb(lab)
-    return ["#" + "".join(f"{int(round(c * 255)):02x}" for c in row) for row in rgb]
 
 
 def _nice_length(max_len: float) -> float:
@@ -386,197 +252,6 @@ def true_north_angle_deg(x: float, y: float, crs) -> float:
 
 
 # --------------------------------------------------------------------------- reading the folder
-
-
-def _read_json(path: Path) -> dict:
-    try:
-        with open(path, encoding="utf-8") as f:
-            return json.load(f)
-    except json.JSONDecodeError as exc:
-        raise InputDataError(
-            f"{path}: not valid JSON at line {exc.lineno}, column {exc.colno} ({exc.msg}); "
-            "rerun `landcheck audit` to write it again."
-        ) from exc
-
-
-_PARCEL_TEXT_COLUMNS = ("parcel_id", "class_value", "class_name", "verdict", "reasons", "geometry_note")
-_PARCEL_REQUIRED = ("parcel_id", "class_name", "area_m2", "evaluated_m2", "conflict_m2", "conflict_share", "verdict")
-_CLASS_REQUIRED = ("class_name", "evaluated_m2", "conflict_m2", "conflict_share", "over_limit_m2")
-
-
-def _read_csv(path: Path, required: Sequence[str], text_columns: Sequence[str]):
-    import pandas as pd
-
-    try:
-        df = pd.read_csv(path, dtype={c: str for c in text_columns}, keep_default_na=False, na_values=[""])
-    except (OSError, ValueError) as exc:
-        raise InputDataError(f"{path}: cannot be read as CSV ({exc}); rerun `landcheck audit`.") from exc
-    missing = [c for c in required if c not in df.columns]
-    if missing:
-        raise InputDataError(
-            f"{path}: missing column(s) {', '.join(missing)}; expected the columns listed in "
-            "docs/outputs.md. Was it written by an older or newer landcheck?"
-        )
-    for c in text_columns:
-        if c in df.columns:
-            df[c] = df[c].fillna("").astype(str)
-    return df
-
-
-def _parse_float(v) -> float:
-    if v is None:
-        return math.inf
-    if isinstance(v, str):
-        t = v.strip().lower()
-        return math.inf if t in ("inf", "+inf", "infinity", "") else float(t)
-    return float(v)
-
-
-@dataclass
-class AuditFolder:
-    """A validated audit output folder (docs/outputs.md); loads layers on first use."""
-
-    out_dir: Path
-    summary: dict
-
-    def path(self, name: str) -> Path:
-        return self.out_dir / name
-
-    def require(self, name: str) -> Path:
-        p = self.out_dir / name
-        if not p.exists():
-            raise InputDataError(
-                f"{p}: not found; expected the output folder of `landcheck audit` "
-                "(docs/outputs.md). Rerun the audit or point to the right folder."
-            )
-        return p
-
-    def section(self, *keys: str, default=None):
-        """``summary[k1][k2]...``, or ``default`` when any key is missing."""
-        node = self.summary
-        for k in keys:
-            if not isinstance(node, dict) or k not in node:
-                return default
-            node = node[k]
-        return node
-
-    @cached_property
-    def parcels(self):
-        """parcels.csv as a DataFrame (text columns as str, empty numbers as NaN)."""
-        return _read_csv(self.require("parcels.csv"), _PARCEL_REQUIRED, _PARCEL_TEXT_COLUMNS)
-
-    @cached_property
-    def classes(self):
-        """classes.csv as a DataFrame."""
-        return _read_csv(self.require("classes.csv"), _CLASS_REQUIRED, ("class_name", "label", "development"))
-
-    @cached_property
-    def parcels_gdf(self):
-        import geopandas as gpd
-
-        p = self.require("parcels.gpkg")
-        try:
-            gdf = gpd.read_file(p, layer="parcels")
-        except Exception as exc:  # pyogrio raises several unrelated classes; re-raise as ours
-            raise InputDataError(f"{p}, layer 'parcels': cannot be read ({exc}); rerun `landcheck audit`.") from exc
-        if "verdict" not in gdf.columns or "parcel_id" not in gdf.columns:
-            raise InputDataError(f"{p}, layer 'parcels': needs columns parcel_id and verdict (docs/outputs.md).")
-        gdf["parcel_id"] = gdf["parcel_id"].astype(str)
-        gdf["verdict"] = gdf["verdict"].fillna("").astype(str)
-        return gdf
-
-    @cached_property
-    def zone_layers(self) -> list[tuple[str, object]]:
-        """(name, GeoDataFrame) for every ``zones/*.gpkg``, sorted by name."""
-        import geopandas as gpd
-
-        zdir = self.out_dir / "zones"
-        out = []
-        if zdir.is_dir():
-            for p in sorted(zdir.glob("*.gpkg")):
-                try:
-                    out.append((p.stem, gpd.read_file(p)))
-                except Exception as exc:  # pyogrio raises several unrelated classes; re-raise as ours
-                    raise InputDataError(f"{p}: cannot be read ({exc}); rerun `landcheck audit`.") from exc
-        return out
-
-    @cached_property
-    def zone_labels(self) -> dict[str, str]:
-        """Reader's name per zone layer file stem (``zones/<stem>.gpkg``) and per zone key."""
-        out: dict[str, str] = {"derived_streams": "streams derived from the DEM"}
-        for col in self.section("zone_columns", default=[]) or []:
-            if isinstance(col, dict) and col.get("name"):
-                label = str(col.get("label") or col["name"]).replace("_", " ")
-                out[str(col["name"])] = label
-                out["zone_" + str(col["name"])] = label
-        return out
-
-    def zone_label(self, stem: str) -> str:
-        """Reader's name of a zone layer: its rulebook label, else the key in plain words."""
-        if stem in self.zone_labels:
-            return self.zone_labels[stem]
-        return (stem[5:] if stem.startswith("zone_") else stem).replace("_", " ")
-
-    @property
-    def run_started(self) -> datetime | None:
-        text = self.section("manifest", "started_utc")
-        if not text:
-            return None
-        try:
-            dt = datetime.fromisoformat(str(text).replace("Z", "+00:00"))
-        except ValueError:
-            return None
-        return dt.astimezone(timezone.utc) if dt.tzinfo else dt.replace(tzinfo=timezone.utc)
-
-    @property
-    def run_date_text(self) -> str:
-        dt = self.run_started
-        return dt.strftime("%Y-%m-%d %H:%M UTC") if dt else "run time not recorded"
-
-    @property
-    def dem_path(self) -> Path | None:
-        """The DEM named in the manifest (role "dem"), if recorded; may not exist on this machine."""
-        for item in self.section("manifest", "inputs", default=[]) or []:
-            if isinstance(item, dict) and item.get("role") == "dem" and item.get("path"):
-                return Path(item["path"])
-        return None
-
-    @cached_property
-    def class_limits_pct(self) -> dict[str, float]:
-        """Slope limit (%) per class, from parcels.csv ``max_slope_pct``; NaN when the class has none."""
-        limits: dict[str, float] = {}
-        df = self.parcels
-        if "max_slope_pct" in df.columns:
-            for name, val in zip(df["class_name"], df["max_slope_pct"]):
-                v = math.nan if _isnan(val) else float(val)
-                if name not in limits or (math.isnan(limits[name]) and not math.isnan(v)):
-                    limits[name] = v
-        return limits
-
-
-def load_audit_folder(out_dir) -> AuditFolder:
-    """Open an audit output folder and read ``summary.json``.
-
-    Raises
-    ------
-    InputDataError
-        The folder or summary.json is missing or unreadable.
-    """
-    if isinstance(out_dir, AuditFolder):
-        return out_dir
-    out_dir = Path(out_dir)
-    if not out_dir.is_dir():
-        raise InputDataError(f"{out_dir}: not a folder; expected the output folder of `landcheck audit`.")
-    p = out_dir / "summary.json"
-    if not p.exists():
-        raise InputDataError(
-            f"{p}: not found; expected the output folder of `landcheck audit` "
-            "(docs/outputs.md). Rerun the audit or point to the right folder."
-        )
-    summary = _read_json(p)
-    if not isinstance(summary, dict):
-        raise InputDataError(f"{p}: expected a JSON object at the top level (docs/outputs.md).")
-    return AuditFolder(out_dir, summary)
 
 
 # --------------------------------------------------------------------------- raster reading
@@ -1180,7 +855,7 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
         colour, lw, ls = _VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))
         n = int((gdf["verdict"] == v).sum())
         vh.append(Line2D([0], [0], color=colour, lw=lw, linestyle=ls, path_effects=_halo(lw + 2.2)))
-        vl.append(f"{_VERDICT_TEXT.get(v, v)} ({n})")
+        vl.append(f"{VERDICT_TEXT.get(v, v)} ({n})")
         entries.append(LegendEntry("verdict", v, vl[-1]))
     groups.insert(0, ("Parcel verdict (parcels shown)", vh, vl))
 
@@ -1422,7 +1097,7 @@ def parcel_closeup_maps(
         )
         _figure_frame(
             fig,
-            f"Parcel {pid}: {_VERDICT_TEXT.get(rec['verdict'], rec['verdict'])}",
+            f"Parcel {pid}: {VERDICT_TEXT.get(rec['verdict'], rec['verdict'])}",
             sub,
             [_crs_note(data.slope.crs) + "."],
         )
@@ -1442,13 +1117,6 @@ def _cell_width(folder: AuditFolder) -> float:
 
     with rasterio.open(folder.require("slope_pct.tif")) as ds:
         return abs(ds.transform.a)
-
-
-def _isnan(v) -> bool:
-    try:
-        return math.isnan(float(v))
-    except (TypeError, ValueError):
-        return True
 
 
 # --------------------------------------------------------------------------- charts

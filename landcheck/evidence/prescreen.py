@@ -1208,7 +1208,7 @@ def _write_html(path: Path, figures: dict, map_png: Path, hist_png: Path) -> Non
     parts = [
         html_head(f"landcheck pre-screen - parcel {p['id']}", _CSS, _CSP),
         # one sheet: in print the page is clipped to one A4 content box (the figures are sized to fit)
-        f"<div class=\"sheet\"><header><h1>Pre-screen of parcel {_e(p['id'])}</h1>",
+        f'<div class="sheet"><header><h1>Pre-screen of parcel {_e(p["id"])}</h1>',
         (
             f'<p class="sub">{_e(p["source"])} \u00b7 run {_e(figures["started_utc"])} \u00b7 landcheck '
             f"{_e(figures['version'])}</p>"

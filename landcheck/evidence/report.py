@@ -27,20 +27,18 @@ import numpy as np
 
 from landcheck.about import CAUTION, __version__
 from landcheck.engine.windows import progress_bar
+from landcheck.evidence.folder import AuditFolder, load_audit_folder
 from landcheck.evidence.maps import (
-    DEFAULT_SLOPE_BREAKS_PCT,
     VERDICTS,
-    AuditFolder,
     FigureItem,
     class_share_chart,
-    load_audit_folder,
     load_map_data,
     overview_map,
     parcel_closeup_maps,
     sensitivity_chart,
     slope_distribution_chart,
 )
-from landcheck.evidence.style import CONFIDENCE_SHORT, VERDICT_TEXT, count_text, yes_no
+from landcheck.evidence.style import CONFIDENCE_SHORT, DEFAULT_SLOPE_BREAKS_PCT, VERDICT_TEXT, count_text, yes_no
 from landcheck.evidence.webmap import WEBMAP_CSS, webmap_section
 from landcheck.outputs.writers import write_bytes
 

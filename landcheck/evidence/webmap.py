@@ -33,17 +33,9 @@ from pathlib import Path
 
 import numpy as np
 
-from landcheck.evidence.maps import (
-    _ZONE_STYLE,
-    VERDICTS,
-    AuditFolder,
-    _composite,
-    _crs,
-    _MapData,
-    slope_class_colours,
-    slope_class_labels,
-)
-from landcheck.evidence.style import CONFIDENCE_TEXT, VERDICT_TEXT
+from landcheck.evidence.folder import AuditFolder
+from landcheck.evidence.maps import _ZONE_STYLE, VERDICTS, _composite, _crs, _MapData
+from landcheck.evidence.style import CONFIDENCE_TEXT, VERDICT_TEXT, slope_class_colours, slope_class_labels
 
 __all__ = ["LEAFLET_VERSION", "leaflet_assets", "webmap_section", "WEBMAP_CSS"]
 
