@@ -436,9 +436,15 @@ _WEBMAP_JS = r"""
       if (wrap) { wrap.scrollTop = Math.max(0, picked.offsetTop - wrap.clientHeight / 2); }
     }
   }
+  var chosen = null;
   function pick(i, latlng, fly) {
     var lyr = layers[i];
     if (!lyr) { return; }
+    // outline the chosen parcel in amber until another is chosen
+    if (chosen) { groups[chosen.feature.properties.v].resetStyle(chosen); }
+    chosen = lyr;
+    lyr.setStyle({color: '#e09a00', weight: 4, dashArray: null, fillOpacity: 0.15});
+    lyr.bringToFront();
     var at = latlng || lyr.getBounds().getCenter();
     var open = function () {
       L.popup({maxWidth: 360}).setLatLng(at).setContent(popupHtml(i)).openOn(map);
@@ -446,7 +452,7 @@ _WEBMAP_JS = r"""
     if (fly) {
       map.once('moveend', open);
       map.flyToBounds(lyr.getBounds(), {maxZoom: Math.min(D.max_zoom, map.getBoundsZoom(bounds) + 6),
-                                        padding: [40, 40], duration: 0.6});
+                                        padding: [120, 120], duration: 0.6});
     } else { open(); }
     highlight(R.pid[i], true);
     status.textContent = 'Parcel ' + R.pid[i] + ': ' + D.verdicts[lyr.feature.properties.v].text + '.' +
