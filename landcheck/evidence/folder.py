@@ -112,7 +112,8 @@ class AuditFolder:
 
         p = self.require("parcels.gpkg")
         try:
-            gdf = gpd.read_file(p, layer="parcels")
+            # the maps need only the id, the verdict and the shape; figures come from parcels.csv
+            gdf = gpd.read_file(p, layer="parcels", columns=["parcel_id", "verdict"])
         except Exception as exc:  # pyogrio raises several unrelated classes; re-raise as ours
             raise InputDataError(f"{p}, layer 'parcels': cannot be read ({exc}); rerun `landcheck audit`.") from exc
         if "verdict" not in gdf.columns or "parcel_id" not in gdf.columns:

@@ -397,17 +397,23 @@ def _read_relief(folder: AuditFolder, slope: _Grid) -> tuple[np.ndarray, str]:
 
 
 def _composite(slope_pct: np.ndarray, shade: np.ndarray, breaks: np.ndarray, colours: list[str]) -> np.ndarray:
-    """Slope-class colours modulated by relief; flat ground shows the exact legend colour."""
+    """Slope-class colours modulated by relief, as 8-bit RGBA; flat ground shows the exact legend colour.
+
+    8-bit (not float) so matplotlib and the PNG encoder work on a quarter of the memory.
+    """
     from matplotlib.colors import to_rgb
 
     idx = classify_slope(slope_pct, breaks)
-    pal = np.array([to_rgb(c) for c in colours])
-    rgb = np.where((idx >= 0)[..., None], pal[np.clip(idx, 0, None)], _NODATA_GREY)
+    pal = np.array([to_rgb(c) for c in colours] + [tuple(_NODATA_GREY)], dtype=np.float32)
+    rgb = pal[np.where(idx >= 0, idx, len(colours))]
     flat = math.sin(math.radians(SUN_ALTITUDE_DEG))
-    k = np.where(np.isnan(shade), 1.0, np.clip(0.62 + 0.38 * shade / flat, 0.0, 1.3))
-    rgb = np.clip(rgb * k[..., None], 0.0, 1.0)
-    alpha = ~(np.isnan(slope_pct) & np.isnan(shade))
-    return np.dstack([rgb, alpha.astype(np.float64)])
+    shade = np.asarray(shade, dtype=np.float32)
+    k = np.where(np.isnan(shade), np.float32(1.0), np.clip(0.62 + 0.38 * shade / flat, 0.0, 1.3)).astype(np.float32)
+    rgb *= k[..., None]
+    out = np.empty((*idx.shape, 4), dtype=np.uint8)
+    out[..., :3] = np.round(np.clip(rgb, 0.0, 1.0) * 255.0)
+    out[..., 3] = np.where(np.isnan(slope_pct) & np.isnan(shade), 0, 255)
+    return out
 
 
 def _conflict_kinds(bits: _Grid, n_zone_bits: int) -> np.ndarray:
@@ -927,7 +933,8 @@ def _burn_outlines(fig, ax, rect, geoms, verdicts, present, view) -> None:
         r = np.floor(pts[:, 1]).astype(np.int64)
         ok = (c >= 0) & (c < w_px) & (r >= 0) & (r < h_px)
         codes[r[ok], c[ok]] = code
-    ax.imshow(palette[codes], extent=(x0, x1, y0, y1), origin="upper", interpolation="nearest", zorder=5)
+    rgba8 = np.round(palette * 255.0).astype(np.uint8)[codes]
+    ax.imshow(rgba8, extent=(x0, x1, y0, y1), origin="upper", interpolation="nearest", zorder=5)
 
 
 def _figure_frame(fig, title: str, subtitle: str, notes: Sequence[str]) -> None:

@@ -1013,7 +1013,7 @@ def _draw_map(
     colour, lw, ls = M._VERDICT_STYLE.get(verdict, ("#444444", 1.2, "solid"))
     M._add_lines(ax, [geom], colors=colour, linewidths=lw, linestyles=[ls], zorder=6, path_effects=M._halo(lw + 2.2))
     ph.insert(0, Line2D([0], [0], color=colour, lw=lw, linestyle=ls, path_effects=M._halo(lw + 2.2)))
-    pl.insert(0, f"parcel ({M._VERDICT_TEXT.get(verdict, verdict)})")
+    pl.insert(0, f"parcel ({VERDICT_TEXT.get(verdict, verdict)})")
     groups.insert(0, ("Parcel", ph, pl))
     groups.append(("Not buildable (the rest of the parcel is)", ch, cl))
     groups.append(("Zones", zh, zl))

@@ -40,6 +40,7 @@ from landcheck.evidence.maps import (
 )
 from landcheck.evidence.style import CONFIDENCE_SHORT, DEFAULT_SLOPE_BREAKS_PCT, VERDICT_TEXT, count_text, yes_no
 from landcheck.evidence.webmap import WEBMAP_CSS, webmap_section
+from landcheck.inputs.gdal_cache import cap_gdal_cache
 from landcheck.outputs.writers import write_bytes
 
 __all__ = ["PAGE_SIZES", "build_report", "sha256_file"]
@@ -895,6 +896,7 @@ def build_report(
     formats = tuple(dict.fromkeys(("png", *figure_formats)))
     built_utc = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
 
+    cap_gdal_cache()  # the rasters are read once through GDAL; its default cache would keep them all
     bar = progress_bar(_FIXED_STEPS + max(0, int(max_closeups)), "report", enabled=show_progress, unit="step")
 
     def done(what: str) -> None:

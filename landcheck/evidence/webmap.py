@@ -196,7 +196,7 @@ def _conflict_overlay(data: _MapData, n_zone_bits: int) -> str | None:
 
 def _relief_overlay(data: _MapData, breaks: np.ndarray) -> str:
     rgba = _composite(data.slope.data, data.relief, breaks, slope_class_colours(len(breaks) - 1))
-    return _png_data_uri(np.round(np.clip(rgba, 0.0, 1.0) * 255.0).astype(np.uint8))
+    return _png_data_uri(rgba)
 
 
 def webmap_data(folder: AuditFolder, data: _MapData, breaks: np.ndarray, class_labels: dict[str, str]) -> dict:
