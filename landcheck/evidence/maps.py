@@ -1098,7 +1098,7 @@ def parcel_closeup_maps(
         lim_txt = f"slope limit {_fmt_num(limit)} %" if not math.isnan(limit) else "no slope limit"
         share = float(rec["conflict_share"]) if not _isnan(rec["conflict_share"]) else math.nan
         sub = (
-            f"class {rec['class_name']} \u00b7 {lim_txt} \u00b7 conflict {float(rec['conflict_m2']):,.0f} m\u00b2"
+            f"class {_class_label(folder, rec['class_name'])} \u00b7 {lim_txt} \u00b7 conflict {float(rec['conflict_m2']):,.0f} m\u00b2"
             + (f" ({share:.1%} of evaluated area)" if not math.isnan(share) else "")
             + f" \u00b7 audit run {folder.run_date_text}"
         )
@@ -1111,7 +1111,10 @@ def parcel_closeup_maps(
         stem = f"closeup_{rank:02d}_{_safe_stem(pid)}"
         paths = _save(fig, dest, stem, dpi, formats)
         detail = sub.split(" \u00b7 audit")[0]
-        caption = f"Parcel {pid} ({rec['class_name']}, {rec['verdict']}): {detail}."
+        caption = (
+            f"Parcel {pid} ({_class_label(folder, rec['class_name'])}, "
+            f"{VERDICT_TEXT.get(rec['verdict'], rec['verdict'])}): {detail}."
+        )
         items.append(FigureItem(stem, caption, paths, entries, parcel_id=pid))
         if on_drawn is not None:
             on_drawn()
