@@ -41,7 +41,16 @@ pytestmark = pytest.mark.reference_tool
 @pytest.fixture(scope="module")
 def demo_report(tmp_path_factory):
     out = tmp_path_factory.mktemp("demo-report") / "out"
-    audit(DEMO / "dem.tif", DEMO / "parcels.gpkg", DEMO / "rulebook.toml", out, make_report=False)
+    # as `landcheck demo` runs it: with the land-capability map (confidence run skipped for time)
+    audit(
+        DEMO / "dem.tif",
+        DEMO / "parcels.gpkg",
+        DEMO / "rulebook.toml",
+        out,
+        make_report=False,
+        capability_scheme="planning-6",
+        skip_confidence=True,
+    )
     path = build_report(out, figure_formats=("png",), max_closeups=4, dpi=90)
     return out, path
 
@@ -332,3 +341,54 @@ def test_demo_prescreen_prints_on_one_a4_sheet(tmp_path):
     assert text.count(landcheck.CAUTION[:40]) >= 2 and "Inputs:" in text
     # rulebook labels, not keys, in the rule text (demo rulebook: zone keys flood_high, sea_rise_1m)
     assert "flood_high" not in text and "sea_rise_1m" not in text
+
+
+def _reader_text(path: Path) -> str:
+    """The words a reader sees: tags, scripts, styles and the rulebook/WKT listings removed."""
+    import html as _html
+
+    t = path.read_text(encoding="utf-8")
+    for pat in (r"<script.*?</script>", r"<style.*?</style>", r"<pre.*?</pre>", r"<code.*?</code>"):
+        t = re.sub(pat, " ", t, flags=re.S)
+    return " ".join(_html.unescape(re.sub(r"<[^>]+>", " ", t)).split())
+
+
+def test_demo_report_wording(demo_report):
+    out, path = demo_report
+    text = _reader_text(path)
+    # plain words for every state and flag, no raw keys or truncated labels (issue list, common practice)
+    for raw in ("True", "False", "not_evaluated", "robust_conflict", "robust_clear", "P(conflict)", "CRS units"):
+        assert raw not in text, raw
+    # no negative area anywhere, and no "minus" balance line
+    assert not re.search(r"[-\u2212]\d[\d,.]* ha", text) and "minus" not in text
+    summary = json.loads((out / "summary.json").read_text())
+    cap = summary["capability"]
+    gap_ha = abs(cap["classified_development_m2"] - cap["land_within_limit_m2"]) / 1e4
+    assert f"{gap_ha:,.2f} ha" in text
+    # the reference limit is named with where it comes from
+    assert f"Reference limit: {cap['reference_limit_pct']:g} %" in text
+    # "N parcels with any conflict area" agrees with parcels.csv
+    rows = _rows(out).values()
+    n_any = sum(float(r["conflict_m2"] or 0) > 0 for r in rows)
+    n_conflict = sum(r["verdict"] == "conflict" for r in rows)
+    assert f"of the {n_any:,d} parcels with any conflict area ({n_conflict:,d} with the verdict conflict" in text
+    # capability classes flat to steep, then hazard zones (capability_legend.csv codes), columns in rulebook order
+    with open(out / "capability_legend.csv", newline="", encoding="utf-8") as f:
+        legend = {r["label"]: int(r["code"]) for r in csv.DictReader(f)}
+    t = path.read_text(encoding="utf-8")
+    table = t[t.index('id="capability-class-table"') :]
+    table = table[: table.index("</table>")]
+    shown = [_html_cell(c) for c in re.findall(r'<tr data-row="\d+"><td data-value="([^"]*)"', table)]
+    codes = [legend[s] for s in shown]
+    land = [c for c in codes if c != 0]
+    assert land == sorted(land) and (0 not in codes or codes[-1] == 0)
+    heads = re.findall(r'data-col="([^"]+)" aria-sort', table)[1:]
+    with open(out / "classes.csv", newline="", encoding="utf-8") as f:
+        order = [r["class_name"] for r in csv.DictReader(f)]
+    assert heads == [c for c in order if c in heads]
+
+
+def _html_cell(text: str) -> str:
+    import html as _html
+
+    return _html.unescape(text)

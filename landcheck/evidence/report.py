@@ -987,8 +987,8 @@ def build_report(
     else:
         parts.append("<p>No parcel has conflict area, so there are no close-ups.</p>")
     parts.append(
-        f'<p class="muted">Figure files (PNG and SVG) are in <code>{_e(figures_dir.name)}/</code> '
-        "next to this report.</p></section>"
+        f'<p class="muted">Figure files are in <code>{_e(figures_dir.name)}/</code> (overview and charts as PNG '
+        "and SVG, close-ups as PNG) next to this report.</p></section>"
     )
     parts.append(parcels_html)
     parts.append(manifest_html)
