@@ -44,6 +44,7 @@ from landcheck.evidence.style import (
     _check_breaks,
     _fmt_num,
     classify_slope,
+    count_text,
     slope_class_colours,
     slope_class_labels,
 )
@@ -1012,7 +1013,7 @@ def overview_map(
     _figure_frame(
         fig,
         title or "Slope classes and parcel verdicts",
-        f"landcheck screening map \u00b7 audit run {folder.run_date_text} \u00b7 {n} parcels",
+        f"landcheck screening map \u00b7 audit run {folder.run_date_text} \u00b7 {count_text(n, 'parcel')}",
         [_crs_note(data.slope.crs) + "; grid lines dashed.", _breaks_note(breaks)],
     )
     paths = _save(fig, _dest(folder, dest_dir), "overview", dpi, formats)

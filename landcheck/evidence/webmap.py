@@ -35,7 +35,7 @@ import numpy as np
 
 from landcheck.evidence.folder import AuditFolder
 from landcheck.evidence.maps import _ZONE_STYLE, VERDICTS, _composite, _crs, _MapData
-from landcheck.evidence.style import CONFIDENCE_TEXT, VERDICT_TEXT, slope_class_colours, slope_class_labels
+from landcheck.evidence.style import CONFIDENCE_TEXT, VERDICT_TEXT, count_text, slope_class_colours, slope_class_labels
 
 __all__ = ["LEAFLET_VERSION", "leaflet_assets", "webmap_section", "WEBMAP_CSS"]
 
@@ -541,7 +541,7 @@ def webmap_section(folder: AuditFolder, data: _MapData, breaks: np.ndarray, clas
         '<p id="webmap-status" role="status" aria-live="polite">Click a parcel for its figures and reasons, '
         "or click a row of the per-parcel table to find it here.</p>"
         + _legend_html(d)
-        + f'<p class="muted">{n:,d} parcels. Outlines are simplified for display (tolerance about one cell, '
+        + f'<p class="muted">{count_text(n, "parcel")}. Outlines are simplified for display (tolerance about one cell, '
         f"{escape(simplify)}); every figure in the pop-ups and tables comes from the unsimplified parcels. "
         f"Relief: {escape(d['relief_note'])}. Runs offline with Leaflet {LEAFLET_VERSION} "
         "(BSD 2-Clause licence, included in this page).</p></div>"
