@@ -285,7 +285,9 @@ def _window_for(ds, bounds):
 def _read_reduced(path: Path, bounds, max_px: int, kind: str) -> _Grid | None:
     """Read a window of band 1 reduced by an integer factor so neither side exceeds ``max_px``.
 
-    ``kind="mean"``: mean of valid cells per block (NaN when none).
+    ``kind="mean"``: mean of valid cells per block (NaN when none), by GDAL's average
+    resampling; on a COG it reads the nearest overview, so a display block may differ from the
+    exact block mean by a few slope points (display only: every figure comes from the tables).
     ``kind="bits"``: bitwise OR of the cells inside parcels (value != 255); 255 when none.
     """
     import rasterio
@@ -302,6 +304,20 @@ def _read_reduced(path: Path, bounds, max_px: int, kind: str) -> _Grid | None:
         h, w = int(win.height), int(win.width)
         f = max(1, math.ceil(max(h, w) / max_px))
         out_h, out_w = math.ceil(h / f), math.ceil(w / f)
+        tr = Affine(t.a * f, 0.0, t.c + t.a * win.col_off, 0.0, t.e * f, t.f + t.e * win.row_off)
+        left, top = tr.c, tr.f
+        right, bottom = left + out_w * tr.a, top + out_h * tr.e
+        if kind == "mean" and f > 1:
+            # block mean of the valid cells by GDAL (average resampling ignores nodata); it reads a
+            # COG's overviews when they match, so the overview map does not read every cell again
+            from rasterio.enums import Resampling
+
+            full = Window(win.col_off, win.row_off, out_w * f, out_h * f)
+            a = ds.read(
+                1, window=full, out_shape=(out_h, out_w), resampling=Resampling.average, masked=True, boundless=True
+            )
+            out = np.ma.filled(a.astype(np.float32), np.nan)
+            return _Grid(out, (left, right, bottom, top), tr, f, ds.crs)
         fill = 255 if kind == "bits" else np.nan
         out = np.empty((out_h, out_w), dtype=np.uint8 if kind == "bits" else np.float32)
         chunk = f * max(1, 4_000_000 // max(1, w * f))
@@ -328,9 +344,6 @@ def _read_reduced(path: Path, bounds, max_px: int, kind: str) -> _Grid | None:
                 tot = np.where(ok, blocks, 0.0).sum(axis=(1, 3))
                 red = np.where(cnt > 0, tot / np.maximum(cnt, 1), np.nan)
             out[r // f : r // f + nb] = red
-        tr = Affine(t.a * f, 0.0, t.c + t.a * win.col_off, 0.0, t.e * f, t.f + t.e * win.row_off)
-        left, top = tr.c, tr.f
-        right, bottom = left + out_w * tr.a, top + out_h * tr.e
         return _Grid(out, (left, right, bottom, top), tr, f, ds.crs)
 
 
