@@ -45,6 +45,7 @@ DEM in the same run, each in a fresh child process.  Data come from the benchmar
 the parcels inside it (written to the cache folder).
 
     python scripts/benchmark.py --sizes --hazards 2500 5000 --bench-dir /work/shared/bench
+    python scripts/benchmark.py --report-run --bench-data /tmp/bench-data  # default run vs --no-report
 """
 
 from __future__ import annotations
@@ -235,7 +236,29 @@ def main(argv=None) -> int:
         default=Path("/work/shared/bench"),
         help="folder with make_data.py, byhand_hazards.py and rules_hazards.toml",
     )
+    ap.add_argument(
+        "--report-run",
+        action="store_true",
+        help="time the default audit (COG rasters + report) beside --no-report on the shared bench data, "
+        "and the report's size and opening time in headless Chromium (see report_benchmark)",
+    )
+    ap.add_argument(
+        "--bench-data",
+        type=Path,
+        default=Path(os.environ.get("BENCH_DATA", "/tmp/bench-data")),
+        help="folder written by ../shared/bench/make_data.py (dem_10000.tif, parcels_100k_on10000.gpkg)",
+    )
+    ap.add_argument(
+        "--bench-rules",
+        type=Path,
+        default=Path(os.environ.get("BENCH_SHARED", "/work/shared/bench")) / "rules_slope.toml",
+    )
     args = ap.parse_args(argv)
+    if args.report_run:
+        rows = report_benchmark(args.bench_data, args.bench_rules, args.cache)
+        if args.json:
+            args.json.write_text(json.dumps(rows, indent=1))
+        return 0
     if not args.no_reference and shutil.which("gdaldem") is None:
         print(
             "gdaldem not found: install Debian's gdal-bin for the reference timings (or --no-reference)",
@@ -343,6 +366,99 @@ def main(argv=None) -> int:
     if args.json:
         args.json.write_text(json.dumps(rows, indent=1))
     return 0
+
+
+def report_open_seconds(report: Path, timeout_s: float = 300.0) -> float:
+    """Seconds from navigation to a usable interactive map in headless Chromium (offline, fresh profile).
+
+    "Usable" is the page script's own flag ``window.landcheckMapReady``, set after every
+    parcel layer is built and the map has fitted the audit area.
+    """
+    import time
+
+    from selenium import webdriver
+    from selenium.webdriver.chrome.service import Service
+
+    opts = webdriver.ChromeOptions()
+    opts.binary_location = "/usr/bin/chromium"
+    profile = tempfile.mkdtemp(prefix="lc-bench-chromium-")
+    for arg in (
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        "--no-first-run",
+        "--proxy-server=127.0.0.1:9",
+        "--window-size=1300,1000",
+        f"--user-data-dir={profile}",
+    ):
+        opts.add_argument(arg)
+    driver = webdriver.Chrome(service=Service(executable_path="/usr/bin/chromedriver"), options=opts)
+    try:
+        driver.set_page_load_timeout(timeout_s)
+        t = time.perf_counter()
+        driver.get(report.as_uri())
+        while not driver.execute_script("return window.landcheckMapReady === true"):
+            if time.perf_counter() - t > timeout_s:
+                raise RuntimeError(f"{report}: map not ready after {timeout_s:.0f} s")
+            time.sleep(0.05)
+        return time.perf_counter() - t
+    finally:
+        driver.quit()
+        shutil.rmtree(profile, ignore_errors=True)
+
+
+def report_benchmark(data: Path, rules: Path, cache: Path) -> list[dict]:
+    """Default run (COG rasters + report) beside the --no-report run, and the report in Chromium.
+
+    Inputs come from ``../shared/bench/make_data.py`` (10000 x 10000 DEM, 100 000 parcels,
+    slope rules only).  Prints wall time and peak RSS of both runs, the report's size and
+    its opening time, and the load average, since the machine may be shared.
+    """
+    dem, parcels = data / "dem_10000.tif", data / "parcels_100k_on10000.gpkg"
+    for p in (dem, parcels, rules):
+        if not p.exists():
+            raise SystemExit(f"{p}: not found; run `BENCH_DATA={data} python ../shared/bench/make_data.py` first")
+    cache.mkdir(parents=True, exist_ok=True)
+    work = Path(tempfile.mkdtemp(prefix="lc-report-bench-", dir=cache))
+    env = dict(os.environ, PYTHONPATH=str(REPO) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    lc_cmd = [sys.executable, "-m", "landcheck", "-q"]
+    rows = []
+    try:
+        base = [*lc_cmd, "audit", "--dem", str(dem), "--parcels", str(parcels), "--rulebook", str(rules)]
+        load0 = os.getloadavg()[0]
+        quick = measure([*base, "--out", str(work / "out_quick"), "--rasters", "gtiff", "--no-report"], env)
+        full = measure([*base, "--out", str(work / "out_full")], env)
+        load1 = os.getloadavg()[0]
+        report = work / "out_full" / "report.html"
+        open_s = report_open_seconds(report)
+        rows = [
+            dict(run="--rasters gtiff --no-report", wall_s=quick["wall_s"], peak_mib=quick["peak_mib"]),
+            dict(
+                run="default (COG rasters + report)",
+                wall_s=full["wall_s"],
+                peak_mib=full["peak_mib"],
+                report_mb=report.stat().st_size / 1e6,
+                open_s=open_s,
+            ),
+        ]
+        print(f"report benchmark: {dem.name}, {parcels.name}, {rules.name}; load average {load0:.1f} -> {load1:.1f}")
+        print(f"{'run':34s} {'wall s':>8s} {'peak MiB':>9s} {'report MB':>10s} {'open s':>7s}")
+        for r in rows:
+            print(
+                f"{r['run']:34s} {r['wall_s']:8.1f} {r['peak_mib']:9.0f} "
+                f"{r.get('report_mb', float('nan')):10.1f} {r.get('open_s', float('nan')):7.1f}"
+            )
+        extra = full["wall_s"] - quick["wall_s"]
+        print(
+            f"report and COG steps: {extra:.1f} s beyond the --no-report run "
+            f"({full['wall_s'] / quick['wall_s']:.1f}x); open s = navigation to a usable map in headless Chromium."
+        )
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+    return rows
 
 
 def _audit_cmd(lc_cmd, dem, parcels, rules, work: Path, rasters: str) -> list[str]:

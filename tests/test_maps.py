@@ -72,7 +72,7 @@ def test_overview_files_size_and_legend(audit, tmp_path):
     # the fixture writes one polygon zone and one water line under zones/
     zones = {e.key: e.label for e in files.legend_entries if e.group == "zone"}
     assert set(zones) == {"flood_prone", "tamsel_river"}
-    assert zones["tamsel_river"].startswith("water feature")
+    assert zones["tamsel_river"].startswith("water: ")
     # conflict.tif holds cells with bit 0 (slope) and with bit 1 (zone), never both in one cell
     assert {e.key for e in files.legend_entries if e.group == "conflict"} == {"slope", "zone"}
     relief = [e.label for e in files.legend_entries if e.group == "relief" and e.key == "relief"]

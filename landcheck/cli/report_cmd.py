@@ -42,13 +42,20 @@ Examples:
     show_default=True,
     help="Close-up maps of the largest conflicts.",
 )
+@click.option(
+    "--page-size",
+    type=click.Choice(["A4", "Letter"], case_sensitive=False),
+    default="A4",
+    show_default=True,
+    help="Printed sheet of report.html (wide tables print on landscape sheets).",
+)
 @click.pass_context
 @handle_errors
-def command(ctx, out_dir, report_path, dpi, max_closeups):
+def command(ctx, out_dir, report_path, dpi, max_closeups, page_size):
     from landcheck.evidence.report import build_report
 
     d = Path(out_dir)
     if not (d / "summary.json").exists():
         raise InputDataError(f"{d}: not an audit output folder (no summary.json); run `landcheck audit` first.")
-    path = build_report(d, report_path=report_path, dpi=dpi, max_closeups=max_closeups)
+    path = build_report(d, report_path=report_path, dpi=dpi, max_closeups=max_closeups, page_size=page_size)
     click.echo(str(path))

@@ -19,21 +19,35 @@ and conflict cells are hatched rather than coloured.
 from __future__ import annotations
 
 import io
-import json
 import logging
 import math
 import re
 import textwrap
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
-from functools import cached_property
 from pathlib import Path
 
 import numpy as np
 
 from landcheck.about import CAUTION
 from landcheck.errors import InputDataError
+from landcheck.evidence.folder import (
+    AuditFolder,
+    _isnan,
+    _parse_float,
+    load_audit_folder,
+)
+from landcheck.evidence.hillshade import SUN_ALTITUDE_DEG, hillshade
+from landcheck.evidence.style import (
+    DEFAULT_SLOPE_BREAKS_PCT,
+    VERDICT_TEXT,
+    _check_breaks,
+    _fmt_num,
+    classify_slope,
+    count_text,
+    slope_class_colours,
+    slope_class_labels,
+)
 from landcheck.outputs.writers import write_bytes
 from landcheck.verdicts.labels import VERDICT_COLOURS, VERDICT_LABELS, VERDICT_LINES, VERDICTS
 
@@ -61,10 +75,6 @@ __all__ = [
 
 logger = logging.getLogger(__name__)
 
-#: slope-class breaks in percent, land-use planning classes (docs/report.md):
-#: 0-3 level, 3-8 gently sloping, 8-18 undulating to rolling, 18-30 rolling to
-#: moderately steep, 30-50 steep, 50 and over very steep.
-DEFAULT_SLOPE_BREAKS_PCT: tuple[float, ...] = (0.0, 3.0, 8.0, 18.0, 30.0, 50.0, math.inf)
 
 # verdict vocabulary: landcheck.verdicts.labels
 _VERDICT_TEXT = VERDICT_LABELS
@@ -88,12 +98,15 @@ _NODATA_GREY = np.array([0.86, 0.86, 0.86])
 _PNG_METADATA = {"Software": None}
 #: permission bits of written figures (mkstemp creates 0600; common practice for shared outputs is 0644)
 _WATER_COLOUR = "#1f5fa0"
+#: above this many parcels in view, outlines are burnt into one image at the map's pixel size
+#: (a 100 000-parcel SVG of paths would be ~50 MB and take tens of seconds to draw)
+_MANY_PARCELS = 3000
+#: above this many conflict display cells, conflict cells are tinted, not hatched polygons
+_MANY_CONFLICT_CELLS = 40_000
+_CONFLICT_TINT = {1: (0.09, 0.09, 0.09, 0.5), 2: (0.42, 0.0, 0.36, 0.5), 3: (0.0, 0.0, 0.0, 0.78)}
 _LEGEND_WRAP_CHARS = 34
 _SVG_METADATA = {"Date": None}
 _RC = {"svg.hashsalt": "landcheck", "font.size": 9.0, "hatch.linewidth": 0.8, "axes.titlesize": 10.0}
-#: sun position for relief shading: azimuth clockwise from north, altitude above horizon (degrees)
-SUN_AZIMUTH_DEG = 315.0
-SUN_ALTITUDE_DEG = 45.0
 
 
 # --------------------------------------------------------------------------- results
@@ -155,139 +168,6 @@ class ScaleBar:
 
 
 # --------------------------------------------------------------------------- pure helpers
-
-
-def hillshade(
-    elev: np.ndarray,
-    dx_m: float,
-    dy_m: float,
-    *,
-    azimuth_deg: float = SUN_AZIMUTH_DEG,
-    altitude_deg: float = SUN_ALTITUDE_DEG,
-    north_up: bool = True,
-) -> np.ndarray:
-    """Lambertian illumination of a gridded surface (relief shading).
-
-    The surface normal is (-p, -q, 1)/sqrt(1 + p^2 + q^2) with p = dz/dx (east)
-    and q = dz/dy (north) from central differences; the sun vector is
-    (sin A cos h, cos A cos h, sin h).  Their dot product, clipped at 0, is the
-    brightness (Horn 1981, "Hill shading and the reflectance map").
-
-    Parameters
-    ----------
-    elev : ndarray, 2-D
-        Elevations; NaN gives NaN.  Same linear unit as ``dx_m`` and ``dy_m``.
-    dx_m, dy_m : float
-        Cell width and height (m), positive.
-    azimuth_deg, altitude_deg : float
-        Sun direction, clockwise from north, and height above the horizon (degrees).
-    north_up : bool
-        True when row 0 is the northern edge (the usual GeoTIFF layout).
-
-    Returns
-    -------
-    ndarray, float32
-        Brightness 0-1; flat ground gives sin(altitude).
-    """
-    z = np.asarray(elev, dtype=np.float64)
-    alt, az = math.radians(altitude_deg), math.radians(azimuth_deg)
-    if z.ndim != 2 or min(z.shape) < 2:
-        return np.where(np.isnan(z), np.nan, math.sin(alt)).astype(np.float32)
-    d_row, d_col = np.gradient(z)
-    p = d_col / dx_m
-    q = (-d_row if north_up else d_row) / dy_m
-    num = math.sin(alt) - math.cos(alt) * (p * math.sin(az) + q * math.cos(az))
-    return np.clip(num / np.sqrt(1.0 + p * p + q * q), 0.0, 1.0).astype(np.float32)
-
-
-def _check_breaks(breaks_pct: Sequence[float]) -> np.ndarray:
-    b = np.asarray([float(v) for v in breaks_pct], dtype=np.float64)
-    if b.ndim != 1 or b.size < 2 or np.any(np.isnan(b)) or np.any(np.diff(b) <= 0) or b[0] < 0:
-        raise ValueError(
-            f"slope_breaks_pct: got {list(breaks_pct)}; expected at least two strictly increasing "
-            "percent values starting at 0 or more, e.g. [0, 3, 8, 18, 30, 50, inf]"
-        )
-    return b
-
-
-def classify_slope(slope_pct: np.ndarray, breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT) -> np.ndarray:
-    """Slope class index per cell: class i holds breaks[i] <= slope < breaks[i+1].
-
-    Parameters
-    ----------
-    slope_pct : ndarray
-        Slope in percent; NaN for no slope.
-    breaks_pct : sequence of float
-        Strictly increasing class breaks (%); the last may be ``inf``.
-
-    Returns
-    -------
-    ndarray, int16
-        Class index, -1 for NaN or values outside the breaks.
-    """
-    b = _check_breaks(breaks_pct)
-    s = np.asarray(slope_pct, dtype=np.float64)
-    idx = np.searchsorted(b, s, side="right") - 1
-    bad = np.isnan(s) | (s < b[0]) | (s >= b[-1]) | (idx >= b.size - 1)
-    return np.where(bad, -1, idx).astype(np.int16)
-
-
-def _fmt_num(v: float) -> str:
-    return f"{v:g}"
-
-
-def slope_class_labels(breaks_pct: Sequence[float] = DEFAULT_SLOPE_BREAKS_PCT) -> list[str]:
-    """Legend text per slope class, e.g. ``"3 to under 8 %"`` and ``"50 % and over"``."""
-    b = _check_breaks(breaks_pct)
-    out = []
-    for lo, hi in zip(b[:-1], b[1:]):
-        out.append(f"{_fmt_num(lo)} % and over" if math.isinf(hi) else f"{_fmt_num(lo)} to under {_fmt_num(hi)} %")
-    return out
-
-
-# Anchor colours in CIELAB (L*, a*, b*), pale straw to dark plum; L* falls
-# strictly, so the ramp reads in greyscale and for every colour-vision type.
-_SLOPE_RAMP_LAB = np.array(
-    [
-        [96.0, -5.0, 28.0],
-        [84.0, 4.0, 52.0],
-        [70.0, 22.0, 55.0],
-        [56.0, 38.0, 38.0],
-        [42.0, 40.0, 8.0],
-        [27.0, 24.0, -18.0],
-    ]
-)
-_D65_WHITE = (0.95047, 1.0, 1.08883)
-
-
-def _lab_to_srgb(lab: np.ndarray) -> np.ndarray:
-    """CIELAB (D65) to gamma-encoded sRGB 0-1 (CIE 1976 L*a*b*; IEC 61966-2-1), clipped to gamut."""
-    lab = np.asarray(lab, dtype=np.float64)
-    fy = (lab[..., 0] + 16.0) / 116.0
-    fx = fy + lab[..., 1] / 500.0
-    fz = fy - lab[..., 2] / 200.0
-    delta = 6.0 / 29.0
-
-    def finv(t):
-        return np.where(t > delta, t**3, 3.0 * delta**2 * (t - 4.0 / 29.0))
-
-    xyz = np.stack([finv(fx) * _D65_WHITE[0], finv(fy) * _D65_WHITE[1], finv(fz) * _D65_WHITE[2]], axis=-1)
-    m = np.array([[3.2406, -1.5372, -0.4986], [-0.9689, 1.8758, 0.0415], [0.0557, -0.2040, 1.0570]])
-    lin = np.clip(xyz @ m.T, 0.0, 1.0)
-    return np.where(lin <= 0.0031308, 12.92 * lin, 1.055 * lin ** (1.0 / 2.4) - 0.055)
-
-
-def slope_class_colours(n_classes: int) -> list[str]:
-    """``n_classes`` hex colours from light (gentle) to dark (steep), evenly spaced along the ramp."""
-    if n_classes < 1:
-        raise ValueError(f"n_classes: got {n_classes}; expected 1 or more")
-    t = np.linspace(0.0, 1.0, n_classes) if n_classes > 1 else np.array([0.0])
-    pos = t * (len(_SLOPE_RAMP_LAB) - 1)
-    i0 = np.minimum(np.floor(pos).astype(int), len(_SLOPE_RAMP_LAB) - 2)
-    frac = (pos - i0)[:, None]
-    lab = _SLOPE_RAMP_LAB[i0] * (1 - frac) + _SLOPE_RAMP_LAB[i0 + 1] * frac
-    rgb = _lab_to_srgb(lab)
-    return ["#" + "".join(f"{int(round(c * 255)):02x}" for c in row) for row in rgb]
 
 
 def _nice_length(max_len: float) -> float:
@@ -367,180 +247,6 @@ def true_north_angle_deg(x: float, y: float, crs) -> float:
 # --------------------------------------------------------------------------- reading the folder
 
 
-def _read_json(path: Path) -> dict:
-    try:
-        with open(path, encoding="utf-8") as f:
-            return json.load(f)
-    except json.JSONDecodeError as exc:
-        raise InputDataError(
-            f"{path}: not valid JSON at line {exc.lineno}, column {exc.colno} ({exc.msg}); "
-            "rerun `landcheck audit` to write it again."
-        ) from exc
-
-
-_PARCEL_TEXT_COLUMNS = ("parcel_id", "class_value", "class_name", "verdict", "reasons", "geometry_note")
-_PARCEL_REQUIRED = ("parcel_id", "class_name", "area_m2", "evaluated_m2", "conflict_m2", "conflict_share", "verdict")
-_CLASS_REQUIRED = ("class_name", "evaluated_m2", "conflict_m2", "conflict_share", "over_limit_m2")
-
-
-def _read_csv(path: Path, required: Sequence[str], text_columns: Sequence[str]):
-    import pandas as pd
-
-    try:
-        df = pd.read_csv(path, dtype={c: str for c in text_columns}, keep_default_na=False, na_values=[""])
-    except (OSError, ValueError) as exc:
-        raise InputDataError(f"{path}: cannot be read as CSV ({exc}); rerun `landcheck audit`.") from exc
-    missing = [c for c in required if c not in df.columns]
-    if missing:
-        raise InputDataError(
-            f"{path}: missing column(s) {', '.join(missing)}; expected the columns listed in "
-            "docs/outputs.md. Was it written by an older or newer landcheck?"
-        )
-    for c in text_columns:
-        if c in df.columns:
-            df[c] = df[c].fillna("").astype(str)
-    return df
-
-
-def _parse_float(v) -> float:
-    if v is None:
-        return math.inf
-    if isinstance(v, str):
-        t = v.strip().lower()
-        return math.inf if t in ("inf", "+inf", "infinity", "") else float(t)
-    return float(v)
-
-
-@dataclass
-class AuditFolder:
-    """A validated audit output folder (docs/outputs.md); loads layers on first use."""
-
-    out_dir: Path
-    summary: dict
-
-    def path(self, name: str) -> Path:
-        return self.out_dir / name
-
-    def require(self, name: str) -> Path:
-        p = self.out_dir / name
-        if not p.exists():
-            raise InputDataError(
-                f"{p}: not found; expected the output folder of `landcheck audit` "
-                "(docs/outputs.md). Rerun the audit or point to the right folder."
-            )
-        return p
-
-    def section(self, *keys: str, default=None):
-        """``summary[k1][k2]...``, or ``default`` when any key is missing."""
-        node = self.summary
-        for k in keys:
-            if not isinstance(node, dict) or k not in node:
-                return default
-            node = node[k]
-        return node
-
-    @cached_property
-    def parcels(self):
-        """parcels.csv as a DataFrame (text columns as str, empty numbers as NaN)."""
-        return _read_csv(self.require("parcels.csv"), _PARCEL_REQUIRED, _PARCEL_TEXT_COLUMNS)
-
-    @cached_property
-    def classes(self):
-        """classes.csv as a DataFrame."""
-        return _read_csv(self.require("classes.csv"), _CLASS_REQUIRED, ("class_name", "label", "development"))
-
-    @cached_property
-    def parcels_gdf(self):
-        import geopandas as gpd
-
-        p = self.require("parcels.gpkg")
-        try:
-            gdf = gpd.read_file(p, layer="parcels")
-        except Exception as exc:  # pyogrio raises several unrelated classes; re-raise as ours
-            raise InputDataError(f"{p}, layer 'parcels': cannot be read ({exc}); rerun `landcheck audit`.") from exc
-        if "verdict" not in gdf.columns or "parcel_id" not in gdf.columns:
-            raise InputDataError(f"{p}, layer 'parcels': needs columns parcel_id and verdict (docs/outputs.md).")
-        gdf["parcel_id"] = gdf["parcel_id"].astype(str)
-        gdf["verdict"] = gdf["verdict"].fillna("").astype(str)
-        return gdf
-
-    @cached_property
-    def zone_layers(self) -> list[tuple[str, object]]:
-        """(name, GeoDataFrame) for every ``zones/*.gpkg``, sorted by name."""
-        import geopandas as gpd
-
-        zdir = self.out_dir / "zones"
-        out = []
-        if zdir.is_dir():
-            for p in sorted(zdir.glob("*.gpkg")):
-                try:
-                    out.append((p.stem, gpd.read_file(p)))
-                except Exception as exc:  # pyogrio raises several unrelated classes; re-raise as ours
-                    raise InputDataError(f"{p}: cannot be read ({exc}); rerun `landcheck audit`.") from exc
-        return out
-
-    @property
-    def run_started(self) -> datetime | None:
-        text = self.section("manifest", "started_utc")
-        if not text:
-            return None
-        try:
-            dt = datetime.fromisoformat(str(text).replace("Z", "+00:00"))
-        except ValueError:
-            return None
-        return dt.astimezone(timezone.utc) if dt.tzinfo else dt.replace(tzinfo=timezone.utc)
-
-    @property
-    def run_date_text(self) -> str:
-        dt = self.run_started
-        return dt.strftime("%Y-%m-%d %H:%M UTC") if dt else "(time: run_times.json)"
-
-    @property
-    def dem_path(self) -> Path | None:
-        """The DEM named in the manifest (role "dem"), if recorded; may not exist on this machine."""
-        for item in self.section("manifest", "inputs", default=[]) or []:
-            if isinstance(item, dict) and item.get("role") == "dem" and item.get("path"):
-                return Path(item["path"])
-        return None
-
-    @cached_property
-    def class_limits_pct(self) -> dict[str, float]:
-        """Slope limit (%) per class, from parcels.csv ``max_slope_pct``; NaN when the class has none."""
-        limits: dict[str, float] = {}
-        df = self.parcels
-        if "max_slope_pct" in df.columns:
-            for name, val in zip(df["class_name"], df["max_slope_pct"]):
-                v = math.nan if _isnan(val) else float(val)
-                if name not in limits or (math.isnan(limits[name]) and not math.isnan(v)):
-                    limits[name] = v
-        return limits
-
-
-def load_audit_folder(out_dir) -> AuditFolder:
-    """Open an audit output folder and read ``summary.json``.
-
-    Raises
-    ------
-    InputDataError
-        The folder or summary.json is missing or unreadable.
-    """
-    if isinstance(out_dir, AuditFolder):
-        return out_dir
-    out_dir = Path(out_dir)
-    if not out_dir.is_dir():
-        raise InputDataError(f"{out_dir}: not a folder; expected the output folder of `landcheck audit`.")
-    p = out_dir / "summary.json"
-    if not p.exists():
-        raise InputDataError(
-            f"{p}: not found; expected the output folder of `landcheck audit` "
-            "(docs/outputs.md). Rerun the audit or point to the right folder."
-        )
-    summary = _read_json(p)
-    if not isinstance(summary, dict):
-        raise InputDataError(f"{p}: expected a JSON object at the top level (docs/outputs.md).")
-    return AuditFolder(out_dir, summary)
-
-
 # --------------------------------------------------------------------------- raster reading
 
 
@@ -571,7 +277,9 @@ def _window_for(ds, bounds):
 def _read_reduced(path: Path, bounds, max_px: int, kind: str) -> _Grid | None:
     """Read a window of band 1 reduced by an integer factor so neither side exceeds ``max_px``.
 
-    ``kind="mean"``: mean of valid cells per block (NaN when none).
+    ``kind="mean"``: mean of valid cells per block (NaN when none), by GDAL's average
+    resampling; on a COG it reads the nearest overview, so a display block may differ from the
+    exact block mean by a few slope points (display only: every figure comes from the tables).
     ``kind="bits"``: bitwise OR of the cells inside parcels (value != 255); 255 when none.
     """
     import rasterio
@@ -588,6 +296,20 @@ def _read_reduced(path: Path, bounds, max_px: int, kind: str) -> _Grid | None:
         h, w = int(win.height), int(win.width)
         f = max(1, math.ceil(max(h, w) / max_px))
         out_h, out_w = math.ceil(h / f), math.ceil(w / f)
+        tr = Affine(t.a * f, 0.0, t.c + t.a * win.col_off, 0.0, t.e * f, t.f + t.e * win.row_off)
+        left, top = tr.c, tr.f
+        right, bottom = left + out_w * tr.a, top + out_h * tr.e
+        if kind == "mean" and f > 1:
+            # block mean of the valid cells by GDAL (average resampling ignores nodata); it reads a
+            # COG's overviews when they match, so the overview map does not read every cell again
+            from rasterio.enums import Resampling
+
+            full = Window(win.col_off, win.row_off, out_w * f, out_h * f)
+            a = ds.read(
+                1, window=full, out_shape=(out_h, out_w), resampling=Resampling.average, masked=True, boundless=True
+            )
+            out = np.ma.filled(a.astype(np.float32), np.nan)
+            return _Grid(out, (left, right, bottom, top), tr, f, ds.crs)
         fill = 255 if kind == "bits" else np.nan
         out = np.empty((out_h, out_w), dtype=np.uint8 if kind == "bits" else np.float32)
         chunk = f * max(1, 4_000_000 // max(1, w * f))
@@ -614,9 +336,6 @@ def _read_reduced(path: Path, bounds, max_px: int, kind: str) -> _Grid | None:
                 tot = np.where(ok, blocks, 0.0).sum(axis=(1, 3))
                 red = np.where(cnt > 0, tot / np.maximum(cnt, 1), np.nan)
             out[r // f : r // f + nb] = red
-        tr = Affine(t.a * f, 0.0, t.c + t.a * win.col_off, 0.0, t.e * f, t.f + t.e * win.row_off)
-        left, top = tr.c, tr.f
-        right, bottom = left + out_w * tr.a, top + out_h * tr.e
         return _Grid(out, (left, right, bottom, top), tr, f, ds.crs)
 
 
@@ -684,17 +403,33 @@ def _read_relief(folder: AuditFolder, slope: _Grid) -> tuple[np.ndarray, str]:
 
 
 def _composite(slope_pct: np.ndarray, shade: np.ndarray, breaks: np.ndarray, colours: list[str]) -> np.ndarray:
-    """Slope-class colours modulated by relief; flat ground shows the exact legend colour."""
+    """Slope-class colours modulated by relief, as 8-bit RGBA; flat ground shows the exact legend colour.
+
+    8-bit (not float) so matplotlib and the PNG encoder work on a quarter of the memory.
+    """
     from matplotlib.colors import to_rgb
 
     idx = classify_slope(slope_pct, breaks)
-    pal = np.array([to_rgb(c) for c in colours])
-    rgb = np.where((idx >= 0)[..., None], pal[np.clip(idx, 0, None)], _NODATA_GREY)
+    pal = np.array([to_rgb(c) for c in colours] + [tuple(_NODATA_GREY)], dtype=np.float32)
+    rgb = pal[np.where(idx >= 0, idx, len(colours))]
     flat = math.sin(math.radians(SUN_ALTITUDE_DEG))
-    k = np.where(np.isnan(shade), 1.0, np.clip(0.62 + 0.38 * shade / flat, 0.0, 1.3))
-    rgb = np.clip(rgb * k[..., None], 0.0, 1.0)
-    alpha = ~(np.isnan(slope_pct) & np.isnan(shade))
-    return np.dstack([rgb, alpha.astype(np.float64)])
+    shade = np.asarray(shade, dtype=np.float32)
+    k = np.where(np.isnan(shade), np.float32(1.0), np.clip(0.62 + 0.38 * shade / flat, 0.0, 1.3)).astype(np.float32)
+    rgb *= k[..., None]
+    out = np.empty((*idx.shape, 4), dtype=np.uint8)
+    out[..., :3] = np.round(np.clip(rgb, 0.0, 1.0) * 255.0)
+    out[..., 3] = np.where(np.isnan(slope_pct) & np.isnan(shade), 0, 255)
+    return out
+
+
+def _conflict_kinds(bits: _Grid, n_zone_bits: int) -> np.ndarray:
+    """Conflict kind per display cell: 0 none, 1 slope, 2 zone, 3 both."""
+    b = bits.data
+    inside = b != 255
+    slope_hit = inside & ((b & 1) > 0)
+    zone_mask = (((1 << (1 + n_zone_bits)) - 1) & ~1) if n_zone_bits else 0
+    zone_hit = inside & ((b & zone_mask) > 0)
+    return (slope_hit.astype(np.uint8) + 2 * zone_hit.astype(np.uint8)).astype(np.uint8)
 
 
 def _conflict_shapes(bits: _Grid, n_zone_bits: int) -> list[tuple[object, int]]:
@@ -702,12 +437,7 @@ def _conflict_shapes(bits: _Grid, n_zone_bits: int) -> list[tuple[object, int]]:
     import rasterio.features
     from shapely.geometry import shape
 
-    b = bits.data
-    inside = b != 255
-    slope_hit = inside & ((b & 1) > 0)
-    zone_mask = (((1 << (1 + n_zone_bits)) - 1) & ~1) if n_zone_bits else 0
-    zone_hit = inside & ((b & zone_mask) > 0)
-    kind = (slope_hit.astype(np.uint8) + 2 * zone_hit.astype(np.uint8)).astype(np.uint8)
+    kind = _conflict_kinds(bits, n_zone_bits)
     if not kind.any():
         return []
     return [(shape(g), int(v)) for g, v in rasterio.features.shapes(kind, mask=kind > 0, transform=bits.transform)]
@@ -750,8 +480,26 @@ def _polygon_paths(geoms) -> list:
 
 def _line_segments(geoms) -> list[np.ndarray]:
     """Vertex arrays of line parts and of polygon rings (for outlines)."""
+    import shapely
+
+    arr = np.asarray([g for g in geoms if g is not None], dtype=object)
+    if arr.size == 0:
+        return []
+    arr = arr[~shapely.is_empty(arr)]
+    kind = shapely.get_type_id(arr)
+    # polygons -> their rings, lines as they are: vectorized in GEOS (1 LineString, 2 LinearRing,
+    # 3 Polygon, 5 MultiLineString, 6 MultiPolygon); collections go the slow way below
+    lines = np.concatenate(
+        [
+            shapely.get_parts(shapely.boundary(arr[np.isin(kind, (3, 6))])),
+            shapely.get_parts(arr[np.isin(kind, (1, 2, 5))]),
+        ]
+    )
     segs = []
-    for g in _simple_parts(geoms):
+    if lines.size:
+        xy, idx = shapely.get_coordinates(lines, return_index=True)
+        segs = np.split(xy, np.flatnonzero(np.diff(idx)) + 1)
+    for g in _simple_parts(arr[kind == 7]):
         if g.geom_type == "Polygon":
             segs += [np.asarray(r.coords, dtype=np.float64)[:, :2] for r in (g.exterior, *g.interiors)]
         elif g.geom_type in ("LineString", "LinearRing"):
@@ -814,10 +562,15 @@ def _legend_column(fig, lax, groups) -> None:
     """Stack one titled legend per group, top to bottom, in the axes ``lax``."""
     renderer = fig.canvas.get_renderer()
     y = 1.0
+    # wrap to the legend column's width: 7.5 pt text averages about 0.55 em a character,
+    # less the handle (2.6 em) and padding
+    width_pt = lax.get_position().width * fig.get_figwidth() * 72.0
+    wrap = max(12, min(_LEGEND_WRAP_CHARS, int(width_pt / (7.5 * 0.55)) - 8))
     for title, handles, labels in groups:
         if not handles:
             continue
-        labels = [textwrap.fill(lab, _LEGEND_WRAP_CHARS, subsequent_indent="  ") for lab in labels]
+        labels = [textwrap.fill(lab, wrap, subsequent_indent="  ") for lab in labels]
+        title = textwrap.fill(title, wrap + 4)
         leg = lax.legend(
             handles,
             labels,
@@ -906,7 +659,7 @@ def _crs_note(crs) -> str:
 
 
 def _format_axes(ax, crs, extent) -> None:
-    from matplotlib.ticker import FuncFormatter, MaxNLocator
+    from matplotlib.ticker import FixedLocator, FuncFormatter, MaxNLocator
 
     crs = _crs(crs)
     x0, x1 = sorted(extent[:2])
@@ -925,10 +678,24 @@ def _format_axes(ax, crs, extent) -> None:
         unit = crs.axis_info[0].unit_name if crs.axis_info else ""
         ax.set_xlabel(f"{names[0]} ({unit})")
         ax.set_ylabel(f"{names[1] if len(names) > 1 else 'y'} ({unit})")
-    ax.xaxis.set_major_locator(MaxNLocator(5))
-    ax.yaxis.set_major_locator(MaxNLocator(5, prune="lower"))
-    for axis in (ax.xaxis, ax.yaxis):
-        axis.set_major_formatter(fmt)
+    # ticks only away from the corners (8 % of the span), so the lowest x and y labels never
+    # meet; on geographic maps as few decimals as the tick step needs
+    for axis, lo, hi, n in ((ax.xaxis, x0, x1, 4 if crs.is_geographic else 5), (ax.yaxis, y0, y1, 5)):
+        ticks = MaxNLocator(n).tick_values(lo, hi)
+        margin = 0.08 * (hi - lo)
+        ticks = [t for t in ticks if lo + margin <= t <= hi - margin]
+        axis.set_major_locator(FixedLocator(ticks))
+        if crs.is_geographic and len(ticks) > 1:
+            step = min(b - a for a, b in zip(ticks[:-1], ticks[1:]))
+            dec = max(
+                0,
+                min(
+                    6, -math.floor(math.log10(step)) + (0 if step / 10 ** math.floor(math.log10(step)) % 1 == 0 else 1)
+                ),
+            )
+            axis.set_major_formatter(FuncFormatter(lambda v, _, d=dec: f"{v:.{d}f}\u00b0"))
+        else:
+            axis.set_major_formatter(fmt)
     ax.tick_params(labelsize=7)
     for lab in ax.get_yticklabels():
         lab.set_rotation(90)
@@ -943,6 +710,11 @@ class _MapData:
     bits: _Grid | None
     relief: np.ndarray
     relief_note: str
+
+
+def load_map_data(folder: AuditFolder, bounds=None, max_px: int = 1600) -> _MapData:
+    """Slope, conflict bits and relief of ``bounds`` (default the whole raster), reduced to ``max_px``."""
+    return _load_map_data(folder, bounds, max_px)
 
 
 def _load_map_data(folder: AuditFolder, bounds, max_px: int) -> _MapData:
@@ -961,7 +733,7 @@ def _grid_bounds(g: _Grid) -> tuple[float, float, float, float]:
     return min(left, right), min(bottom, top), max(left, right), max(bottom, top)
 
 
-def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str | None = None):
+def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str | None = None):  # noqa: C901
     """Draw the map layers into a new axes; return (axes, legend groups, legend entries)."""
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
@@ -1007,31 +779,43 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
             continue
         colour, hatch = _ZONE_STYLE[i % len(_ZONE_STYLE)]
         kinds = set(gdf.geom_type.str.replace("Multi", ""))
-        pretty = name.replace("_", " ")
+        pretty = folder.zone_label(name)
         poly = gdf[gdf.geom_type.isin(["Polygon", "MultiPolygon"])]
         if not poly.empty:
             _add_polygons(
                 ax, poly.geometry, facecolors="none", edgecolors=colour, hatch=hatch, linewidths=1.0, zorder=3
             )
             zh.append(Patch(facecolor="none", edgecolor=colour, hatch=hatch, lw=1.0))
-            zl.append(f"hazard zone: {pretty}")
+            zl.append(pretty)
             entries.append(LegendEntry("zone", name, zl[-1]))
         lines = gdf[gdf.geom_type.isin(["LineString", "MultiLineString"])]
         if not lines.empty:
             _add_lines(ax, lines.geometry, colors=_WATER_COLOUR, linewidths=1.8, zorder=3)
             zh.append(Line2D([0], [0], color=_WATER_COLOUR, lw=1.8))
-            zl.append(f"water feature: {pretty}")
+            zl.append(f"water: {pretty}")
             entries.append(LegendEntry("zone", name, zl[-1]))
         if "Point" in kinds:
             pts = [g for g in _simple_parts(gdf.geometry) if g.geom_type == "Point"]
             ax.plot([g.x for g in pts], [g.y for g in pts], "o", color=colour, ms=3, zorder=3)
-    groups.append(("Zones and water", zh, zl))
+    groups.append(("Hazard zones and water", zh, zl))
 
     # conflict cells, hatched
     ch, cl = [], []
     if data.bits is not None:
         n_zone_bits = max(0, len(folder.section("conflict_raster_bits", default=["slope"]) or ["slope"]) - 1)
-        shapes = _conflict_shapes(data.bits, n_zone_bits)
+        kinds = _conflict_kinds(data.bits, n_zone_bits)
+        many_cells = int((kinds > 0).sum()) > _MANY_CONFLICT_CELLS
+        shapes = [] if many_cells else _conflict_shapes(data.bits, n_zone_bits)
+        if many_cells:
+            # tens of thousands of hatched polygons take matplotlib minutes: tint the cells instead
+            rgba = np.zeros((*kinds.shape, 4))
+            for kind, colour in _CONFLICT_TINT.items():
+                rgba[kinds == kind] = colour
+                if (kinds == kind).any():
+                    ch.append(Patch(facecolor=colour, edgecolor="#161616", lw=0.4))
+                    cl.append(_CONFLICT_TEXT[kind])
+                    entries.append(LegendEntry("conflict", {1: "slope", 2: "zone", 3: "slope+zone"}[kind], cl[-1]))
+            ax.imshow(rgba, extent=data.bits.extent, origin="upper", interpolation="nearest", zorder=4)
         for kind in (1, 2, 3):
             sub = [g for g, k in shapes if k == kind]
             if not sub:
@@ -1044,6 +828,7 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
                 hatch=_CONFLICT_HATCH[kind],
                 linewidths=0.4,
                 zorder=4,
+                rasterized=len(sub) > _MANY_PARCELS,
             )
             ch.append(Patch(facecolor=(1, 1, 1, 0.28), edgecolor="#161616", hatch=_CONFLICT_HATCH[kind], lw=0.4))
             cl.append(_CONFLICT_TEXT[kind])
@@ -1061,26 +846,42 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
     vh, vl = [], []
     present = [v for v in VERDICTS if (gdf["verdict"] == v).any()]
     present += sorted(set(gdf["verdict"]) - set(VERDICTS) - {""})
-    for v in reversed(present):  # conflict drawn last, on top
-        colour, lw, ls = _VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))
-        sub = gdf[gdf["verdict"] == v]
-        _add_lines(
-            ax, sub.geometry, colors=colour, linewidths=lw, linestyles=[ls], zorder=5, path_effects=_halo(lw + 2.2)
-        )
+    many = len(gdf) > _MANY_PARCELS
+    geoms = gdf.geometry.values
+    verdicts = gdf["verdict"].to_numpy()
+    if many:
+        _burn_outlines(fig, ax, rect, geoms, verdicts, present, view)
+    else:
+        for v in reversed(present):  # conflict drawn last, on top
+            colour, lw, ls = _VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))
+            _add_lines(
+                ax,
+                geoms[verdicts == v],
+                colors=colour,
+                linewidths=lw,
+                linestyles=[ls],
+                zorder=5,
+                path_effects=_halo(lw + 2.2),
+            )
     for v in present:
         colour, lw, ls = _VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))
         n = int((gdf["verdict"] == v).sum())
         vh.append(Line2D([0], [0], color=colour, lw=lw, linestyle=ls, path_effects=_halo(lw + 2.2)))
-        vl.append(f"{_VERDICT_TEXT.get(v, v)} ({n})")
+        vl.append(f"{VERDICT_TEXT.get(v, v)} ({n})")
         entries.append(LegendEntry("verdict", v, vl[-1]))
     groups.insert(0, ("Parcel verdict (parcels shown)", vh, vl))
 
     in_view = gdf
     if 0 < len(in_view) <= 60 or focus_id is not None:
+        # labels only for points well inside the frame, clipped to it: a neighbour's id never
+        # lands on the subtitle, legend or caution
+        mx, my = 0.04 * (x1 - x0), 0.04 * (y1 - y0)
         for pid, geom in zip(in_view["parcel_id"], in_view.geometry):
             if geom is None or geom.is_empty:
                 continue
             pt = geom.representative_point()
+            if not (x0 + mx <= pt.x <= x1 - mx and y0 + my <= pt.y <= y1 - my):
+                continue
             bold = focus_id is not None and pid == focus_id
             ax.text(
                 pt.x,
@@ -1092,11 +893,54 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
                 fontweight="bold" if bold else "normal",
                 zorder=6,
                 path_effects=_halo(2.2),
+                clip_on=True,
             )
     extent = (x0, x1, y0, y1)
     _format_axes(ax, crs, extent)
     _draw_scale_and_north(ax, crs, extent)
     return ax, groups, entries
+
+
+def _burn_outlines(fig, ax, rect, geoms, verdicts, present, view) -> None:
+    """Many parcels: burn their outlines into one image at the axes' pixel size.
+
+    Drawing 100 000 outlines as vector paths takes matplotlib tens of seconds and makes a
+    50 MB SVG; at overview scale an outline is about one pixel wide anyway, so one image
+    (conflict burnt last, on top) shows the same and keeps the SVG small.  Every ring
+    segment is sampled at half-pixel steps (vectorized), which marks each pixel it crosses.
+    """
+    from matplotlib.colors import to_rgba
+
+    x0, y0, x1, y1 = view
+    w_px = max(1, int(round(fig.get_figwidth() * fig.dpi * rect[2])))
+    h_px = max(1, int(round(w_px * (y1 - y0) / max(x1 - x0, 1e-12))))
+    sx, sy = w_px / max(x1 - x0, 1e-12), h_px / max(y1 - y0, 1e-12)
+    codes = np.zeros((h_px, w_px), dtype=np.uint8)
+    palette = np.zeros((len(present) + 1, 4))
+    for code, v in enumerate(reversed(present), start=1):
+        palette[code] = to_rgba(_VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))[0])
+        segs = _line_segments(geoms[verdicts == v])
+        if not segs:
+            continue
+        lengths = np.fromiter((len(a) for a in segs), dtype=np.int64, count=len(segs))
+        xy = np.concatenate(segs)
+        px = np.column_stack([(xy[:, 0] - x0) * sx, (y1 - xy[:, 1]) * sy])
+        # segment k joins vertex k and k+1 of the same ring
+        last = np.cumsum(lengths) - 1
+        start = np.ones(len(px), dtype=bool)
+        start[last] = False
+        a, b = px[start], px[np.flatnonzero(start) + 1]
+        steps = np.maximum(1, np.ceil(2.0 * np.abs(b - a).max(axis=1)).astype(np.int64))
+        seg = np.repeat(np.arange(len(a)), steps + 1)
+        t = np.arange(len(seg)) - np.repeat(np.cumsum(steps + 1) - (steps + 1), steps + 1)
+        t = t / np.repeat(steps, steps + 1)
+        pts = a[seg] + (b[seg] - a[seg]) * t[:, None]
+        c = np.floor(pts[:, 0]).astype(np.int64)
+        r = np.floor(pts[:, 1]).astype(np.int64)
+        ok = (c >= 0) & (c < w_px) & (r >= 0) & (r < h_px)
+        codes[r[ok], c[ok]] = code
+    rgba8 = np.round(palette * 255.0).astype(np.uint8)[codes]
+    ax.imshow(rgba8, extent=(x0, x1, y0, y1), origin="upper", interpolation="nearest", zorder=5)
 
 
 def _figure_frame(fig, title: str, subtitle: str, notes: Sequence[str]) -> None:
@@ -1131,6 +975,7 @@ def overview_map(
     max_px: int = 1600,
     formats: Sequence[str] = ("png", "svg"),
     title: str | None = None,
+    map_data: _MapData | None = None,
 ) -> FigureFiles:
     """Draw the whole audit area: slope classes over relief, parcels by verdict, conflict cells, zones.
 
@@ -1151,6 +996,9 @@ def overview_map(
         integer factor (slope: block mean; conflict: any conflict in the block).
     formats : sequence of {"png", "svg"}
     title : str, optional
+    map_data : _MapData, optional
+        Rasters already read by :func:`load_map_data` (the report reads them once for
+        this map and the interactive map).
 
     Returns
     -------
@@ -1159,7 +1007,7 @@ def overview_map(
     """
     folder = load_audit_folder(out_dir)
     breaks = _check_breaks(slope_breaks_pct)
-    data = _load_map_data(folder, None, max_px)
+    data = map_data if map_data is not None else _load_map_data(folder, None, max_px)
     fig = _new_figure(figsize_in, dpi)
     view = _grid_bounds(data.slope)
     ax, groups, entries = _draw_map(fig, [0.085, 0.115, 0.62, 0.79], data, breaks, view)
@@ -1170,7 +1018,7 @@ def overview_map(
     _figure_frame(
         fig,
         title or "Slope classes and parcel verdicts",
-        f"landcheck screening map \u00b7 audit run {folder.run_date_text} \u00b7 {n} parcels",
+        f"landcheck screening map \u00b7 audit run {folder.run_date_text} \u00b7 {count_text(n, 'parcel')}",
         [_crs_note(data.slope.crs) + "; grid lines dashed.", _breaks_note(breaks)],
     )
     paths = _save(fig, _dest(folder, dest_dir), "overview", dpi, formats)
@@ -1203,6 +1051,7 @@ def parcel_closeup_maps(
     figsize_in: tuple[float, float] = (8.0, 6.5),
     max_px: int = 1200,
     formats: Sequence[str] = ("png", "svg"),
+    on_drawn=None,
 ) -> FigureFiles:
     """One close-up map per parcel with conflict area, largest ``conflict_m2`` first.
 
@@ -1217,6 +1066,8 @@ def parcel_closeup_maps(
         Most close-ups to draw (0 draws none).
     dest_dir, slope_breaks_pct, dpi, figsize_in, max_px, formats
         As for :func:`overview_map`.
+    on_drawn : callable, optional
+        Called with no argument after each close-up (a progress bar's step).
 
     Returns
     -------
@@ -1253,21 +1104,26 @@ def parcel_closeup_maps(
         lim_txt = f"slope limit {_fmt_num(limit)} %" if not math.isnan(limit) else "no slope limit"
         share = float(rec["conflict_share"]) if not _isnan(rec["conflict_share"]) else math.nan
         sub = (
-            f"class {rec['class_name']} \u00b7 {lim_txt} \u00b7 conflict {float(rec['conflict_m2']):,.0f} m\u00b2"
+            f"class {_class_label(folder, rec['class_name'])} \u00b7 {lim_txt} \u00b7 conflict {float(rec['conflict_m2']):,.0f} m\u00b2"
             + (f" ({share:.1%} of evaluated area)" if not math.isnan(share) else "")
             + f" \u00b7 audit run {folder.run_date_text}"
         )
         _figure_frame(
             fig,
-            f"Parcel {pid}: {_VERDICT_TEXT.get(rec['verdict'], rec['verdict'])}",
+            f"Parcel {pid}: {VERDICT_TEXT.get(rec['verdict'], rec['verdict'])}",
             sub,
             [_crs_note(data.slope.crs) + "."],
         )
         stem = f"closeup_{rank:02d}_{_safe_stem(pid)}"
         paths = _save(fig, dest, stem, dpi, formats)
         detail = sub.split(" \u00b7 audit")[0]
-        caption = f"Parcel {pid} ({rec['class_name']}, {rec['verdict']}): {detail}."
+        caption = (
+            f"Parcel {pid} ({_class_label(folder, rec['class_name'])}, "
+            f"{VERDICT_TEXT.get(rec['verdict'], rec['verdict'])}): {detail}."
+        )
         items.append(FigureItem(stem, caption, paths, entries, parcel_id=pid))
+        if on_drawn is not None:
+            on_drawn()
     return FigureFiles(items)
 
 
@@ -1277,13 +1133,6 @@ def _cell_width(folder: AuditFolder) -> float:
 
     with rasterio.open(folder.require("slope_pct.tif")) as ds:
         return abs(ds.transform.a)
-
-
-def _isnan(v) -> bool:
-    try:
-        return math.isnan(float(v))
-    except (TypeError, ValueError):
-        return True
 
 
 # --------------------------------------------------------------------------- charts
@@ -1446,14 +1295,17 @@ def slope_distribution_chart(
                 else f"reference {_fmt_num(line)} % (no class limit)"
             )
             share = area_ha[over].sum() / area_ha.sum() if area_ha.sum() else 0.0
+            right_side = line > 0.55 * xmax  # keep the label inside the panel
             ax.text(
                 line,
                 0.97,
-                f" {txt}\n {share:.1%} at or over",
+                f"{txt} \n{share:.1%} at or over " if right_side else f" {txt}\n {share:.1%} at or over",
                 transform=ax.get_xaxis_transform(),
                 va="top",
-                ha="left",
+                ha="right" if right_side else "left",
+                multialignment="right" if right_side else "left",
                 fontsize=7,
+                clip_on=True,
             )
         ax.set_xlim(0, xmax)
         ax.set_title(_class_label(folder, name), fontsize=8.5, loc="left")

@@ -41,6 +41,7 @@ import numpy as np
 
 from landcheck.about import CAUTION, __version__
 from landcheck.errors import InputDataError, LandcheckWarning
+from landcheck.evidence.style import VERDICT_TEXT, area_ha_text
 from landcheck.geo.grid import GridSpec, Window
 from landcheck.geo.shapes import mask_union, polygonal_part
 from landcheck.inputs.dem import ZUnit, open_dem
@@ -550,7 +551,10 @@ def prescreen(
             f"{parcel.where}: {100 * (1 - overlap / geom.area):.1f} % of the parcel lies outside the DEM; "
             "only the part inside is evaluated."
         )
-    step(f"parcel {parcel.parcel_id}: class {cls.name} ({class_source}), {geom.area:,.1f} CRS units²")
+    from landcheck.geo.ground_area import ground_areas_fast
+
+    ground_m2 = float(ground_areas_fast(np.array([geom], dtype=object), g.crs_wkt)[0][0])
+    step(f"parcel {parcel.parcel_id}: class {cls.label} ({class_source}), {area_ha_text(ground_m2)} on the ground")
 
     from landcheck.evidence.maps import _closeup_bounds
 
@@ -949,7 +953,7 @@ def _draw_map(
     colour, lw, ls = M._VERDICT_STYLE.get(verdict, ("#444444", 1.2, "solid"))
     M._add_lines(ax, [geom], colors=colour, linewidths=lw, linestyles=[ls], zorder=6, path_effects=M._halo(lw + 2.2))
     ph.insert(0, Line2D([0], [0], color=colour, lw=lw, linestyle=ls, path_effects=M._halo(lw + 2.2)))
-    pl.insert(0, f"parcel ({M._VERDICT_TEXT.get(verdict, verdict)})")
+    pl.insert(0, f"parcel ({VERDICT_TEXT.get(verdict, verdict)})")
     groups.insert(0, ("Parcel", ph, pl))
     groups.append(("Not buildable (the rest of the parcel is)", ch, cl))
     groups.append(("Zones", zh, zl))
@@ -1048,8 +1052,15 @@ th,td{border-bottom:1px solid #c9c9c9;padding:.6mm 1.2mm;text-align:left;vertica
 td.n{text-align:right;white-space:nowrap;font-variant-numeric:tabular-nums}
 .small{font-size:7.5pt}
 footer{margin-top:2mm;border-top:1px solid #c9c9c9;padding-top:1mm}
-@media print{body{max-width:none}}
+@media print{
+body{max-width:none}
+.sheet{max-height:274mm;overflow:hidden}
+#map img{max-height:92mm;width:auto;max-width:100%;margin:0 auto}
+#histogram img{max-height:52mm;width:auto;max-width:100%}
+}
 """ + verdict_badge_css()
+#: warnings listed on the sheet; the rest are in prescreen.json (the page stays one A4 sheet)
+_MAX_PAGE_WARNINGS = 3
 
 
 def _e(text) -> str:
@@ -1107,15 +1118,21 @@ def _write_html(path: Path, figures: dict, map_png: Path, hist_png: Path) -> Non
         ztable = '<p id="zones">No hazard zone of the rulebook touches the parcel.</p>'
     else:
         ztable = '<p id="zones">The rulebook defines no hazard zones.</p>'
-    forbidden = ", ".join(rule["forbidden_zones"]) or "none"
+    zone_names = {z.get("name"): z.get("label") for z in figures["zones"] if z.get("name")}
+    forbidden = ", ".join(zone_names.get(z) or z.replace("_", " ") for z in rule["forbidden_zones"]) or "none"
     rule_text = (
-        f"Class <b>{_e(p['class_label'])}</b> ({_e(p['class_name'])}, from {_e(p['class_source'])}): "
+        f"Class <b>{_e(p['class_label'])}</b> (from {_e(p['class_source'])}): "
         f"slope limit {'none' if limit is None else f'{limit:g} % (or over breaches)'}; forbidden zones: "
         f"{_e(forbidden)}; tolerance {100 * rule['tolerance_share']:g} %, minimum breach "
         f"{rule['min_breach_m2']:g} m\u00b2."
     )
+    shown = figures["warnings"][:_MAX_PAGE_WARNINGS]
+    more = len(figures["warnings"]) - len(shown)
     warn_html = (
-        '<ul class="small">' + "".join(f"<li>{_e(w)}</li>" for w in figures["warnings"]) + "</ul>"
+        '<ul class="small">'
+        + "".join(f"<li>{_e(w)}</li>" for w in shown)
+        + (f'<li class="muted">{more} more in prescreen.json</li>' if more > 0 else "")
+        + "</ul>"
         if figures["warnings"]
         else '<p class="small muted">None.</p>'
     )
@@ -1126,7 +1143,8 @@ def _write_html(path: Path, figures: dict, map_png: Path, hist_png: Path) -> Non
     badge_cls = verdict if verdict in VERDICTS else "no_data"
     parts = [
         html_head(f"landcheck pre-screen - parcel {p['id']}", _CSS, _CSP),
-        f"<header><h1>Pre-screen of parcel {_e(p['id'])}</h1>",
+        # one sheet: in print the page is clipped to one A4 content box (the figures are sized to fit)
+        f'<div class="sheet"><header><h1>Pre-screen of parcel {_e(p["id"])}</h1>',
         (
             f'<p class="sub">{_e(p["source"])} \u00b7 run {_e(figures["started_utc"])} \u00b7 landcheck '
             f"{_e(figures['version'])}</p>"
@@ -1134,7 +1152,7 @@ def _write_html(path: Path, figures: dict, map_png: Path, hist_png: Path) -> Non
         f'<div class="caution" role="note" id="caution">\u26a0 {_e(CAUTION)}</div></header><main>',
         (
             f'<div class="verdict" id="verdict">Verdict: <span class="badge v-{badge_cls}">'
-            f'{_e(verdict.replace("_", " "))}</span> <span class="small">{rule_text}</span>'
+            f'{_e(VERDICT_TEXT.get(verdict, verdict.replace("_", " ")))}</span> <span class="small">{rule_text}</span>'
         ),
         '<ul class="small" id="reasons">' + "".join(f"<li>{_e(r)}</li>" for r in figures["reasons"]) + "</ul></div>",
         '<div class="cards" id="figures">'
@@ -1162,7 +1180,7 @@ def _write_html(path: Path, figures: dict, map_png: Path, hist_png: Path) -> Non
             f'<footer class="small"><p><strong>{_e(CAUTION)}</strong></p><p class="muted">Inputs: {ins}. Figures in '
             "prescreen.json; patch polygon in largest_patch.gpkg.</p></footer>"
         ),
-        "</body></html>\n",
+        "</div></body></html>\n",
     ]
     with atomic_file(path, overwrite=True) as tmp:
         tmp.write_text("\n".join(parts), encoding="utf-8")

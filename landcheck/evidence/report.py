@@ -21,25 +21,30 @@ import math
 from collections.abc import Iterable, Sequence
 from pathlib import Path
 
+import numpy as np
+
 from landcheck.about import CAUTION, __version__
+from landcheck.engine.windows import progress_bar
+from landcheck.evidence.folder import AuditFolder, load_audit_folder
 from landcheck.evidence.maps import (
-    DEFAULT_SLOPE_BREAKS_PCT,
     VERDICTS,
-    AuditFolder,
     FigureItem,
     class_share_chart,
-    load_audit_folder,
+    load_map_data,
     overview_map,
     parcel_closeup_maps,
     sensitivity_chart,
     slope_distribution_chart,
 )
+from landcheck.evidence.style import CONFIDENCE_SHORT, DEFAULT_SLOPE_BREAKS_PCT, VERDICT_TEXT, count_text, yes_no
+from landcheck.evidence.webmap import WEBMAP_CSS, webmap_section
 from landcheck.hashing import sha256_file
+from landcheck.inputs.gdal_cache import cap_gdal_cache
 from landcheck.outputs.folder import source_date_utc
 from landcheck.outputs.writers import write_bytes
 from landcheck.verdicts.labels import verdict_badge_css
 
-__all__ = ["build_report", "sha256_file"]
+__all__ = ["PAGE_SIZES", "build_report", "sha256_file"]
 
 logger = logging.getLogger(__name__)
 
@@ -63,6 +68,11 @@ _CSP = (
     "default-src 'none'; img-src data:; style-src 'unsafe-inline'; script-src 'unsafe-inline'; "
     "base-uri 'none'; form-action 'none'"
 )
+#: progress-bar steps besides the close-ups: tables, rasters, overview, interactive map,
+#: charts, parcel table, hashes, writing
+_FIXED_STEPS = 8
+#: printed sheet sizes (ISO 216 A4, ANSI Letter)
+PAGE_SIZES = {"a4": "A4", "letter": "Letter"}
 _M2_PER_HA = 10_000.0
 
 # per-parcel table: (column, header, kind) ; kind: text | m2 | share | pct
@@ -80,14 +90,14 @@ _PARCEL_COLUMNS = [
     ("near_limit_m2", "Near limit (m\u00b2)", "m2"),
     ("conflict_m2", "Conflict (m\u00b2)", "m2"),
     ("conflict_share", "Conflict share", "share"),
-    ("p_conflict", "P(conflict)", "share"),
+    ("p_conflict", "Chance of conflict", "share"),
     ("confidence", "Confidence", "text"),
 ]
 _PARCEL_TAIL = [("reasons", "Reasons", "text"), ("geometry_note", "Geometry", "text")]
 _CLASS_COLUMNS = [
     ("class_name", "Class", "text"),
     ("label", "Label", "text"),
-    ("development", "Development", "text"),
+    ("development", "Development", "flag"),
     ("limit_pct", "Slope limit (%)", "pct"),
     ("parcels", "Parcels", "int"),
     ("area_m2", "Area (m\u00b2)", "m2"),
@@ -122,6 +132,8 @@ def _fmt(v, kind: str) -> str:
     f = _num(v)
     if kind in ("text", "verdict"):
         return "" if v is None or (isinstance(v, float) and math.isnan(v)) else str(v)
+    if kind == "flag":
+        return "" if v is None or (isinstance(v, float) and math.isnan(v)) else yes_no(v)
     if math.isnan(f):
         return "\u2013"
     if kind == "m2":
@@ -139,7 +151,7 @@ def _fmt(v, kind: str) -> str:
 
 def _data_value(v, kind: str) -> str:
     """Raw sort key: full-precision number for numeric columns, '' for missing."""
-    if kind in ("text", "verdict"):
+    if kind in ("text", "verdict", "flag"):
         return _fmt(v, kind)
     f = _num(v)
     return "" if math.isnan(f) or math.isinf(f) else repr(f)
@@ -154,7 +166,7 @@ def _area_text(m2) -> str:
 
 def _verdict_badge(v: str) -> str:
     cls = v if v in VERDICTS else "other"
-    return f'<span class="badge v-{cls}">{_e(v.replace("_", " "))}</span>'
+    return f'<span class="badge v-{cls}">{_e(VERDICT_TEXT.get(v, v.replace("_", " ")))}</span>'
 
 
 def _table(
@@ -163,14 +175,19 @@ def _table(
     rows: Iterable[dict],
     caption: str,
     numeric_text_cols: set[str] = frozenset(),
+    row_key: str | None = None,
 ) -> str:
-    """A sortable table: every header is a button; cells carry data-value sort keys."""
+    """A sortable table: every header is a button; cells carry data-value sort keys.
+
+    With ``row_key``, every row carries ``data-pid`` (that column's text) and is focusable,
+    so the interactive map can find it and a click on it can find the map feature.
+    """
     out = [
         f'<div class="table-wrap"><table id="{_e(table_id)}" class="sortable">',
         f"<caption>{caption}</caption><thead><tr>",
     ]
     for key, head, kind in columns:
-        dtype = "num" if (kind not in ("text", "verdict") or key in numeric_text_cols) else "text"
+        dtype = "num" if (kind not in ("text", "verdict", "flag") or key in numeric_text_cols) else "text"
         out.append(
             f'<th scope="col" data-type="{dtype}" data-col="{_e(key)}" aria-sort="none">'
             f'<button type="button" data-col="{_e(key)}">{_e(head)}<span class="arrow" aria-hidden="true">'
@@ -178,7 +195,10 @@ def _table(
         )
     out.append("</tr></thead><tbody>")
     for i, row in enumerate(rows):
-        out.append(f'<tr data-row="{i}">')
+        if row_key is not None:
+            out.append(f'<tr data-row="{i}" data-pid="{_e(row.get(row_key, ""))}" tabindex="0">')
+        else:
+            out.append(f'<tr data-row="{i}">')
         for key, _, kind in columns:
             v = row.get(key)
             if key in numeric_text_cols:
@@ -186,7 +206,9 @@ def _table(
             else:
                 dv = _data_value(v, kind)
             shown = _verdict_badge(str(v)) if kind == "verdict" else _e(_fmt(v, kind))
-            align = ' class="wide"' if key == "reasons" else ("" if kind in ("text", "verdict") else ' class="n"')
+            align = (
+                ' class="wide"' if key == "reasons" else ("" if kind in ("text", "verdict", "flag") else ' class="n"')
+            )
             out.append(f'<td{align} data-value="{_e(dv)}">{shown}</td>')
         out.append("</tr>")
     out.append("</tbody></table></div>")
@@ -240,6 +262,17 @@ def _summary_section(folder: AuditFolder) -> str:
     return "".join(parts)
 
 
+def _reference_limit_choice(folder: AuditFolder, ref: float) -> str:
+    """How the reference limit was chosen, in words."""
+    text = str(folder.section("manifest", "rulebook", "text", default="") or "")
+    if "reference_limit_pct" in text:
+        return f"{ref:g} %, set in the rulebook (<code>reference_limit_pct</code>)"
+    return (
+        f"{ref:g} %, the lowest slope limit of the development classes (the rulebook sets no "
+        "<code>reference_limit_pct</code>; set it to compare against another limit)"
+    )
+
+
 def _capability_section(folder: AuditFolder) -> str:
     c = folder.section("capability", default={}) or {}
     if not c:
@@ -251,15 +284,14 @@ def _capability_section(folder: AuditFolder) -> str:
     dem = _num(c.get("dem_land_m2"))
     cap, cap_sh = _num(c.get("land_within_limit_m2")), _num(c.get("land_within_limit_share"))
     dev, dev_sh = _num(c.get("classified_development_m2")), _num(c.get("classified_development_share"))
-    diff = dev - cap
     rows = [
         ("Land with a slope (DEM land)", dem, 1.0 if dem > 0 else math.nan),
-        (f"Land under the reference slope limit ({ref:g} %)", cap, cap_sh),
+        (f"Land under the reference slope limit of {ref:g} %", cap, cap_sh),
         ("Land classified for development", dev, dev_sh),
-        ("Classified for development minus land under the limit", diff, diff / dem if dem > 0 else math.nan),
     ]
     parts = [
         '<section id="capability"><h2>Terrain capability and classification</h2>',
+        f"<p>Reference limit: {_reference_limit_choice(folder, ref)}.</p>",
         '<table class="plain" id="capability-table"><caption>What the terrain allows vs what is classified'
         '</caption><thead><tr><th scope="col"></th><th scope="col">Area</th>'
         '<th scope="col">Share of DEM land</th></tr></thead><tbody>',
@@ -270,19 +302,56 @@ def _capability_section(folder: AuditFolder) -> str:
             f'<td class="n">{_e(_fmt(share, "share"))}</td></tr>'
         )
     parts.append("</tbody></table>")
-    if not math.isnan(diff) and diff > 0:
-        parts.append(
-            f'<p class="flag">More land is classified for development than the terrain offers under '
-            f"{ref:g} % slope: at least {_area_text(diff)} of it must lie on steeper ground or outside "
-            "the DEM.</p>"
+    if not (math.isnan(dev) or math.isnan(cap)):
+        gap = abs(dev - cap)
+        if dev > cap:
+            parts.append(
+                f'<p class="flag" id="capability-verdict">More land is classified for development than the '
+                f"terrain offers under {ref:g} % slope: {_area_text(gap)} more. At least that much of the "
+                "development land must lie on steeper ground or outside the DEM.</p>"
+            )
+        else:
+            parts.append(
+                f'<p id="capability-verdict">Land classified for development is {_area_text(gap)} less than the '
+                f"land under {ref:g} % slope, so the totals alone show no shortfall. They do not show where the "
+                "development land lies; the rows below give, for each class, the land on ground at or over "
+                "its own limit.</p>"
+            )
+    # the figure per class limit: each development class against its own limit
+    limits = folder.class_limits_pct
+    labels = _class_labels(folder)
+    per = []
+    for rec in folder.classes.to_dict("records"):
+        name = str(rec["class_name"])
+        lim = limits.get(name, math.nan)
+        if str(rec.get("development", "")).strip().lower() not in ("true", "1", "yes") or math.isnan(lim):
+            continue
+        ev, over = _num(rec.get("evaluated_m2")), _num(rec.get("over_limit_m2"))
+        per.append(
+            f'<tr><th scope="row">{_e(labels.get(name, name))}</th><td class="n">{lim:g} %</td>'
+            f'<td class="n">{_area_text(ev)}</td><td class="n">{_area_text(over)}</td>'
+            f'<td class="n">{_e(_fmt(over / ev if ev > 0 else math.nan, "share"))}</td></tr>'
         )
-    else:
+    if per:
         parts.append(
-            f"<p>Land classified for development does not exceed the land under {ref:g} % slope; "
-            "the per-parcel table shows where individual parcels still breach their class.</p>"
+            '<table class="plain" id="capability-per-limit"><caption>Each development class against its own '
+            'slope limit</caption><thead><tr><th scope="col">Class</th><th scope="col">Slope limit</th>'
+            '<th scope="col">Evaluated land</th><th scope="col">At or over the limit</th>'
+            '<th scope="col">Share</th></tr></thead><tbody>' + "".join(per) + "</tbody></table>"
         )
     parts.append("</section>")
     return "".join(parts)
+
+
+def _class_labels(folder: AuditFolder) -> dict[str, str]:
+    """Rulebook label per class key (classes.csv), the key in plain words when there is none."""
+    df = folder.classes
+    out = {}
+    for rec in df.to_dict("records"):
+        name = str(rec["class_name"])
+        label = str(rec.get("label") or "").strip()
+        out[name] = label if label and label.lower() != "nan" else name.replace("_", " ")
+    return out
 
 
 def _classes_section(folder: AuditFolder) -> str:
@@ -295,7 +364,7 @@ def _classes_section(folder: AuditFolder) -> str:
         rows.append(rec)
     cols = [c for c in _CLASS_COLUMNS if c[0] in df.columns or c[0] == "limit_pct"]
     return (
-        '<section id="classes"><h2>Per class</h2>'
+        '<section id="classes" class="wide-table"><h2>Per class</h2>'
         + _table("class-table", cols, rows, "One row per rulebook class (classes.csv); click a header to sort.")
         + "</section>"
     )
@@ -352,6 +421,7 @@ def _optional_csv(folder: AuditFolder, name: str):
 def _extras_section(folder: AuditFolder) -> str:
     """Verdict confidence, land capability and drafted reclassification, when the audit produced them."""
     parts = []
+    labels = _class_labels(folder)
     conf = _optional_csv(folder, "confidence_classes.csv")
     if conf is not None:
         c = folder.section("confidence", default={}) or {}
@@ -365,11 +435,14 @@ def _extras_section(folder: AuditFolder) -> str:
             f"correlation length {_e(corr)} m) were added to the DEM and every slope, share and verdict "
             "recomputed. <b>Robust conflict</b>: in conflict in at least 95 % of realizations; "
             "<b>robust clear</b>: in at most 5 %; otherwise <b>uncertain</b>. Per-parcel probabilities "
-            "are in the parcel table (P(conflict)) and confidence.csv.</p>"
+            "are in the parcel table (chance of conflict) and confidence.csv.</p>"
             + _table(
                 "confidence-table",
                 _CONFIDENCE_COLUMNS,
-                conf.to_dict("records"),
+                [
+                    {**r, "class_name": labels.get(str(r["class_name"]), r["class_name"])}
+                    for r in conf.to_dict("records")
+                ],
                 "Per class: verdict stability and the 5-50-95 % range of the conflict share.",
             )
             + "</section>"
@@ -377,8 +450,21 @@ def _extras_section(folder: AuditFolder) -> str:
     cap = _optional_csv(folder, "capability_by_class.csv")
     if cap is not None:
         piv = cap.pivot_table(index="capability", columns="class_name", values="area_m2", aggfunc="sum", fill_value=0.0)
-        cols = [("capability", "Capability class", "text")] + [(c, f"{c} (ha)", "ha") for c in piv.columns]
-        rows = [{"capability": idx, **{c: piv.loc[idx, c] for c in piv.columns}} for idx in piv.index]
+        # rows flat to steep, then the same in hazard zones, then sea and cells without slope;
+        # columns in rulebook order
+        code = cap.groupby("capability")["code"].first() if "code" in cap.columns else None
+
+        def row_order(name):
+            c = int(code[name]) if code is not None else 0
+            return (1 if c == 0 else 0, c, str(name))
+
+        order = sorted(piv.index, key=row_order)
+        class_order = [c for c in folder.classes["class_name"] if c in piv.columns]
+        class_order += sorted(set(piv.columns) - set(class_order))
+        cols = [("capability", "Capability class", "text")] + [
+            (c, f"{labels.get(c, c)} (ha)", "ha") for c in class_order
+        ]
+        rows = [{"capability": idx, **{c: piv.loc[idx, c] for c in class_order}} for idx in order]
         parts.append(
             '<section id="capability-map"><h2>Land capability inside each class</h2>'
             "<p>Every cell is classed by slope (published planning classes) and downgraded where it lies "
@@ -418,18 +504,24 @@ def _parcels_section(folder: AuditFolder, max_rows: int) -> tuple[str, list[str]
     df = folder.parcels
     zone_cols = sorted(c for c in df.columns if c.startswith("zone_") and c.endswith("_share"))
     cols = [c for c in _PARCEL_COLUMNS if c[0] in df.columns]
-    cols += [(z, f"In {z[5:-6].replace('_', ' ')}", "share") for z in zone_cols]
-    cols += [c for c in _PARCEL_TAIL if c[0] in df.columns]
-    records = df.to_dict("records")
+    cols += [(z, f"In {folder.zone_label(z[5:-6])}", "share") for z in zone_cols]
+    cols += [c for c in _PARCEL_TAIL if c[0] in df.columns and (c[0] == "reasons" or (df[c[0]] != "").any())]
+    labels = _class_labels(folder)
     notes = []
-    if len(records) > max_rows:
-        order = sorted(range(len(records)), key=lambda i: (-(_num(records[i].get("conflict_m2")) or 0.0), i))
-        keep = sorted(order[:max_rows], key=lambda i: order.index(i))
-        records = [records[i] for i in keep]
+    if len(df) > max_rows:
+        # the largest conflict areas, largest first (ties in file order: stable sort)
+        key = -df["conflict_m2"].fillna(0.0).to_numpy()
+        keep = np.argsort(key, kind="stable")[:max_rows]
         notes.append(
             f"The per-parcel table shows the {max_rows:,d} parcels with the largest conflict area of "
             f"{len(df):,d}; parcels.csv holds all of them."
         )
+        df = df.iloc[keep]
+    records = df.to_dict("records")
+    for r in records:
+        r["class_name"] = labels.get(str(r["class_name"]), r["class_name"])
+        if "confidence" in r:
+            r["confidence"] = CONFIDENCE_SHORT.get(str(r["confidence"] or ""), str(r["confidence"]).replace("_", " "))
     ids = [str(r.get("parcel_id", "")) for r in records]
     numeric_ids = bool(ids) and all(_is_number(i) for i in ids)
     html_table = _table(
@@ -438,8 +530,9 @@ def _parcels_section(folder: AuditFolder, max_rows: int) -> tuple[str, list[str]
         records,
         f"{len(records):,d} parcels (parcels.csv); click a header to sort, click again to reverse.",
         numeric_text_cols={"parcel_id"} if numeric_ids else set(),
+        row_key="parcel_id",
     )
-    return f'<section id="parcels"><h2>Per parcel</h2>{html_table}</section>', notes
+    return f'<section id="parcels" class="wide-table"><h2>Per parcel</h2>{html_table}</section>', notes
 
 
 def _is_number(text: str) -> bool:
@@ -619,8 +712,60 @@ pre.code{background:var(--band);border:1px solid var(--line);padding:10px;overfl
 code{font-family:ui-monospace,"DejaVu Sans Mono",monospace;font-size:.92em;word-break:break-all}
 .st-ok{color:#1c5e2a}.st-bad{color:var(--warn);font-weight:600}.st-missing{color:var(--muted)}
 footer{margin-top:40px;padding-bottom:30px;border-top:1px solid var(--line)}
-@media print{nav,.table-wrap{max-height:none;overflow:visible}thead th{position:static}}
+.print-only{display:none}
+@media print{
+body{font-size:9.5pt;line-height:1.35}
+header,main,footer{max-width:none;padding:0}
+nav,.no-print{display:none}
+.print-only{display:block}
+.caution{padding:6px 10px;margin:8px 0;font-size:10pt}
+h2{break-after:avoid;margin-top:1.2em}
+h3{break-after:avoid}
+.cards{gap:6px}
+.card{min-width:0;padding:4px 8px;background:none}
+.table-wrap{max-height:none;overflow:visible;border:0}
+.table-wrap table{width:100%}
+table{font-size:7.5pt;width:100%;table-layout:auto}
+caption{padding:2px 0}
+thead{display:table-header-group}
+thead th{position:static;background:none;border-bottom:1.5px solid var(--ink);vertical-align:bottom}
+th,td{padding:2px 4px;overflow-wrap:break-word;hyphens:auto}
+td.n{white-space:nowrap}
+td.wide{min-width:0;width:26%}
+tr{break-inside:avoid}
+th[aria-sort] .arrow::after{content:none}
+figure{break-inside:avoid;border:0;padding:0;margin:8px 0}
+figure img{max-height:220mm;width:auto;max-width:100%}
+figcaption{break-before:avoid}
+.grid{display:block}
+.grid figure img{max-height:118mm}
+pre.code{white-space:pre-wrap;overflow-wrap:anywhere;overflow:visible;font-size:7pt}
+code{overflow-wrap:anywhere}
+details>pre{display:block}
+section.wide-table{page:landscape}
+section.wide-table table{font-size:6.6pt}
+section.wide-table th,section.wide-table td{padding:1px 2px}
+.badge{white-space:normal;padding:0 3px}
+footer{margin-top:12px}
+}
 """ + verdict_badge_css()
+
+
+def _page_css(page_size: str) -> str:
+    """@page rules: the chosen sheet, the caution in every page's foot, landscape pages for wide tables."""
+    size = {"a4": "A4", "letter": "letter"}[page_size.lower()]
+    caution = CAUTION.replace("\\", "\\\\").replace('"', '\\"')
+    foot = (
+        f'@bottom-left{{content:"{caution}";font:600 7pt system-ui,"DejaVu Sans",sans-serif;color:#7a2a00;'
+        "vertical-align:top;padding-top:3mm}"
+        '@bottom-right{content:"page " counter(page) " of " counter(pages);font:7pt system-ui,"DejaVu Sans",'
+        "sans-serif;color:#5b5b5b;vertical-align:top;padding-top:3mm;width:22mm}"
+    )
+    return (
+        f"@page{{size:{size};margin:12mm 11mm 17mm 11mm;{foot}}}"
+        f"@page landscape{{size:{size} landscape;margin:11mm 11mm 16mm 11mm;{foot}}}"
+    )
+
 
 # Table sorting: click a header to sort ascending, again for descending.  Numbers
 # compare numerically from data-value; text compares by UTF-16 code units.  Empty
@@ -681,6 +826,8 @@ def build_report(
     figure_formats: Sequence[str] = ("png", "svg"),
     closeup_formats: Sequence[str] = ("png",),
     verify_inputs: bool = True,
+    page_size: str = "A4",
+    show_progress: bool | None = None,
 ) -> Path:
     """Write a self-contained HTML report of an audit output folder.
 
@@ -708,6 +855,11 @@ def build_report(
     verify_inputs : bool
         Recompute the SHA-256 of every input in the manifest that exists here
         and flag files that changed since the audit.
+    page_size : {"A4", "Letter"}
+        Printed sheet; wide tables print on landscape sheets of the same size and the
+        caution stands at the foot of every page.
+    show_progress : bool, optional
+        A progress bar on stderr (default: when stderr is a terminal).
 
     Returns
     -------
@@ -721,6 +873,8 @@ def build_report(
     OutputWriteError
         The report or a figure cannot be written.
     """
+    if str(page_size).lower() not in PAGE_SIZES:
+        raise ValueError(f"page_size: got {page_size!r}; expected one of {', '.join(PAGE_SIZES.values())}")
     folder = load_audit_folder(out_dir)
     report_path = Path(report_path) if report_path is not None else folder.out_dir / "report.html"
     figures_dir = Path(figures_dir) if figures_dir is not None else folder.out_dir / "figures"
@@ -728,10 +882,24 @@ def build_report(
     # no wall-clock time inside a reproducible output (docs/outputs.md): SOURCE_DATE_EPOCH or nothing
     built_utc = source_date_utc() or "not recorded (run times: run_times.json)"
 
+    cap_gdal_cache()  # the rasters are read once through GDAL; its default cache would keep them all
+    bar = progress_bar(_FIXED_STEPS + max(0, int(max_closeups)), "report", enabled=show_progress, unit="step")
+
+    def done(what: str) -> None:
+        bar.set_postfix_str(what, refresh=False)
+        bar.update(1)
+
     # validate the tables before drawing anything
-    _ = folder.parcels, folder.classes
+    _ = folder.parcels, folder.classes, folder.parcels_gdf
+    done("tables read")
     kw = dict(dest_dir=figures_dir, dpi=dpi, formats=formats)
-    overview = overview_map(folder, slope_breaks_pct=slope_breaks_pct, **kw)
+    map_data = load_map_data(folder)
+    done("rasters read")
+    overview = overview_map(folder, slope_breaks_pct=slope_breaks_pct, map_data=map_data, **kw)
+    done("overview map")
+    breaks = np.asarray([float(b) for b in slope_breaks_pct])
+    webmap_html = webmap_section(folder, map_data, breaks, _class_labels(folder))
+    done("interactive map")
     # close-ups are many: PNG by default (SVG on request) to keep the audit quick
     closeups = parcel_closeup_maps(
         folder,
@@ -740,8 +908,11 @@ def build_report(
         dest_dir=figures_dir,
         dpi=dpi,
         formats=tuple(dict.fromkeys(("png", *closeup_formats))),
+        on_drawn=lambda: done("close-ups"),
     )
+    bar.update(max(0, int(max_closeups)) - len(closeups.items))
     charts = [class_share_chart(folder, **kw), slope_distribution_chart(folder, **kw), sensitivity_chart(folder, **kw)]
+    done("charts")
 
     extra_warnings: list[str] = []
     relief = [e for e in overview.legend_entries if e.group == "relief" and e.key == "relief"]
@@ -750,20 +921,26 @@ def build_report(
             "Maps: the DEM named in the manifest could not be used for relief, so the slope "
             f"raster is shaded instead ({relief[0].label.split('(', 1)[-1].rstrip(')')})."
         )
-    n_conflict_parcels = int((folder.parcels["conflict_m2"].fillna(0) > 0).sum())
-    if n_conflict_parcels > len(closeups.items):
+    n_any_area = int((folder.parcels["conflict_m2"].fillna(0) > 0).sum())
+    n_conflict = int((folder.parcels["verdict"] == "conflict").sum())
+    if n_any_area > len(closeups.items):
+        under = n_any_area - n_conflict
         extra_warnings.append(
-            f"Maps: {n_conflict_parcels} parcels have conflict area; close-ups show the {len(closeups.items)} largest."
+            f"Maps: close-ups show the {len(closeups.items)} largest conflict areas of the "
+            f"{count_text(n_any_area, 'parcel')} with any conflict area ({n_conflict:,d} with the verdict "
+            f"conflict" + (f", {under:,d} with conflict area under their class tolerance" if under > 0 else "") + ")."
         )
     parcels_html, notes = _parcels_section(folder, max_table_rows)
     extra_warnings += notes
+    done("parcel table")
     manifest_html, manifest_warnings = _manifest_section(folder, verify_inputs, built_utc)
+    done("hashes")
     extra_warnings = manifest_warnings + extra_warnings
     recorded = [str(w) for w in (folder.section("warnings", default=[]) or [])]
 
     title = "landcheck screening report"
     parts = [
-        html_head(f"{title} - audit run {folder.run_date_text}", _CSS, _CSP),
+        html_head(f"{title} - audit run {folder.run_date_text}", _CSS + WEBMAP_CSS + _page_css(page_size), _CSP),
         f"<header><h1>{_e(title)}</h1>",
         f'<p class="sub">Audit run {_e(folder.run_date_text)}</p>',
         f'<div class="caution" role="note" id="caution"><span aria-hidden="true">\u26a0 </span>{_e(CAUTION)}</div>',
@@ -782,7 +959,9 @@ def build_report(
     for ff in charts:
         for it in ff.items:
             parts.append(_figure_html(it, it.caption))
-    parts.append('</section><section id="maps"><h2>Maps</h2>')
+    parts.append('</section><section id="maps"><h2>Maps</h2><h3 id="interactive-map">Interactive map</h3>')
+    parts.append(webmap_html)
+    parts.append("<h3>Overview map</h3>")
     for it in overview.items:
         parts.append(_figure_html(it, "Overview map: " + it.caption))
     if closeups.items:
@@ -793,8 +972,8 @@ def build_report(
     else:
         parts.append("<p>No parcel has conflict area, so there are no close-ups.</p>")
     parts.append(
-        f'<p class="muted">Figure files (PNG and SVG) are in <code>{_e(figures_dir.name)}/</code> '
-        "next to this report.</p></section>"
+        f'<p class="muted">Figure files are in <code>{_e(figures_dir.name)}/</code> (overview and charts as PNG '
+        "and SVG, close-ups as PNG) next to this report.</p></section>"
     )
     parts.append(parcels_html)
     parts.append(manifest_html)
@@ -805,5 +984,7 @@ def build_report(
     )
     parts.append(f"<script>{_JS}</script></body></html>\n")
     write_bytes(report_path, "\n".join(parts).encode("utf-8"))
+    done("written")
+    bar.close()
     logger.info("report written: %s (%d close-ups)", report_path, len(closeups.items))
     return report_path
