@@ -113,7 +113,7 @@ def test_refusals(tmp_path):
     # duplicate ids
     p = write_parcels(tmp_path / "dup.gpkg", _geoms(), pid=[7, 7], zoning=["R", "R"])
     r = _cli(tmp_path, p, out="o3")
-    assert r.exit_code == 3 and "share pid 7 (rows 1, 2)" in r.output
+    assert r.exit_code == 3 and "7 (rows 1, 2)" in r.output and "more than one parcel" in r.output
     # empty layer
     p = write_parcels(tmp_path / "empty.gpkg", [], pid=[], zoning=[])
     r = _cli(tmp_path, p, out="o4")

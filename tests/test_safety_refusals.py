@@ -160,3 +160,32 @@ def test_all_duplicated_ids_are_listed(tmp_path):
         read_parcels(parcels, class_field="zoning", id_field="pid", target_crs_wkt="EPSG:32651")
     msg = str(err.value)
     assert "1 (rows 1, 3)" in msg and "2 (rows 2, 5, 6)" in msg and "2 pid values" in msg
+
+
+def test_every_command_refuses_a_directory_or_file_in_the_wrong_place_with_exit_3(tmp_path, good):
+    dem, parcels, rules = good
+    d = tmp_path / "adir"
+    d.mkdir()
+    taken = tmp_path / "taken.txt"
+    taken.write_text("keep")
+    cases = [
+        ["slope", str(d), str(tmp_path / "s.tif")],
+        ["slope", str(dem), str(taken)],
+        [
+            "prescreen",
+            "--dem",
+            str(d),
+            "--rulebook",
+            str(rules),
+            "--parcels",
+            str(parcels),
+            "--out",
+            str(tmp_path / "p"),
+        ],
+        ["report", str(taken)],
+    ]
+    for args in cases:
+        r = CliRunner().invoke(cli, args)
+        assert r.exit_code == 3, (args, r.output)
+        assert "internal error" not in r.output
+    assert taken.read_text() == "keep"

@@ -96,10 +96,13 @@ def test_unknown_band_unit_is_refused_naming_it(tmp_path):
         open_dem(dem)
 
 
-def test_metre_crs_without_unit_warns_that_metres_are_assumed(tmp_path):
+def test_metre_crs_without_unit_says_that_metres_are_assumed(tmp_path, caplog):
     dem = write_raster(tmp_path / "m.tif", np.arange(100.0).reshape(10, 10))
-    with pytest.warns(UserWarning, match="declares no elevation unit; taken as metres"):
-        assert open_dem(dem).z_unit is ZUnit.METRE
+    with caplog.at_level("INFO", logger="landcheck.inputs.dem"):
+        src = open_dem(dem)
+    assert src.z_unit is ZUnit.METRE
+    assert "metres assumed" in src.z_unit_source  # recorded in the manifest
+    assert "declares no elevation unit; taken as metres" in caplog.text
 
 
 class _FakeBand:

@@ -38,7 +38,7 @@ Examples:
   landcheck demo --out /tmp/demo --overwrite --json
 """,
 )
-@click.option("--out", "out_dir", default="landcheck-demo-output", show_default=True, type=click.Path(file_okay=False))
+@click.option("--out", "out_dir", default="landcheck-demo-output", show_default=True, type=click.Path())
 @click.option("--overwrite/--no-overwrite", default=True, show_default=True, help="Replace an earlier demo output.")
 @click.option("--workers", type=click.IntRange(min=1), default=None, help="Worker threads (default: all cores).")
 @click.option("--quick", is_flag=True, help="Skip the confidence run, capability map and drafted reclassification.")

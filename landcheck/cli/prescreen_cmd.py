@@ -41,15 +41,13 @@ Examples:
       --class residential --out lot-sketch
 """,
 )
-@click.option(
-    "--dem", required=True, type=click.Path(dir_okay=False), help="Elevation raster (GeoTIFF or any GDAL raster)."
-)
-@click.option("--rulebook", required=True, type=click.Path(dir_okay=False), help="Rulebook (TOML; docs/rules-file.md).")
+@click.option("--dem", required=True, type=click.Path(), help="Elevation raster (GeoTIFF or any GDAL raster).")
+@click.option("--rulebook", required=True, type=click.Path(), help="Rulebook (TOML; docs/rules-file.md).")
 @click.option(
     "--parcels",
     "parcels_path",
     default=None,
-    type=click.Path(dir_okay=False),
+    type=click.Path(),
     help="Vector file holding the parcel: one feature, or choose one with --parcel-id.",
 )
 @click.option("--parcel-id", default=None, help="Id of the parcel in --parcels (see --id-field).")
@@ -85,7 +83,7 @@ Examples:
     "--out",
     "out_dir",
     required=True,
-    type=click.Path(file_okay=False),
+    type=click.Path(),
     help="Output folder (must not exist unless --overwrite).",
 )
 @method_option

@@ -28,10 +28,8 @@ Examples:
   landcheck report audit-out --dpi 300 --max-closeups 30
 """,
 )
-@click.argument("out_dir", type=click.Path(file_okay=False))
-@click.option(
-    "--report-path", type=click.Path(dir_okay=False), default=None, help="Where to write (default OUT_DIR/report.html)."
-)
+@click.argument("out_dir", type=click.Path())
+@click.option("--report-path", type=click.Path(), default=None, help="Where to write (default OUT_DIR/report.html).")
 @click.option(
     "--dpi", type=click.IntRange(72, 600), default=200, show_default=True, help="Resolution of the PNG figures."
 )

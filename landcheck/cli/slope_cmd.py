@@ -29,8 +29,8 @@ Examples:
   landcheck slope demo_area/dem.tif slope_deg.tif --unit degrees --method zevenbergen-thorne
 """,
 )
-@click.argument("dem", type=click.Path(dir_okay=False))
-@click.argument("out", type=click.Path(dir_okay=False))
+@click.argument("dem", type=click.Path())
+@click.argument("out", type=click.Path())
 @click.option("--unit", type=click.Choice([u.value for u in SlopeUnit]), default="percent", show_default=True)
 @method_option
 @dem_options
@@ -39,7 +39,7 @@ Examples:
 @click.option(
     "--class-raster",
     "class_out",
-    type=click.Path(dir_okay=False),
+    type=click.Path(),
     default=None,
     help="Also write a uint8 slope-class raster here.",
 )

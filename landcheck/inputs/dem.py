@@ -340,16 +340,14 @@ def resolve_z_unit(ds, band: int, grid: GridSpec, path: str, given: ZUnit | None
     if declared is not None:
         return declared, source
     if grid.geographic or abs(grid.unit_m - 1.0) < 1e-12:
-        import warnings
-
-        from landcheck.errors import LandcheckWarning
-
         kind = "geographic (degrees)" if grid.geographic else "in metres"
-        warnings.warn(
-            f"{path}: the DEM declares no elevation unit; taken as metres because its CRS is {kind}. "
+        # the common case (a metric DEM without a unit tag): said in the log and recorded in the
+        # manifest (parameters.z_unit_source), not warned on every run
+        logger.info(
+            "%s: the DEM declares no elevation unit; taken as metres because its CRS is %s. "
             "Give --z-unit ft or us-ft if the elevations are in feet.",
-            LandcheckWarning,
-            stacklevel=3,
+            path,
+            kind,
         )
         return ZUnit.METRE, f"not declared; metres assumed for a CRS {kind}"
     raise InputDataError(
