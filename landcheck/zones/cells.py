@@ -17,6 +17,7 @@ from __future__ import annotations
 import shutil
 import tempfile
 import threading
+import uuid
 import weakref
 from pathlib import Path
 
@@ -33,7 +34,7 @@ _BLOCK = 512
 class MaskWriter:
     """Streams one mask into its scratch raster; use as a context manager."""
 
-    def __init__(self, path: Path, grid: GridSpec):
+    def __init__(self, path: str | Path, grid: GridSpec):
         import rasterio
 
         from landcheck.inputs.gdal_cache import cap_gdal_cache
@@ -71,25 +72,43 @@ class MaskWriter:
         return False
 
 
+def _delete_vsimem(folder: str, names: list[str]) -> None:
+    import rasterio.shutil
+
+    for name in names:
+        try:
+            rasterio.shutil.delete(f"{folder}/{name}.tif")
+        except Exception:  # already gone
+            pass
+
+
 class MaskStore(ThreadLocalHandles):
     """Named cell masks of one grid in a scratch folder (see module docstring)."""
 
-    def __init__(self, grid: GridSpec, folder: str | None = None):
+    def __init__(self, grid: GridSpec, folder: str | None = None, *, in_memory: bool = False):
         self.grid = grid
         self.names: list[str] = []
         self._local = threading.local()
-        if folder is None:
+        self.in_memory = in_memory
+        if in_memory:
+            # small grids on one process (a pre-screen, a small audit on threads): GDAL's in-memory
+            # file system, so no scratch file is written at all
+            folder = f"/vsimem/landcheck-zones-{uuid.uuid4().hex}"
+            self._finalizer = weakref.finalize(self, _delete_vsimem, folder, self.names)
+        elif folder is None:
             folder = tempfile.mkdtemp(prefix="landcheck-zones-")
             self._finalizer = weakref.finalize(self, shutil.rmtree, folder, True)
         self.folder = folder
 
     def __getstate__(self):
+        if self.in_memory:
+            raise TypeError("an in-memory mask store lives in one process; use a folder for process or Dask engines")
         state = super().__getstate__()
         state.pop("_finalizer", None)  # only the creating process removes the folder
         return state
 
-    def path(self, name: str) -> Path:
-        return Path(self.folder) / f"{name}.tif"
+    def path(self, name: str) -> str:
+        return f"{self.folder}/{name}.tif"
 
     def writer(self, name: str) -> MaskWriter:
         if name in self.names:

@@ -42,6 +42,9 @@ from landcheck.inputs.rulebook import Rulebook, ZoneKind, ZoneRule
 from landcheck.zones.cells import MaskStore
 from landcheck.zones.strips import write_strips
 
+#: grids up to this many cells keep their zone masks in memory (GDAL /vsimem) when run on threads
+IN_MEMORY_MASK_CELLS = 4096 * 4096
+
 __all__ = ["ZoneColumn", "ZoneSet", "prepare_zones", "buffer_ground", "pick_variant", "vector_pieces"]
 
 logger = logging.getLogger(__name__)
@@ -234,7 +237,10 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
     layers: dict = {}
     columns: list[ZoneColumn] = []
     channels: list[str] = []  # mask name of each raster channel
-    store = MaskStore(g)
+    # masks in memory only for small grids run on threads in this process; otherwise tiled scratch rasters
+    engine = getattr(settings, "engine", None)
+    on_threads = engine is None or getattr(getattr(engine, "kind", None), "value", "threads") == "threads"
+    store = MaskStore(g, in_memory=on_threads and g.width * g.height <= IN_MEMORY_MASK_CELLS)
 
     # ---- sea: one mask per distinct definition, by tiled labelling, and their union
     sea_zones = [z for z in rules.zones if z.kind is ZoneKind.SEA_RISE or z.params.get("derive") == "shoreline"]
