@@ -94,7 +94,7 @@ class MaskStore(ThreadLocalHandles):
             # small grids on one process (a pre-screen, a small audit on threads): GDAL's in-memory
             # file system, so no scratch file is written at all
             folder = f"/vsimem/landcheck-zones-{uuid.uuid4().hex}"
-            self._finalizer = weakref.finalize(self, _delete_vsimem, folder, self.names)
+            self._finalizer: weakref.finalize = weakref.finalize(self, _delete_vsimem, folder, self.names)
         elif folder is None:
             folder = tempfile.mkdtemp(prefix="landcheck-zones-")
             self._finalizer = weakref.finalize(self, shutil.rmtree, folder, True)
