@@ -33,7 +33,7 @@ deletes it unless --keep-memory-dem.
     python scripts/benchmark.py --sizes --memory-run 30000                # 3.6 GB DEM, then deleted
 
 Hazards (``--hazards N ...``): the full audit with every hazard kind derived from the DEM
-(``/work/shared/bench/rules_hazards.toml``-style rulebook: slope limits, HAND, sea-level rise with
+(``../shared/bench/rules_hazards.toml``-style rulebook: slope limits, HAND, sea-level rise with
 scenarios, derived shore and stream easements; ``--rasters gtiff --no-report``) next to the
 by-hand hazard pipeline (pyflwdir fill + D8, upstream area, HAND; ``scipy.ndimage`` labelling for
 the sea and the 1 m rise; a raster distance transform and dilation for the 20 m strip), on the same
@@ -44,7 +44,7 @@ DEM in the same run, each in a fresh child process.  Data come from the benchmar
 ``parcels_100k_on10000.gpkg``, and 2500 a crop of the north-west corner of the 5000 DEM with
 the parcels inside it (written to the cache folder).
 
-    python scripts/benchmark.py --sizes --hazards 2500 5000 --bench-dir /work/shared/bench
+    python scripts/benchmark.py --sizes --hazards 2500 5000 --bench-dir ../shared/bench
     python scripts/benchmark.py --report-run --bench-data /tmp/bench-data  # default run vs --no-report
 """
 
@@ -63,6 +63,8 @@ import numpy as np
 
 HERE = Path(__file__).resolve().parent
 REPO = HERE.parent
+#: the shared benchmark data generator and by-hand pipelines, beside the repository (../shared/bench)
+_SHARED_BENCH = REPO.parent / "shared" / "bench"
 CELL_M = 10.0
 ORIGIN = (400000.0, 1700000.0)
 CRS = "EPSG:32651"
@@ -233,7 +235,7 @@ def main(argv=None) -> int:
     ap.add_argument(
         "--bench-dir",
         type=Path,
-        default=Path("/work/shared/bench"),
+        default=_SHARED_BENCH,
         help="folder with make_data.py, byhand_hazards.py and rules_hazards.toml",
     )
     ap.add_argument(
@@ -251,7 +253,7 @@ def main(argv=None) -> int:
     ap.add_argument(
         "--bench-rules",
         type=Path,
-        default=Path(os.environ.get("BENCH_SHARED", "/work/shared/bench")) / "rules_slope.toml",
+        default=Path(os.environ.get("BENCH_SHARED", _SHARED_BENCH)) / "rules_slope.toml",
     )
     args = ap.parse_args(argv)
     if args.report_run:

@@ -13,7 +13,9 @@ REFERENCES = ROOT / "docs" / "references.md"
 # "docs/references.md §N", also wrapped over a line break (with a comment marker on the next line)
 CITATION = re.compile(r"docs/references\.md\s*(?:#\s*)?§(\d+)")
 SECTION = re.compile(r"^## §(\d+) \S", re.MULTILINE)
-OUTSIDE = re.compile(r"REFERENCES\.md|STYLE\.md|/work/")
+# files outside the repository: the guides it was written from, and the machine's own folders (a run's
+# "<run>/work/output" scratch path inside the app workspace is not one of them)
+OUTSIDE = re.compile(r"REFERENCES\.md|STYLE\.md|/work/(?!output\b)")
 
 
 def _cited_files():

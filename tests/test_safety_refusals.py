@@ -18,7 +18,7 @@ from click.testing import CliRunner
 from rasterio.transform import from_origin
 
 from landcheck.cli.main import cli
-from landcheck.errors import InputDataError
+from landcheck.errors import InputDataError, LandcheckWarning
 from landcheck.inputs.layers import read_layer, read_parcels
 
 X0, Y0 = 400000.0, 1600000.0
@@ -141,7 +141,8 @@ max_slope_pct = 18.0
     boxes = [shapely.box(X0 + 100 + 120 * i, Y0 - 300, X0 + 200 + 120 * i, Y0 - 200) for i in range(4)]
     parcels = write_parcels(tmp_path / "p.gpkg", boxes, pid=[11, 12, 13, 14], zoning=["R", None, "", None])
     before = _sha([dem, parcels, rules])
-    ps = read_parcels(parcels, class_field="zoning", id_field="pid", target_crs_wkt="EPSG:32651")
+    with pytest.warns(LandcheckWarning, match="no zoning value"):
+        ps = read_parcels(parcels, class_field="zoning", id_field="pid", target_crs_wkt="EPSG:32651")
     assert ps.frame["class_value"].isna().tolist() == [False, True, False, True]
     assert any("no zoning value (NULL): pid 12, 14" in w for w in ps.warnings)
     r = _run(dem, parcels, rules, tmp_path / "out")

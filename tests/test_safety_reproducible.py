@@ -133,6 +133,7 @@ def test_window_sums_merge_exactly_in_any_order():
     assert float(np.frombuffer(results[0][0])[0]) == exact
 
 
+@pytest.mark.filterwarnings("ignore::landcheck.errors.LandcheckWarning")  # the demo's two repaired geometries
 def test_demo_rerun_gives_same_sha256_for_every_file_but_run_times(tmp_path):
     demo = REPO / "demo_area"
     hashes = []
