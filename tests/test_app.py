@@ -271,7 +271,8 @@ def test_whole_job_in_headless_chromium(tmp_path):
         wait = WebDriverWait(driver, 120)
         driver.get(base + "/")
         assert CAUTION in driver.find_element(By.ID, "caution").text
-        driver.find_element(By.ID, "new-project-name").send_keys("Alderwane hills")
+        # the start page is built by the app's script: wait for it on a loaded machine
+        wait.until(EC.presence_of_element_located((By.ID, "new-project-name"))).send_keys("Alderwane hills")
         driver.find_element(By.ID, "new-project-btn").click()
         # inputs: the demo DEM and parcels, each checked and described at once
         for role, f in (("dem", DEMO / "dem.tif"), ("parcels", DEMO / "parcels.gpkg")):
