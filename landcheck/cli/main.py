@@ -5,7 +5,9 @@ from __future__ import annotations
 import atexit
 import gc
 import logging
+import signal
 import sys
+import threading
 
 import click
 
@@ -25,6 +27,12 @@ def _versions_callback(ctx, _param, value):
     for k, v in show_versions().items():
         click.echo(f"{k}: {v}")
     ctx.exit(0)
+
+
+def _interrupt_once(signum, frame):
+    """Ctrl-C: stop the run (KeyboardInterrupt, exit 130); further Ctrl-Cs do not cut the clean-up short."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    raise KeyboardInterrupt
 
 
 @click.group(
@@ -58,6 +66,8 @@ Examples:
 @click.option("-q", "--quiet", is_flag=True, help="Only errors on stderr; no progress bars.")
 @click.pass_context
 def cli(ctx, verbose: int, quiet: bool):
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGINT, _interrupt_once)
     # the final garbage collection at exit walks numba's large type registry (~0.5 s); freezing the
     # heap first skips it (docs/scale.md)
     atexit.register(gc.freeze)
