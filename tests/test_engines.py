@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 import rasterio
@@ -90,7 +92,7 @@ def test_every_pass_gives_identical_files_on_threads_processes_and_dask(tmp_path
     b = audit(dem, parcels, rules, tmp_path / "processes", engine="processes", workers=2, **kw)
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=False, dashboard_address=None) as cluster:
         c = audit(dem, parcels, rules, tmp_path / "dask", scheduler_address=cluster.scheduler_address, **kw)
-    assert c.summary["manifest"]["parameters"]["engine"] == "dask"
+    assert json.loads((c.out_dir / "run_times.json").read_text())["execution"]["engine"] == "dask"
     for name in _EXTRA_FILES:
         ref = (a.out_dir / name).read_bytes()
         assert (b.out_dir / name).read_bytes() == ref, f"processes: {name}"

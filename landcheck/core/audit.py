@@ -224,6 +224,7 @@ def audit(
         if s.report:
             step("building the report")
             build_report(stage)
-        write_run_times(stage, started)  # the one file a rerun changes (docs/outputs.md)
+        # the one file a rerun changes (docs/outputs.md): times, and how the run was executed
+        write_run_times(stage, started, execution={"tile_cells": s.tile_cells, **s.engine.describe()})
     step(f"outputs in {out}")
     return AuditResult(out, run.summary, run.table, run.classes, run.warnings, run)

@@ -478,13 +478,14 @@ def _manifest(started, dem: DemSource, parcels, rules: Rulebook, s: AuditSetting
             inputs.append({"role": f"layer:{name}", "path": str(Path(f).resolve()), "sha256": sha256_file(f)})
     cap = s.capability
     return {
+        # how the run was executed (tile size, engine, workers) changes no figure, so it is recorded
+        # with the times in run_times.json, the one file a rerun changes (docs/outputs.md)
         "run_times": "run_times.json (the only output a rerun changes; docs/outputs.md)",
         **({"started_utc": source_date_utc()} if source_date_utc() else {}),  # SOURCE_DATE_EPOCH only
         "inputs": inputs,
         "rulebook": {"path": _resolved(rules.path), "sha256": rules.sha256, "text": rules.text},
         "parameters": {
             "slope_method": s.method.value,
-            "tile_cells": s.tile_cells,
             "dem_band": dem.band,
             "dem_crs_override": dem.crs_override,
             "z_unit": dem.z_unit.value,
@@ -493,8 +494,6 @@ def _manifest(started, dem: DemSource, parcels, rules: Rulebook, s: AuditSetting
             "parcels_layer": s.parcels_layer,
             "parcels_crs_override": s.parcels_crs,
             "parcels_source": "file" if isinstance(parcels, (str, os.PathLike)) else "in-memory GeoDataFrame",
-            "workers": s.engine.workers,
-            "engine": s.engine.kind.value,
             "rasters": s.rasters.value,
             "confidence": conf.describe() if conf is not None else None,
             "capability_scheme": _scheme_record(cap),

@@ -287,8 +287,9 @@ def write_file_list(folder: str | os.PathLike) -> list[dict]:
     return entries
 
 
-def write_run_times(folder: str | os.PathLike, started: _dt.datetime) -> Path:
-    """``run_times.json``: when the run started and finished (UTC), kept out of every other file."""
+def write_run_times(folder: str | os.PathLike, started: _dt.datetime, execution: dict | None = None) -> Path:
+    """``run_times.json``: when the run started and finished (UTC) and how it was executed (tile size,
+    engine, workers: settings that change no figure), kept out of every other file."""
     path = Path(folder) / RUN_TIMES_NAME
     finished = _dt.datetime.now(_dt.timezone.utc)
     path.write_text(
@@ -297,6 +298,7 @@ def write_run_times(folder: str | os.PathLike, started: _dt.datetime) -> Path:
                 "started_utc": started.isoformat(timespec="seconds"),
                 "finished_utc": finished.isoformat(timespec="seconds"),
                 "seconds": round((finished - started).total_seconds(), 3),
+                **({"execution": execution} if execution else {}),
             },
             indent=2,
         )
