@@ -22,6 +22,8 @@ ROOT = Path(__file__).resolve().parents[1]
 PYPROJECT = tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))
 #: declared for what they do behind another package's import, each explained in docs/dependencies.md
 INDIRECT = {"pyarrow": "geopandas.read_parquet", "dask": "distributed"}
+#: import names that differ from the distribution's name (common practice)
+DISTRIBUTION_OF = {"pil": "pillow"}
 
 
 def _name(requirement: str) -> str:
@@ -40,7 +42,8 @@ def _runtime_imports() -> dict[str, str]:
             for n in names:
                 top = n.split(".")[0]
                 if top != "landcheck" and top not in sys.stdlib_module_names:
-                    found.setdefault(top.lower().replace("_", "-"), str(path.relative_to(ROOT)))
+                    name = top.lower().replace("_", "-")
+                    found.setdefault(DISTRIBUTION_OF.get(name, name), str(path.relative_to(ROOT)))
     return found
 
 
