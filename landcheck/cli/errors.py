@@ -13,6 +13,18 @@ from landcheck.errors import LandcheckError
 from .options import EXIT_INTERNAL
 
 
+def _caused_by_interrupt(exc: BaseException) -> bool:
+    """True when a KeyboardInterrupt stands behind ``exc`` (its cause or context chain)."""
+    seen = set()
+    e: BaseException | None = exc
+    while e is not None and id(e) not in seen:
+        if isinstance(e, KeyboardInterrupt):
+            return True
+        seen.add(id(e))
+        e = e.__cause__ or e.__context__
+    return False
+
+
 def handle_errors(fn):
     """Map library errors to exit codes; tracebacks only with -vv."""
 
@@ -30,6 +42,9 @@ def handle_errors(fn):
             click.echo("landcheck: interrupted; no partial outputs were kept.", err=True)
             ctx.exit(130)
         except Exception as exc:  # internal error: say so plainly
+            if _caused_by_interrupt(exc):  # e.g. Ctrl-C inside a compiled module's import -> ImportError
+                click.echo("landcheck: interrupted; no partial outputs were kept.", err=True)
+                ctx.exit(130)
             verbosity = (ctx.find_root().obj or {}).get("verbosity", 0)
             click.echo(f"landcheck: internal error: {type(exc).__name__}: {exc}", err=True)
             if verbosity >= 2:
