@@ -219,6 +219,26 @@ class Totals:
         self._q_land_within += int(_to_quanta(s.land_within_m2, AREA_QUANTUM_M2))
 
 
+def _no_pairs(plan: OverlayPlan, land_m2, land_within_m2) -> WindowSums:
+    """The sums of a window that no parcel meets: only its whole-area land figures."""
+    e = np.empty(0)
+    return WindowSums(
+        np.empty(0, np.int64),
+        e,
+        e,
+        e,
+        e,
+        np.empty((0, len(plan.thresholds_pct))),
+        e,
+        e,
+        e,
+        np.empty((0, plan.n_cols)),
+        np.zeros((plan.n_classes, len(HIST_EDGES_PCT) - 1)),
+        land_m2,
+        land_within_m2,
+    )
+
+
 def accumulate_window(
     slope_pct: np.ndarray,
     zone_bits: np.ndarray | None,
@@ -259,22 +279,7 @@ def accumulate_window(
     n_t = len(plan.thresholds_pct)
     nb = len(HIST_EDGES_PCT) - 1
     if fi.size == 0:
-        e = np.empty(0)
-        return WindowSums(
-            np.empty(0, np.int64),
-            e,
-            e,
-            e,
-            e,
-            np.empty((0, n_t)),
-            e,
-            e,
-            e,
-            np.empty((0, plan.n_cols)),
-            np.zeros((plan.n_classes, nb)),
-            land_m2,
-            land_within_m2,
-        ), conflict_tile
+        return _no_pairs(plan, land_m2, land_within_m2), conflict_tile
 
     gi = candidates[fi]
     gp = plan.geom_parcel[gi]  # parcel of each pair
@@ -444,25 +449,8 @@ def accumulate_window_compiled(
     counts = _overlay_compiled.land_counts(slope_pct, lm, has_land_mask, np.inf if limit is None else float(limit))
     land_m2, land_within_m2 = _land_sums(slope_pct, cell_area_m2, plan, land_mask, counts)
     conflict_tile = np.full((h, w), CONFLICT_OUTSIDE, np.uint8)
-    n_t = len(plan.thresholds_pct)
-    nb = len(HIST_EDGES_PCT) - 1
     if len(fi) == 0:
-        e = np.empty(0)
-        return WindowSums(
-            np.empty(0, np.int64),
-            e,
-            e,
-            e,
-            e,
-            np.empty((0, n_t)),
-            e,
-            e,
-            e,
-            np.empty((0, plan.n_cols)),
-            np.zeros((plan.n_classes, nb)),
-            land_m2,
-            land_within_m2,
-        ), conflict_tile
+        return _no_pairs(plan, land_m2, land_within_m2), conflict_tile
     has_zones = zone_bits is not None
     zb = np.ascontiguousarray(zone_bits, dtype=np.uint32) if has_zones else np.zeros((1, 1), np.uint32)
     try:
