@@ -398,23 +398,8 @@ def _row_cell_sizes_m(shape, transform: Affine, latlon: bool, cell_size_m):
     return hx, hy
 
 
-def _steepest_d8(z: np.ndarray, hx: np.ndarray, hy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Steepest downward D8 code per cell (0 where no neighbour is strictly lower); compiled loop."""
-    from landcheck.terrain.routing_loops import steepest_d8
-
-    nb = np.array(_D8_NEIGHBOURS, dtype=np.int64)
-    return steepest_d8(
-        np.ascontiguousarray(z, dtype=np.float64),
-        np.ascontiguousarray(hx, dtype=np.float64),
-        np.ascontiguousarray(hy, dtype=np.float64),
-        nb[:, 0].copy(),
-        nb[:, 1].copy(),
-        nb[:, 2].astype(np.uint8),
-    )
-
-
 def _steepest_d8_numpy(z: np.ndarray, hx: np.ndarray, hy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Reference formulation of :func:`_steepest_d8` in NumPy (tests compare both)."""
+    """Steepest-descent D8 in NumPy: the reference the compiled :func:`tiled_routing_loops.d8_codes` is tested against."""
     rows, cols = z.shape
     zp = np.pad(z, 1, constant_values=np.nan)
     hx2 = hx[:, None]
@@ -433,12 +418,6 @@ def _steepest_d8_numpy(z: np.ndarray, hx: np.ndarray, hy: np.ndarray) -> tuple[n
     return code, best > 0
 
 
-def _edge_cells(valid: np.ndarray) -> np.ndarray:
-    """Valid cells on the raster border or next to a nodata cell (8-neighbour)."""
-    inner = ndimage.binary_erosion(valid, structure=np.ones((3, 3), dtype=bool), border_value=0)
-    return valid & ~inner
-
-
 def flow_directions(
     elev_m: np.ndarray,
     transform: Affine = _IDENTITY,
@@ -451,8 +430,9 @@ def flow_directions(
 
     Steps:
 
-    1. Fill every closed depression to its spill level with pyflwdir's
-       Priority-Flood (``pyflwdir.dem.fill_depressions``).  Water may leave
+    1. Fill every closed depression to its spill level by Priority-Flood
+       (:func:`landcheck.terrain.tiled_fill.fill_whole`, tested equal to
+       ``pyflwdir.dem.fill_depressions``).  Water may leave
        the area only through *edge cells*: cells on the raster border or next
        to a nodata cell.  Give ``outlet_mask`` (for example the sea mask) to
        turn more cells into nodata so that the coast drains.
@@ -463,12 +443,12 @@ def flow_directions(
        order N, E, S, W, NE, SE, SW, NW.
     3. A cell with no strictly lower neighbour is an outlet (pit) when it is
        an edge cell; inside the area it lies on a flat left by filling and
-       takes the direction in which Priority-Flood reached it, which leads,
-       through cells of the same height, to the flat's spill point.
+       drains to its first neighbour (same order) of the same height that is
+       one step nearer the flat's nearest exit (a cell of that height with a
+       lower neighbour, or an edge cell).
 
-    pyflwdir's own ``from_dem`` directions are the Priority-Flood tree for
-    every cell, which does not follow the steepest descent on slopes (and
-    lets border cells drain along the border); step 2 restores D8 proper.
+    These are the kernels of :mod:`landcheck.terrain.tiled_routing` on one
+    tile, so the tiled audit gives the same directions.
 
     Parameters
     ----------
@@ -498,7 +478,6 @@ def flow_directions(
         No valid cells, infinite values, bad cell sizes or mask shape.
     """
     import pyflwdir
-    from pyflwdir import dem as pfdem
 
     z = _elevation(elev_m)
     if outlet_mask is not None:
@@ -508,18 +487,23 @@ def flow_directions(
         raise InputDataError("elev_m: no valid cells are left once outlet_mask is removed.")
     hx, hy = _row_cell_sizes_m(z.shape, transform, latlon, cell_size_m)
 
-    # Work on float32 values: pyflwdir's priority queue compares float32 keys, so
-    # rounding first makes the queue, the filled surface and the descent test agree.
+    # Work on float32 values: filling and the descent test compare identical numbers.  The same
+    # kernels as the tiled routing (one tile covering the raster), so both give the same directions.
+    from landcheck.terrain import tiled_routing as tr
+    from landcheck.terrain import tiled_routing_loops as loops
+    from landcheck.terrain.tiled_fill import fill_whole
+
     z32 = z.astype(np.float32)
     del z
-    filled32, d8_flood = pfdem.fill_depressions(z32, nodata=np.float32(np.nan))
+    filled32 = fill_whole(z32)
     conditioned = np.where(valid, filled32.astype(np.float64), np.nan)
-
-    d8_steep, has_lower = _steepest_d8(conditioned, hx, hy)
-    edge = _edge_cells(valid)
-    d8 = np.where(has_lower, d8_steep, np.where(edge, _D8_PIT, d8_flood)).astype(np.uint8)
-    d8[~valid] = _D8_NODATA
-
+    zh = np.pad(filled32, 1, constant_values=np.nan)
+    far = np.full(zh.shape, loops.FAR, np.int32)
+    dist, _ = loops.flat_distances(zh, far, tr.DRS, tr.DCS)
+    pad_rows = np.concatenate([hx[:1], hx, hx[-1:]]), np.concatenate([hy[:1], hy, hy[-1:]])
+    d8, stranded = loops.d8_codes(zh, dist, pad_rows[0], pad_rows[1], tr.DRS, tr.DCS, tr.CODES)
+    if stranded:  # never on a filled surface
+        raise RuntimeError(f"{stranded} flat cells found no exit after filling")
     flw = pyflwdir.from_array(d8, ftype="d8", check_ftype=False, transform=transform, latlon=latlon)
     return FlowRouting(flw=flw, conditioned_m=conditioned, elevation32_m=z32, valid=valid)
 
@@ -554,8 +538,12 @@ def upstream_area_m2(routing: FlowRouting, cell_area_m2) -> np.ndarray:
     if not np.all(np.isfinite(area[routing.valid])) or np.any(area[routing.valid] <= 0):
         raise InputDataError("cell_area_m2: cell areas must be finite and positive.")
     area[~routing.valid] = 0.0
-    acc = routing.flw.accuflux(area, nodata=-1.0)
-    return np.where(routing.valid, acc, np.nan)
+    # summed as integer counts of AREA_UNIT_M2: exact, so the sum does not depend on the order of
+    # the terms and the tiled routing gives the same areas (and the same stream cells)
+    from landcheck.terrain.tiled_routing import AREA_UNIT_M2, area_units
+
+    acc = routing.flw.accuflux(area_units(area), nodata=-1)
+    return np.where(routing.valid, acc * AREA_UNIT_M2, np.nan)
 
 
 def stream_mask(upstream_area_m2: np.ndarray, threshold_m2: float) -> np.ndarray:
@@ -578,8 +566,12 @@ def stream_mask(upstream_area_m2: np.ndarray, threshold_m2: float) -> np.ndarray
     t = _finite_number(threshold_m2, "threshold_m2")
     if t <= 0:
         raise InputDataError(f"threshold_m2: got {t:g} m2; the channel-initiation area must be positive.")
-    with np.errstate(invalid="ignore"):
-        return np.asarray(upstream_area_m2) >= t
+    from landcheck.terrain.tiled_routing import area_units, threshold_units
+
+    a = np.asarray(upstream_area_m2, dtype=np.float64)
+    ok = np.isfinite(a)
+    # compared as integer counts of the unit the areas were summed in (as the tiled routing does)
+    return ok & (area_units(np.where(ok, a, 0.0)) >= threshold_units(t))
 
 
 def hand_m(

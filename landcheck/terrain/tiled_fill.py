@@ -38,7 +38,7 @@ import numpy as np
 
 from landcheck.geo.grid import Window, iter_windows
 
-__all__ = ["tiled_fill", "fill_whole"]
+__all__ = ["tiled_fill", "fill_whole", "spill_levels", "raise_to_levels", "perimeter"]
 
 _DR = np.array([-1, -1, -1, 0, 0, 1, 1, 1], np.int64)
 _DC = np.array([-1, 0, 1, -1, 1, -1, 0, 1], np.int64)
@@ -198,7 +198,7 @@ def _minimax_levels(n_nodes, indptr, nbr, wts):
     return level
 
 
-def _perimeter(a: np.ndarray) -> dict:
+def perimeter(a: np.ndarray) -> dict:
     return {"top": a[0, :].copy(), "bottom": a[-1, :].copy(), "left": a[:, 0].copy(), "right": a[:, -1].copy()}
 
 
@@ -217,38 +217,34 @@ def _cross_edges(la, za, lb, zb):
     return out
 
 
-def tiled_fill(
-    shape: tuple[int, int], tile: int, read_with_halo: Callable[[Window], np.ndarray]
-) -> Iterator[tuple[Window, np.ndarray]]:
-    """Yield ``(win, filled)`` row-major: the depression-filled float32 elevations of each tile.
+def spill_levels(n_tc: int, tiles: list) -> tuple[np.ndarray, list[int]]:
+    """Solve the spill graph: the level of every global label and each tile's label offset.
 
-    ``read_with_halo(win)`` returns the tile's float32 elevations grown by one cell on every side,
-    NaN for nodata and off the raster; it is called twice per tile.
+    ``tiles`` holds, row-major with ``n_tc`` tiles per row, ``(n_labels, ea, eb, ew, label_perimeter,
+    z_perimeter)`` for every tile: :func:`_tile_flood`'s counts and spill edges, and the
+    :func:`perimeter` of its labels and elevations (no halo).  A tile's local label ``k >= 1`` is
+    global label ``k + offset``.
     """
-    rows, cols = shape
-    wins = list(iter_windows(rows, cols, tile))
-    n_tc = -(-cols // tile)
     offsets, perims, ea_all, eb_all, ew_all = [], [], [], [], []
     next_id = 1  # global node 0 = "leaves the area"
-    for win in wins:
-        zh = np.ascontiguousarray(read_with_halo(win), dtype=np.float32)
-        _, label, n_labels, ea, eb, ew = _tile_flood(zh, _DR, _DC)
-        off = next_id - 1  # local label k >= 1 -> global k + off; local 0 -> global 0
-        g = np.where(label > 0, label + off, label)  # -1 stays: nodata
-        perims.append((_perimeter(g), _perimeter(zh[1:-1, 1:-1])))
+    for n_labels, ea, eb, ew, label, z in tiles:
+        off = next_id - 1
+        g = {side: np.where(v > 0, v + off, v) for side, v in label.items()}  # -1 stays: nodata
+        perims.append((g, z))
         offsets.append(off)
         ea_all.append(np.where(ea > 0, ea + off, 0))
         eb_all.append(np.where(eb > 0, eb + off, 0))
         ew_all.append(ew)
         next_id += n_labels - 1
-    for k in range(len(wins)):
+    n_tiles = len(tiles)
+    for k in range(n_tiles):
         tj = k % n_tc
         (gk, zk) = perims[k]
         pairs = []
         if tj + 1 < n_tc:
             g2, z2 = perims[k + 1]
             pairs += _cross_edges(gk["right"], zk["right"], g2["left"], z2["left"])
-        if k + n_tc < len(wins):
+        if k + n_tc < n_tiles:
             g2, z2 = perims[k + n_tc]
             pairs += _cross_edges(gk["bottom"], zk["bottom"], g2["top"], z2["top"])
             if tj + 1 < n_tc:
@@ -261,7 +257,6 @@ def tiled_fill(
             ea_all.append(a)
             eb_all.append(b)
             ew_all.append(wgt.astype(np.float32))
-    perims = None
     a = np.concatenate(ea_all)
     b = np.concatenate(eb_all)
     wgt = np.concatenate(ew_all)
@@ -273,13 +268,40 @@ def tiled_fill(
     np.add.at(indptr, src + 1, 1)
     indptr = np.cumsum(indptr)
     level = _minimax_levels(next_id, indptr, dst[order].astype(np.int64), ww[order].astype(np.float32))
+    return level, offsets
+
+
+def raise_to_levels(filled: np.ndarray, label: np.ndarray, level: np.ndarray, offset: int) -> np.ndarray:
+    """A tile's filled elevations: its own Priority-Flood raised to its labels' spill levels (NaN on nodata)."""
+    g = np.where(label > 0, label + offset, 0)
+    out = np.maximum(filled, level[g])
+    out[label < 0] = np.nan
+    return out
+
+
+def tiled_fill(
+    shape: tuple[int, int], tile: int, read_with_halo: Callable[[Window], np.ndarray]
+) -> Iterator[tuple[Window, np.ndarray]]:
+    """Yield ``(win, filled)`` row-major: the depression-filled float32 elevations of each tile.
+
+    ``read_with_halo(win)`` returns the tile's float32 elevations grown by one cell on every side,
+    NaN for nodata and off the raster; it is called twice per tile.  (The routing of
+    :mod:`landcheck.terrain.tiled_routing` keeps each tile's first flood on disk instead.)
+    """
+    rows, cols = shape
+    wins = list(iter_windows(rows, cols, tile))
+    n_tc = -(-cols // tile)
+    tiles = []
+    for win in wins:
+        zh = np.ascontiguousarray(read_with_halo(win), dtype=np.float32)
+        _, label, n_labels, ea, eb, ew = _tile_flood(zh, _DR, _DC)
+        tiles.append((n_labels, ea, eb, ew, perimeter(label), perimeter(zh[1:-1, 1:-1])))
+    level, offsets = spill_levels(n_tc, tiles)
+    tiles = []
     for k, win in enumerate(wins):
         zh = np.ascontiguousarray(read_with_halo(win), dtype=np.float32)
         filled, label, _, _, _, _ = _tile_flood(zh, _DR, _DC)
-        g = np.where(label > 0, label + offsets[k], 0)
-        out = np.maximum(filled, level[g])
-        out[label < 0] = np.nan
-        yield win, out
+        yield win, raise_to_levels(filled, label, level, offsets[k])
 
 
 def fill_whole(z: np.ndarray) -> np.ndarray:
