@@ -31,7 +31,7 @@ def _tiled(z, tile, areas, hands, hx=None, hy=None, cell_area=None, workers=1):
     )
     streams = [np.zeros(z.shape, bool) for _ in areas]
     masks = [np.zeros(z.shape, bool) for _ in hands]
-    for win, st, hm in route_tiles(spec, areas, hands, workers=workers, step=lambda s: None):
+    for win, st, hm, _ in route_tiles(spec, areas, hands, workers=workers, step=lambda s: None):
         for a, b in zip(streams, st):
             a[win.rows, win.cols] = b
         for a, b in zip(masks, hm):

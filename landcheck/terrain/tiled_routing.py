@@ -181,12 +181,13 @@ def route_tiles(
     workers: int | None = None,
     scratch_parent: str | None = None,
     step: Callable[[str], None] | None = None,
-) -> Iterator[tuple[Window, list[np.ndarray], list[np.ndarray]]]:
-    """Yield ``(win, streams, hand_masks)`` row-major for every tile of the raster.
+) -> Iterator[tuple[Window, list[np.ndarray], list[np.ndarray], np.ndarray]]:
+    """Yield ``(win, streams, hand_masks, d8)`` row-major for every tile of the raster.
 
     ``streams[j]`` is the stream mask of ``channel_areas_m2[j]``; ``hand_masks[i]`` the cells whose
     HAND is at most ``hands[i].max_hand_m`` above the streams of ``hands[i].channel_area_m2`` (which
-    must be one of ``channel_areas_m2``).  Outlets (raster border, cells next to nodata or to the
+    must be one of ``channel_areas_m2``); ``d8`` the tile's flow directions (pyflwdir's D8 codes:
+    0 outlet, 247 nodata).  Outlets (raster border, cells next to nodata or to the
     cells ``read_with_halo`` marks NaN, e.g. the sea) count as drains.
     """
     step = step or (lambda s: logger.info(s))
@@ -436,7 +437,7 @@ def _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scrat
                 with np.errstate(invalid="ignore"):
                     hand = (zz - drains[j]).astype(np.float32)
                     masks.append(np.isfinite(hand) & (hand <= h.max_hand_m))
-        return streams, masks
+        return streams, masks, d8h[1:-1, 1:-1]
 
-    for win, (streams, masks) in run_windows(final_tile, wins, workers=workers):
-        yield win, streams, masks
+    for win, (streams, masks, d8) in run_windows(final_tile, wins, workers=workers):
+        yield win, streams, masks, d8

@@ -22,14 +22,16 @@ and each parcel is checked against the mask of its class's context.
 
 Bounded steps: the sea and sea-level-rise inundation are found by tiled
 labelling joined across tile edges (:mod:`landcheck.terrain.tiled_components`),
-strips by tiles with a halo.  Flow routing (depression filling, D8, upstream
-area, HAND) still runs on the whole DEM, once, when a HAND zone or a derived
-stream easement needs it; its memory grows with the raster (docs/scale.md).
+strips by tiles with a halo, and flow routing (depression filling, D8, upstream
+area, streams, HAND) by tiles joined across tile edges
+(:mod:`landcheck.terrain.tiled_routing`), once, when a HAND zone or a derived
+stream easement needs it.
 """
 
 from __future__ import annotations
 
 import logging
+from contextlib import ExitStack
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -39,6 +41,7 @@ from landcheck.errors import InputDataError
 from landcheck.geo.grid import GridSpec, Window, apply_transform, iter_windows
 from landcheck.geo.shapes import polygonal_part
 from landcheck.inputs.rulebook import Rulebook, ZoneKind, ZoneRule
+from landcheck.terrain.tiled_routing import HandSpec, TiledRouting, route_tiles
 from landcheck.zones.cells import MaskStore
 from landcheck.zones.strips import write_strips
 
@@ -268,48 +271,47 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
         if n_sea == 0:
             warnings_out.append("no sea found: no cell at or below the datum touches the DEM edge or the sea point")
 
-    # ---- flow routing: whole raster (float32 elevations), only when HAND or derived streams need it
-    needs_routing = any(z.kind is ZoneKind.HAND or z.params.get("derive") == "streams" for z in rules.zones)
-    routing = area = elev = None
+    # ---- flow routing by tiles (fill, D8, upstream area, streams, HAND), only when HAND or derived streams need it
     stream_masks: dict = {}  # channel area -> mask name
     hand_masks: dict = {}  # zone index -> mask name
-    if needs_routing:
-        step("flow routing (depression filling, D8) on the whole DEM")
-        elev = dem.read(Window(0, 0, g.height, g.width), np.float32)
-        sea_all = store.read("sea", Window(0, 0, g.height, g.width)) if sea_name else None
-        routing = hydrology.flow_directions(
-            elev,
-            g.transform,
-            latlon=g.geographic,
-            cell_size_m=g.cell_size_m(np.arange(g.height)) if g.geographic else None,  # the CRS's ellipsoid
-            outlet_mask=sea_all if sea_all is not None and sea_all.any() else None,
-        )
-        del elev
-        area = hydrology.upstream_area_m2(routing, g.cell_area_m2(np.arange(g.height)) * 1.0)
-        for zi, z in enumerate(rules.zones):
-            if z.kind is ZoneKind.HAND or z.params.get("derive") == "streams":
-                ch_area = float(z.params.get("channel_area_m2", 1_000_000.0))
-                if ch_area not in stream_masks:
-                    streams = hydrology.stream_mask(area, ch_area)
-                    nm = f"streams_{len(stream_masks)}"
-                    _write_array(store, nm, streams, g, tile)
-                    stream_masks[ch_area] = nm
-                    if zone_polygons and "derived_streams" not in layers:
-                        layers["derived_streams"] = hydrology.streams_to_lines(
-                            routing, streams, g.crs_wkt, upstream_area_m2=area
-                        )
-                if z.kind is ZoneKind.HAND:
-                    streams = store.read(stream_masks[ch_area], Window(0, 0, g.height, g.width))
-                    hand = hydrology.hand_m(routing.conditioned_m, routing, streams, outlets_drain=True)
-                    mask = np.isfinite(hand) & (hand <= z.params["max_hand_m"])
-                    del hand, streams
-                    if sea_all is not None:
-                        mask &= ~sea_all
-                    nm = f"hand_{zi}"
-                    _write_array(store, nm, mask, g, tile)
-                    hand_masks[zi] = nm
-                    del mask
-        del routing, area, sea_all  # nothing of the size of the raster is kept past this point
+    routed = [z for z in rules.zones if z.kind is ZoneKind.HAND or z.params.get("derive") == "streams"]
+    if routed:
+        ch_areas: list[float] = []
+        for z in routed:
+            a = float(z.params.get("channel_area_m2", 1_000_000.0))
+            if a not in ch_areas:
+                ch_areas.append(a)
+        hand_zones = [zi for zi, z in enumerate(rules.zones) if z.kind is ZoneKind.HAND]
+        hands = [
+            HandSpec(
+                float(rules.zones[zi].params.get("channel_area_m2", 1_000_000.0)), rules.zones[zi].params["max_hand_m"]
+            )
+            for zi in hand_zones
+        ]
+        stream_masks = {a: f"streams_{i}" for i, a in enumerate(ch_areas)}
+        hand_masks = {zi: f"hand_{zi}" for zi in hand_zones}
+        lines: list = []
+        with ExitStack() as stack:
+            s_writers = [stack.enter_context(store.writer(stream_masks[a])) for a in ch_areas]
+            h_writers = [stack.enter_context(store.writer(hand_masks[zi])) for zi in hand_zones]
+            for win, streams, masks, d8 in route_tiles(
+                _routing_spec(dem, g, tile, store, sea_name),
+                ch_areas,
+                hands,
+                workers=getattr(engine, "workers", None),
+                scratch_parent=None if store.in_memory else store.folder,
+                step=step,
+            ):
+                for w, m in zip(s_writers, streams):
+                    w.write(win, m)
+                for w, m in zip(h_writers, masks):
+                    w.write(win, m)
+                if zone_polygons:
+                    lines.extend(_stream_lines(streams[0], d8, g.window_transform(win)))
+        if zone_polygons:
+            layers["derived_streams"] = gpd.GeoDataFrame(
+                {"channel_area_m2": np.full(len(lines), ch_areas[0])}, geometry=lines, crs=g.crs_wkt
+            )
 
     for zi, z in enumerate(rules.zones):
         if z.kind is ZoneKind.EASEMENT and "layer" not in z.params:
@@ -453,6 +455,43 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
     )
 
 
+def _routing_spec(dem, g: GridSpec, tile: int, store: MaskStore, sea_name: str | None) -> TiledRouting:
+    """The DEM as the tiled routing reads it: float32, the sea as nodata (it is where water leaves)."""
+
+    def read(win: Window) -> np.ndarray:
+        z = dem.read_with_halo(win, 1, np.float32).astype(np.float32, copy=False)
+        if sea_name:
+            sea, _ = store.read_with_halo(sea_name, win, 1)
+            z = np.where(sea, np.float32(np.nan), z)
+        return z
+
+    rows = np.arange(g.height)
+    if g.geographic:
+        hx, hy = g.cell_size_m(rows)  # on the CRS's own ellipsoid
+    else:
+        # projected: only the ratio matters for choosing a direction, so the CRS unit cancels
+        hx, hy = np.full(g.height, abs(g.transform.a)), np.full(g.height, abs(g.transform.e))
+    area = np.broadcast_to(np.asarray(g.cell_area_m2(rows), dtype=np.float64), (g.height,))
+    return TiledRouting((g.height, g.width), tile, read, np.asarray(hx, float), np.asarray(hy, float), area)
+
+
+def _stream_lines(streams: np.ndarray, d8: np.ndarray, transform) -> list:
+    """Stream cells of one tile as lines through cell centres to their receivers, merged where they join."""
+    import shapely
+
+    from landcheck.terrain.tiled_routing import DEC_C, DEC_R
+
+    r, c = np.nonzero(streams & (d8 != 0) & (d8 != 247))
+    if r.size == 0:
+        return []
+    code = d8[r, c]
+    x0, y0 = apply_transform(transform, c + 0.5, r + 0.5)
+    x1, y1 = apply_transform(transform, c + DEC_C[code] + 0.5, r + DEC_R[code] + 0.5)
+    segs = shapely.linestrings(np.stack([np.c_[x0, y0], np.c_[x1, y1]], axis=1))
+    merged = shapely.line_merge(shapely.multilinestrings(segs))
+    return list(shapely.get_parts(merged))
+
+
 def _sea_key(params) -> tuple:
     sp = params.get("sea_point")
     return (
@@ -545,12 +584,6 @@ def _write_components(store, g, tile, names, reader, count_outside=None) -> list
         for w in writers:
             w.close()
     return counts
-
-
-def _write_array(store: MaskStore, name: str, mask: np.ndarray, g: GridSpec, tile: int) -> None:
-    with store.writer(name) as w:
-        for win in iter_windows(g.height, g.width, tile):
-            w.write(win, mask[win.rows, win.cols])
 
 
 def _count(store: MaskStore, name: str, g: GridSpec, tile: int) -> int:
