@@ -107,8 +107,9 @@ def prepare(dem_path, parcels_path, rules_path, tile_cells: int):
     from landcheck.core.window_pass import WindowJob as _WindowJob
     from landcheck.core.window_pass import build_plan as _build_plan
     from landcheck.geo.grid import iter_windows
+    from landcheck.geo.ground_area import ground_areas
     from landcheck.inputs.dem import open_dem
-    from landcheck.inputs.layers import ground_areas, read_parcels
+    from landcheck.inputs.layers import read_parcels
     from landcheck.inputs.rulebook import load_rules
     from landcheck.overlay.sums import Totals
     from landcheck.verdicts.evaluate import evaluate_parcels, parcel_rules

@@ -15,8 +15,9 @@ from landcheck.core.audit import audit
 from landcheck.core.window_pass import build_plan as _build_plan
 from landcheck.errors import RuleFileError
 from landcheck.geo.grid import iter_windows
+from landcheck.geo.ground_area import ground_areas
 from landcheck.inputs.dem import open_dem
-from landcheck.inputs.layers import ground_areas, read_parcels
+from landcheck.inputs.layers import read_parcels
 from landcheck.inputs.rulebook import load_rules
 from landcheck.terrain.slope import SlopeMethod
 from landcheck.verdicts.capability import (

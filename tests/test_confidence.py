@@ -20,8 +20,9 @@ from landcheck.core.window_pass import WindowJob as _WindowJob
 from landcheck.core.window_pass import build_plan as _build_plan
 from landcheck.errors import RuleFileError
 from landcheck.geo.grid import iter_windows
+from landcheck.geo.ground_area import ground_areas
 from landcheck.inputs.dem import open_dem
-from landcheck.inputs.layers import ground_areas, read_parcels
+from landcheck.inputs.layers import read_parcels
 from landcheck.inputs.rulebook import load_rules
 from landcheck.overlay.sums import Totals
 from landcheck.terrain.dem_error import ErrorModel

@@ -8,7 +8,7 @@ import pytest
 import shapely
 from shapely import affinity
 
-from landcheck.geo.ground_area import SMALL_EXTENT_M, ground_areas_fast, polygon_areas_m2
+from landcheck.geo.ground_area import SMALL_EXTENT_M, ground_areas, polygon_areas_m2
 
 X0, Y0 = 400000.0, 1600000.0
 
@@ -53,7 +53,7 @@ def _shapes(unit=1.0):
 def test_projected_areas_match_pyproj_geod():
     # Reference: pyproj.Geod (Karney 2013), edges densified to 5 m in the layer's CRS (straight map edges).
     geoms = _shapes()
-    area, factor = ground_areas_fast(np.array(geoms, dtype=object), "EPSG:32651")
+    area, factor = ground_areas(np.array(geoms, dtype=object), "EPSG:32651")
     for g, got in zip(geoms, area):
         if g is None or g.is_empty:
             assert got == 0.0
@@ -70,7 +70,7 @@ def test_foot_crs_areas_are_in_square_metres():
     # definition; common practice) must give the same m2 as its metre twin.
     ft = "+proj=tmerc +lat_0=0 +lon_0=123 +k=0.9996 +x_0=500000 +y_0=0 +ellps=WGS84 +units=ft +no_defs"
     geoms = [g for g in _shapes(unit=0.3048) if g is not None and not g.is_empty]
-    area, _ = ground_areas_fast(np.array(geoms, dtype=object), pyproj.CRS(ft).to_wkt())
+    area, _ = ground_areas(np.array(geoms, dtype=object), pyproj.CRS(ft).to_wkt())
     for g, got in zip(geoms, area):
         assert got == pytest.approx(_geod_area(g, ft, 5.0 / 0.3048), rel=2e-7)
 
@@ -82,7 +82,7 @@ def test_geographic_areas_match_pyproj_geod():
         affinity.rotate(shapely.box(lon, lat, lon + d, lat + d * 0.7), rng.uniform(0, 90))
         for lon, lat, d in zip(rng.uniform(-179, 179, 12), rng.uniform(-70, 70, 12), rng.uniform(1e-3, 0.5, 12))
     ]
-    area, factor = ground_areas_fast(np.array(geoms, dtype=object), "EPSG:4326")
+    area, factor = ground_areas(np.array(geoms, dtype=object), "EPSG:4326")
     geod = pyproj.Geod(ellps="WGS84")
     for g, got in zip(geoms, area):
         ref = abs(geod.geometry_area_perimeter(shapely.segmentize(g, 2e-5))[0])
@@ -106,5 +106,5 @@ def test_degree_box_is_the_parallel_bounded_band(lat0, want_m2):
     # Source: docs/references.md §13 (parallel-bounded cell areas on WGS 84, closed form of Snyder 1987):
     # a 1 x 1 degree lon/lat box whose edges run along parallels and meridians has exactly the band area.
     box = shapely.box(120.0, lat0, 121.0, lat0 + 1.0)
-    area, _ = ground_areas_fast(np.array([box], dtype=object), "EPSG:4326")
+    area, _ = ground_areas(np.array([box], dtype=object), "EPSG:4326")
     assert area[0] == pytest.approx(want_m2, rel=1e-9)

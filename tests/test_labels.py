@@ -26,3 +26,15 @@ def test_maps_report_and_prescreen_use_the_vocabulary():
     # one review colour on maps and badges
     assert f"border-color:{VERDICT_COLOURS['review']}" in css
     assert report._CSS.count(".v-review{") == prescreen._CSS.count(".v-review{") == 1
+
+
+def test_interactive_map_uses_the_vocabulary():
+    from landcheck.evidence import style, webmap
+
+    assert style.VERDICT_TEXT is VERDICT_LABELS
+    assert {v: s[0] for v, s in webmap._WEB_VERDICT_STYLE.items()} == VERDICT_COLOURS
+    assert {v: s[1] for v, s in webmap._WEB_VERDICT_STYLE.items()} == {v: w for v, (w, _) in VERDICT_LINES.items()}
+    # solid on paper is solid on screen, dashed is dashed
+    assert [s[2] is None for s in webmap._WEB_VERDICT_STYLE.values()] == [
+        d == "solid" for _, d in VERDICT_LINES.values()
+    ]

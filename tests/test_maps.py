@@ -12,7 +12,7 @@ import pytest
 from report_fixture import build_audit_folder
 
 from landcheck.errors import InputDataError
-from landcheck.evidence import maps
+from landcheck.evidence import charts, maps
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
@@ -134,9 +134,9 @@ def test_closeups_largest_conflict_first(audit, tmp_path):
 
 def test_charts_written(audit, tmp_path):
     for fn, stem in (
-        (maps.class_share_chart, "chart_class_shares"),
-        (maps.slope_distribution_chart, "chart_slope_distribution"),
-        (maps.sensitivity_chart, "chart_sensitivity"),
+        (charts.class_share_chart, "chart_class_shares"),
+        (charts.slope_distribution_chart, "chart_slope_distribution"),
+        (charts.sensitivity_chart, "chart_sensitivity"),
     ):
         files = fn(audit.out_dir, dest_dir=tmp_path, dpi=200, formats=("png",))
         assert list(files) == [tmp_path / f"{stem}.png"]

@@ -75,7 +75,7 @@ def _setup(tmp_path, dem_path, geoms, zoning, *, rules_text=RULES, zones_fn=None
     frame = read_parcels(
         parcels_path, class_field=rules.class_field, id_field=rules.id_field, target_crs_wkt=g.crs_wkt
     ).frame
-    from landcheck.inputs.layers import ground_areas
+    from landcheck.geo.ground_area import ground_areas
 
     area_m2, factor = ground_areas(frame, g.crs_wkt)
     pr = parcel_rules(rules, frame["class_value"].to_numpy())

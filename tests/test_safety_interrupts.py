@@ -162,3 +162,21 @@ def test_ctrl_c_inside_a_compiled_import_still_exits_130():
 
     assert CliRunner().invoke(interrupted).exit_code == 130
     assert CliRunner().invoke(broken).exit_code == 4
+
+
+def test_ctrl_c_swallowed_by_a_c_extension_still_publishes_nothing(tmp_path):
+    # common practice: C code that checks for signals may clear the KeyboardInterrupt it got (seen
+    # once while the report was drawn: exit 0 and a published folder after Ctrl-C); the handler
+    # records the interrupt, so the publish refuses even when the exception itself was lost
+    from landcheck.engine.interrupt import clear_interrupt, note_interrupt
+    from landcheck.outputs.folder import staged_folder
+
+    out = tmp_path / "out"
+    try:
+        with pytest.raises(KeyboardInterrupt), staged_folder(out) as stage:
+            (stage / "parcels.csv").write_text("parcel_id\n1\n")
+            note_interrupt()  # the handler ran; its KeyboardInterrupt never reached Python code
+    finally:
+        clear_interrupt()
+    assert not out.exists()
+    assert list(tmp_path.iterdir()) == []

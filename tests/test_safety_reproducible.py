@@ -127,8 +127,9 @@ def test_window_sums_merge_exactly_in_any_order():
 
 
 @pytest.mark.filterwarnings("ignore::landcheck.errors.LandcheckWarning")  # the demo's two repaired geometries
-def test_demo_rerun_gives_same_sha256_for_every_file_but_run_times(tmp_path):
+def test_demo_rerun_gives_same_sha256_for_every_file_but_run_times_and_leaves_inputs_unmodified(tmp_path):
     demo = REPO / "demo_area"
+    inputs_before = _folder_hashes(demo)  # DEM, parcels, hazard layers, rulebook, everything the run may read
     hashes = []
     for name in ("first", "second"):
         audit(
@@ -144,3 +145,4 @@ def test_demo_rerun_gives_same_sha256_for_every_file_but_run_times(tmp_path):
         hashes.append(h)
     assert hashes[0] == hashes[1]
     assert {"parcels.gpkg", "summary.json", "report.html", "confidence.csv"} <= hashes[0].keys()
+    assert _folder_hashes(demo) == inputs_before  # the run never modified an input

@@ -20,7 +20,7 @@ from landcheck.overlay.sums import (
     ROLE_PARCEL,
     OverlayPlan,
     accumulate_window,
-    accumulate_window_compiled,
+    accumulate_window_reference,
 )
 
 CELL_M = 10.0
@@ -97,14 +97,14 @@ def test_compiled_reduction_equals_reference_bit_for_bit(seed):
     ]:
         trip = tuple(coverage_triplets(prepared, win_transform, hh, ww))
         cand = np.arange(len(geoms), dtype=np.int64)
-        ref, ref_tile = accumulate_window(slope[sl], bits[sl], cell_area[sl[0]], cand, trip, plan, land[sl])
-        got, got_tile = accumulate_window_compiled(slope[sl], bits[sl], cell_area[sl[0]], cand, trip, plan, land[sl])
+        ref, ref_tile = accumulate_window_reference(slope[sl], bits[sl], cell_area[sl[0]], cand, trip, plan, land[sl])
+        got, got_tile = accumulate_window(slope[sl], bits[sl], cell_area[sl[0]], cand, trip, plan, land[sl])
         assert len(ref.parcels) > 5
         _assert_same(ref, got)
         np.testing.assert_array_equal(ref_tile, got_tile)
         # and without raster zones / land mask
-        ref, ref_tile = accumulate_window(slope[sl], None, cell_area[sl[0]], cand, trip, plan)
-        got, got_tile = accumulate_window_compiled(slope[sl], None, cell_area[sl[0]], cand, trip, plan)
+        ref, ref_tile = accumulate_window_reference(slope[sl], None, cell_area[sl[0]], cand, trip, plan)
+        got, got_tile = accumulate_window(slope[sl], None, cell_area[sl[0]], cand, trip, plan)
         _assert_same(ref, got)
         np.testing.assert_array_equal(ref_tile, got_tile)
 
@@ -132,7 +132,7 @@ def test_compiled_reduction_closed_form_values():
     )
     slope = np.array([[10, 20, np.nan, 5], [10, 20, np.nan, 5], [1, 1, 1, 1]], np.float32)
     trip = tuple(coverage_triplets([parcel], Affine(CELL_M, 0, 0, 0, -CELL_M, 0), 3, 4))
-    s, tile = accumulate_window_compiled(slope, None, np.full(3, 100.0), np.array([0]), trip, plan)
+    s, tile = accumulate_window(slope, None, np.full(3, 100.0), np.array([0]), trip, plan)
     assert s.covered_m2.tolist() == [600.0]
     assert s.evaluated_m2.tolist() == [400.0]
     assert s.over_m2.tolist() == [[200.0]]
@@ -162,9 +162,7 @@ def test_compiled_reduction_empty_window():
         None,
     )
     empty = (np.empty(0, np.int64), np.empty(0, np.int32), np.empty(0, np.int32), np.empty(0))
-    s, tile = accumulate_window_compiled(
-        np.ones((4, 5), np.float32), None, np.full(4, 100.0), np.array([0]), empty, plan
-    )
+    s, tile = accumulate_window(np.ones((4, 5), np.float32), None, np.full(4, 100.0), np.array([0]), empty, plan)
     assert s.parcels.size == 0 and s.land_m2 == pytest.approx(2000.0)
     assert (tile == CONFLICT_OUTSIDE).all()
 

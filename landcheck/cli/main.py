@@ -12,6 +12,7 @@ import threading
 import click
 
 from landcheck.about import CAUTION, __version__
+from landcheck.engine.interrupt import clear_interrupt, note_interrupt
 from landcheck.versions import show_versions
 
 from . import app_cmd, audit_cmd, demo_cmd, prescreen_cmd, report_cmd, slope_cmd, verify_cmd
@@ -32,6 +33,7 @@ def _versions_callback(ctx, _param, value):
 def _interrupt_once(signum, frame):
     """Ctrl-C: stop the run (KeyboardInterrupt, exit 130); further Ctrl-Cs do not cut the clean-up short."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    note_interrupt()  # in case a C extension swallows the KeyboardInterrupt: the next step re-raises it
     raise KeyboardInterrupt
 
 
@@ -67,6 +69,7 @@ Examples:
 @click.pass_context
 def cli(ctx, verbose: int, quiet: bool):
     if threading.current_thread() is threading.main_thread():
+        clear_interrupt()
         signal.signal(signal.SIGINT, _interrupt_once)
     # the final garbage collection at exit walks numba's large type registry (~0.5 s); freezing the
     # heap first skips it (docs/scale.md)

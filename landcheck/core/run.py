@@ -34,9 +34,10 @@ from landcheck.core.window_pass import WindowJob, WindowOutput, build_plan
 from landcheck.engine.windows import progress_bar, slope_window
 from landcheck.errors import InputDataError, LandcheckWarning, RuleFileError
 from landcheck.geo.grid import Window, iter_windows
+from landcheck.geo.ground_area import ground_areas
 from landcheck.hashing import sha256_file
 from landcheck.inputs.dem import DemSource, open_dem, refuse_if_nothing_evaluated
-from landcheck.inputs.layers import areal_factor_at, ground_areas, read_parcels, validate_parcels
+from landcheck.inputs.layers import areal_factor_at, read_parcels, validate_parcels
 from landcheck.inputs.rulebook import Rulebook, load_rules, rules_from_mapping
 from landcheck.outputs.folder import source_date_utc
 from landcheck.overlay.sums import Totals

@@ -31,7 +31,7 @@ from landcheck.errors import InputDataError, RuleFileError
 from landcheck.inputs.dem import ZUnit
 from landcheck.outputs.writers import RasterFormat
 from landcheck.terrain.slope import SlopeMethod
-from landcheck.terrain.slope_classes import SlopeClassScheme, get_scheme, scheme_from_breaks
+from landcheck.terrain.slope_classes import SlopeClassScheme
 
 __all__ = ["AuditSettings", "CapabilityOptions", "ConfidenceOptions", "MIN_TILE_CELLS", "DEFAULT_TILE_CELLS"]
 
@@ -113,23 +113,9 @@ class CapabilityOptions:
 
 
 def _resolve_scheme(scheme) -> SlopeClassScheme:
-    from landcheck.verdicts.capability import HAZARD_FLAG
+    from landcheck.verdicts.capability import resolve_capability_scheme
 
-    try:
-        if isinstance(scheme, SlopeClassScheme):
-            sch = scheme
-        elif isinstance(scheme, str):
-            sch = get_scheme(scheme)
-        else:
-            sch = scheme_from_breaks(list(scheme))
-    except (ValueError, TypeError) as exc:
-        raise RuleFileError(f"capability map: {exc}.") from None
-    if len(sch.labels) >= HAZARD_FLAG:
-        raise RuleFileError(
-            f"capability map: scheme {sch.key!r} has {len(sch.labels)} classes; at most "
-            f"{HAZARD_FLAG - 1} fit beside the hazard flag."
-        )
-    return sch
+    return resolve_capability_scheme(scheme)
 
 
 @dataclass(frozen=True)

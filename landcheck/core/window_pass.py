@@ -22,7 +22,7 @@ from landcheck.geo.grid import Window
 from landcheck.inputs.dem import DemSource
 from landcheck.inputs.rulebook import Rulebook
 from landcheck.overlay.coverage import CoverageBuffers, coverage_triplets_aligned, prepare_polygons
-from landcheck.overlay.sums import ROLE_PARCEL, OverlayPlan, accumulate_window_compiled
+from landcheck.overlay.sums import ROLE_PARCEL, OverlayPlan, accumulate_window
 from landcheck.terrain.slope import SlopeMethod, gradient_to_unit
 from landcheck.verdicts.evaluate import SENSITIVITY_LIMITS_PCT
 
@@ -159,7 +159,7 @@ class WindowJob(ThreadLocalHandles):
         trip = coverage_triplets_aligned(self.polygons, g.transform, g.height, g.width, win, buffers=buffers)
         rows = np.arange(win.row_off, win.row_off + win.height)
         cell_area = g.cell_area_m2(rows)
-        sums, conflict = accumulate_window_compiled(
+        sums, conflict = accumulate_window(
             slope_pct, zone_bits, cell_area, self.all_index, tuple(trip), self.plan, land_mask
         )
         codes = cap_m2 = None

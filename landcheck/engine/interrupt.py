@@ -5,14 +5,41 @@ seconds.  :func:`abandon_pool` cancels what has not started and terminates worke
 once, so the command stops within about a window's time (docs/cli.md: exit 130).  Worker
 processes ignore SIGINT themselves (:func:`ignore_sigint`): the terminal sends Ctrl-C to the
 whole process group, and only the parent decides how to stop.
+
+The command's Ctrl-C handler also records the interrupt (:func:`note_interrupt`): a
+KeyboardInterrupt raised while a C extension is running can be swallowed by it, and the handler
+ignores further Ctrl-Cs so they cannot cut the clean-up short.  Long steps and the final publish
+call :func:`raise_if_interrupted`, so such a run still stops at the next step and never publishes.
 """
 
 from __future__ import annotations
 
 import contextlib
 import signal
+import threading
 
-__all__ = ["abandon_pool", "ignore_sigint"]
+__all__ = ["abandon_pool", "ignore_sigint", "note_interrupt", "clear_interrupt", "raise_if_interrupted"]
+
+_requested = threading.Event()
+
+
+def note_interrupt() -> None:
+    """Record a Ctrl-C (called by the command's SIGINT handler before it raises KeyboardInterrupt)."""
+    _requested.set()
+
+
+def clear_interrupt() -> None:
+    """Forget an earlier Ctrl-C (a new command starts)."""
+    _requested.clear()
+
+
+def raise_if_interrupted() -> None:
+    """Raise KeyboardInterrupt when a Ctrl-C was recorded, even if its first KeyboardInterrupt was lost.
+
+    >>> clear_interrupt(); raise_if_interrupted()  # nothing recorded: returns
+    """
+    if _requested.is_set():
+        raise KeyboardInterrupt
 
 
 def ignore_sigint() -> None:

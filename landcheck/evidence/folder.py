@@ -168,7 +168,7 @@ class AuditFolder:
     @property
     def run_date_text(self) -> str:
         dt = self.run_started
-        return dt.strftime("%Y-%m-%d %H:%M UTC") if dt else "(time: run_times.json)"
+        return dt.strftime("%Y-%m-%d %H:%M UTC") if dt else "(date and time in run_times.json)"
 
     @property
     def dem_path(self) -> Path | None:

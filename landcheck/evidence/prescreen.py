@@ -551,9 +551,9 @@ def prescreen(
             f"{parcel.where}: {100 * (1 - overlap / geom.area):.1f} % of the parcel lies outside the DEM; "
             "only the part inside is evaluated."
         )
-    from landcheck.geo.ground_area import ground_areas_fast
+    from landcheck.geo.ground_area import ground_areas
 
-    ground_m2 = float(ground_areas_fast(np.array([geom], dtype=object), g.crs_wkt)[0][0])
+    ground_m2 = float(ground_areas(np.array([geom], dtype=object), g.crs_wkt)[0][0])
     step(f"parcel {parcel.parcel_id}: class {cls.label} ({class_source}), {area_ha_text(ground_m2)} on the ground")
 
     from landcheck.evidence.maps import _closeup_bounds
@@ -718,7 +718,7 @@ def _figures(res, row: dict, rules: Rulebook, cls: ClassRule, geom, grid: GridSp
     """Per-parcel figures from the audit outputs (pure apart from reading the audit's rasters and zone layers)."""
     import geopandas as gpd
 
-    from landcheck.inputs.layers import ground_areas
+    from landcheck.geo.ground_area import ground_areas
 
     win = _cells_of_bounds(grid, geom.bounds)
     slope = res.slope_pct(win).astype(np.float64)
@@ -967,7 +967,7 @@ def _draw_map(
     M._figure_frame(
         fig,
         f"Parcel {p['id']}: buildable area and slope",
-        f"class {p['class_name']} \u00b7 buildable {b['area_m2']:,.0f} m\u00b2 of "
+        f"class {p.get('class_label') or p['class_name']} \u00b7 buildable {b['area_m2']:,.0f} m\u00b2 of "
         f"{p['covered_m2']:,.0f} m\u00b2 \u00b7 verdict {verdict}",
         [M._crs_note(crs) + "."],
     )

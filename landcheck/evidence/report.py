@@ -24,17 +24,16 @@ from pathlib import Path
 import numpy as np
 
 from landcheck.about import CAUTION, __version__
+from landcheck.engine.interrupt import raise_if_interrupted
 from landcheck.engine.windows import progress_bar
+from landcheck.evidence.charts import class_share_chart, sensitivity_chart, slope_distribution_chart
 from landcheck.evidence.folder import AuditFolder, load_audit_folder
 from landcheck.evidence.maps import (
     VERDICTS,
     FigureItem,
-    class_share_chart,
     load_map_data,
     overview_map,
     parcel_closeup_maps,
-    sensitivity_chart,
-    slope_distribution_chart,
 )
 from landcheck.evidence.style import CONFIDENCE_SHORT, DEFAULT_SLOPE_BREAKS_PCT, VERDICT_TEXT, count_text, yes_no
 from landcheck.evidence.webmap import WEBMAP_CSS, webmap_section
@@ -480,7 +479,19 @@ def _extras_section(folder: AuditFolder) -> str:
             "<p>Each conflicting parcel split along the cells that break its rule; the non-compliant part "
             "is proposed for the class the rulebook designates (reclassification.gpkg). A draft for "
             "discussion, not a decision.</p>"
-            + _table("moves-table", _MOVES_COLUMNS, moves.to_dict("records"), "Area that would move between classes.")
+            + _table(
+                "moves-table",
+                _MOVES_COLUMNS,
+                [
+                    {
+                        **r,
+                        "from_class": labels.get(str(r["from_class"]), r["from_class"]),
+                        "to_class": labels.get(str(r["to_class"]), r["to_class"]),
+                    }
+                    for r in moves.to_dict("records")
+                ],
+                "Area that would move between classes.",
+            )
             + "</section>"
         )
     return "".join(parts)
@@ -886,6 +897,7 @@ def build_report(
     bar = progress_bar(_FIXED_STEPS + max(0, int(max_closeups)), "report", enabled=show_progress, unit="step")
 
     def done(what: str) -> None:
+        raise_if_interrupted()
         bar.set_postfix_str(what, refresh=False)
         bar.update(1)
 

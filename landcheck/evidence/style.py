@@ -14,6 +14,7 @@ import numpy as np
 
 from landcheck.terrain.slope_classes import NO_CLASS, SlopeClassScheme
 from landcheck.terrain.slope_classes import classify_slope as classify_slope_by_scheme
+from landcheck.verdicts.labels import VERDICT_LABELS
 
 __all__ = [
     "VERDICT_TEXT",
@@ -28,14 +29,8 @@ __all__ = [
     "slope_class_colours",
 ]
 
-#: verdict values of parcels.csv -> words shown to readers
-VERDICT_TEXT = {
-    "conflict": "conflict",
-    "review": "review (near a limit)",
-    "consistent": "consistent",
-    "no_data": "no data (outside the DEM)",
-    "no_rule": "no rule for its class",
-}
+#: verdict values of parcels.csv -> words shown to readers (one home: landcheck.verdicts.labels)
+VERDICT_TEXT = VERDICT_LABELS
 
 #: confidence states of confidence.csv -> words shown to readers
 CONFIDENCE_TEXT = {

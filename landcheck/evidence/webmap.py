@@ -36,6 +36,7 @@ import numpy as np
 from landcheck.evidence.folder import AuditFolder
 from landcheck.evidence.maps import _ZONE_STYLE, VERDICTS, _composite, _crs, _MapData
 from landcheck.evidence.style import CONFIDENCE_TEXT, VERDICT_TEXT, count_text, slope_class_colours, slope_class_labels
+from landcheck.verdicts.labels import VERDICT_COLOURS, VERDICT_LINES
 
 __all__ = ["LEAFLET_VERSION", "leaflet_assets", "webmap_section", "WEBMAP_CSS"]
 
@@ -59,14 +60,19 @@ _CONFLICT_KIND_TEXT = {
     2: "inside a zone the class forbids",
     3: "both slope and a forbidden zone",
 }
-# parcel outline per verdict: colour, weight (px), dash pattern
-_WEB_VERDICT_STYLE = {
-    "conflict": ("#111111", 2.4, None),
-    "review": ("#1c8ea6", 2.0, "6 3"),
-    "consistent": ("#24509a", 1.2, None),
-    "no_data": ("#8a8a8a", 1.2, "2 3"),
-    "no_rule": ("#7a3d96", 1.4, "7 3 2 3"),
-}
+# parcel outline per verdict: colour, weight (px), dash pattern (SVG dasharray), from the one verdict
+# vocabulary of maps, report and pre-screen (landcheck.verdicts.labels; matplotlib dashes are in
+# multiples of the line width)
+
+
+def _svg_dash(width: float, dash: object) -> str | None:
+    """SVG dasharray (px) of a matplotlib line style: None for solid, else on/off lengths times the width."""
+    if dash == "solid" or not isinstance(dash, tuple):
+        return None
+    return " ".join(f"{d * width:.1f}" for d in dash[1])
+
+
+_WEB_VERDICT_STYLE = {v: (VERDICT_COLOURS[v], VERDICT_LINES[v][0], _svg_dash(*VERDICT_LINES[v])) for v in VERDICTS}
 _JS_ESCAPES = {"<": "\\u003c", ">": "\\u003e", "&": "\\u0026"}
 
 

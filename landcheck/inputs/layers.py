@@ -246,25 +246,6 @@ def validate_parcels(
     return ParcelSet(gdf, where, notes)
 
 
-def ground_areas(gdf, crs_wkt: str) -> tuple[np.ndarray, np.ndarray]:
-    """Ellipsoidal area of each geometry and the factor turning map-plane area into ground area.
-
-    Returns
-    -------
-    area_m2 : ndarray
-        Area on the CRS's ellipsoid, edges taken as straight lines of the layer's CRS (GIS convention);
-        0 for empty geometries.  Agrees with pyproj.Geod (Karney 2013) on densified edges to ~1e-9.
-    area_factor : ndarray
-        1 / areal scale factor of the projection at each geometry's centroid (1 on geographic CRSs),
-        so that map-plane cell areas times the factor are ground areas.
-
-    The work is vectorised over all vertices (:mod:`landcheck.geo.ground_area`).
-    """
-    from landcheck.geo.ground_area import ground_areas_fast
-
-    return ground_areas_fast(gdf, crs_wkt)
-
-
 def _inverse_areal_scale(crs, lon, lat) -> np.ndarray:
     import pyproj
 

@@ -36,6 +36,7 @@ import tempfile
 from collections.abc import Iterable, Iterator
 from pathlib import Path
 
+from landcheck.engine.interrupt import raise_if_interrupted
 from landcheck.errors import OutputExistsError, OutputWriteError
 from landcheck.hashing import sha256_file
 
@@ -370,6 +371,7 @@ def staged_folder(final: str | os.PathLike, *, overwrite: bool = False) -> Itera
             raise OutputWriteError(f"{final}: cannot create the output folder ({exc.strerror or exc}).") from exc
         try:
             yield stage
+            raise_if_interrupted()  # a Ctrl-C whose KeyboardInterrupt was lost still publishes nothing
             write_file_list(stage)
             (stage / PARTIAL_MARKER).unlink()
             _check_target(final, overwrite, when="appeared while this run was working")

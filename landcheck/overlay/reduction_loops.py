@@ -1,10 +1,10 @@
-"""Compiled (numba) window reduction: the loop behind :func:`landcheck.overlay.sums.accumulate_window_compiled`.
+"""Compiled (numba) window reduction: the loop behind :func:`landcheck.overlay.sums.accumulate_window`.
 
 One pass over the (geometry, cell, fraction) triplets of a window adds every
 pair, rounded to a fixed quantum (so sums are exact and independent of their
 order; :data:`landcheck.overlay.sums.AREA_QUANTUM_M2`), straight into per-parcel
 accumulators, in the order of the triplets, with
-the same arithmetic as the NumPy reference :func:`landcheck.overlay.sums.accumulate_window`
+the same arithmetic as the NumPy reference :func:`landcheck.overlay.sums.accumulate_window_reference`
 (``np.bincount`` and ``np.add.at`` also add in input order), so the two give
 bit-identical sums (tests check this).  The loop releases the GIL, so worker
 threads run windows side by side.

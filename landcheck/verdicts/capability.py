@@ -36,6 +36,7 @@ covered area.  The sums merge across windows by addition.
 from __future__ import annotations
 
 import os
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -186,6 +187,31 @@ class CapabilitySpec:
         )
 
 
+def resolve_capability_scheme(scheme: str | SlopeClassScheme | Sequence[float]) -> SlopeClassScheme:
+    """The slope-class scheme of a capability map: a built-in key, a scheme, or inner breaks in percent.
+
+    Raises
+    ------
+    RuleFileError
+        Unknown scheme, bad breaks, or more classes than fit beside the hazard flag.
+    """
+    try:
+        if isinstance(scheme, SlopeClassScheme):
+            sch = scheme
+        elif isinstance(scheme, str):
+            sch = get_scheme(scheme)
+        else:
+            sch = scheme_from_breaks(list(scheme))
+    except (ValueError, TypeError) as exc:
+        raise RuleFileError(f"capability map: {exc}.") from None
+    if len(sch.labels) >= HAZARD_FLAG:
+        raise RuleFileError(
+            f"capability map: scheme {sch.key!r} has {len(sch.labels)} classes; at most "
+            f"{HAZARD_FLAG - 1} fit beside the hazard flag."
+        )
+    return sch
+
+
 def capability_spec(
     rules: Rulebook, zones=None, *, scheme: str | SlopeClassScheme | list = "planning-6", hazard_zones=None
 ) -> CapabilitySpec:
@@ -209,20 +235,7 @@ def capability_spec(
     """
     import shapely
 
-    try:
-        if isinstance(scheme, SlopeClassScheme):
-            sch = scheme
-        elif isinstance(scheme, str):
-            sch = get_scheme(scheme)
-        else:
-            sch = scheme_from_breaks(scheme)
-    except (ValueError, TypeError) as exc:
-        raise RuleFileError(f"capability map: {exc}.") from None
-    if len(sch.labels) >= HAZARD_FLAG:
-        raise RuleFileError(
-            f"capability map: scheme {sch.key!r} has {len(sch.labels)} classes; at most "
-            f"{HAZARD_FLAG - 1} fit beside the hazard flag."
-        )
+    sch = resolve_capability_scheme(scheme)
     names = [z.name for z in rules.zones]
     if hazard_zones is None:
         chosen = tuple(names)
@@ -299,7 +312,7 @@ def accumulate_capability(
     cell_area_m2 : ndarray (h,)
         Map-plane area of one cell of each window row.
     candidates, triplets
-        As for :func:`landcheck.overlay.sums.accumulate_window` (pieces are ignored; parcels count).
+        As for :func:`landcheck.overlay.sums.accumulate_window_reference` (pieces are ignored; parcels count).
     plan : OverlayPlan
 
     Returns

@@ -15,7 +15,7 @@ For every realization ``k`` and every window of the audit:
 3. slope is recomputed with the same kernel as the audit
    (:func:`landcheck.terrain.slope.slope_gradient`, compiled backend);
 4. the per-parcel over-limit and conflict areas come from the same overlay
-   code as the audit (:func:`landcheck.overlay.sums.accumulate_window_compiled` with the
+   code as the audit (:func:`landcheck.overlay.sums.accumulate_window` with the
    audit's :class:`~landcheck.overlay.sums.OverlayPlan`, reduced to the class
    limits).  Exact coverage fractions depend on geometry only, so they are
    computed **once per window** and reused for every realization;
@@ -82,7 +82,7 @@ from landcheck.overlay.sums import (
     ROLE_FORBIDDEN_PIECE,
     ROLE_PARCEL,
     OverlayPlan,
-    accumulate_window_compiled,
+    accumulate_window,
 )
 from landcheck.terrain.dem_error import (
     ErrorModel,
@@ -310,7 +310,7 @@ def _realizations(ctx: _Context, wd: _WindowData, r0: int, r1: int) -> _TaskResu
         z = error_field_with_halo(ctx.model, win, HALO_CELLS, g.height, g.width, ctx.seed, k)
         z += wd.elev  # z is a new array from the generator: the DEM window is never modified
         slope_pct = gradient_to_unit(slope_gradient(z, hx, hy, ctx.method, backend="compiled"), "percent")
-        sums, _ = accumulate_window_compiled(slope_pct, wd.zone_bits, cell_area, wd.candidates, wd.triplets, ctx.plan)
+        sums, _ = accumulate_window(slope_pct, wd.zone_bits, cell_area, wd.candidates, wd.triplets, ctx.plan)
         if parcels is None:
             parcels = sums.parcels
             cols = np.maximum(ctx.plan.limit_index[parcels], 0)

@@ -22,7 +22,7 @@ VERDICT_LABELS: dict[str, str] = {
     Verdict.CONFLICT: "conflict",
     Verdict.REVIEW: "review (near a limit)",
     Verdict.CONSISTENT: "consistent",
-    Verdict.NO_DATA: "no data (outside DEM)",
+    Verdict.NO_DATA: "no data (outside the DEM)",
     Verdict.NO_RULE: "no rule for its class",
 }
 

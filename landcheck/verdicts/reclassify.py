@@ -27,7 +27,7 @@ Non-compliant slivers go first, so an isolated steep patch below the unit
 never changes a parcel's class.  A parcel whose whole breach is smaller
 than the unit keeps one (compliant) part; one whose compliant remainder is
 smaller than the unit is proposed whole.  Areas are ground areas
-(:func:`landcheck.inputs.layers.ground_areas`, geodesic).
+(:func:`landcheck.geo.ground_area.ground_areas`, geodesic).
 
 The non-compliant part is proposed for the class's ``designated_class``
 (rulebook); the compliant part keeps its class.
@@ -106,7 +106,7 @@ def _cell_window(grid: GridSpec, bounds) -> Window | None:
 def _ground(geoms, crs_wkt: str) -> np.ndarray:
     import geopandas as gpd
 
-    from landcheck.inputs.layers import ground_areas
+    from landcheck.geo.ground_area import ground_areas
 
     if len(geoms) == 0:
         return np.empty(0)

@@ -34,7 +34,28 @@
   }
   function msg(kind, text, id) { return h("div", { class: "msg " + kind, id: id, role: kind === "bad" ? "alert" : null, text }); }
   function fmtNum(v, d) { return (v === null || v === undefined || v === "") ? "–" : Number(v).toLocaleString("en", { maximumFractionDigits: d === undefined ? 2 : d }); }
-  function badge(v) { return h("span", { class: "badge v-" + v, text: v }); }
+  // plain words for readers: verdicts and column names of parcels.csv (docs/outputs.md)
+  const VERDICT_WORDS = { no_data: "no data", no_rule: "no rule" };
+  const say = v => VERDICT_WORDS[v] || String(v).replace(/_/g, " ");
+  const FIELD_WORDS = {
+    parcel_id: "Parcel id", class_value: "Class value", class_name: "Class", area_m2: "Area (m²)",
+    covered_m2: "Covered by the DEM (m²)", evaluated_m2: "With a slope value (m²)", evaluated_share: "Share with a slope value",
+    slope_mean_pct: "Mean slope (%)", slope_max_pct: "Steepest slope (%)", max_slope_pct: "Slope limit of the class (%)",
+    over_limit_m2: "At or over the limit (m²)", over_limit_share: "Share at or over the limit", near_limit_m2: "Near the limit (m²)",
+    conflict_m2: "Conflict area (m²)", conflict_share: "Conflict share", verdict: "Verdict", reasons: "Reasons",
+    geometry_note: "Geometry note", p_conflict: "Chance of conflict under DEM error", confidence: "Confidence",
+    share_over_limit: "Share at or over the limit",
+  };
+  const field = k => FIELD_WORDS[k] || k.replace(/^zone_/, "zone ").replace(/_m2$/, " (m²)").replace(/_share$/, " share").replace(/_/g, " ");
+  function fieldValue(k, v) {
+    if (v === "" || v === null || v === undefined) return "–";
+    if (k === "verdict" || k === "confidence") return say(v);
+    if (/share$|^p_conflict$/.test(k)) return fmtNum(100 * Number(v), 1) + " %";
+    if (/_m2$/.test(k)) return fmtNum(v, 1);
+    if (/_pct$/.test(k)) return fmtNum(v, 1);
+    return String(v);
+  }
+  function badge(v) { return h("span", { class: "badge v-" + v, text: say(v) }); }
   function setCrumbs(...parts) { crumbs.replaceChildren(...parts.flatMap((p, i) => i ? [" › ", p] : [p])); }
   function stopTimer() { if (timer) { clearTimeout(timer); timer = null; } }
 
@@ -411,7 +432,7 @@
     if (my !== routeGen) return;
     const byId = Object.fromEntries(tab.rows.map(row => [row.parcel_id, row]));
     const classes = [...new Set(tab.rows.map(x => x.class_name))].sort();
-    const fv = h("select", { id: "filter-verdict" }, h("option", { value: "", text: "all verdicts" }), VERDICTS.map(v => h("option", { value: v, text: v })));
+    const fv = h("select", { id: "filter-verdict" }, h("option", { value: "", text: "all verdicts" }), VERDICTS.map(v => h("option", { value: v, text: say(v) })));
     const fc = h("select", { id: "filter-class" }, h("option", { value: "", text: "all classes" }), classes.map(v => h("option", { value: v, text: v })));
     const NS = "http://www.w3.org/2000/svg";
     const svg = document.createElementNS(NS, "svg");
@@ -423,7 +444,7 @@
       const p = document.createElementNS(NS, "path");
       p.setAttribute("d", s.d); p.setAttribute("data-id", s.id); p.setAttribute("data-verdict", s.verdict); p.setAttribute("data-class", s.class_name);
       p.setAttribute("fill", getComputedStyle(document.documentElement).getPropertyValue("--v-" + s.verdict).trim() || "#999");
-      const title = document.createElementNS(NS, "title"); title.textContent = `parcel ${s.id}: ${s.verdict}`; p.append(title);
+      const title = document.createElementNS(NS, "title"); title.textContent = `parcel ${s.id}: ${say(s.verdict)}`; p.append(title);
       p.addEventListener("click", () => { location.hash = `#/r/${r.id}/parcel/${encodeURIComponent(s.id)}`; });
       svg.append(p); paths[s.id] = p;
     }
@@ -439,16 +460,16 @@
         if (!ok) continue;
         n++;
         if (n <= 2000) tbody.append(h("tr", { class: row.parcel_id === parcelId ? "sel" : null, onclick: () => { location.hash = `#/r/${r.id}/parcel/${encodeURIComponent(row.parcel_id)}`; } },
-          cols.map(c => h("td", {}, c === "verdict" ? badge(row[c]) : (/_m2$|share/.test(c) ? fmtNum(row[c], c.includes("share") ? 4 : 1) : row[c])))));
+          cols.map(c => h("td", {}, c === "verdict" ? badge(row[c]) : fieldValue(c, row[c])))));
       }
-      document.getElementById("filter-count").textContent = `${n} parcel(s)`;
+      document.getElementById("filter-count").textContent = `${n.toLocaleString("en")} ${n === 1 ? "parcel" : "parcels"}`;
     };
     fv.addEventListener("change", apply); fc.addEventListener("change", apply);
     const legend = h("div", { class: "legend" }, VERDICTS.map(v => h("span", {}, badge(v))));
     const results = h("section", { class: "panel wide", id: "results" }, h("h2", { text: "Explore" }),
       h("div", { class: "row" }, h("label", {}, "Verdict ", fv), h("label", {}, "Class ", fc), h("span", { id: "filter-count", class: "muted" })),
       h("div", { class: "mapwrap" }, h("div", {}, svg, legend, map.truncated ? msg("note", "The map shows the first parcels only; the table and the report have all.") : null), panelBox),
-      h("div", { class: "scroll" }, h("table", { id: "parcel-table" }, h("thead", {}, h("tr", {}, cols.map(c => h("th", { text: c })))), tbody)));
+      h("div", { class: "scroll" }, h("table", { id: "parcel-table" }, h("thead", {}, h("tr", {}, cols.map(c => h("th", { text: field(c) })))), tbody)));
     const report = h("section", { class: "panel wide", id: "report-panel" }, h("h2", { text: "Report" }),
       h("iframe", { class: "report", id: "report-frame", src: `/runs/${r.id}/files/report.html`, title: "The run's report", sandbox: "allow-scripts allow-popups allow-downloads" }));
     view.querySelector(".steps").append(results, report);
@@ -457,8 +478,8 @@
       const row = byId[parcelId];
       if (paths[parcelId]) paths[parcelId].classList.add("sel");
       const pre = r.outputs.find(o => o.path === "prescreen/prescreen.html");
-      panelBox.replaceChildren(h("h3", {}, "Parcel ", h("span", { id: "panel-id", text: parcelId }), " ", h("span", { id: "panel-verdict", class: "badge v-" + row.verdict, text: row.verdict })),
-        h("dl", { class: "facts", id: "parcel-facts" }, Object.entries(row).flatMap(([k, v]) => [h("dt", { text: k }), h("dd", { text: v === "" ? "–" : v })])),
+      panelBox.replaceChildren(h("h3", {}, "Parcel ", h("span", { id: "panel-id", text: parcelId }), " ", h("span", { id: "panel-verdict", class: "badge v-" + row.verdict, text: say(row.verdict) })),
+        h("dl", { class: "facts", id: "parcel-facts" }, Object.entries(row).flatMap(([k, v]) => [h("dt", { text: field(k) }), h("dd", { text: fieldValue(k, v) })])),
         ...(pre ? [h("a", { href: `/runs/${r.id}/files/prescreen/prescreen.html`, target: "_blank", rel: "noopener", text: "Open the pre-screen page" })] : []));
       if (paths[parcelId]) svg.append(paths[parcelId]);
     } else {
