@@ -198,7 +198,11 @@ class Totals:
     def __getattr__(self, name):
         q = self.__dict__.get("_q")
         if q is not None and name in q:
-            return q[name] * AREA_QUANTUM_M2
+            # converted once per state, not per read: callers index these arrays parcel by parcel
+            cache = self.__dict__.setdefault("_m2", {})
+            if name not in cache:
+                cache[name] = q[name] * AREA_QUANTUM_M2
+            return cache[name]
         raise AttributeError(name)
 
     @property
@@ -214,6 +218,7 @@ class Totals:
         return float(self._q_land_within * AREA_QUANTUM_M2)
 
     def add(self, s: WindowSums) -> None:
+        self.__dict__.pop("_m2", None)
         p = s.parcels
         for f in self._AREA_FIELDS:
             if f == "class_hist_m2":
