@@ -79,6 +79,11 @@ class HandSpec:
     max_hand_m: float
 
 
+def _halo_vec(a: np.ndarray) -> np.ndarray:
+    """The halo cells of an ``(h + 2, w + 2)`` array in a fixed order (top, bottom, left, right)."""
+    return np.concatenate([a[0], a[-1], a[1:-1, 0], a[1:-1, -1]])
+
+
 def _ring(a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     return a[0].copy(), a[-1].copy(), a[:, 0].copy(), a[:, -1].copy()
 
@@ -239,41 +244,45 @@ def _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scrat
     def z_halo(k):
         return np.ascontiguousarray(tiles.with_halo(k, scratch.load("z", k), z_rings, np.float32(np.nan)))
 
-    d_rings: list = [None] * len(wins)
+    n = len(wins)
+    d_rings: list = [None] * n  # each tile's edge distances as it last found them
+    used: list = [None] * n  # the halo distances each tile was last searched with
+    relevant: list = [None] * n  # halo cells next to a flat cell of their own height (fixed by the surface)
 
     def flats(win):
         k = tiles.k(win)
         zh = z_halo(k)
         dh = tiles.with_halo(k, np.zeros((win.height, win.width), np.int32), d_rings, loops.FAR)
-        d, n_flat = loops.flat_distances(zh, dh, DRS, DCS)
-        inner = d[1:-1, 1:-1]
-        ring = _ring(inner)
-        flat_edge = any(bool(np.any((r > 0) & ~np.isnan(zr))) for r, zr in zip(ring, z_rings[k]))
-        return ring, flat_edge
+        d, _ = loops.flat_distances(zh, dh, DRS, DCS)
+        scratch.save("dist", k, d[1:-1, 1:-1])
+        rel = _halo_vec(loops.halo_relevance(zh, d, DRS, DCS)) if relevant[k] is None else None
+        return _ring(d[1:-1, 1:-1]), _halo_vec(dh), rel
 
     step("flow routing by tiles: flats")
-    work = list(range(len(wins)))
-    flat_edge = [False] * len(wins)
-    rounds = 0
+    work = list(range(n))
+    rounds = searched = 0
     while work:
         rounds += 1
+        searched += len(work)
         changed = []
-        for win, (ring, fe) in run_windows(flats, [wins[k] for k in work], workers=workers):
+        for win, (ring, halo, rel) in run_windows(flats, [wins[k] for k in work], workers=workers):
             k = tiles.k(win)
-            old = d_rings[k]
-            flat_edge[k] = fe
-            if old is None or any(not np.array_equal(a, b) for a, b in zip(old, ring)):
+            if rel is not None:
+                relevant[k] = rel
+            used[k] = halo
+            if d_rings[k] is None or any(not np.array_equal(a, b) for a, b in zip(d_rings[k], ring)):
                 changed.append(k)
             d_rings[k] = ring
-        if rounds == 1:
-            work = [k for k in range(len(wins)) if flat_edge[k]]
-        else:
-            # a new round runs only where a neighbour's edge changed and flats reach the tile's edge
-            todo = {j for k in changed for j in tiles.neighbours(k) if flat_edge[j]}
-            work = sorted(todo)
-        if rounds > 1 and not changed:
-            break
-    logger.debug("flats settled after %d rounds", rounds)
+        # search again only the tiles where a halo cell that touches one of their flats got nearer an exit
+        work = []
+        for j in sorted({j for k in changed for j in tiles.neighbours(k)}):
+            if relevant[j].any():
+                w = wins[j]
+                halo = _halo_vec(tiles.with_halo(j, np.zeros((w.height, w.width), np.int32), d_rings, loops.FAR))
+                if np.any(halo[relevant[j]] < used[j][relevant[j]]):
+                    work.append(j)
+    logger.debug("flats settled after %d rounds, %d tile searches", rounds, searched)
+    used = relevant = []
 
     # ---- 3. D8 codes
     step("flow routing by tiles: D8 directions")
@@ -281,14 +290,14 @@ def _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scrat
     def directions(win):
         k = tiles.k(win)
         zh = z_halo(k)
-        dh = tiles.with_halo(k, np.zeros((win.height, win.width), np.int32), d_rings, loops.FAR)
-        d, _ = loops.flat_distances(zh, dh, DRS, DCS)
+        d = tiles.with_halo(k, scratch.load("dist", k), d_rings, loops.FAR)
         code, stranded = loops.d8_codes(
             zh, d, _rows_with_halo(spec.hx_m, win), _rows_with_halo(spec.hy_m, win), DRS, DCS, CODES
         )
         if stranded:
             raise RuntimeError(f"{stranded} flat cells found no exit in tile {k}: the surface is not filled")
         scratch.save("d8", k, code)
+        (scratch.folder / f"dist_{k}.npy").unlink()
         return _ring(code)
 
     d8_rings = [res for _, res in run_windows(directions, wins, workers=workers)]

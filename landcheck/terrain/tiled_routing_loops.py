@@ -103,6 +103,26 @@ def flat_distances(zh, dh, drs, dcs):
 
 
 @numba.njit(cache=True, nogil=True)
+def halo_relevance(zh, d, drs, dcs):
+    """Halo cells next to a flat cell of the tile with the same height: the only halo distances a search uses."""
+    H, W = zh.shape
+    rel = np.zeros((H, W), np.bool_)
+    for r in range(1, H - 1):
+        for c in range(1, W - 1):
+            if not (r == 1 or c == 1 or r == H - 2 or c == W - 2):
+                continue
+            z = zh[r, c]
+            if np.isnan(z) or d[r, c] == 0:
+                continue
+            for k in range(8):
+                rn = r + drs[k]
+                cn = c + dcs[k]
+                if (rn == 0 or cn == 0 or rn == H - 1 or cn == W - 1) and zh[rn, cn] == z:
+                    rel[rn, cn] = True
+    return rel
+
+
+@numba.njit(cache=True, nogil=True)
 def d8_codes(zh, d, hx, hy, drs, dcs, codes):
     """D8 code of each cell of the tile: steepest descent, else a pit on the edge, else along its flat.
 
