@@ -84,6 +84,12 @@ def _halo_vec(a: np.ndarray) -> np.ndarray:
     return np.concatenate([a[0], a[-1], a[1:-1, 0], a[1:-1, -1]])
 
 
+def _halo_index(H: int, W: int) -> np.ndarray:
+    """Flat indices into an ``(H, W)`` array of the cells :func:`_halo_vec` lists, in its order."""
+    r = np.arange(1, H - 1)
+    return np.concatenate([np.arange(W), (H - 1) * W + np.arange(W), r * W, r * W + W - 1])
+
+
 def _ring(a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     return a[0].copy(), a[-1].copy(), a[:, 0].copy(), a[:, -1].copy()
 
@@ -253,10 +259,18 @@ def _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scrat
         k = tiles.k(win)
         zh = z_halo(k)
         dh = tiles.with_halo(k, np.zeros((win.height, win.width), np.int32), d_rings, loops.FAR)
-        d, _ = loops.flat_distances(zh, dh, DRS, DCS)
+        halo = _halo_vec(dh)
+        if used[k] is None:
+            d, _ = loops.flat_distances(zh, dh, DRS, DCS)
+            rel = _halo_vec(loops.halo_relevance(zh, d, DRS, DCS))
+        else:
+            # grow on from the stored distances, seeded by the halo cells that got nearer an exit
+            dh[1:-1, 1:-1] = scratch.load("dist", k)
+            rel = relevant[k]
+            seeds = _halo_index(*dh.shape)[rel & (halo < used[k])]
+            d = loops.regrow_flat_distances(zh, dh, seeds, DRS, DCS)
         scratch.save("dist", k, d[1:-1, 1:-1])
-        rel = _halo_vec(loops.halo_relevance(zh, d, DRS, DCS)) if relevant[k] is None else None
-        return _ring(d[1:-1, 1:-1]), _halo_vec(dh), rel
+        return _ring(d[1:-1, 1:-1]), halo, rel
 
     step("flow routing by tiles: flats")
     work = list(range(n))
@@ -267,8 +281,7 @@ def _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scrat
         changed = []
         for win, (ring, halo, rel) in run_windows(flats, [wins[k] for k in work], workers=workers):
             k = tiles.k(win)
-            if rel is not None:
-                relevant[k] = rel
+            relevant[k] = rel
             used[k] = halo
             if d_rings[k] is None or any(not np.array_equal(a, b) for a, b in zip(d_rings[k], ring)):
                 changed.append(k)

@@ -73,8 +73,22 @@ def flat_distances(zh, dh, drs, dcs):
                 seed_idx[ns] = rn * W + cn
                 seed_d[ns] = d[rn, cn]
                 ns += 1
-    order = np.argsort(seed_d[:ns], kind="mergesort")
-    q = np.empty(n_flat, np.int64)
+    _grow(zh, d, flat, seed_idx[:ns], seed_d[:ns], drs, dcs)
+    return d, n_flat
+
+
+@numba.njit(cache=True, nogil=True)
+def _grow(zh, d, flat, seed_idx, seed_d, drs, dcs):
+    """Breadth-first growth of the distances ``d`` over ``flat`` cells of equal height from the seeds.
+
+    Cells leave in order of distance: the FIFO queue is merged with the seeds sorted by distance.
+    Only distances that fall are written, so growing from more seeds later gives the same result as
+    one search from all of them.
+    """
+    H, W = zh.shape
+    ns = seed_idx.shape[0]
+    order = np.argsort(seed_d, kind="mergesort")
+    q = np.empty(H * W, np.int64)
     qh = 0
     qt = 0
     si = 0
@@ -95,11 +109,28 @@ def flat_distances(zh, dh, drs, dcs):
             if rn < 1 or rn >= H - 1 or cn < 1 or cn >= W - 1:
                 continue
             if flat[rn, cn] and zh[rn, cn] == z and d[rn, cn] > du + 1:
-                if d[rn, cn] == FAR:
-                    q[qt] = rn * W + cn
-                    qt += 1
                 d[rn, cn] = du + 1
-    return d, n_flat
+                q[qt] = rn * W + cn
+                qt += 1
+
+
+@numba.njit(cache=True, nogil=True)
+def regrow_flat_distances(zh, d, seed_idx, drs, dcs):
+    """Lower the stored distances ``d`` (with halo, the halo updated) from the halo cells ``seed_idx``.
+
+    Flat cells are the valid interior cells with a distance other than 0; the result equals a full
+    :func:`flat_distances` with the new halo, since distances only ever fall.
+    """
+    H, W = zh.shape
+    flat = np.zeros((H, W), np.bool_)
+    for r in range(1, H - 1):
+        for c in range(1, W - 1):
+            flat[r, c] = d[r, c] != 0 and not np.isnan(zh[r, c])
+    seed_d = np.empty(seed_idx.shape[0], np.int64)
+    for i in range(seed_idx.shape[0]):
+        seed_d[i] = d.flat[seed_idx[i]]
+    _grow(zh, d, flat, seed_idx, seed_d, drs, dcs)
+    return d
 
 
 @numba.njit(cache=True, nogil=True)
