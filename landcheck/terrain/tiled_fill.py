@@ -87,22 +87,67 @@ def _heap_pop(keys, seqs, idx, size):
 
 
 @numba.njit(cache=True, nogil=True)
-def _tile_flood(zh, drs, dcs):
+def _uheap_push(heap, size, key):
+    j = size
+    heap[j] = key
+    while j > 0:
+        p = (j - 1) // 2
+        if heap[p] <= heap[j]:
+            break
+        heap[p], heap[j] = heap[j], heap[p]
+        j = p
+    return size + 1
+
+
+@numba.njit(cache=True, nogil=True)
+def _uheap_pop(heap, size):
+    top = heap[0]
+    size -= 1
+    heap[0] = heap[size]
+    j = 0
+    while True:
+        a = 2 * j + 1
+        b = a + 1
+        m = j
+        if a < size and heap[a] < heap[m]:
+            m = a
+        if b < size and heap[b] < heap[m]:
+            m = b
+        if m == j:
+            break
+        heap[m], heap[j] = heap[j], heap[m]
+        j = m
+    return top, size
+
+
+def _order_bits(z: np.ndarray) -> np.ndarray:
+    """float32 -> uint64 whose order is the order of the values (NaN cells are never used)."""
+    u = np.ascontiguousarray(z, dtype=np.float32).view(np.uint32).astype(np.uint64)
+    neg = (u & np.uint64(0x80000000)) != 0
+    return np.where(neg, np.uint64(0xFFFFFFFF) - u, u | np.uint64(0x80000000))
+
+
+@numba.njit(cache=True, nogil=True)
+def _tile_flood_bits(zh, bits, drs, dcs):
     """Priority-Flood of one tile given with a 1-cell halo ``zh`` (NaN off the raster and on nodata).
 
-    Returns ``(filled, label, n_labels, edge_a, edge_b, edge_w)``: labels 0 (outlet) and
-    1..n_labels-1 (perimeter cells, row-major along the perimeter), spill edges between labels.
+    ``bits``: :func:`_order_bits` of ``zh``.  Returns ``(filled, label, n_labels, edge_a, edge_b,
+    edge_w)``: labels 0 (outlet) and 1..n_labels-1 (perimeter cells, row-major along the perimeter),
+    spill edges between labels.  The heap holds one uint64 per cell, the level's order bits above
+    the cell index; cells reached below the current level go to a plain FIFO queue instead (the
+    improved Priority-Flood of Barnes et al. 2014), which fills them to that level.
     """
     H, W = zh.shape
     h, w = H - 2, W - 2
     n = h * w
     filled = np.empty((h, w), np.float32)
+    level_bits = np.empty(n, np.uint64)
     label = np.full((h, w), -1, np.int64)
-    keys = np.empty(n, np.float32)
-    seqs = np.empty(n, np.int64)
-    idx = np.empty(n, np.int64)
+    heap = np.empty(n, np.uint64)
+    pit = np.empty(n, np.int64)
+    ph = 0
+    pt = 0
     size = 0
-    seq = 0
     n_labels = 1
     for r in range(h):
         for c in range(w):
@@ -122,15 +167,22 @@ def _tile_flood(zh, drs, dcs):
                     label[r, c] = n_labels
                     n_labels += 1
                 filled[r, c] = z
-                size = _heap_push(keys, seqs, idx, size, z, seq, r * w + c)
-                seq += 1
+                i = r * w + c
+                level_bits[i] = bits[r + 1, c + 1]
+                size = _uheap_push(heap, size, (bits[r + 1, c + 1] << np.uint64(32)) | np.uint64(i))
     edges = dict()
     edges[np.int64(-1)] = np.float32(0.0)  # typed by first insertion
-    while size > 0:
-        i, size = _heap_pop(keys, seqs, idx, size)
+    while size > 0 or ph < pt:
+        if ph < pt:
+            i = pit[ph]
+            ph += 1
+        else:
+            key, size = _uheap_pop(heap, size)
+            i = np.int64(key & np.uint64(0xFFFFFFFF))
         r0 = i // w
         c0 = i % w
         f0 = filled[r0, c0]
+        b0 = level_bits[i]
         l0 = label[r0, c0]
         for k in range(8):
             r = r0 + drs[k]
@@ -145,17 +197,23 @@ def _tile_flood(zh, drs, dcs):
                 if ln != l0:
                     a = min(l0, ln)
                     b = max(l0, ln)
-                    key = a * (n + 1) + b
+                    ekey = a * (n + 1) + b
                     s = max(f0, filled[r, c])
-                    old = edges.get(key, np.float32(np.inf))
+                    old = edges.get(ekey, np.float32(np.inf))
                     if s < old:
-                        edges[key] = s
+                        edges[ekey] = s
                 continue
-            f = z if z > f0 else f0
-            filled[r, c] = f
+            j = r * w + c
             label[r, c] = l0
-            size = _heap_push(keys, seqs, idx, size, f, seq, r * w + c)
-            seq += 1
+            if z <= f0:
+                filled[r, c] = f0
+                level_bits[j] = b0
+                pit[pt] = j
+                pt += 1
+            else:
+                filled[r, c] = z
+                level_bits[j] = bits[r + 1, c + 1]
+                size = _uheap_push(heap, size, (bits[r + 1, c + 1] << np.uint64(32)) | np.uint64(j))
     del edges[np.int64(-1)]
     m = len(edges)
     ea = np.empty(m, np.int64)
@@ -168,6 +226,13 @@ def _tile_flood(zh, drs, dcs):
         ew[j] = val
         j += 1
     return filled, label, n_labels, ea, eb, ew
+
+
+def _tile_flood(zh: np.ndarray, drs, dcs):
+    """:func:`_tile_flood_bits` of ``zh`` (float32 with halo); refuses tiles of 2**32 cells or more."""
+    if (zh.shape[0] - 2) * (zh.shape[1] - 2) >= 2**32:
+        raise ValueError("a tile must hold fewer than 2**32 cells")
+    return _tile_flood_bits(zh, _order_bits(zh), drs, dcs)
 
 
 @numba.njit(cache=True, nogil=True)
