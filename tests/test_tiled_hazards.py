@@ -356,3 +356,72 @@ scenarios_m = [0.5, 1.0, 2.0]
     forest = share[whole["class_name"] == "forest"].mean()
     urban = share[whole["class_name"] == "res"].mean()
     assert forest > 3 * urban > 0
+
+
+def test_vector_zones_clipped_to_tiles_give_the_shares_of_one_union(tmp_path):
+    # Easement strips of a user river layer and flood polygons are unioned tile by tile (pieces clipped to
+    # 7-cell tiles before any union); parcel shares equal those of one tile covering the raster up to
+    # rounding (the same set of points, cut along tile edges).  Source: docs/references.md §17 (clipping
+    # is exact: the union of the clipped pieces is the clipped union).
+    import shapely
+    from _support import write_parcels, write_raster
+
+    from landcheck.core.audit import audit
+    from landcheck.zones.prepare import union_by_tiles
+
+    h, w = 41, 59
+    x0, y0 = 400000.0, 1600000.0
+    rng = np.random.default_rng(5)
+    dem = write_raster(tmp_path / "dem.tif", (50 + rng.normal(0, 0.2, (h, w))).astype(np.float32))
+    river = shapely.LineString([(x0 - 30, y0 - 75), (x0 + 300, y0 - 210), (x0 + 620, y0 - 130)])
+    write_parcels(tmp_path / "rivers.gpkg", [river], layer="rivers", width_m=[6.0])
+    blobs = [shapely.Point(x0 + 150, y0 - 300).buffer(90), shapely.Point(x0 + 260, y0 - 260).buffer(70)]
+    write_parcels(tmp_path / "flood.gpkg", blobs, layer="flood", level=[3, 2])
+    polys, zoning = [], []
+    for i in range(5):
+        for j in range(7):
+            polys.append(shapely.box(x0 + 15 + j * 82, y0 - 15 - i * 80, x0 + 85 + j * 82, y0 - 88 - i * 80))
+            zoning.append(["R", "A"][(i + j) % 2])
+    parcels = write_parcels(tmp_path / "p.gpkg", polys, pid=list(range(1, 36)), zoning=zoning)
+    (tmp_path / "r.toml").write_text(
+        """
+[rulebook]
+class_field = "zoning"
+id_field = "pid"
+[layers]
+rivers = "rivers.gpkg"
+flood = "flood.gpkg"
+[classes.res]
+values = ["R"]
+context = "urban"
+forbidden_zones = ["river", "flood"]
+[classes.agr]
+values = ["A"]
+context = "agricultural"
+forbidden_zones = ["river", "flood"]
+[zones.river]
+kind = "easement"
+layer = "rivers"
+channel_width_field = "width_m"
+width_m = { urban = 10.0, agricultural = 30.0 }
+[zones.flood]
+kind = "flood_polygons"
+layer = "flood"
+level_field = "level"
+min_level = 2
+"""
+    )
+    small = audit(dem, parcels, tmp_path / "r.toml", tmp_path / "o7", make_report=False, tile_cells=7).parcels
+    whole = audit(dem, parcels, tmp_path / "r.toml", tmp_path / "o1", make_report=False, tile_cells=1024).parcels
+    for c in ["zone_river_m2", "zone_flood_m2", "conflict_m2"]:
+        np.testing.assert_allclose(small[c].to_numpy(), whole[c].to_numpy(), rtol=1e-9, atol=1e-6, err_msg=c)
+        assert whole[c].sum() > 0, c
+    assert small["verdict"].tolist() == whole["verdict"].tolist()
+    # the tiled union covers exactly the plain union (shapely), pieces never overlap
+    from landcheck.geo.grid import GridSpec
+
+    g = GridSpec(Affine(10, 0, x0, 0, -10, y0), "EPSG:32651", w, h, False)
+    tiled = union_by_tiles(blobs, g, 7)
+    parts = shapely.get_parts(tiled)
+    assert len(parts) > 10
+    assert sum(p.area for p in parts) == pytest.approx(shapely.union_all(blobs).area, rel=1e-12)

@@ -679,7 +679,11 @@ def _forbidden_vector_union(zone_layers: dict, rules: Rulebook, cls: ClassRule):
             continue
         gdf = zone_layers[f"zone_{zname}"]
         if "context" in gdf.columns:
-            variants = {None if c == "all" else LandContext(c): g for c, g in zip(gdf["context"], gdf.geometry.values)}
+            # one row per piece (zones.prepare.zone_pieces_frame): the pieces of each context together
+            variants = {
+                None if c == "all" else LandContext(c): shapely.GeometryCollection(list(grp.geometry.values))
+                for c, grp in gdf.groupby("context", sort=False)
+            }
             geoms = [pick_variant(variants, cls.context)]
         else:
             geoms = list(gdf.geometry.values)

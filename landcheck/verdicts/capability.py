@@ -233,7 +233,6 @@ def capability_spec(
     RuleFileError
         Unknown scheme, bad breaks, more than 127 classes, or a hazard zone the rulebook does not define.
     """
-    import shapely
 
     sch = resolve_capability_scheme(scheme)
     names = [z.name for z in rules.zones]
@@ -259,7 +258,9 @@ def capability_spec(
                 geoms.extend(col.variants.values())
     geom = None
     if geoms:
-        geom = shapely.make_valid(shapely.union_all(np.asarray(geoms, dtype=object)))
+        from landcheck.zones.prepare import union_by_tiles
+
+        geom = union_by_tiles(geoms, zones.grid, zones.tile)  # zones is set: geoms come from its columns
         if geom.is_empty:
             geom = None
     return CapabilitySpec(sch, bits, geom, chosen)

@@ -48,7 +48,16 @@ from landcheck.zones.strips import write_strips
 #: grids up to this many cells keep their zone masks in memory (GDAL /vsimem) when run on threads
 IN_MEMORY_MASK_CELLS = 4096 * 4096
 
-__all__ = ["ZoneColumn", "ZoneSet", "prepare_zones", "buffer_ground", "pick_variant", "vector_pieces"]
+__all__ = [
+    "ZoneColumn",
+    "ZoneSet",
+    "prepare_zones",
+    "buffer_ground",
+    "union_by_tiles",
+    "zone_pieces_frame",
+    "pick_variant",
+    "vector_pieces",
+]
 
 logger = logging.getLogger(__name__)
 
@@ -90,6 +99,7 @@ class ZoneSet:
     store: MaskStore | None = None  # on-disk form: masks read window by window
     channel_names: list = field(default_factory=list)  # mask name of each raster channel in ``store``
     sea_name: str | None = None  # mask of the sea in ``store``
+    tile: int = 1024  # vector zones are pieces clipped to tiles of this many cells (union_by_tiles)
 
     def bits(self, win: Window) -> np.ndarray | None:
         if self.store is not None:
@@ -161,8 +171,11 @@ def _local_metric_crs(geoms_ll):
     return pyproj.CRS.from_epsg(info[0].code)
 
 
-def buffer_ground(geoms: np.ndarray, width_m, grid: GridSpec) -> object:
+def buffer_ground(geoms: np.ndarray, width_m, grid: GridSpec, tile: int = 1024) -> object:
     """Union of the geometries buffered by ``width_m`` metres on the ground, in the grid's CRS.
+
+    The union is built tile by tile (:func:`union_by_tiles`): a GeometryCollection of polygons, each
+    inside one tile of ``tile`` cells of the grid, so a network of any size is never unioned whole.
 
     Parameters
     ----------
@@ -189,11 +202,9 @@ def buffer_ground(geoms: np.ndarray, width_m, grid: GridSpec) -> object:
         # UTM point scale k: map distance = ground distance * k
         cent = shapely.centroid(shapely.union_all(geoms))
         k = pyproj.Proj(utm).get_factors(cent.x, cent.y).meridional_scale
-        buf = shapely.union_all(shapely.buffer(proj, width_m * k, quad_segs=16))
-        buf = shapely.segmentize(buf, _DENSIFY_M)
-        return shapely.make_valid(
-            shapely.transform(buf, lambda xy: np.column_stack(back.transform(xy[:, 0], xy[:, 1])))
-        )
+        buf = shapely.segmentize(shapely.buffer(proj, width_m * k, quad_segs=16), _DENSIFY_M)
+        back_geoms = shapely.transform(buf, lambda xy: np.column_stack(back.transform(xy[:, 0], xy[:, 1])))
+        return union_by_tiles(shapely.make_valid(back_geoms), grid, tile)
     k = 1.0
     cent = shapely.centroid(shapely.union_all(geoms))
     try:
@@ -202,7 +213,63 @@ def buffer_ground(geoms: np.ndarray, width_m, grid: GridSpec) -> object:
         k = float(pyproj.Proj(crs).get_factors(lon, lat).meridional_scale)
     except Exception:  # a CRS without usable factors: plain map distance
         k = 1.0
-    return shapely.union_all(shapely.buffer(geoms, width_m * k / grid.unit_m, quad_segs=16))
+    return union_by_tiles(shapely.buffer(geoms, width_m * k / grid.unit_m, quad_segs=16), grid, tile)
+
+
+def union_by_tiles(geoms, grid: GridSpec, tile: int):
+    """The union of polygonal ``geoms`` as pieces clipped to the grid's tiles, each tile on its own.
+
+    Every geometry is clipped to a tile before any union, so the work and memory of one union are
+    bounded by what one tile holds (the tiles on the grid's border reach out to take what lies
+    beyond it).  Returns a GeometryCollection of polygons; pieces of different
+    tiles touch along tile edges but never overlap, so areas (and exact parcel shares) add up.
+    """
+    import shapely
+
+    g = np.asarray([x for x in np.asarray(geoms, dtype=object).ravel() if x is not None], dtype=object)
+    if len(g):
+        g = shapely.get_parts(g)
+        g = g[~shapely.is_empty(g) & np.isin(shapely.get_type_id(g), (3, 6))]
+    if len(g) == 0:
+        return shapely.GeometryCollection()
+    tree = shapely.STRtree(g)
+    pieces: list = []
+    gx0, gy0, gx1, gy1 = shapely.total_bounds(g)
+    north_up = grid.transform.e < 0
+    for win in iter_windows(grid.height, grid.width, tile):
+        x0, y0, x1, y1 = grid.window_bounds(win)
+        # tiles on the grid's border reach out to the geometries' bounds: nothing is dropped
+        top, bottom = win.row_off == 0, win.row_off + win.height == grid.height
+        if win.col_off == 0:
+            x0 = min(x0, gx0)
+        if win.col_off + win.width == grid.width:
+            x1 = max(x1, gx1)
+        if top if north_up else bottom:
+            y1 = max(y1, gy1)
+        if bottom if north_up else top:
+            y0 = min(y0, gy0)
+        box = shapely.box(x0, y0, x1, y1)
+        idx = tree.query(box, predicate="intersects")
+        if len(idx) == 0:
+            continue
+        piece = polygonal_part(shapely.union_all(shapely.intersection(g[idx], box)))
+        pieces.extend(p for p in shapely.get_parts(piece) if not p.is_empty)
+    return shapely.GeometryCollection(pieces)
+
+
+def zone_pieces_frame(variants: dict, columns: dict, crs) -> object:
+    """A zone layer with one row per piece (``columns`` maps a column name to one value per variant)."""
+    import geopandas as gpd
+    import shapely
+
+    rows: dict = {name: [] for name in columns}
+    geoms: list = []
+    for k, geom in enumerate(variants.values()):
+        parts = [p for p in shapely.get_parts(geom) if not p.is_empty] if geom is not None else []
+        geoms.extend(parts)
+        for name, values in columns.items():
+            rows[name].extend([values[k]] * len(parts))
+    return gpd.GeoDataFrame(rows, geometry=geoms, crs=crs)
 
 
 def _widths(zone: ZoneRule) -> dict:
@@ -367,15 +434,15 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
                         f"{gdf[wf].iloc[rows[0] - 1]!r}."
                     )
                 half_channel = cw / 2.0
-            variants = {ctx: buffer_ground(src_geoms, half_channel + w, g) for ctx, w in _widths(z).items()}
+            variants = {ctx: buffer_ground(src_geoms, half_channel + w, g, tile) for ctx, w in _widths(z).items()}
             columns.append(ZoneColumn(z.name, z.label, zi, -1, variants))
-            layers[f"zone_{z.name}"] = gpd.GeoDataFrame(
+            layers[f"zone_{z.name}"] = zone_pieces_frame(
+                variants,
                 {
                     "context": [c.value if c is not None else "all" for c in variants],
                     "width_m": [_widths(z)[c] for c in variants],
                 },
-                geometry=list(variants.values()),
-                crs=g.crs_wkt,
+                g.crs_wkt,
             )
         elif z.kind is ZoneKind.FLOOD_POLYGONS:
             gdf, where = _layer_geoms(rules, z.params["layer"], g, f"flood layer {z.params['layer']!r}")
@@ -396,15 +463,10 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
                     f"{gdf[field_name].iloc[rows[0] - 1]!r}."
                 )
             sel = (levels >= z.params["min_level"]).to_numpy()
-            geom = (
-                shapely.make_valid(shapely.union_all(np.asarray(gdf.geometry.values)[sel]))
-                if sel.any()
-                else shapely.Polygon()
-            )
-            geom = polygonal_part(geom)
+            geom = union_by_tiles(shapely.make_valid(np.asarray(gdf.geometry.values)[sel]), g, tile)
             columns.append(ZoneColumn(z.name, z.label, zi, -1, {None: geom}))
-            layers[f"zone_{z.name}"] = gpd.GeoDataFrame(
-                {"min_level": [z.params["min_level"]]}, geometry=[geom], crs=g.crs_wkt
+            layers[f"zone_{z.name}"] = zone_pieces_frame(
+                {None: geom}, {"min_level": [z.params["min_level"]]}, g.crs_wkt
             )
         elif z.kind is ZoneKind.HAND:
             nm = hand_masks[zi]
@@ -451,7 +513,17 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
     if len(channels) > 32:
         raise InputDataError(f"{rules.path}: more than 32 cell-based zone layers (zones plus sea-rise scenarios).")
     return ZoneSet(
-        g, columns, None, None, layers, warnings_out, info, store=store, channel_names=channels, sea_name=sea_name
+        g,
+        columns,
+        None,
+        None,
+        layers,
+        warnings_out,
+        info,
+        store=store,
+        channel_names=channels,
+        sea_name=sea_name,
+        tile=tile,
     )
 
 
@@ -693,7 +765,7 @@ def vector_pieces(zones: ZoneSet, rules: Rulebook, parcel_geoms: np.ndarray, cla
         if fz:
             keys.setdefault((fz, contexts[i]), []).append(i)
     for (fz, ctx), idx in keys.items():
-        target = shapely.union_all([variant(zones.columns[ci], ctx) for ci in fz])
+        target = union_by_tiles([variant(zones.columns[ci], ctx) for ci in fz], zones.grid, zones.tile)
         add_pieces(target, np.asarray(idx, np.int64), -1)
     if not out_g:
         return np.empty(0, object), np.empty(0, np.int64), np.empty(0, np.int64)
