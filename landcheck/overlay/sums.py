@@ -218,6 +218,30 @@ class Totals:
         self._q_land += int(_to_quanta(s.land_m2, AREA_QUANTUM_M2))
         self._q_land_within += int(_to_quanta(s.land_within_m2, AREA_QUANTUM_M2))
 
+    def to_arrays(self) -> dict:
+        """The exact state (integer quanta) as arrays, e.g. for ``numpy.savez`` (see :meth:`add_part`)."""
+        out = {f"q_{f}": v for f, v in self._q.items()}
+        out["q_slope"] = self._q_slope
+        out["slope_max_pct"] = self.slope_max_pct
+        out["q_land"] = np.array([self._q_land, self._q_land_within], dtype=np.int64)
+        return out
+
+    def add_part(self, arrays, index: np.ndarray) -> None:
+        """Merge the state of a run over a subset of the parcels (``to_arrays`` of a Totals whose parcel
+        ``i`` is this run's parcel ``index[i]``): exact integer additions, so the order of parts is free."""
+        index = np.asarray(index, dtype=np.int64)
+        for f in self._AREA_FIELDS:
+            q = np.asarray(arrays[f"q_{f}"], dtype=np.int64)
+            if f == "class_hist_m2":
+                self._q[f] += q
+            else:
+                self._q[f][index] += q
+        self._q_slope[index] += np.asarray(arrays["q_slope"], dtype=np.int64)
+        self.slope_max_pct[index] = np.fmax(self.slope_max_pct[index], arrays["slope_max_pct"])
+        land = np.asarray(arrays["q_land"], dtype=np.int64)
+        self._q_land += int(land[0])
+        self._q_land_within += int(land[1])
+
 
 def _no_pairs(plan: OverlayPlan, land_m2, land_within_m2) -> WindowSums:
     """The sums of a window that no parcel meets: only its whole-area land figures."""
