@@ -56,6 +56,7 @@ import warnings
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -185,15 +186,15 @@ class RegionTask:
     n_regions: int
     fingerprint: str
     scratch: str
-    dem: object  # DemSource
-    method: object  # SlopeMethod
+    dem: Any  # DemSource
+    method: Any  # SlopeMethod
     windows: list  # [(wr, wc)] the region's parcels touch, plus its own block (land figures)
     own: tuple[int, int, int, int]  # its block (wr0, wr1, wc0, wc1)
     layout: RegionLayout
-    plan: object  # OverlayPlan of the region's parcels (local indices; vector pieces added in the job)
+    plan: Any  # OverlayPlan of the region's parcels (local indices; vector pieces added in the job)
     class_names: np.ndarray
     rules: Rulebook
-    zones: object = None
+    zones: Any = None
     n_parcels: int = 0
     where: str = ""
 
@@ -215,6 +216,15 @@ def _finished(scratch: str, k: int, fingerprint: str) -> dict | None:
 
 
 def _peak_mib() -> float:
+    """Peak resident memory of this process (VmHWM: its own address space, not inherited through fork/exec
+    as ``getrusage``'s ``ru_maxrss`` is, which would give a spawned worker its parent's peak)."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as f:
+            for line in f:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024.0
+    except OSError:
+        pass
     import resource
 
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
@@ -268,7 +278,7 @@ def run_region(task: RegionTask) -> dict:
         step = max(1, n // 10)
         for i, (wr, wc) in enumerate(task.windows):
             out = job(task.layout.window(wr, wc))
-            sums = out.sums
+            sums: Any = out.sums
             if not (wr0 <= wr < wr1 and wc0 <= wc < wc1):  # another region's cells: its land is counted there
                 sums = dataclasses.replace(sums, land_m2=0.0, land_within_m2=0.0)
             totals.add(sums)
@@ -545,7 +555,9 @@ def audit_regions(
     return AuditResult(out, result["summary"], result["table"], result["classes"], result["warnings"], None)
 
 
-def _drive(dem_arg, parcels, rules: Rulebook, s: AuditSettings, regions, scratch: Path, stage: Path, step, on_cluster, started):
+def _drive(
+    dem_arg, parcels, rules: Rulebook, s: AuditSettings, regions, scratch: Path, stage: Path, step, on_cluster, started
+):
     import shapely
 
     from landcheck.core.run import _input_files, _manifest, _rewarn
@@ -563,9 +575,7 @@ def _drive(dem_arg, parcels, rules: Rulebook, s: AuditSettings, regions, scratch
     dem_path, dem_files = resolve_dem(dem_arg, scratch)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", LandcheckWarning)
-        dem = open_dem(
-            dem_path, band=s.dem_band, crs=s.dem_crs, z_unit=s.z_unit, mask_implausible=s.mask_implausible
-        )
+        dem = open_dem(dem_path, band=s.dem_band, crs=s.dem_crs, z_unit=s.z_unit, mask_implausible=s.mask_implausible)
     collected += _rewarn(caught)
     g = dem.grid
     if s.confidence.enabled:
@@ -602,7 +612,7 @@ def _drive(dem_arg, parcels, rules: Rulebook, s: AuditSettings, regions, scratch
         "inputs": [(i["role"], i["sha256"]) for i in inputs],
         "rulebook": rules.sha256,
         "settings": [
-            str(s.method.value),
+            str(getattr(s.method, "value", s.method)),
             s.dem_band,
             s.dem_crs,
             str(dem.z_unit.value),
@@ -643,7 +653,7 @@ def _drive(dem_arg, parcels, rules: Rulebook, s: AuditSettings, regions, scratch
                     crs=s.parcels_crs,
                 )
             collected += _rewarn(caught)
-            frame = ps.frame
+            frame: Any = ps.frame
             k = len(frame)
             if rules.id_field is None:
                 P.ids.append(np.arange(part.first_row + 1, part.first_row + k + 1))
@@ -651,9 +661,9 @@ def _drive(dem_arg, parcels, rules: Rulebook, s: AuditSettings, regions, scratch
                 P.ids.append(frame["parcel_id"].to_numpy())
             P.class_value.append(frame["class_value"].array)
             P.note.append(frame["geometry_note"].to_numpy())
-            a, f = ground_areas(frame, g.crs_wkt)
-            P.area.append(a)
-            P.factor.append(f)
+            area_part, factor_part = ground_areas(frame, g.crs_wkt)
+            P.area.append(area_part)
+            P.factor.append(factor_part)
             geoms = np.asarray(frame.geometry.values)
             P.empty.append(shapely.is_empty(geoms))
             P.inside.append(shapely.intersects(geoms, dem_box))
@@ -762,7 +772,9 @@ def _drive(dem_arg, parcels, rules: Rulebook, s: AuditSettings, regions, scratch
             totals.add_part(arr, arr["gidx"])
     step("regions merged")
     columns = zones.columns if zones is not None else []
-    table = evaluate_parcels(totals, plan, rules, pr, area_m2, empty, class_value.to_numpy(dtype=object, na_value=pd.NA), columns)
+    table = evaluate_parcels(
+        totals, plan, rules, pr, area_m2, empty, class_value.to_numpy(dtype=object, na_value=pd.NA), columns
+    )
     refuse_if_nothing_evaluated(dem, table["evaluated_m2"].to_numpy(), area_m2, where)
     table.insert(0, "parcel_id", ids)
     table["geometry_note"] = note
@@ -822,7 +834,8 @@ def _subset_plan(plan, idx: np.ndarray):
 
 
 def _run_tasks(tasks: list[RegionTask], s: AuditSettings, step, on_cluster) -> list[dict]:
-    """Run the region jobs not finished before; per-region and overall progress; the first failure stops the run."""
+    """Run the region jobs not finished before, with per-region and overall progress; any failure fails the run
+    once the other regions have finished (their results are kept for a rerun)."""
     from landcheck.engine.windows import progress_bar
 
     n = len(tasks)
@@ -865,22 +878,23 @@ def _run_tasks(tasks: list[RegionTask], s: AuditSettings, step, on_cluster) -> l
             }
             if on_cluster is not None:
                 on_cluster(client)
+            failures: list[tuple[int, str]] = []
             with progress_bar(n, "regions", enabled=s.show_progress, unit="region") as bar:
                 bar.update(len(infos))
+                # every region runs to its end even when one fails, so a rerun redoes only the failed ones
                 for fut in as_completed(list(futures)):
                     t = futures[fut]
                     try:
                         info = fut.result()
-                    except RegionError:
-                        for other in futures:
-                            other.cancel()
-                        raise
-                    except Exception as exc:
-                        for other in futures:
-                            other.cancel()
-                        raise RegionError(
-                            f"region {t.index + 1} of {n} ({t.where}): {type(exc).__name__}: {exc}"
-                        ) from None
+                    except RegionError as exc:
+                        failures.append((t.index, str(exc)))
+                        step(f"region {t.index + 1}/{n} FAILED: {exc}")
+                        continue
+                    except Exception as exc:  # lost too often (KilledWorker), cancelled, ...
+                        msg = f"region {t.index + 1} of {n} ({t.where}): {type(exc).__name__}: {exc}"
+                        failures.append((t.index, msg))
+                        step(f"region {t.index + 1}/{n} FAILED: {msg}")
+                        continue
                     infos[t.index] = {**info, "resumed": False}
                     bar.update(1)
                     step(
@@ -888,10 +902,13 @@ def _run_tasks(tasks: list[RegionTask], s: AuditSettings, step, on_cluster) -> l
                         f"{info['seconds']:.1f} s, worker peak {info['peak_mib']:.0f} MiB "
                         f"({len(infos)}/{n} regions)"
                     )
-        except RegionError as exc:
-            raise RegionError(
-                f"{exc} The regions finished so far are kept; rerun the same command to resume them."
-            ) from None
+            if failures:
+                failures.sort()
+                more = f" ({len(failures)} regions failed; the others are listed above)" if len(failures) > 1 else ""
+                raise RegionError(
+                    f"{failures[0][1]}{more}. The {len(infos)} regions finished are kept; rerun the same "
+                    "command to resume them."
+                )
         finally:
             client.close()
             if cluster is not None:

@@ -41,7 +41,7 @@ def tile_paths(dem: str | os.PathLike | Sequence[str | os.PathLike]) -> list[str
         if not paths:
             raise InputDataError("dem: an empty list of tiles.")
         return paths
-    p = os.fspath(dem)
+    p = os.fspath(dem)  # type: ignore[arg-type]  # a str or PathLike once the list case is gone
     if _is_remote(p):
         return None
     if os.path.isdir(p):
@@ -158,7 +158,9 @@ def write_tile_vrt(tiles: Sequence[str], out: str | os.PathLike) -> Path:
     lines.append(f"  <GeoTransform>{float(x0)!r}, {float(a)!r}, 0.0, {float(y0)!r}, 0.0, {float(e)!r}</GeoTransform>")
     bx, by = first["block"][1], first["block"][0]
     for band in range(1, first["count"] + 1):
-        lines.append(f'  <VRTRasterBand dataType="{gdal_type}" band="{band}" blockXSize="{min(bx, 512)}" blockYSize="{min(by, 512)}">')
+        lines.append(
+            f'  <VRTRasterBand dataType="{gdal_type}" band="{band}" blockXSize="{min(bx, 512)}" blockYSize="{min(by, 512)}">'
+        )
         nd = first["nodata"][band - 1]
         if nd is not None:
             lines.append(f"    <NoDataValue>{float(nd)!r}</NoDataValue>")
