@@ -120,7 +120,15 @@ def test_tiles_and_partitioned_geoparquet_give_the_same_bytes(small):
     (tiles / "tiles.txt").write_text("# tiles\n" + "\n".join(names) + "\n")
     out2 = d / "from_list"
     audit_regions(
-        d / "tiles" / "tiles.txt", parcels, rules, out2, regions=2, workers=2, tile_cells=200, rasters="none", report=False
+        d / "tiles" / "tiles.txt",
+        parcels,
+        rules,
+        out2,
+        regions=2,
+        workers=2,
+        tile_cells=200,
+        rasters="none",
+        report=False,
     )
     _same_bytes(ref, out2)
 
