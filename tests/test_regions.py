@@ -192,3 +192,22 @@ def test_layout_blocks_of_whole_windows():
     assert plan_regions(30000, 30000, 1024, "auto").n_regions == 25
     with pytest.raises(Exception, match="do not fit"):
         plan_regions(1000, 1000, 1024, 4)
+
+
+def test_cli_regions(small):
+    # common practice: the command line gives what the API gives (same bytes as the single run)
+    import subprocess
+    import sys
+
+    d, dem, tiles, parcels, parts, rules, ref = small
+    out = d / "cli"
+    cmd = [sys.executable, "-m", "landcheck", "audit", "--dem", str(tiles), "--parcels", str(parts)]
+    cmd += ["--rulebook", str(rules), "--out", str(out), "--regions", "2", "--workers", "2", "--tile-size", "200"]
+    r = subprocess.run(cmd, capture_output=True, text=True, timeout=600)
+    assert r.returncode == 0, r.stderr
+    assert "region 2/2 done" in r.stderr and "regions merged" in r.stderr
+    _same_bytes(ref, out)
+    bad = subprocess.run(
+        [*cmd[:-8], "--out", str(d / "cli2"), "--regions", "2", "--rasters", "gtiff"], capture_output=True, text=True
+    )
+    assert bad.returncode == 3 and "--rasters none" in bad.stderr
