@@ -366,6 +366,23 @@ class _Parcels:
         self.wheres: list[str] = []
 
 
+def _release_memory() -> None:
+    """Hand freed heap back to the system (pyarrow's pool, glibc's arenas): the driver reads a country's
+    parcels part by part, and freed parts would otherwise stay in its resident size."""
+    try:
+        import pyarrow as pa
+
+        pa.default_memory_pool().release_unused()
+    except Exception:  # an older pyarrow
+        pass
+    try:
+        import ctypes
+
+        ctypes.CDLL("libc.so.6").malloc_trim(0)
+    except (OSError, AttributeError):  # not glibc
+        pass
+
+
 def _windows_of(geoms, g, layout: RegionLayout) -> tuple[np.ndarray, np.ndarray]:
     """Region of each parcel and the rectangle of windows its bounds touch (``-1`` rows when none)."""
     import shapely
@@ -673,7 +690,8 @@ def _drive(
             P.wheres.append(part.where)
             writers.add(np.arange(n_total, n_total + k, dtype=np.int64), geoms, region)
             n_total += k
-            del frame, geoms, ps
+            del frame, geoms, ps, part
+            _release_memory()
     finally:
         writers.close()
     where = os.fspath(parcels)
@@ -726,6 +744,7 @@ def _drive(
         zones = prepare_zones(rules, dem, None, pr, zs, step=step)
         collected += zones.warnings
         step(f"zones ready: {len(zones.columns)} zone columns")
+        _release_memory()
     plan = build_plan(rules, pr.class_name, area_factor, ground_factor, zones)
 
     # ---- region tasks

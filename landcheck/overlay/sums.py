@@ -191,7 +191,12 @@ class Totals:
     def __getattr__(self, name):
         q = self.__dict__.get("_q")
         if q is not None and name in q:
-            return q[name] * AREA_QUANTUM_M2
+            # the float view is made once and kept until the next merge: callers index it per parcel
+            # (verdicts.evaluate's reasons loop), and remaking the whole array per access was quadratic
+            cache = self.__dict__.setdefault("_float_cache", {})
+            if name not in cache:
+                cache[name] = q[name] * AREA_QUANTUM_M2
+            return cache[name]
         raise AttributeError(name)
 
     @property
@@ -207,6 +212,7 @@ class Totals:
         return float(self._q_land_within * AREA_QUANTUM_M2)
 
     def add(self, s: WindowSums) -> None:
+        self.__dict__.pop("_float_cache", None)
         p = s.parcels
         for f in self._AREA_FIELDS:
             if f == "class_hist_m2":
@@ -229,6 +235,7 @@ class Totals:
     def add_part(self, arrays, index: np.ndarray) -> None:
         """Merge the state of a run over a subset of the parcels (``to_arrays`` of a Totals whose parcel
         ``i`` is this run's parcel ``index[i]``): exact integer additions, so the order of parts is free."""
+        self.__dict__.pop("_float_cache", None)
         index = np.asarray(index, dtype=np.int64)
         for f in self._AREA_FIELDS:
             q = np.asarray(arrays[f"q_{f}"], dtype=np.int64)
