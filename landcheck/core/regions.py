@@ -782,6 +782,8 @@ def _drive(
             )
         )
     infos = _run_tasks(tasks, s, step, on_cluster)
+    del tasks  # their per-region plans: the merge needs only the whole plan
+    _release_memory()
 
     # ---- merge: exact integer sums, then everything as the single run computes it
     totals = Totals(n_total, len(plan.thresholds_pct), plan.n_cols, plan.n_classes)
@@ -794,6 +796,7 @@ def _drive(
     table = evaluate_parcels(
         totals, plan, rules, pr, area_m2, empty, class_value.to_numpy(dtype=object, na_value=pd.NA), columns
     )
+    totals.__dict__.pop("_float_cache", None)  # the float views evaluate used: ≈ 250 B per parcel
     refuse_if_nothing_evaluated(dem, table["evaluated_m2"].to_numpy(), area_m2, where)
     table.insert(0, "parcel_id", ids)
     table["geometry_note"] = note
@@ -806,6 +809,8 @@ def _drive(
     summary["manifest"] = _manifest(started, dem, parcels, rules, s, g, None, inputs=inputs)
     if zones is not None:
         summary["zones"] = zones.describe()
+    del totals, plan, pr
+    _release_memory()
 
     # ---- the folder of a single run (+ parcels.parquet)
     from landcheck.outputs.writers import write_csv, write_json
