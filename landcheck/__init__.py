@@ -28,11 +28,13 @@ from landcheck.errors import (
     LandcheckWarning,
     OutputExistsError,
     OutputWriteError,
+    RegionError,
     RuleFileError,
 )
 
 if TYPE_CHECKING:  # what the lazy names are, for readers and type checkers
     from landcheck.core.audit import AuditResult, audit
+    from landcheck.core.regions import audit_regions
     from landcheck.core.run import AuditRun, run_audit
     from landcheck.core.settings import AuditSettings, CapabilityOptions, ConfidenceOptions
     from landcheck.core.slope_raster import SlopeRunInfo, derive_slope
@@ -50,6 +52,7 @@ _LAZY = {
     "run_audit": "landcheck.core.run",
     "AuditRun": "landcheck.core.run",
     "audit": "landcheck.core.audit",
+    "audit_regions": "landcheck.core.regions",
     "AuditResult": "landcheck.core.audit",
     "AuditSettings": "landcheck.core.settings",
     "CapabilityOptions": "landcheck.core.settings",
@@ -83,12 +86,14 @@ __all__ = [
     "LandcheckWarning",
     "OutputExistsError",
     "OutputWriteError",
+    "RegionError",
     "RuleFileError",
     # the audit
     "run_audit",
     "AuditRun",
     "audit",
     "AuditResult",
+    "audit_regions",
     "AuditSettings",
     "CapabilityOptions",
     "ConfidenceOptions",

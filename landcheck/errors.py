@@ -13,6 +13,7 @@ __all__ = [
     "RuleFileError",
     "OutputExistsError",
     "OutputWriteError",
+    "RegionError",
     "LandcheckWarning",
 ]
 
@@ -38,6 +39,10 @@ class OutputExistsError(LandcheckError, FileExistsError):
 
 class OutputWriteError(LandcheckError, OSError):
     """An output could not be written (permission, disk full, path inside an input)."""
+
+
+class RegionError(LandcheckError):
+    """A region job of a region run failed; the message names the region and what it met."""
 
 
 class LandcheckWarning(UserWarning):

@@ -255,7 +255,29 @@ def main(argv=None) -> int:
         type=Path,
         default=Path(os.environ.get("BENCH_SHARED", _SHARED_BENCH)) / "rules_slope.toml",
     )
+    ap.add_argument(
+        "--regions-run",
+        type=int,
+        default=None,
+        metavar="N",
+        help="region run (audit --regions) on a generated N x N coastal DEM with --regions-parcels lots as "
+        "partitioned GeoParquet: time and peak memory per region and overall (see _regions_run)",
+    )
+    ap.add_argument("--regions-parcels", type=int, default=1_000_000)
+    ap.add_argument("--regions", default="auto", help="region count for --regions-run (auto or N)")
+    ap.add_argument("--regions-workers", type=int, default=2)
+    ap.add_argument(
+        "--regions-rules",
+        choices=["full", "no-routing"],
+        default="full",
+        help="full: HAND + sea-level rise + derived shore easements; no-routing: without HAND (no flow routing)",
+    )
     args = ap.parse_args(argv)
+    if args.regions_run:
+        rows = _regions_run(args)
+        if args.json:
+            args.json.write_text(json.dumps(rows, indent=1))
+        return 0
     if args.report_run:
         rows = report_benchmark(args.bench_data, args.bench_rules, args.cache)
         if args.json:
@@ -653,6 +675,90 @@ def _hazard_runs(args, work: Path, env, lc_cmd) -> list[dict]:
         "(pyflwdir fill + D8, upstream area, HAND; ndimage labelling; distance transform and dilation strip)."
     )
     return rows
+
+
+def _regions_run(args) -> list[dict]:
+    """``audit --regions`` on a generated coastal DEM (tests/regions_data.py) with lots as partitioned GeoParquet.
+
+    The DEM (N x N float32, 512-cell tiles) and the parcels (20 GeoParquet partitions in lattice order) are
+    generated into ``--cache`` and kept.  The run is one ``landcheck audit --regions`` child process (a
+    LocalCluster of ``--regions-workers`` worker processes); printed: wall and CPU time and the peak RSS
+    of the whole process tree (the largest single process: getrusage of the waited children), and from
+    ``run_times.json`` each region's job time and its worker's peak (VmHWM), the driver's time and peak.
+    """
+    sys.path.insert(0, str(REPO / "tests"))
+    import regions_data as rd
+
+    n, count = args.regions_run, args.regions_parcels
+    args.cache.mkdir(parents=True, exist_ok=True)
+    dem = args.cache / f"regions_dem_{n}.tif"
+    if not dem.exists():
+        need = n * n * 4 * 1.2
+        free = shutil.disk_usage(args.cache).free
+        if free < need:
+            raise SystemExit(f"{args.cache}: {free / 1e9:.1f} GB free, the DEM needs ≈ {need / 1e9:.1f} GB")
+        t = time_now()
+        tmp = dem.with_suffix(".part.tif")
+        rd.make_dem(tmp, n)
+        os.replace(tmp, dem)
+        print(f"generated {dem} in {time_now() - t:.0f} s", flush=True)
+    parts = args.cache / f"regions_parcels_{n}_{count}"
+    if not parts.exists():
+        t = time_now()
+        tmp = parts.with_name(parts.name + ".part")
+        shutil.rmtree(tmp, ignore_errors=True)
+        step = -(-count // 20)
+        tmp.mkdir()
+        gdf = rd.make_parcels(n, count)
+        for p, a in enumerate(range(0, count, step)):
+            gdf.iloc[a : a + step].to_parquet(tmp / f"part-{p:03d}.parquet", row_group_size=50_000)
+        del gdf
+        os.replace(tmp, parts)
+        print(f"generated {parts} in {time_now() - t:.0f} s", flush=True)
+    rules_text = rd.RULES
+    if args.regions_rules == "no-routing":
+        rules_text = rules_text.replace(', "hand"]', "]").split("[zones.hand]")[0]
+    work = Path(tempfile.mkdtemp(prefix="lc-regions-", dir=args.cache))
+    rules = work / "rules.toml"
+    rules.write_text(rules_text)
+    out = work / "out"
+    env = dict(os.environ, PYTHONPATH=str(REPO) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    cmd = [sys.executable, "-m", "landcheck", "audit", "--dem", str(dem), "--parcels", str(parts)]
+    cmd += ["--rulebook", str(rules), "--out", str(out), "--regions", str(args.regions)]
+    cmd += ["--workers", str(args.regions_workers)]
+    try:
+        m = measure(cmd, env)
+        if m["rc"] != 0:
+            raise SystemExit(f"landcheck audit --regions failed with exit status {m['rc']}")
+        ex = json.loads((out / "run_times.json").read_text())["execution"]
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+    rows = []
+    print(f"\nregion run: {n}² DEM ({n * n / 1e6:.0f} M cells), {count} parcels, rules {args.regions_rules}")
+    print(f"{'region':>6} {'parcels':>9} {'windows':>8} {'job s':>8} {'worker peak MiB':>16}")
+    for r in ex["region_runs"]:
+        rows.append(dict(test="region", size=n, parcels=r["parcels"], windows=r["windows"], s=r["seconds"],
+                         peak_mib=r["peak_mib"]))  # fmt: skip
+        print(f"{r['region'] + 1:>6} {r['parcels']:>9} {r['windows']:>8} {r['seconds']:>8.1f} {r['peak_mib']:>16.0f}")
+    worker_peak = max(r["peak_mib"] for r in ex["region_runs"])
+    overall = dict(
+        test="regions-overall", size=n, parcels=count, regions=len(ex["region_runs"]), wall_s=m["wall_s"],
+        cpu_s=m["cpu_s"], driver_s=ex["driver_seconds"], driver_peak_mib=ex["driver_peak_mib"],
+        worker_peak_mib=worker_peak, largest_process_mib=m["peak_mib"],
+    )  # fmt: skip
+    rows.append(overall)
+    print(
+        f"overall: {m['wall_s']:.1f} s wall, {m['cpu_s']:.1f} s CPU (all processes); driver {ex['driver_seconds']:.1f} s, "
+        f"peak {ex['driver_peak_mib']:.0f} MiB; workers' peak {worker_peak:.0f} MiB; largest process of the tree "
+        f"{m['peak_mib']:.0f} MiB (2 GiB target: {'met' if max(m['peak_mib'], worker_peak) <= 2048 else 'NOT met'})"
+    )
+    return rows
+
+
+def time_now() -> float:
+    import time
+
+    return time.perf_counter()
 
 
 if __name__ == "__main__":

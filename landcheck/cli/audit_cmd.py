@@ -23,19 +23,36 @@ def run_audit_and_report(ctx, *, as_json: bool, fail_on_conflict: bool, **kwargs
         if not quiet:
             click.echo(f"landcheck: {msg}", err=True)
 
+    regions = kwargs.pop("regions", None)
     with warnings.catch_warnings():
         # recorded in the result and printed below once; keep them out of the log stream
         warnings.simplefilter("ignore", LandcheckWarning)
-        result = audit(
-            kwargs.pop("dem_path"),
-            kwargs.pop("parcels_path"),
-            kwargs.pop("rulebook_path"),
-            kwargs.pop("out_dir"),
-            overwrite=kwargs.pop("overwrite", False),
-            show_progress=None if not quiet else False,
-            on_step=on_step,
-            **kwargs,
-        )
+        if regions is not None:
+            from landcheck.core.regions import audit_regions
+
+            kwargs.pop("engine", None)  # region jobs always run on Dask (a local cluster unless --scheduler)
+            result = audit_regions(
+                kwargs.pop("dem_path"),
+                kwargs.pop("parcels_path"),
+                kwargs.pop("rulebook_path"),
+                kwargs.pop("out_dir"),
+                regions=regions,
+                overwrite=kwargs.pop("overwrite", False),
+                show_progress=None if not quiet else False,
+                on_step=on_step,
+                **kwargs,
+            )
+        else:
+            result = audit(
+                kwargs.pop("dem_path"),
+                kwargs.pop("parcels_path"),
+                kwargs.pop("rulebook_path"),
+                kwargs.pop("out_dir"),
+                overwrite=kwargs.pop("overwrite", False),
+                show_progress=None if not quiet else False,
+                on_step=on_step,
+                **kwargs,
+            )
     t = result.summary["totals"]
     if as_json:
         click.echo(
@@ -67,6 +84,18 @@ def run_audit_and_report(ctx, *, as_json: bool, fail_on_conflict: bool, **kwargs
     return result
 
 
+def _regions_value(v):
+    if v is None or v == "auto":
+        return v
+    try:
+        n = int(v)
+    except ValueError:
+        raise click.BadParameter(f"{v!r}: give auto or a whole number of regions", param_hint="--regions") from None
+    if n < 1:
+        raise click.BadParameter(f"{v!r}: give auto or a whole number >= 1", param_hint="--regions")
+    return n
+
+
 @click.command(
     "audit",
     help=f"""Audit a parcel layer against a rulebook.
@@ -86,6 +115,8 @@ Examples:
   landcheck audit --dem demo_area/dem.tif --parcels demo_area/parcels.gpkg \\
       --rulebook demo_area/rulebook.toml --out audit-out
   landcheck audit ... --json --fail-on-conflict   # for scripts: exit 1 when any parcel conflicts
+  landcheck audit --dem dem_tiles/ --parcels parcels_parquet/ --rulebook rules.toml \\
+      --out country --regions auto --scheduler tcp://10.0.0.5:8786   # a country in region jobs
 """,
 )
 @click.option("--dem", required=True, type=click.Path(), help="Elevation raster (GeoTIFF or any GDAL raster).")
@@ -164,6 +195,16 @@ Examples:
     help="Treat DEM elevations below -500 m or above 9000 m as no data (with a warning) instead of refusing "
     "the DEM (docs/cli.md).",
 )
+@click.option(
+    "--regions",
+    default=None,
+    metavar="auto|N",
+    callback=lambda ctx, param, v: _regions_value(v),
+    help="Split the run into region jobs (blocks of whole windows) on a Dask cluster: a local one, or "
+    "--scheduler's; tables only (no rasters or report); a rerun resumes finished regions. --dem may then "
+    "also be a folder of tiles or a .txt list of tiles, --parcels a partitioned GeoParquet folder "
+    "(docs/scale.md).",
+)
 @click.option("--no-report", is_flag=True, help="Skip the HTML report and maps.")
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary on stdout.")
 @click.option("--fail-on-conflict", is_flag=True, help="Exit with status 1 when any parcel is in conflict.")
@@ -195,10 +236,16 @@ def command(
     rasters,
     zone_polygons,
     mask_implausible,
+    regions,
     no_report,
     as_json,
     fail_on_conflict,
 ):
+    if regions is not None:
+        # region runs write tables only: rasters none and no report unless asked for (then refused, with why)
+        if ctx.get_parameter_source("rasters") is click.core.ParameterSource.DEFAULT:
+            rasters = "none"
+        no_report = True
     if capability_scheme is not None and "," in capability_scheme:
         try:
             capability_scheme = [float(b) for b in capability_scheme.split(",")]
@@ -235,4 +282,5 @@ def command(
         rasters=rasters,
         zone_polygons=zone_polygons,
         mask_implausible=mask_implausible,
+        regions=regions,
     )

@@ -467,16 +467,21 @@ def _resolved(path: str) -> str:
     return path if path.startswith("<") else str(Path(path).resolve())
 
 
-def _manifest(started, dem: DemSource, parcels, rules: Rulebook, s: AuditSettings, g, conf=None) -> dict:
+def _manifest(
+    started, dem: DemSource, parcels, rules: Rulebook, s: AuditSettings, g, conf=None, inputs: list | None = None
+) -> dict:
+    """The manifest of ``summary.json``; ``inputs`` (role, path, sha256 of every input file) is built here
+    unless given (the region run hashes its inputs once, before the run, and passes them)."""
     from landcheck.versions import show_versions
 
-    inputs = [{"role": "dem", "path": str(Path(dem.path).resolve()), "sha256": sha256_file(dem.path)}]
-    if isinstance(parcels, (str, os.PathLike)):
-        for f in _input_files(os.fspath(parcels)):
-            inputs.append({"role": "parcels", "path": str(Path(f).resolve()), "sha256": sha256_file(f)})
-    for name, p in rules.layers.items():
-        for f in _input_files(p):
-            inputs.append({"role": f"layer:{name}", "path": str(Path(f).resolve()), "sha256": sha256_file(f)})
+    if inputs is None:
+        inputs = [{"role": "dem", "path": str(Path(dem.path).resolve()), "sha256": sha256_file(dem.path)}]
+        if isinstance(parcels, (str, os.PathLike)):
+            for f in _input_files(os.fspath(parcels)):
+                inputs.append({"role": "parcels", "path": str(Path(f).resolve()), "sha256": sha256_file(f)})
+        for name, p in rules.layers.items():
+            for f in _input_files(p):
+                inputs.append({"role": f"layer:{name}", "path": str(Path(f).resolve()), "sha256": sha256_file(f)})
     cap = s.capability
     return {
         # how the run was executed (tile size, engine, workers) changes no figure, so it is recorded

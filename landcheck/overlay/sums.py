@@ -25,8 +25,8 @@ whole-area figure.  The rounding moves each pair term by at most half a quantum
 can add up over a parcel's cells to the same relative amount of its area.
 
 Two implementations give the same numbers bit for bit (tests check it):
-:func:`accumulate_window_reference` in NumPy is the readable reference;
-:func:`accumulate_window` runs one compiled loop over the pairs
+:func:`accumulate_window` in NumPy is the readable reference;
+:func:`accumulate_window_compiled` runs one compiled loop over the pairs
 (:mod:`landcheck.overlay.reduction_loops`), about ten times faster and without the
 GIL, and is what the audit uses.
 """
@@ -38,14 +38,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = [
-    "OverlayPlan",
-    "WindowSums",
-    "Totals",
-    "accumulate_window_reference",
-    "accumulate_window",
-    "CONFLICT_OUTSIDE",
-]
+__all__ = ["OverlayPlan", "WindowSums", "Totals", "accumulate_window", "accumulate_window_compiled", "CONFLICT_OUTSIDE"]
 
 #: conflict-raster value for cells outside every parcel
 CONFLICT_OUTSIDE = 255
@@ -198,8 +191,9 @@ class Totals:
     def __getattr__(self, name):
         q = self.__dict__.get("_q")
         if q is not None and name in q:
-            # converted once per state, not per read: callers index these arrays parcel by parcel
-            cache = self.__dict__.setdefault("_m2", {})
+            # the float view is made once and kept until the next merge: callers index it per parcel
+            # (verdicts.evaluate's reasons loop), and remaking the whole array per access was quadratic
+            cache = self.__dict__.setdefault("_float_cache", {})
             if name not in cache:
                 cache[name] = q[name] * AREA_QUANTUM_M2
             return cache[name]
@@ -218,7 +212,7 @@ class Totals:
         return float(self._q_land_within * AREA_QUANTUM_M2)
 
     def add(self, s: WindowSums) -> None:
-        self.__dict__.pop("_m2", None)
+        self.__dict__.pop("_float_cache", None)
         p = s.parcels
         for f in self._AREA_FIELDS:
             if f == "class_hist_m2":
@@ -229,6 +223,31 @@ class Totals:
         self.slope_max_pct[p] = np.fmax(self.slope_max_pct[p], s.slope_max_pct)
         self._q_land += int(_to_quanta(s.land_m2, AREA_QUANTUM_M2))
         self._q_land_within += int(_to_quanta(s.land_within_m2, AREA_QUANTUM_M2))
+
+    def to_arrays(self) -> dict:
+        """The exact state (integer quanta) as arrays, e.g. for ``numpy.savez`` (see :meth:`add_part`)."""
+        out = {f"q_{f}": v for f, v in self._q.items()}
+        out["q_slope"] = self._q_slope
+        out["slope_max_pct"] = self.slope_max_pct
+        out["q_land"] = np.array([self._q_land, self._q_land_within], dtype=np.int64)
+        return out
+
+    def add_part(self, arrays, index: np.ndarray) -> None:
+        """Merge the state of a run over a subset of the parcels (``to_arrays`` of a Totals whose parcel
+        ``i`` is this run's parcel ``index[i]``): exact integer additions, so the order of parts is free."""
+        self.__dict__.pop("_float_cache", None)
+        index = np.asarray(index, dtype=np.int64)
+        for f in self._AREA_FIELDS:
+            q = np.asarray(arrays[f"q_{f}"], dtype=np.int64)
+            if f == "class_hist_m2":
+                self._q[f] += q
+            else:
+                self._q[f][index] += q
+        self._q_slope[index] += np.asarray(arrays["q_slope"], dtype=np.int64)
+        self.slope_max_pct[index] = np.fmax(self.slope_max_pct[index], arrays["slope_max_pct"])
+        land = np.asarray(arrays["q_land"], dtype=np.int64)
+        self._q_land += int(land[0])
+        self._q_land_within += int(land[1])
 
 
 def _no_pairs(plan: OverlayPlan, land_m2, land_within_m2) -> WindowSums:
@@ -251,7 +270,7 @@ def _no_pairs(plan: OverlayPlan, land_m2, land_within_m2) -> WindowSums:
     )
 
 
-def accumulate_window_reference(
+def accumulate_window(
     slope_pct: np.ndarray,
     zone_bits: np.ndarray | None,
     cell_area_m2: np.ndarray,
@@ -435,7 +454,7 @@ def _thread_scratch(n_cells: int):
     return have
 
 
-def accumulate_window(
+def accumulate_window_compiled(
     slope_pct: np.ndarray,
     zone_bits: np.ndarray | None,
     cell_area_m2: np.ndarray,
@@ -444,9 +463,9 @@ def accumulate_window(
     plan: OverlayPlan,
     land_mask: np.ndarray | None = None,
 ) -> tuple[WindowSums, np.ndarray]:
-    """:func:`accumulate_window_reference` as one compiled pass over the pairs; identical results.
+    """:func:`accumulate_window` as one compiled pass over the pairs; identical results.
 
-    Same parameters and returns as :func:`accumulate_window_reference`.  The triplets must be
+    Same parameters and returns as :func:`accumulate_window`.  The triplets must be
     grouped by feature (runs of equal feature index), as
     :func:`landcheck.overlay.coverage.coverage_triplets` returns them.
     """

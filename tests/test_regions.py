@@ -1,0 +1,213 @@
+"""Region runs (landcheck.core.regions): a 4-region run on a LocalCluster of 2 workers writes the same
+parcels.csv, classes.csv and summary.json bytes as the single-process audit, also when a worker is killed
+mid-run; DEM tiles and partitioned GeoParquet give the same bytes; a failing region names itself and a
+rerun resumes the others.
+
+The reference for every comparison is the single-process audit of the same inputs (itself checked against
+exactextract, gdaldem and scipy elsewhere in the suite); that a distributed run must reproduce the serial
+one bit for bit, and survive the loss of a worker, is common practice for batch reductions.
+"""
+
+from __future__ import annotations
+
+import filecmp
+import json
+import os
+import signal
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+import regions_data as rd
+
+from landcheck.core.audit import audit
+from landcheck.core.regions import audit_regions, plan_regions
+from landcheck.errors import RegionError
+
+TABLES = ("parcels.csv", "classes.csv")
+
+pytestmark = pytest.mark.slow
+
+
+def _same_bytes(a: Path, b: Path, names=TABLES) -> None:
+    for name in names:
+        assert filecmp.cmp(a / name, b / name, shallow=False), f"{name} differs between {a} and {b}"
+
+
+@pytest.fixture(scope="module")
+def big(tmp_path_factory):
+    """4000² coastal DEM, 20 000 lots, HAND + sea-level rise + derived shore easements; single-process audit."""
+    d = tmp_path_factory.mktemp("regions_big")
+    dem = rd.make_dem(d / "dem.tif", 4000)
+    parcels = d / "parcels.gpkg"
+    rd.make_parcels(4000, 20_000).to_file(parcels, layer="parcels")
+    rules = d / "rules.toml"
+    rules.write_text(rd.RULES, encoding="utf-8")
+    ref = d / "single"
+    audit(dem, parcels, rules, ref, rasters="none", report=False)
+    return d, dem, parcels, rules, ref
+
+
+def test_four_regions_two_workers_same_bytes_even_when_a_worker_is_killed(big):
+    # common practice: the distributed run reproduces the serial run bit for bit (module docstring)
+    d, dem, parcels, rules, ref = big
+    out = d / "regions"
+    res = audit_regions(dem, parcels, rules, out, regions=4, workers=2, rasters="none", report=False)
+    _same_bytes(ref, out, (*TABLES, "summary.json"))
+    assert res.summary["totals"]["parcels"] == 20_000
+    runs = json.loads((out / "run_times.json").read_text())["execution"]
+    assert runs["regions"]["n_regions"] == 4 and len(runs["region_runs"]) == 4
+    assert (out / "parcels.gpkg").is_file() and (out / "parcels.parquet").is_file()
+    assert not (d / ".regions.regions").exists()  # scratch removed after publishing
+
+    # a worker process killed (SIGKILL) while it runs a region job: Dask reschedules it, same bytes
+    killed: list[int] = []
+
+    def kill_a_busy_worker(client) -> None:
+        pids = client.run(os.getpid)
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline:
+            busy = [a for a, keys in client.processing().items() if keys]
+            if busy:
+                time.sleep(0.5)  # inside the job (the first job also loads the compiled kernels)
+                os.kill(pids[busy[0]], signal.SIGKILL)
+                killed.append(pids[busy[0]])
+                return
+            time.sleep(0.02)
+
+    out2 = d / "regions_killed"
+    audit_regions(
+        dem, parcels, rules, out2, regions=4, workers=2, rasters="none", report=False, on_cluster=kill_a_busy_worker
+    )
+    assert killed
+    runs = json.loads((out2 / "run_times.json").read_text())["execution"]["region_runs"]
+    assert killed[0] not in {r["pid"] for r in runs}  # every region's result came from a live worker
+    _same_bytes(ref, out2, (*TABLES, "summary.json"))
+
+
+@pytest.fixture(scope="module")
+def small(tmp_path_factory):
+    """1200² DEM as one file and as 4 x 4 tiles, 1 500 lots as GeoPackage and partitioned GeoParquet."""
+    d = tmp_path_factory.mktemp("regions_small")
+    dem = rd.make_dem(d / "dem.tif", 1200, block=256)
+    tiles = rd.make_dem(d / "tiles", 1200, tiles=4, block=256)
+    gdf = rd.make_parcels(1200, 1500, seed=5)
+    parcels = d / "parcels.gpkg"
+    gdf.to_file(parcels, layer="parcels")
+    parts = rd.write_partitioned(gdf, d / "parcels_parquet", 3)
+    rules = d / "rules.toml"
+    rules.write_text(rd.RULES, encoding="utf-8")
+    ref = d / "single"
+    audit(dem, parcels, rules, ref, rasters="none", report=False, tile_cells=200)
+    return d, dem, tiles, parcels, parts, rules, ref
+
+
+def test_tiles_and_partitioned_geoparquet_give_the_same_bytes(small):
+    # Reference: the single-process audit of the one-file DEM and the GeoPackage (module docstring)
+    d, dem, tiles, parcels, parts, rules, ref = small
+    out = d / "from_tiles"
+    audit_regions(tiles, parts, rules, out, regions=4, workers=2, tile_cells=200, rasters="none", report=False)
+    _same_bytes(ref, out)
+    import geopandas as gpd
+
+    back = gpd.read_parquet(out / "parcels.parquet")
+    table = gpd.read_file(ref / "parcels.gpkg")
+    assert list(back["parcel_id"]) == list(table["parcel_id"])
+    assert np.allclose(back.geometry.area, table.geometry.area)
+    # the tile list file names the same tiles
+    names = sorted(p.name for p in tiles.iterdir() if p.suffix == ".tif")
+    (tiles / "tiles.txt").write_text("# tiles\n" + "\n".join(names) + "\n")
+    out2 = d / "from_list"
+    audit_regions(
+        d / "tiles" / "tiles.txt",
+        parcels,
+        rules,
+        out2,
+        regions=2,
+        workers=2,
+        tile_cells=200,
+        rasters="none",
+        report=False,
+    )
+    _same_bytes(ref, out2)
+
+
+def test_tile_vrt_reads_as_the_one_file_dem(small, tmp_path):
+    # Reference: rasterio reading the one-file GeoTIFF the tiles were cut from
+    import rasterio
+
+    from landcheck.inputs.tiles import resolve_dem
+
+    d, dem, tiles, *_ = small
+    vrt, files = resolve_dem(tiles, tmp_path)
+    assert len(files) == 16
+    with rasterio.open(vrt) as a, rasterio.open(dem) as b:
+        assert a.transform == b.transform and a.crs == b.crs and a.nodata == b.nodata
+        assert np.array_equal(a.read(1), b.read(1))
+
+
+def test_failing_region_names_itself_and_a_rerun_resumes_the_others(small):
+    # common practice: a batch run fails with the failing part's message and resumes finished parts
+    d, dem, tiles, parcels, parts, rules, ref = small
+    work = d / "fail_tiles"
+    work.mkdir()
+    for p in tiles.iterdir():
+        if p.suffix == ".tif":
+            (work / p.name).write_bytes(p.read_bytes())
+    # the south-east tile (rows and cols 900..1199) is read by region 4 only: the others' parcels and
+    # slope halos stay within 100 cells of their blocks (lots are at most ≈ 35 cells across)
+    hidden = work / "dem_3_3.tif.away"
+    steps: list[str] = []
+
+    def on_step(msg: str) -> None:
+        steps.append(msg)
+        if msg.startswith("running"):  # the DEM was validated; the south-east tile now goes missing
+            os.replace(work / "dem_3_3.tif", hidden)
+
+    out = d / "failing"
+    kw = dict(regions=4, workers=2, tile_cells=200, rasters="none", report=False)
+    with pytest.raises(RegionError, match=r"^region 4 of 4 \(DEM rows 600\.\.1199, cols 600\.\.1199"):
+        audit_regions(work, parcels, rules, out, on_step=on_step, **kw)
+    assert not out.exists()
+    assert (d / ".failing.regions" / "results").is_dir()
+    os.replace(hidden, work / "dem_3_3.tif")  # the same bytes again: same fingerprint
+    steps.clear()
+    audit_regions(work, parcels, rules, out, on_step=steps.append, **kw)
+    assert "3 of 4 regions finished in an earlier run: resumed, not redone" in steps
+    assert sum(s.startswith("region ") and " done: " in s for s in steps) == 1
+    _same_bytes(ref, out)
+    assert not (d / ".failing.regions").exists()  # scratch removed once published
+
+
+def test_layout_blocks_of_whole_windows():
+    # common practice: a partition covers every window exactly once
+    lay = plan_regions(4000, 3000, 1024, 4)
+    assert lay.n_regions == 4
+    seen = np.zeros((lay.n_win_rows, lay.n_win_cols), int)
+    for k in range(lay.n_regions):
+        a, b, c, e = lay.block(k)
+        seen[a:b, c:e] += 1
+    assert (seen == 1).all()
+    assert plan_regions(30000, 30000, 1024, "auto").n_regions == 25
+    with pytest.raises(Exception, match="do not fit"):
+        plan_regions(1000, 1000, 1024, 4)
+
+
+def test_cli_regions(small):
+    # common practice: the command line gives what the API gives (same bytes as the single run)
+    import subprocess
+    import sys
+
+    d, dem, tiles, parcels, parts, rules, ref = small
+    out = d / "cli"
+    cmd = [sys.executable, "-m", "landcheck", "audit", "--dem", str(tiles), "--parcels", str(parts)]
+    cmd += ["--rulebook", str(rules), "--out", str(out), "--regions", "2", "--workers", "2", "--tile-size", "200"]
+    r = subprocess.run(cmd, capture_output=True, text=True, timeout=600)
+    assert r.returncode == 0, r.stderr
+    assert "region 2/2 done" in r.stderr and "regions merged" in r.stderr
+    _same_bytes(ref, out)
+    bad = subprocess.run(
+        [*cmd[:-8], "--out", str(d / "cli2"), "--regions", "2", "--rasters", "gtiff"], capture_output=True, text=True
+    )
+    assert bad.returncode == 3 and "--rasters none" in bad.stderr
