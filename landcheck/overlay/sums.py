@@ -25,8 +25,8 @@ whole-area figure.  The rounding moves each pair term by at most half a quantum
 can add up over a parcel's cells to the same relative amount of its area.
 
 Two implementations give the same numbers bit for bit (tests check it):
-:func:`accumulate_window` in NumPy is the readable reference;
-:func:`accumulate_window_compiled` runs one compiled loop over the pairs
+:func:`accumulate_window_reference` in NumPy is the readable reference;
+:func:`accumulate_window` runs one compiled loop over the pairs
 (:mod:`landcheck.overlay.reduction_loops`), about ten times faster and without the
 GIL, and is what the audit uses.
 """
@@ -38,7 +38,14 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["OverlayPlan", "WindowSums", "Totals", "accumulate_window", "accumulate_window_compiled", "CONFLICT_OUTSIDE"]
+__all__ = [
+    "OverlayPlan",
+    "WindowSums",
+    "Totals",
+    "accumulate_window_reference",
+    "accumulate_window",
+    "CONFLICT_OUTSIDE",
+]
 
 #: conflict-raster value for cells outside every parcel
 CONFLICT_OUTSIDE = 255
@@ -270,7 +277,7 @@ def _no_pairs(plan: OverlayPlan, land_m2, land_within_m2) -> WindowSums:
     )
 
 
-def accumulate_window(
+def accumulate_window_reference(
     slope_pct: np.ndarray,
     zone_bits: np.ndarray | None,
     cell_area_m2: np.ndarray,
@@ -454,7 +461,7 @@ def _thread_scratch(n_cells: int):
     return have
 
 
-def accumulate_window_compiled(
+def accumulate_window(
     slope_pct: np.ndarray,
     zone_bits: np.ndarray | None,
     cell_area_m2: np.ndarray,
@@ -463,9 +470,9 @@ def accumulate_window_compiled(
     plan: OverlayPlan,
     land_mask: np.ndarray | None = None,
 ) -> tuple[WindowSums, np.ndarray]:
-    """:func:`accumulate_window` as one compiled pass over the pairs; identical results.
+    """:func:`accumulate_window_reference` as one compiled pass over the pairs; identical results.
 
-    Same parameters and returns as :func:`accumulate_window`.  The triplets must be
+    Same parameters and returns as :func:`accumulate_window_reference`.  The triplets must be
     grouped by feature (runs of equal feature index), as
     :func:`landcheck.overlay.coverage.coverage_triplets` returns them.
     """
