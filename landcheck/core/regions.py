@@ -579,8 +579,9 @@ def _drive(
 
     from landcheck.core.run import _input_files, _manifest, _rewarn
     from landcheck.core.window_pass import build_plan
+    from landcheck.geo.ground_area import ground_areas
     from landcheck.inputs.dem import open_dem, refuse_if_nothing_evaluated
-    from landcheck.inputs.layers import areal_factor_at, ground_areas, validate_parcels
+    from landcheck.inputs.layers import areal_factor_at, validate_parcels
     from landcheck.inputs.partitions import iter_parcel_parts, parcel_files
     from landcheck.inputs.tiles import resolve_dem
     from landcheck.overlay.sums import Totals
