@@ -240,7 +240,6 @@ def _chrome(tmp_path):
     chromium = require_tool("chromium")
     chromedriver = require_tool("chromedriver")
     from selenium import webdriver
-    from selenium.common.exceptions import TimeoutException
     from selenium.webdriver.chrome.service import Service
 
     opts = webdriver.ChromeOptions()
@@ -262,6 +261,7 @@ def _chrome(tmp_path):
 
 @pytest.mark.reference_tool
 def test_whole_job_in_headless_chromium(tmp_path):
+    from selenium.common.exceptions import TimeoutException
     from selenium.webdriver.common.by import By
     from selenium.webdriver.support import expected_conditions as EC
     from selenium.webdriver.support.ui import Select, WebDriverWait
