@@ -391,6 +391,9 @@ def test_whole_job_in_headless_chromium(tmp_path):
 
         assert hashlib.sha256((DEMO / "dem.tif").read_bytes()).hexdigest() in made
         assert hashlib.sha256((DEMO / "parcels.gpkg").read_bytes()).hexdigest() in made
+        # the run's options in plain words, not raw JSON (common practice: a reader sees no code syntax)
+        options = driver.find_element(By.ID, "run-options").text
+        assert options.startswith("Options: ") and "{" not in options and '"' not in options
         # loading a rulebook with an unknown key into the form: the CLI's line-and-key message, line marked
         bad = tmp_path / "bad.toml"
         bad.write_text(

@@ -382,7 +382,15 @@
     panel.replaceChildren(h("h2", { text: "Made from" }),
       h("table", { id: "made-from-table" }, h("tbody", {}, m.inputs.map(i => h("tr", {}, h("td", { text: i.role }), h("td", { text: i.name }), h("td", {}, h("code", { text: i.sha256 })))),
         h("tr", {}, h("td", { text: "rulebook" }), h("td", {}, h("a", { href: `/api/projects/${r.project_id}/rulebooks/${m.rulebook.version}.toml`, text: "version " + m.rulebook.version })), h("td", {}, h("code", { text: m.rulebook.sha256 }))))),
-      h("p", { class: "muted", text: "Options: " + JSON.stringify(m.options) + " · landcheck " + m.landcheck }));
+      h("p", { class: "muted", id: "run-options", text: "Options: " + optionWords(m.options) + " · landcheck " + m.landcheck }));
+  }
+
+  // run options in plain words: "confidence runs: yes, parcel to pre-screen: none"
+  function optionWords(opts) {
+    const word = v => v === true ? "yes" : v === false ? "no" : v === null || v === undefined || v === "" ? "none"
+      : Array.isArray(v) ? (v.length ? v.join(", ") : "none") : String(v);
+    const entries = Object.entries(opts || {});
+    return entries.length ? entries.map(([k, v]) => k.replace(/_/g, " ") + ": " + word(v)).join("; ") : "none";
   }
 
   function drawStages(panel, r) {
