@@ -425,3 +425,27 @@ min_level = 2
     parts = shapely.get_parts(tiled)
     assert len(parts) > 10
     assert sum(p.area for p in parts) == pytest.approx(shapely.union_all(blobs).area, rel=1e-12)
+
+
+def test_spill_levels_by_kruskal_equal_dijkstra_minimax():
+    # Source: docs/references.md §17 (the lowest level at which a watershed drains is a bottleneck path
+    # value, unique): Kruskal's order with union-find and a minimax Dijkstra give the same levels on random
+    # graphs, duplicate edges, ties and a node no edge reaches included.
+    from landcheck.terrain.tiled_fill import _bottleneck_levels, _minimax_levels
+
+    rng = np.random.default_rng(8)
+    for _ in range(20):
+        n = int(rng.integers(2, 60))
+        m = int(rng.integers(1, 4 * n))
+        a = rng.integers(0, n - 1, m).astype(np.int32)  # node n - 1 is never an edge's end: unreached
+        b = rng.integers(0, n - 1, m).astype(np.int32)
+        w = np.round(rng.random(m) * 5, 1).astype(np.float32)
+        src = np.concatenate([a, b]).astype(np.int64)
+        dst = np.concatenate([b, a]).astype(np.int64)
+        ww = np.concatenate([w, w])
+        order = np.argsort(src, kind="stable")
+        indptr = np.cumsum(np.r_[0, np.bincount(src, minlength=n)]).astype(np.int64)
+        ref = _minimax_levels(n, indptr, dst[order], ww[order])
+        got = _bottleneck_levels(n, a, b, w, np.argsort(w, kind="stable"))
+        assert np.array_equal(got, ref)
+        assert np.isinf(got[n - 1]) and got[0] == -np.inf

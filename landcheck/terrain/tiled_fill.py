@@ -263,6 +263,50 @@ def _minimax_levels(n_nodes, indptr, nbr, wts):
     return level
 
 
+@numba.njit(cache=True, nogil=True)
+def _bottleneck_levels(n_nodes, a, b, w, order):
+    """Lowest level at which each node drains to node 0, by Kruskal's order (edges by rising spill height).
+
+    The bottleneck (minimax) path value is unique, so this equals :func:`_minimax_levels` (tested); it
+    needs the edge list once (no adjacency arrays), 12 B per edge.  Each component keeps a linked list
+    of its nodes; when an edge joins a component to node 0's, its nodes take that edge's height.
+    """
+    parent = np.arange(n_nodes)
+    size = np.ones(n_nodes, np.int64)
+    head = np.arange(n_nodes)
+    tail = np.arange(n_nodes)
+    nxt = np.full(n_nodes, -1, np.int64)
+    level = np.full(n_nodes, np.inf, np.float32)
+    level[0] = -np.inf
+    for t in range(order.shape[0]):
+        e = order[t]
+        x = np.int64(a[e])
+        while parent[x] != x:
+            parent[x] = parent[parent[x]]
+            x = parent[x]
+        y = np.int64(b[e])
+        while parent[y] != y:
+            parent[y] = parent[parent[y]]
+            y = parent[y]
+        if x == y:
+            continue
+        r0 = np.int64(0)
+        while parent[r0] != r0:
+            r0 = parent[r0]
+        if x == r0 or y == r0:
+            m = head[y] if x == r0 else head[x]
+            while m != -1:
+                level[m] = w[e]
+                m = nxt[m]
+        if size[x] < size[y]:
+            x, y = y, x
+        parent[y] = x
+        size[x] += size[y]
+        nxt[tail[x]] = head[y]
+        tail[x] = tail[y]
+    return level
+
+
 def perimeter(a: np.ndarray) -> dict:
     return {"top": a[0, :].copy(), "bottom": a[-1, :].copy(), "left": a[:, 0].copy(), "right": a[:, -1].copy()}
 
@@ -290,15 +334,19 @@ def spill_levels(n_tc: int, tiles: list) -> tuple[np.ndarray, list[int]]:
     :func:`perimeter` of its labels and elevations (no halo).  A tile's local label ``k >= 1`` is
     global label ``k + offset``.
     """
-    offsets, perims, ea_all, eb_all, ew_all = [], [], [], [], []
+    offsets: list[int] = []
+    perims: list = []
+    ea_all: list = []
+    eb_all: list = []
+    ew_all: list = []
     next_id = 1  # global node 0 = "leaves the area"
     for n_labels, ea, eb, ew, label, z in tiles:
         off = next_id - 1
         g = {side: np.where(v > 0, v + off, v) for side, v in label.items()}  # -1 stays: nodata
         perims.append((g, z))
         offsets.append(off)
-        ea_all.append(np.where(ea > 0, ea + off, 0))
-        eb_all.append(np.where(eb > 0, eb + off, 0))
+        ea_all.append(np.where(ea > 0, ea + off, 0).astype(np.int32))
+        eb_all.append(np.where(eb > 0, eb + off, 0).astype(np.int32))
         ew_all.append(ew)
         next_id += n_labels - 1
     n_tiles = len(tiles)
@@ -318,21 +366,17 @@ def spill_levels(n_tc: int, tiles: list) -> tuple[np.ndarray, list[int]]:
             if tj > 0:
                 g3, z3 = perims[k + n_tc - 1]
                 pairs += _cross_edges(gk["bottom"][:1], zk["bottom"][:1], g3["top"][-1:], z3["top"][-1:])[1:2]
-        for a, b, wgt in pairs:
-            ea_all.append(a)
-            eb_all.append(b)
-            ew_all.append(wgt.astype(np.float32))
-    a = np.concatenate(ea_all)
-    b = np.concatenate(eb_all)
-    wgt = np.concatenate(ew_all)
-    src = np.concatenate([a, b])
-    dst = np.concatenate([b, a])
-    ww = np.concatenate([wgt, wgt])
-    order = np.argsort(src, kind="stable")
-    indptr = np.zeros(next_id + 1, np.int64)
-    np.add.at(indptr, src + 1, 1)
-    indptr = np.cumsum(indptr)
-    level = _minimax_levels(next_id, indptr, dst[order].astype(np.int64), ww[order].astype(np.float32))
+        for pa, pb, pw in pairs:
+            ea_all.append(pa.astype(np.int32))
+            eb_all.append(pb.astype(np.int32))
+            ew_all.append(pw.astype(np.float32))
+    a = np.concatenate(ea_all).astype(np.int32)
+    del ea_all
+    b = np.concatenate(eb_all).astype(np.int32)
+    del eb_all
+    wgt = np.concatenate(ew_all).astype(np.float32)
+    del ew_all
+    level = _bottleneck_levels(next_id, a, b, wgt, np.argsort(wgt, kind="stable"))
     return level, offsets
 
 

@@ -230,7 +230,8 @@ def _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scrat
         filled, label, n_labels, ea, eb, ew = tf._tile_flood(zh, tf._DR, tf._DC)
         scratch.save("flood", k, filled)
         scratch.save("label", k, label.astype(np.int32))
-        return n_labels, ea, eb, ew, tf.perimeter(label), tf.perimeter(zh[1:-1, 1:-1])
+        # int32 labels: the spill graph of every tile is held until it is solved
+        return n_labels, ea.astype(np.int32), eb.astype(np.int32), ew, tf.perimeter(label), tf.perimeter(zh[1:-1, 1:-1])
 
     floods = [res for _, res in run_windows(flood, wins, workers=workers)]
     level, offsets = tf.spill_levels(tiles.n_tc, floods)
