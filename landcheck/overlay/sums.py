@@ -218,6 +218,32 @@ class Totals:
     def land_within_m2(self) -> float:
         return float(self._q_land_within * AREA_QUANTUM_M2)
 
+    def rows(self, start: int, stop: int) -> Totals:
+        """The sums of parcels ``start .. stop - 1`` as a Totals over the same integer arrays (views, no copy;
+        the class histogram and land figures are the whole run's): float views of a slice of parcels only.
+        Read it, do not merge into it."""
+        t = Totals.__new__(Totals)
+        t.n_parcels = stop - start
+        t.n_thresholds, t.n_cols, t.n_classes = self.n_thresholds, self.n_cols, self.n_classes
+        t._q = {f: q if f == "class_hist_m2" else q[start:stop] for f, q in self._q.items()}
+        t._q_slope = self._q_slope[start:stop]
+        t._q_land, t._q_land_within = self._q_land, self._q_land_within
+        t.slope_max_pct = self.slope_max_pct[start:stop]
+        return t
+
+    def areas(self, field: str, rows: np.ndarray, cols: np.ndarray | None = None) -> np.ndarray:
+        """``field`` in m² for the parcels ``rows`` (and the columns ``cols`` of a 2-D field): the values of
+        the float view, without making the view for every parcel (a 2-D selection is filled column by column,
+        without an integer copy of it)."""
+        q = self._q[field]
+        if cols is None:
+            return q[rows] * AREA_QUANTUM_M2
+        out = np.empty((len(rows), len(cols)), order="F")  # the layout of `view[rows][:, cols]`
+        for j, c in enumerate(cols):
+            out[:, j] = q[rows, c]
+        out *= AREA_QUANTUM_M2
+        return out
+
     def add(self, s: WindowSums) -> None:
         self.__dict__.pop("_float_cache", None)
         p = s.parcels
