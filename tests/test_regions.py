@@ -284,7 +284,10 @@ def test_tables_in_slices_of_parcels_give_the_whole_tables_bytes(tmp_path):
     counted = (whole["verdict"] != "no_data").to_numpy() & (whole["verdict"] != "no_rule").to_numpy()
     got = sensitivity_table(totals, plan, pr, rules, counted)
     idx = np.searchsorted(plan.thresholds_pct, SENSITIVITY_LIMITS_PCT)
-    sel = (pr.class_name == "housing") & counted
-    # the whole float view, as the sensitivity curve was computed before Totals.areas
-    expected = (totals.over_m2[sel][:, idx].sum(axis=0) / totals.evaluated_m2[sel].sum()).tolist()
-    assert got["classes"]["housing"] == expected
+    # the whole float view, as the sensitivity curve was computed before Totals.column_sums
+    for name, sel in (
+        ("housing", (pr.class_name == "housing") & counted),
+        ("all", np.isin(pr.class_name, ["housing", "fields"]) & counted),
+    ):
+        expected = (totals.over_m2[sel][:, idx].sum(axis=0) / totals.evaluated_m2[sel].sum()).tolist()
+        assert (got["all_development"] if name == "all" else got["classes"][name]) == expected

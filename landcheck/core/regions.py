@@ -1047,6 +1047,7 @@ def _write_parcel_tables(
                 del part, tab, geoms
                 on_rows(rows)
                 del rows
+                _release_memory()
         if pw is not None:
             pw.close()
             pw = None

@@ -231,18 +231,12 @@ class Totals:
         t.slope_max_pct = self.slope_max_pct[start:stop]
         return t
 
-    def areas(self, field: str, rows: np.ndarray, cols: np.ndarray | None = None) -> np.ndarray:
-        """``field`` in m² for the parcels ``rows`` (and the columns ``cols`` of a 2-D field): the values of
-        the float view, without making the view for every parcel (a 2-D selection is filled column by column,
-        without an integer copy of it)."""
+    def column_sums(self, field: str, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+        """Sums over the parcels ``rows`` of the columns ``cols`` of a 2-D field, in m², one column at a time:
+        the bits of ``view[rows][:, cols].sum(axis=0)`` (whose columns are contiguous runs, each summed on
+        its own), without the whole float view or the selection of every column at once."""
         q = self._q[field]
-        if cols is None:
-            return q[rows] * AREA_QUANTUM_M2
-        out = np.empty((len(rows), len(cols)), order="F")  # the layout of `view[rows][:, cols]`
-        for j, c in enumerate(cols):
-            out[:, j] = q[rows, c]
-        out *= AREA_QUANTUM_M2
-        return out
+        return np.array([(q[rows, c] * AREA_QUANTUM_M2).sum() for c in cols], dtype=np.float64)
 
     def add(self, s: WindowSums) -> None:
         self.__dict__.pop("_float_cache", None)

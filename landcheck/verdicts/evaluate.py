@@ -246,12 +246,12 @@ def sensitivity_table(totals: Totals, plan: OverlayPlan, pr: ParcelRules, rules:
 
 
 def _over_shares(totals: Totals, sel: np.ndarray, idx: np.ndarray) -> list:
-    """Area over the thresholds ``idx`` / evaluated area, of the parcels ``sel`` (the threshold areas of
-    those parcels only: the whole (parcels x thresholds) float view is not made)."""
+    """Area over the thresholds ``idx`` / evaluated area, of the parcels ``sel`` (summed threshold by
+    threshold: the whole (parcels x thresholds) float view is not made)."""
     ev = totals.evaluated_m2[sel].sum()
     if not ev > 0:
         return [None] * len(idx)
-    return (totals.areas("over_m2", np.flatnonzero(sel), idx).sum(axis=0) / ev).tolist()
+    return (totals.column_sums("over_m2", np.flatnonzero(sel), idx) / ev).tolist()
 
 
 def slope_histogram(totals: Totals, rules: Rulebook) -> dict:
