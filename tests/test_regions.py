@@ -21,6 +21,7 @@ import numpy as np
 import pytest
 import regions_data as rd
 
+from landcheck.core import regions
 from landcheck.core.audit import audit
 from landcheck.core.regions import audit_regions, plan_regions
 from landcheck.errors import RegionError
@@ -49,13 +50,15 @@ def big(tmp_path_factory):
     return d, dem, parcels, rules, ref
 
 
-def test_four_regions_two_workers_same_bytes_even_when_a_worker_is_killed(big):
+def test_four_regions_two_workers_same_bytes_even_when_a_worker_is_killed(big, monkeypatch):
     # common practice: the distributed run reproduces the serial run bit for bit (module docstring)
     d, dem, parcels, rules, ref = big
     out = d / "regions"
+    monkeypatch.setattr(regions, "TABLE_ROWS", 6_000)  # the tables in 4 slices (6 000, 6 000, 6 000, 2 000)
     res = audit_regions(dem, parcels, rules, out, regions=4, workers=2, rasters="none", report=False)
     _same_bytes(ref, out, (*TABLES, "summary.json"))
     assert res.summary["totals"]["parcels"] == 20_000
+    assert res.n_conflicts == res.summary["totals"]["verdict_counts"]["conflict"] > 0
     runs = json.loads((out / "run_times.json").read_text())["execution"]
     assert runs["regions"]["n_regions"] == 4 and len(runs["region_runs"]) == 4
     assert (out / "parcels.gpkg").is_file() and (out / "parcels.parquet").is_file()
@@ -211,3 +214,80 @@ def test_cli_regions(small):
         [*cmd[:-8], "--out", str(d / "cli2"), "--regions", "2", "--rasters", "gtiff"], capture_output=True, text=True
     )
     assert bad.returncode == 3 and "--rasters none" in bad.stderr
+
+
+def test_tables_in_slices_of_parcels_give_the_whole_tables_bytes(tmp_path):
+    # common practice: a row-wise table written in slices equals the table written whole; the class table
+    # and the sensitivity curve from the kept columns equal those from the whole table (the single run's
+    # computation), also for sums too large to be exact in float64, where the order of the terms matters
+    from landcheck.core.run import open_rules
+    from landcheck.core.window_pass import build_plan
+    from landcheck.outputs.writers import csv_rows, write_csv
+    from landcheck.overlay.sums import Totals
+    from landcheck.verdicts.evaluate import (
+        SENSITIVITY_LIMITS_PCT,
+        evaluate_parcels,
+        parcel_rules,
+        sensitivity_table,
+        summarise_classes,
+    )
+
+    rules = open_rules(
+        {
+            "rulebook": {"class_field": "zoning"},
+            "classes": {
+                "housing": {"values": ["H"], "max_slope_pct": 15.0, "review_band_pct": 3.0},
+                "fields": {"values": ["F"], "max_slope_pct": 25.0},
+                "woods": {"values": ["W"], "development": False},
+            },
+        }
+    )
+    rng = np.random.default_rng(3)
+    n = 25_000
+    values = rng.choice(np.array(["H", "F", "W", "X", None], dtype=object), n, p=[0.4, 0.3, 0.2, 0.05, 0.05])
+    pr = parcel_rules(rules, values)
+    plan = build_plan(rules, pr.class_name, np.ones(n), 1.0)
+    totals = Totals(n, len(plan.thresholds_pct), plan.n_cols, plan.n_classes)
+    big = 2**55 // n  # quanta per parcel: the column sums pass 2^53 quanta, beyond exact float64 sums
+    q = totals._q
+    q["covered_m2"][:] = rng.integers(big // 2, big, n)
+    q["evaluated_m2"][:] = q["covered_m2"] - rng.integers(0, big // 4, n)
+    over = np.sort(rng.integers(0, big // 2, (n, len(plan.thresholds_pct))), axis=1)[:, ::-1]
+    q["over_m2"][:] = np.minimum(over, q["evaluated_m2"][:, None])
+    q["conflict_m2"][:] = q["over_m2"][np.arange(n), np.maximum(plan.limit_index, 0)]
+    q["near_conflict_m2"][:] = q["over_m2"][np.arange(n), np.maximum(plan.near_index, 0)]
+    totals._q_slope[:] = rng.integers(0, big, n)
+    totals.slope_max_pct[:] = rng.uniform(0, 80, n)
+    area = q["covered_m2"] * 2.0**-20 + rng.uniform(0, 5, n)
+    empty = rng.random(n) < 0.01
+
+    whole = evaluate_parcels(totals, plan, rules, pr, area, empty, values)
+    edges = [0, 7_000, 7_001, 19_000, n]
+    kept = regions._SummedColumns(np.arange(1, n + 1), rules, [])
+    with csv_rows(tmp_path / "slices.csv") as add:
+        for a, b in zip(edges, edges[1:]):
+            rows = evaluate_parcels(totals.rows(a, b), regions._subset_plan(plan, np.arange(a, b)), rules,
+                                    pr.rows(a, b), area[a:b], empty[a:b], values[a:b])  # fmt: skip
+            add(rows)
+            kept.add(rows)
+    write_csv(tmp_path / "whole.csv", whole)
+    assert (tmp_path / "slices.csv").read_bytes() == (tmp_path / "whole.csv").read_bytes()
+
+    slim = kept.frame()
+    write_csv(tmp_path / "classes_whole.csv", summarise_classes(whole, rules))
+    write_csv(tmp_path / "classes_kept.csv", summarise_classes(slim, rules))
+    assert (tmp_path / "classes_whole.csv").read_bytes() == (tmp_path / "classes_kept.csv").read_bytes()
+    for col in ("covered_m2", "evaluated_m2", "conflict_m2"):
+        assert whole[col].sum() == slim[col].sum()
+        assert whole[col].sum() != np.cumsum(whole[col].to_numpy())[-1]  # the order of the terms matters here
+
+    counted = (whole["verdict"] != "no_data").to_numpy() & (whole["verdict"] != "no_rule").to_numpy()
+    got = sensitivity_table(totals, plan, pr, rules, counted)
+    idx = np.searchsorted(plan.thresholds_pct, SENSITIVITY_LIMITS_PCT)
+    # the whole float view, as the sensitivity curve was computed before Totals.column_sums
+    for name, sel in (
+        ("housing", (pr.class_name == "housing") & counted),
+        ("all", np.isin(pr.class_name, ["housing", "fields"]) & counted),
+    ):
+        expected = (totals.over_m2[sel][:, idx].sum(axis=0) / totals.evaluated_m2[sel].sum()).tolist()
+        assert (got["all_development"] if name == "all" else got["classes"][name]) == expected

@@ -26,7 +26,11 @@ parcels' geometries or the per-parcel work:
    scratch folder, atomically, with a marker naming the run's fingerprint.
 4. **Merge.** The regions' accumulators are added into one :class:`Totals` (exact integer
    additions: region order and layout change no bit), then verdicts, class table and summary
-   are computed exactly as :func:`landcheck.core.run.run_audit` computes them.
+   are computed exactly as :func:`landcheck.core.run.run_audit` computes them.  The per-parcel
+   table (verdicts and reasons) is evaluated and written slice by slice, :data:`TABLE_ROWS`
+   parcels at a time (a parcel's row depends only on its own sums); the driver keeps only the
+   numeric and categorical columns the class table and summary sum (same arrays, same pandas
+   sums, same bits).
 
 Faults.  A worker lost mid-run: Dask reschedules its task on another worker (the job is
 idempotent; its result file is replaced atomically).  A region that raises (bad input met only
@@ -74,6 +78,9 @@ logger = logging.getLogger(__name__)
 DEFAULT_REGION_CELLS = 6144
 #: Dask event topic of per-region window progress
 PROGRESS_TOPIC = "landcheck-region-progress"
+#: the per-parcel tables are evaluated and written in slices of at most this many parcels (the row groups of
+#: the scratch ``ordered.parquet``), so the driver never holds the whole table with its reasons
+TABLE_ROWS = 50_000
 
 
 # --------------------------------------------------------------------------- layout
@@ -445,7 +452,9 @@ class _PartWriters:
         import shapely
 
         wkb = shapely.to_wkb(geoms)
-        self._writer("ordered").write_table(pa.table({"gidx": gidx, "wkb": pa.array(wkb, pa.binary())}))
+        self._writer("ordered").write_table(
+            pa.table({"gidx": gidx, "wkb": pa.array(wkb, pa.binary())}), row_group_size=TABLE_ROWS
+        )
         order = np.argsort(region, kind="stable")
         rs = region[order]
         cuts = np.flatnonzero(np.diff(rs)) + 1
@@ -535,7 +544,9 @@ def audit_regions(
     Returns
     -------
     landcheck.core.audit.AuditResult
-        With ``run`` None (the parcels' geometries are not held in memory).
+        With ``run`` None (the parcels' geometries are not held in memory), and ``parcels`` holding only
+        the columns the class table and summary are summed from (``parcel_id``, ``class_name`` and
+        ``verdict`` as categoricals, the area figures): the whole per-parcel table is ``parcels.csv``.
 
     Raises
     ------
@@ -793,34 +804,46 @@ def _drive(
         with np.load(npz) as arr:
             totals.add_part(arr, arr["gidx"])
     step("regions merged")
+    refuse_if_nothing_evaluated(dem, totals.evaluated_m2, area_m2, where)
+    totals.__dict__.pop("_float_cache", None)
     columns = zones.columns if zones is not None else []
-    table = evaluate_parcels(
-        totals, plan, rules, pr, area_m2, empty, class_value.to_numpy(dtype=object, na_value=pd.NA), columns
-    )
-    totals.__dict__.pop("_float_cache", None)  # the float views evaluate used: ≈ 250 B per parcel
-    refuse_if_nothing_evaluated(dem, table["evaluated_m2"].to_numpy(), area_m2, where)
-    table.insert(0, "parcel_id", ids)
-    table["geometry_note"] = note
-    classes = summarise_classes(table, rules)
-    from landcheck.core.run import _summary
+    notes = pd.Series(note)
 
+    def parcel_rows(a: int, b: int) -> pd.DataFrame:
+        """The rows of parcels ``a .. b - 1`` of parcels.csv (evaluation is parcel by parcel: a slice's rows
+        are the whole table's)."""
+        rows = evaluate_parcels(
+            totals.rows(a, b),
+            _subset_plan(plan, np.arange(a, b)),
+            rules,
+            pr.rows(a, b),
+            area_m2[a:b],
+            empty[a:b],
+            class_value[a:b].to_numpy(dtype=object, na_value=pd.NA),
+            columns,
+        )
+        rows.insert(0, "parcel_id", ids[a:b])
+        rows["geometry_note"] = notes.iloc[a:b].reset_index(drop=True)  # the whole column's type in each slice
+        return rows
+
+    # ---- the folder of a single run (+ parcels.parquet)
+    from landcheck.core.run import _summary
+    from landcheck.outputs.writers import write_csv, write_json
+
+    if zones is not None:
+        zones.write_layers(stage)
+    step("writing parcels.csv, parcels.gpkg and parcels.parquet")
+    kept = _SummedColumns(ids, rules, [f"zone_{c.name}_m2" for c in columns])
+    _write_parcel_tables(stage, scratch / "parcels" / "ordered.parquet", parcel_rows, kept.add, g.crs_wkt)
+    table = kept.frame()
+    del kept
+    classes = summarise_classes(table, rules)
     zone_names = [z.name for z in rules.zones]
     counted = (table["verdict"] != Verdict.NO_DATA).to_numpy() & (table["verdict"] != Verdict.NO_RULE).to_numpy()
     summary = _summary(rules, table, classes, totals, plan, pr, counted, zone_names, collected, columns)
     summary["manifest"] = _manifest(started, dem, parcels, rules, s, g, None, inputs=inputs)
     if zones is not None:
         summary["zones"] = zones.describe()
-    del totals, plan, pr
-    _release_memory()
-
-    # ---- the folder of a single run (+ parcels.parquet)
-    from landcheck.outputs.writers import write_csv, write_json
-
-    if zones is not None:
-        zones.write_layers(stage)
-    step("writing parcels.gpkg and parcels.parquet")
-    _write_geo_tables(stage, scratch / "parcels" / "ordered.parquet", table, g.crs_wkt)
-    write_csv(stage / "parcels.csv", table)
     write_csv(stage / "classes.csv", classes)
     write_json(stage / "summary.json", summary)
     execution = {
@@ -941,36 +964,90 @@ def _run_tasks(tasks: list[RegionTask], s: AuditSettings, step, on_cluster) -> l
     return [infos[k] for k in range(n)]
 
 
-def _write_geo_tables(stage: Path, ordered: Path, table: pd.DataFrame, crs_wkt: str) -> None:
-    """parcels.gpkg and parcels.parquet, streamed part by part in parcel order from the scratch geometries."""
+class _SummedColumns:
+    """The per-parcel columns the class table and the summary are computed from
+    (:data:`landcheck.verdicts.evaluate.SUMMED_COLUMNS` and the zone areas), gathered slice by slice:
+    numbers and two categorical columns, ≈ 8 B per number per parcel, no text."""
+
+    def __init__(self, ids: np.ndarray, rules: Rulebook, zone_area_columns: list[str]):
+        from landcheck.inputs.rulebook import NO_RULE
+        from landcheck.verdicts.evaluate import SUMMED_COLUMNS, Verdict
+
+        self.ids = ids
+        self.numbers = [c for c in SUMMED_COLUMNS if c not in ("class_name", "verdict")] + zone_area_columns
+        self.kinds = {
+            "class_name": pd.CategoricalDtype([*(c.name for c in rules.classes), NO_RULE]),
+            "verdict": pd.CategoricalDtype(list(Verdict.ALL)),
+        }
+        self.parts: list[dict] = []
+
+    def add(self, rows: pd.DataFrame) -> None:
+        part = {c: rows[c].to_numpy(dtype=np.float64, copy=True) for c in self.numbers}
+        part.update({c: pd.Categorical(rows[c], dtype=kind).codes for c, kind in self.kinds.items()})
+        self.parts.append(part)
+
+    def frame(self) -> pd.DataFrame:
+        """The columns of the whole table (``parcel_id`` first), each one contiguous array as in the table
+        :func:`~landcheck.verdicts.evaluate.evaluate_parcels` makes, so pandas sums them to the same bits."""
+        cols: dict = {"parcel_id": self.ids}
+        for c, kind in self.kinds.items():
+            codes = np.concatenate([p[c] for p in self.parts])
+            cols[c] = pd.Categorical.from_codes(codes, dtype=kind)
+        for c in self.numbers:
+            cols[c] = np.concatenate([p.pop(c) for p in self.parts])
+        self.parts = []
+        return pd.DataFrame(cols)
+
+
+def _write_parcel_tables(
+    stage: Path,
+    ordered: Path,
+    parcel_rows: Callable[[int, int], pd.DataFrame],
+    on_rows: Callable[[pd.DataFrame], None],
+    crs_wkt: str,
+) -> None:
+    """parcels.csv, parcels.gpkg and parcels.parquet, written together slice by slice in parcel order: one
+    row group of the scratch geometries (``ordered``, at most :data:`TABLE_ROWS` parcels) at a time, its
+    rows from ``parcel_rows(first, end)`` and handed to ``on_rows`` once written."""
     import geopandas as gpd
     import pyarrow.parquet as pq
     import pyogrio
     import shapely
     from geopandas.io.arrow import _geopandas_to_arrow  # the GeoParquet table geopandas itself writes
 
-    from landcheck.outputs.writers import fixed_gpkg_date
+    from landcheck.outputs.writers import csv_rows, fixed_gpkg_date
 
     gpkg_tmp = stage / ".parcels.gpkg.tmp.gpkg"
     pq_tmp = stage / ".parcels.parquet.tmp"
     pf = pq.ParquetFile(ordered)
     pw = None
+    end = 0
     first = True
     try:
-        with fixed_gpkg_date():
+        with fixed_gpkg_date(), csv_rows(stage / "parcels.csv") as add_csv:
             for i in range(pf.num_row_groups):
                 rg = pf.read_row_group(i)
                 gidx = rg.column("gidx").to_numpy()
+                if len(gidx) == 0:
+                    continue
+                if gidx[0] != end or gidx[-1] != end + len(gidx) - 1:
+                    raise RuntimeError(f"{ordered}: row group {i} is not the parcels {end}.. in order")
+                rows = parcel_rows(end, end + len(gidx))
+                end += len(gidx)
+                add_csv(rows)
                 geoms = shapely.from_wkb(rg.column("wkb").to_numpy(zero_copy_only=False))
-                part = gpd.GeoDataFrame(
-                    table.iloc[gidx].reset_index(drop=True), geometry=gpd.GeoSeries(geoms).values, crs=crs_wkt
-                )
+                del rg
+                part = gpd.GeoDataFrame(rows, geometry=gpd.GeoSeries(geoms).values, crs=crs_wkt)
                 pyogrio.write_dataframe(part, gpkg_tmp, layer="parcels", driver="GPKG", append=not first)
                 tab = _geopandas_to_arrow(part, index=False)
                 if pw is None:
                     pw = pq.ParquetWriter(pq_tmp, tab.schema)
                 pw.write_table(tab)
                 first = False
+                del part, tab, geoms
+                on_rows(rows)
+                del rows
+                _release_memory()
         if pw is not None:
             pw.close()
             pw = None

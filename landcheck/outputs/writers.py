@@ -30,6 +30,7 @@ __all__ = [
     "check_output_path",
     "write_json",
     "write_csv",
+    "csv_rows",
     "RasterSink",
     "RasterFormat",
     "cap_gdal_cache",
@@ -104,9 +105,43 @@ def write_json(path: str | os.PathLike, data, *, overwrite: bool = True) -> Path
 
 
 def write_csv(path: str | os.PathLike, frame, *, overwrite: bool = True) -> Path:
-    with atomic_file(path, overwrite=overwrite) as tmp:
-        frame.to_csv(tmp, index=False, float_format="%.10g")
+    """``frame`` as CSV: :func:`csv_rows` with the whole frame as its one slice."""
+    with csv_rows(path, overwrite=overwrite) as add:
+        add(frame)
     return Path(path)
+
+
+@contextlib.contextmanager
+def csv_rows(path: str | os.PathLike, *, overwrite: bool = True) -> Iterator[Callable[[object], None]]:
+    """Yield ``add(frame)``: the rows of each frame appended to one CSV (the header from the first).
+
+    Every CSV table goes through here, whole (:func:`write_csv`) or slice by slice (the region run's
+    ``parcels.csv``): a value's text depends only on the value and its column's type, so the slices of a
+    table give the bytes of the whole table.  The file is renamed into place when the block ends.
+
+    >>> import pandas as pd, tempfile
+    >>> d = Path(tempfile.mkdtemp())
+    >>> f = pd.DataFrame({"a": [1, 2, 3], "b": [0.1, None, 1 / 3], "c": ["x", "y,z", None]})
+    >>> with csv_rows(d / "parts.csv") as add:
+    ...     add(f.iloc[:1])
+    ...     add(f.iloc[1:])
+    >>> _ = write_csv(d / "whole.csv", f)
+    >>> (d / "parts.csv").read_bytes() == (d / "whole.csv").read_bytes()
+    True
+    >>> print((d / "parts.csv").read_text(), end="")
+    a,b,c
+    1,0.1,x
+    2,,"y,z"
+    3,0.3333333333,
+    """
+    with atomic_file(path, overwrite=overwrite) as tmp, open(tmp, "w", encoding="utf-8", newline="") as f:
+        first = [True]
+
+        def add(frame) -> None:
+            frame.to_csv(f, index=False, header=first[0], float_format="%.10g")
+            first[0] = False
+
+        yield add
 
 
 def write_gpkg(path: str | os.PathLike, gdf, layer: str, *, overwrite: bool = True) -> Path:

@@ -218,6 +218,26 @@ class Totals:
     def land_within_m2(self) -> float:
         return float(self._q_land_within * AREA_QUANTUM_M2)
 
+    def rows(self, start: int, stop: int) -> Totals:
+        """The sums of parcels ``start .. stop - 1`` as a Totals over the same integer arrays (views, no copy;
+        the class histogram and land figures are the whole run's): float views of a slice of parcels only.
+        Read it, do not merge into it."""
+        t = Totals.__new__(Totals)
+        t.n_parcels = stop - start
+        t.n_thresholds, t.n_cols, t.n_classes = self.n_thresholds, self.n_cols, self.n_classes
+        t._q = {f: q if f == "class_hist_m2" else q[start:stop] for f, q in self._q.items()}
+        t._q_slope = self._q_slope[start:stop]
+        t._q_land, t._q_land_within = self._q_land, self._q_land_within
+        t.slope_max_pct = self.slope_max_pct[start:stop]
+        return t
+
+    def column_sums(self, field: str, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+        """Sums over the parcels ``rows`` of the columns ``cols`` of a 2-D field, in m², one column at a time:
+        the bits of ``view[rows][:, cols].sum(axis=0)`` (whose columns are contiguous runs, each summed on
+        its own), without the whole float view or the selection of every column at once."""
+        q = self._q[field]
+        return np.array([(q[rows, c] * AREA_QUANTUM_M2).sum() for c in cols], dtype=np.float64)
+
     def add(self, s: WindowSums) -> None:
         self.__dict__.pop("_float_cache", None)
         p = s.parcels

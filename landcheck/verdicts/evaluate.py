@@ -13,7 +13,7 @@ Pure: no file access.  Verdicts (docs/design.md):
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 
 import numpy as np
 import pandas as pd
@@ -28,7 +28,12 @@ __all__ = [
     "summarise_classes",
     "sensitivity_table",
     "SENSITIVITY_LIMITS_PCT",
+    "SUMMED_COLUMNS",
 ]
+
+#: the per-parcel columns :func:`summarise_classes` and the run summary read, besides the zone areas
+#: ``zone_NAME_m2`` (a region run keeps only these for all parcels)
+SUMMED_COLUMNS = ("class_name", "verdict", "area_m2", "covered_m2", "evaluated_m2", "over_limit_m2", "conflict_m2")
 
 #: slope limits for the sensitivity curve, percent (10 to 30 in 1-point steps)
 SENSITIVITY_LIMITS_PCT = np.arange(10.0, 31.0, 1.0)
@@ -61,6 +66,10 @@ class ParcelRules:
     band_pct: np.ndarray
     tol_share: np.ndarray
     min_breach_m2: np.ndarray
+
+    def rows(self, start: int, stop: int) -> ParcelRules:
+        """The rules of parcels ``start .. stop - 1`` (views)."""
+        return ParcelRules(*(getattr(self, f.name)[start:stop] for f in fields(self)))
 
 
 def parcel_rules(rules: Rulebook, class_values) -> ParcelRules:
@@ -231,15 +240,18 @@ def sensitivity_table(totals: Totals, plan: OverlayPlan, pr: ParcelRules, rules:
             continue
         sel = (pr.class_name == c.name) & counted
         dev_sel |= sel
-        ev = totals.evaluated_m2[sel].sum()
-        out["classes"][c.name] = (
-            (totals.over_m2[sel][:, idx].sum(axis=0) / ev).tolist() if ev > 0 else [None] * len(idx)
-        )
-    ev = totals.evaluated_m2[dev_sel].sum()
-    out["all_development"] = (
-        (totals.over_m2[dev_sel][:, idx].sum(axis=0) / ev).tolist() if ev > 0 else [None] * len(idx)
-    )
+        out["classes"][c.name] = _over_shares(totals, sel, idx)
+    out["all_development"] = _over_shares(totals, dev_sel, idx)
     return out
+
+
+def _over_shares(totals: Totals, sel: np.ndarray, idx: np.ndarray) -> list:
+    """Area over the thresholds ``idx`` / evaluated area, of the parcels ``sel`` (summed threshold by
+    threshold: the whole (parcels x thresholds) float view is not made)."""
+    ev = totals.evaluated_m2[sel].sum()
+    if not ev > 0:
+        return [None] * len(idx)
+    return (totals.column_sums("over_m2", np.flatnonzero(sel), idx) / ev).tolist()
 
 
 def slope_histogram(totals: Totals, rules: Rulebook) -> dict:
