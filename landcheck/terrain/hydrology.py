@@ -1,8 +1,10 @@
 """Hydrology kernels for the hazard zones: sea, sea-level-rise inundation, flow routing, HAND.
 
 Unlike the slope kernels these are *global* operations: whether a cell is
-flooded or where its water goes depends on cells far away, so every function
-takes the whole raster as one array (no tiles, no halo).  They are pure: arrays
+flooded or where its water goes depends on cells far away.  The functions here
+take the whole raster as one array: the reference forms for small rasters and
+tests.  The audit runs the same steps by tiles (:mod:`~landcheck.terrain.tiled_components`,
+:mod:`~landcheck.terrain.tiled_routing`), tested equal to these.  They are pure: arrays
 and scalars in, new arrays out; inputs are never modified; nothing is logged.
 
 Conventions
@@ -23,9 +25,10 @@ What is computed
     "Bathtub with hydrological connectivity": for each water level, the cells
     at or below it that are connected to the sea (Poulter & Halpin 2008).
 ``flow_directions``
-    Priority-Flood depression filling (pyflwdir, Wang & Liu 2006 variant of
-    Barnes et al. 2014) followed by steepest-descent D8 directions
-    (O'Callaghan & Mark 1984) on the filled surface.
+    Priority-Flood depression filling (Barnes et al. 2014) followed by
+    steepest-descent D8 directions (O'Callaghan & Mark 1984) on the filled
+    surface, flats towards their exits: the kernels of
+    :mod:`landcheck.terrain.tiled_routing` on one tile.
 ``upstream_area_m2``, ``stream_mask``
     Contributing area and a drainage network by an area threshold.
 ``hand_m``
