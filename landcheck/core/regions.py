@@ -588,11 +588,17 @@ def _drive(
 ):
     import shapely
 
-    from landcheck.core.run import _input_files, _manifest, _rewarn
+    from landcheck.core.run import (
+        _input_files,
+        _manifest,
+        _rewarn,
+        warn_unmatched_classes,
+        whole_area_ground_factor,
+    )
     from landcheck.core.window_pass import build_plan
     from landcheck.geo.ground_area import ground_areas
     from landcheck.inputs.dem import open_dem, refuse_if_nothing_evaluated
-    from landcheck.inputs.layers import areal_factor_at, validate_parcels
+    from landcheck.inputs.layers import validate_parcels
     from landcheck.inputs.partitions import iter_parcel_parts, parcel_files
     from landcheck.inputs.tiles import resolve_dem
     from landcheck.overlay.sums import Totals
@@ -729,21 +735,8 @@ def _drive(
         collected.append(msg)
         warnings.warn(msg, LandcheckWarning, stacklevel=3)
     pr = parcel_rules(rules, class_value.to_numpy(dtype=object, na_value=pd.NA))
-    no_rule_valued = (pr.class_name == "no_rule") & ~np.asarray(pd.isna(class_value))
-    cv_series = pd.Series(class_value)
-    unmatched = sorted(set(cv_series[no_rule_valued].astype(str)))
-    if unmatched:
-        msg = (
-            f"{where}: {int(no_rule_valued.sum())} parcels have class values with no rule "
-            f"({', '.join(map(repr, unmatched[:10]))}); they are listed with verdict no_rule."
-        )
-        collected.append(msg)
-        warnings.warn(msg, LandcheckWarning, stacklevel=3)
-    ground_factor = (
-        1.0
-        if g.geographic
-        else areal_factor_at(g.crs_wkt, (g.bounds[0] + g.bounds[2]) / 2, (g.bounds[1] + g.bounds[3]) / 2)
-    )
+    warn_unmatched_classes(pr, pd.Series(class_value), where, collected)
+    ground_factor = whole_area_ground_factor(g)
     step(f"{n_total} parcels, {len(rules.classes)} classes, {len(rules.zones)} zones")
 
     # ---- global hazard zones: once, for the whole DEM; regions read their masks per window

@@ -33,7 +33,7 @@ from landcheck.core.settings import AuditSettings, CapabilityOptions
 from landcheck.core.window_pass import WindowJob, WindowOutput, build_plan
 from landcheck.engine.windows import progress_bar, slope_window
 from landcheck.errors import InputDataError, LandcheckWarning, RuleFileError
-from landcheck.geo.grid import Window, iter_windows
+from landcheck.geo.grid import GridSpec, Window, iter_windows
 from landcheck.geo.ground_area import ground_areas
 from landcheck.hashing import sha256_file
 from landcheck.inputs.dem import DemSource, open_dem, refuse_if_nothing_evaluated
@@ -214,6 +214,26 @@ def _check_against_rules(s: AuditSettings, rules: Rulebook) -> None:
         )
 
 
+def warn_unmatched_classes(pr, class_value, where: str, collected: list) -> None:
+    """Warn (once, listing up to ten values) about parcels whose non-NULL class value has no rule."""
+    no_rule_valued = (pr.class_name == "no_rule") & class_value.notna().to_numpy()  # NULLs: warned on read
+    unmatched = sorted(set(class_value[no_rule_valued].astype(str)))
+    if unmatched:
+        msg = (
+            f"{where}: {int(no_rule_valued.sum())} parcels have class values with no rule "
+            f"({', '.join(map(repr, unmatched[:10]))}); they are listed with verdict no_rule."
+        )
+        collected.append(msg)
+        warnings.warn(msg, LandcheckWarning, stacklevel=4)
+
+
+def whole_area_ground_factor(g: GridSpec) -> float:
+    """Map-to-ground area factor for the whole-area land figures: the DEM centre's (parcels use their own)."""
+    if g.geographic:
+        return 1.0
+    return areal_factor_at(g.crs_wkt, (g.bounds[0] + g.bounds[2]) / 2, (g.bounds[1] + g.bounds[3]) / 2)
+
+
 def _run_audit(
     dem,
     parcels,
@@ -294,21 +314,8 @@ def _run_audit(
         warnings.warn(msg, LandcheckWarning, stacklevel=3)
     area_m2, area_factor = ground_areas(frame, g.crs_wkt)
     pr = parcel_rules(rules, frame["class_value"].to_numpy())
-    no_rule_valued = (pr.class_name == "no_rule") & frame["class_value"].notna().to_numpy()  # NULLs: warned on read
-    unmatched = sorted(set(frame["class_value"][no_rule_valued].astype(str)))
-    if unmatched:
-        msg = (
-            f"{ps.where}: {int(no_rule_valued.sum())} parcels have class values with no rule "
-            f"({', '.join(map(repr, unmatched[:10]))}); they are listed with verdict no_rule."
-        )
-        collected.append(msg)
-        warnings.warn(msg, LandcheckWarning, stacklevel=3)
-    # whole-area land figures use the map-to-ground factor at the DEM's centre (parcels use their own)
-    ground_factor = (
-        1.0
-        if g.geographic
-        else areal_factor_at(g.crs_wkt, (g.bounds[0] + g.bounds[2]) / 2, (g.bounds[1] + g.bounds[3]) / 2)
-    )
+    warn_unmatched_classes(pr, frame["class_value"], ps.where, collected)
+    ground_factor = whole_area_ground_factor(g)
     step(f"{len(frame)} parcels, {len(rules.classes)} classes, {len(rules.zones)} zones")
 
     zones = None
