@@ -427,25 +427,38 @@ min_level = 2
     assert sum(p.area for p in parts) == pytest.approx(shapely.union_all(blobs).area, rel=1e-12)
 
 
-def test_spill_levels_by_kruskal_equal_dijkstra_minimax():
-    # Source: docs/references.md §17 (the lowest level at which a watershed drains is a bottleneck path
-    # value, unique): Kruskal's order with union-find and a minimax Dijkstra give the same levels on random
-    # graphs, duplicate edges, ties and a node no edge reaches included.
-    from landcheck.terrain.tiled_fill import _bottleneck_levels, _minimax_levels
+def test_spill_levels_equal_path_maxima_in_a_minimum_spanning_tree():
+    # Reference: scipy.sparse.csgraph.minimum_spanning_tree.  The lowest level at which a watershed drains
+    # is its bottleneck (minimax) path value to the outlet node 0, which is the largest edge on its path in
+    # a minimum spanning tree (docs/references.md §17; a property of minimum spanning trees, common
+    # practice).  Random graphs with duplicate edges, ties and a node no edge reaches.
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import breadth_first_order, minimum_spanning_tree
+
+    from landcheck.terrain.tiled_fill import _bottleneck_levels
 
     rng = np.random.default_rng(8)
     for _ in range(20):
-        n = int(rng.integers(2, 60))
+        n = int(rng.integers(3, 60))
         m = int(rng.integers(1, 4 * n))
         a = rng.integers(0, n - 1, m).astype(np.int32)  # node n - 1 is never an edge's end: unreached
         b = rng.integers(0, n - 1, m).astype(np.int32)
         w = np.round(rng.random(m) * 5, 1).astype(np.float32)
-        src = np.concatenate([a, b]).astype(np.int64)
-        dst = np.concatenate([b, a]).astype(np.int64)
-        ww = np.concatenate([w, w])
-        order = np.argsort(src, kind="stable")
-        indptr = np.cumsum(np.r_[0, np.bincount(src, minlength=n)]).astype(np.int64)
-        ref = _minimax_levels(n, indptr, dst[order], ww[order])
         got = _bottleneck_levels(n, a, b, w, np.argsort(w, kind="stable"))
-        assert np.array_equal(got, ref)
-        assert np.isinf(got[n - 1]) and got[0] == -np.inf
+        # scipy sums duplicate entries and drops zeros: keep the lowest weight per pair, shifted by 1
+        best: dict = {}
+        for x, y, v in zip(a.tolist(), b.tolist(), (w.astype(np.float64) + 1.0).tolist()):
+            if x != y:
+                key = (min(x, y), max(x, y))
+                best[key] = min(best.get(key, np.inf), v)
+        rows = [k[0] for k in best]
+        cols = [k[1] for k in best]
+        mst = minimum_spanning_tree(coo_matrix((list(best.values()), (rows, cols)), shape=(n, n))).tocsr()
+        tree = mst + mst.T
+        order, pred = breadth_first_order(tree, 0, directed=False)
+        ref = np.full(n, np.inf)
+        ref[0] = -np.inf
+        for v in order[1:]:
+            ref[v] = max(ref[pred[v]], tree[pred[v], v] - 1.0)
+        assert np.allclose(got[np.isfinite(ref)], ref[np.isfinite(ref)], atol=1e-6)
+        assert np.array_equal(np.isinf(got), np.isinf(ref)) and got[0] == -np.inf and np.isinf(got[n - 1])

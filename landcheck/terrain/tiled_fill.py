@@ -45,48 +45,6 @@ _DC = np.array([-1, 0, 1, -1, 1, -1, 0, 1], np.int64)
 
 
 @numba.njit(cache=True, nogil=True)
-def _heap_push(keys, seqs, idx, size, k, s, i):
-    j = size
-    keys[j] = k
-    seqs[j] = s
-    idx[j] = i
-    while j > 0:
-        p = (j - 1) // 2
-        if keys[p] < keys[j] or (keys[p] == keys[j] and seqs[p] < seqs[j]):
-            break
-        keys[p], keys[j] = keys[j], keys[p]
-        seqs[p], seqs[j] = seqs[j], seqs[p]
-        idx[p], idx[j] = idx[j], idx[p]
-        j = p
-    return size + 1
-
-
-@numba.njit(cache=True, nogil=True)
-def _heap_pop(keys, seqs, idx, size):
-    top = idx[0]
-    size -= 1
-    keys[0] = keys[size]
-    seqs[0] = seqs[size]
-    idx[0] = idx[size]
-    j = 0
-    while True:
-        a = 2 * j + 1
-        b = a + 1
-        m = j
-        if a < size and (keys[a] < keys[m] or (keys[a] == keys[m] and seqs[a] < seqs[m])):
-            m = a
-        if b < size and (keys[b] < keys[m] or (keys[b] == keys[m] and seqs[b] < seqs[m])):
-            m = b
-        if m == j:
-            break
-        keys[m], keys[j] = keys[j], keys[m]
-        seqs[m], seqs[j] = seqs[j], seqs[m]
-        idx[m], idx[j] = idx[j], idx[m]
-        j = m
-    return top, size
-
-
-@numba.njit(cache=True, nogil=True)
 def _uheap_push(heap, size, key):
     j = size
     heap[j] = key
@@ -236,39 +194,12 @@ def _tile_flood(zh: np.ndarray, drs, dcs):
 
 
 @numba.njit(cache=True, nogil=True)
-def _minimax_levels(n_nodes, indptr, nbr, wts):
-    """Lowest level at which each node drains to node 0 (minimax paths), -inf for node 0."""
-    level = np.full(n_nodes, np.inf, np.float32)
-    done = np.zeros(n_nodes, np.bool_)
-    cap = len(nbr) + 1
-    keys = np.empty(cap, np.float32)
-    seqs = np.empty(cap, np.int64)
-    idx = np.empty(cap, np.int64)
-    level[0] = -np.inf
-    size = _heap_push(keys, seqs, idx, 0, np.float32(-np.inf), 0, 0)
-    seq = 1
-    while size > 0:
-        u, size = _heap_pop(keys, seqs, idx, size)
-        if done[u]:
-            continue
-        done[u] = True
-        lu = level[u]
-        for j in range(indptr[u], indptr[u + 1]):
-            v = nbr[j]
-            cand = wts[j] if wts[j] > lu else lu
-            if cand < level[v]:
-                level[v] = cand
-                size = _heap_push(keys, seqs, idx, size, cand, seq, v)
-                seq += 1
-    return level
-
-
-@numba.njit(cache=True, nogil=True)
 def _bottleneck_levels(n_nodes, a, b, w, order):
     """Lowest level at which each node drains to node 0, by Kruskal's order (edges by rising spill height).
 
-    The bottleneck (minimax) path value is unique, so this equals :func:`_minimax_levels` (tested); it
-    needs the edge list once (no adjacency arrays), 12 B per edge.  Each component keeps a linked list
+    The bottleneck (minimax) path value is unique, so any method gives the same levels (tested against
+    the path maxima in scipy's minimum spanning tree); this one needs the edge list once (no adjacency
+    arrays), 12 B per edge.  Each component keeps a linked list
     of its nodes; when an edge joins a component to node 0's, its nodes take that edge's height.
     """
     parent = np.arange(n_nodes)
