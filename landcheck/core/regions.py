@@ -746,7 +746,10 @@ def _drive(
         from landcheck.zones.prepare import prepare_zones
 
         zs = dataclasses.replace(s, engine=Engine.from_user("dask", s.workers, s.scheduler_address))
-        zones = prepare_zones(rules, dem, None, pr, zs, step=step)
+        # the masks live in the run's scratch folder beside the output, which every worker of a
+        # cluster reaches when the output is on shared storage (docs/cli.md)
+        shutil.rmtree(scratch / "zones", ignore_errors=True)
+        zones = prepare_zones(rules, dem, None, pr, zs, step=step, mask_folder=scratch / "zones")
         collected += zones.warnings
         step(f"zones ready: {len(zones.columns)} zone columns")
         _release_memory()

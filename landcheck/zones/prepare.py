@@ -285,12 +285,16 @@ def _layer_geoms(rules: Rulebook, name: str, grid: GridSpec, role: str):
     return to_crs_checked(gdf, grid.crs_wkt, where, role), where
 
 
-def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=None, zone_polygons=None) -> ZoneSet:
+def prepare_zones(
+    rules: Rulebook, dem, parcels_frame, pr, settings, *, step=None, zone_polygons=None, mask_folder=None
+) -> ZoneSet:
     """Build every zone the rulebook defines (reads layers; runs the hydrology steps).
 
     Raster zones become cell masks on disk (:class:`landcheck.zones.cells.MaskStore`), written
     tile by tile; polygons of them (``zones/*.gpkg``) are built only when ``zone_polygons`` (or
-    ``settings.zone_polygons``) is true, tile by tile.
+    ``settings.zone_polygons``) is true, tile by tile.  ``mask_folder`` puts the masks (and the routing's
+    scratch tiles) in that folder, e.g. on storage every machine of a cluster reads; the caller owns it.
+    ``parcels_frame`` is not used (the zones depend on the DEM and the rulebook only) and may be None.
     """
     import geopandas as gpd
     import shapely
@@ -310,7 +314,11 @@ def prepare_zones(rules: Rulebook, dem, parcels_frame, pr, settings, *, step=Non
     # masks in memory only for small grids run on threads in this process; otherwise tiled scratch rasters
     engine = getattr(settings, "engine", None)
     on_threads = engine is None or getattr(getattr(engine, "kind", None), "value", "threads") == "threads"
-    store = MaskStore(g, in_memory=on_threads and g.width * g.height <= IN_MEMORY_MASK_CELLS)
+    if mask_folder is not None:
+        Path(mask_folder).mkdir(parents=True, exist_ok=True)
+        store = MaskStore(g, str(mask_folder))
+    else:
+        store = MaskStore(g, in_memory=on_threads and g.width * g.height <= IN_MEMORY_MASK_CELLS)
 
     # ---- sea: one mask per distinct definition, by tiled labelling, and their union
     sea_zones = [z for z in rules.zones if z.kind is ZoneKind.SEA_RISE or z.params.get("derive") == "shoreline"]
