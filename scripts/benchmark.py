@@ -270,7 +270,8 @@ def main(argv=None) -> int:
         "--regions-rules",
         choices=["full", "no-routing"],
         default="full",
-        help="full: HAND + sea-level rise + derived shore easements; no-routing: without HAND (no flow routing)",
+        help="full: HAND + sea-level rise + derived shore and stream easements; no-routing: without HAND and streams "
+        "(no flow routing)",
     )
     args = ap.parse_args(argv)
     if args.regions_run:
@@ -718,6 +719,11 @@ def _regions_run(args) -> list[dict]:
     rules_text = rd.RULES
     if args.regions_rules == "no-routing":
         rules_text = rules_text.replace(', "hand"]', "]").split("[zones.hand]")[0]
+    else:  # every derived hazard kind: a stream easement too
+        rules_text += (
+            '[zones.streams]\nkind = "easement"\nderive = "streams"\nchannel_area_m2 = 1000000.0\nwidth_m = 20.0\n'
+        )
+
     work = Path(tempfile.mkdtemp(prefix="lc-regions-", dir=args.cache))
     rules = work / "rules.toml"
     rules.write_text(rules_text)
