@@ -145,6 +145,44 @@ def _needs_rasters(s: AuditSettings) -> bool:
     return s.rasters is not RasterFormat.NONE or s.capability is not None
 
 
+#: bit k of ``zones/cells.tif`` is the k-th cell-based rulebook zone (summary.json -> ``cell_zone_bits``)
+CELL_ZONES_FILE = "zones/cells.tif"
+
+
+def _write_cell_zones(stage: Path, run: AuditRun) -> None:
+    """Stream the cell-based zones (HAND, sea-level rise, derived strips) into ``zones/cells.tif``.
+
+    One uint8 band of bit flags, bit k = ``run.summary["cell_zone_bits"][k]``, so the maps can show
+    each zone as its own layer.  Written only when the audit writes rasters; tile by tile from the
+    zone masks, so nothing of the size of the raster is held.
+    """
+    from landcheck.geo.grid import iter_windows
+
+    zones, s = run.zones, run.settings
+    cols = zones.cell_columns
+    if not cols or s.rasters is RasterFormat.NONE:
+        return
+    g = zones.grid
+    names = [c.name for c in cols]
+    sink = RasterSink(
+        stage / CELL_ZONES_FILE,
+        g,
+        dtype="uint8",
+        nodata=None,
+        fmt=s.rasters,
+        categorical=True,
+        band_names=["cell zone bits: " + ", ".join(f"{1 << k}={n}" for k, n in enumerate(names))],
+    )
+    try:
+        for win in iter_windows(g.height, g.width, 2048):
+            sink.write(win, zones.cell_zone_bits(win))
+    except BaseException:
+        sink.abort()
+        raise
+    sink.close()
+    run.summary["cell_zone_bits"] = names
+
+
 def write_audit_folder(stage: Path, run: AuditRun) -> None:
     """Write every table, layer and (when asked) the report of ``run`` into ``stage`` (docs/outputs.md)."""
     parcels = run.table
@@ -165,6 +203,7 @@ def write_audit_folder(stage: Path, run: AuditRun) -> None:
         write_csv(stage / "reclassification_moves.csv", moves)
     if run.zones is not None:
         run.zones.write_layers(stage)
+        _write_cell_zones(stage, run)
     write_gpkg(stage / "parcels.gpkg", run.parcels, layer="parcels")
     write_csv(stage / "parcels.csv", parcels)
     write_csv(stage / "classes.csv", run.classes)

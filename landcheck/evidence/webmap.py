@@ -6,7 +6,8 @@ the page itself:
 * relief and slope classes as one PNG image overlay (a data URI) on the display
   grid of the static overview map;
 * conflict cells as a second, transparent PNG overlay (any conflict in a
-  display block, as on the overview map);
+  display block, as on the overview map), and one more per cell-based hazard
+  zone (HAND, sea-level rise, derived strips; ``zones/cells.tif``);
 * hazard zones and parcels as GeoJSON, one layer per zone and per verdict,
   drawn on a canvas renderer so 100 000 parcels stay usable.
 
@@ -55,6 +56,8 @@ _CONFLICT_RGBA = {
     2: (232, 120, 0, 170),
     3: (92, 0, 150, 190),
 }
+#: opacity (0-255) of a cell-based hazard zone overlay
+_CELL_ZONE_ALPHA = 120
 _CONFLICT_KIND_TEXT = {
     1: "slope at or over the class limit",
     2: "inside a zone the class forbids",
@@ -200,6 +203,18 @@ def _conflict_overlay(data: _MapData, n_zone_bits: int) -> str | None:
     return _png_data_uri(rgba)
 
 
+def _cell_zone_overlays(data: _MapData) -> list[dict]:
+    """One transparent PNG per cell-based hazard zone, on the display grid of the overview map."""
+    from matplotlib.colors import to_rgb
+
+    out = []
+    for cz in data.cell_zones:
+        rgba = np.zeros((*cz.mask.shape, 4), dtype=np.uint8)
+        rgba[cz.mask] = (*(round(255 * c) for c in to_rgb(cz.colour)), _CELL_ZONE_ALPHA)
+        out.append({"name": cz.label, "colour": cz.colour, "png": _png_data_uri(rgba)})
+    return out
+
+
 def _relief_overlay(data: _MapData, breaks: np.ndarray) -> str:
     rgba = _composite(data.slope.data, data.relief, breaks, slope_class_colours(len(breaks) - 1))
     return _png_data_uri(rgba)
@@ -297,6 +312,7 @@ def webmap_data(folder: AuditFolder, data: _MapData, breaks: np.ndarray, class_l
         "rows": rows,
         "parcels": _feature_collection(geom_texts, props),
         "zones": zones,
+        "cell_zones": _cell_zone_overlays(data),
         "slope_classes": [
             {"text": t, "colour": c} for t, c in zip(slope_class_labels(breaks), slope_class_colours(len(breaks) - 1))
         ],
@@ -358,6 +374,11 @@ _WEBMAP_JS = r"""
                      : {color: z.colour, weight: 1.5, fillColor: z.colour, fillOpacity: 0.18, dashArray: '4 3'};
     }});
     overlays[esc((z.lines ? 'Water: ' : 'Hazard zone: ') + z.name)] = lyr;
+  });
+  D.cell_zones.forEach(function (z) {
+    var name = 'Hazard zone: ' + z.name + ' (cells)';
+    overlays[esc(name)] = L.imageOverlay(z.png, bounds, {interactive: false, alt: name,
+                                                         className: 'wm-cell-zone'});
   });
   if (D.conflict) {
     overlays['Conflict cells'] = L.imageOverlay(D.conflict, bounds, {interactive: false}).addTo(map);
@@ -509,8 +530,11 @@ def _legend_html(d: dict) -> str:
             f'{v["colour"]}"></span>{escape(v["text"])} ({v["count"]:,d})</li>'
         )
     parts.append("</ul></div>")
-    if d["zones"]:
+    if d["zones"] or d["cell_zones"]:
         parts.append("<div><h4>Hazard zones and water (off at first)</h4><ul>")
+        for z in d["cell_zones"]:
+            sw = f'<span class="wm-sw" style="background:{z["colour"]}{_CELL_ZONE_ALPHA:02x}"></span>'
+            parts.append(f"<li>{sw}{escape(z['name'])} (cells)</li>")
         for z in d["zones"]:
             if z["lines"]:
                 sw = f'<span class="wm-ln" style="border-top:3px solid {z["colour"]}"></span>'
