@@ -95,6 +95,8 @@ _WATER_COLOUR = "#1f5fa0"
 _MANY_PARCELS = 3000
 #: above this many conflict display cells, conflict cells are tinted, not hatched polygons
 _MANY_CONFLICT_CELLS = 40_000
+#: ring segments sampled at once when outlines are burnt into an image
+_BURN_CHUNK = 100_000
 _CONFLICT_TINT = {1: (0.09, 0.09, 0.09, 0.5), 2: (0.42, 0.0, 0.36, 0.5), 3: (0.0, 0.0, 0.0, 0.78)}
 _LEGEND_WRAP_CHARS = 34
 _SVG_METADATA = {"Date": None}
@@ -801,7 +803,7 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
     x0, y0, x1, y1 = view
     zh, zl = [], []
     for cz in data.cell_zones:
-        rgba = np.zeros((*cz.mask.shape, 4))
+        rgba = np.zeros((*cz.mask.shape, 4), dtype=np.float32)
         rgba[cz.mask] = (*to_rgb(cz.colour), _CELL_ZONE_ALPHA)
         ax.imshow(rgba, extent=data.slope.extent, origin="upper", interpolation="nearest", zorder=2)
         zh.append(Patch(facecolor=(*to_rgb(cz.colour), _CELL_ZONE_ALPHA), edgecolor=cz.colour, lw=1.0))
@@ -844,7 +846,7 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
         shapes = [] if many_cells else _conflict_shapes(data.bits, n_zone_bits)
         if many_cells:
             # tens of thousands of hatched polygons take matplotlib minutes: tint the cells instead
-            rgba = np.zeros((*kinds.shape, 4))
+            rgba = np.zeros((*kinds.shape, 4), dtype=np.float32)  # float32: half the memory of float64
             for kind, colour in _CONFLICT_TINT.items():
                 rgba[kinds == kind] = colour
                 if (kinds == kind).any():
@@ -965,16 +967,19 @@ def _burn_outlines(fig, ax, rect, geoms, verdicts, present, view) -> None:
         last = np.cumsum(lengths) - 1
         start = np.ones(len(px), dtype=bool)
         start[last] = False
-        a, b = px[start], px[np.flatnonzero(start) + 1]
-        steps = np.maximum(1, np.ceil(2.0 * np.abs(b - a).max(axis=1)).astype(np.int64))
-        seg = np.repeat(np.arange(len(a)), steps + 1)
-        t = np.arange(len(seg)) - np.repeat(np.cumsum(steps + 1) - (steps + 1), steps + 1)
-        t = t / np.repeat(steps, steps + 1)
-        pts = a[seg] + (b[seg] - a[seg]) * t[:, None]
-        c = np.floor(pts[:, 0]).astype(np.int64)
-        r = np.floor(pts[:, 1]).astype(np.int64)
-        ok = (c >= 0) & (c < w_px) & (r >= 0) & (r < h_px)
-        codes[r[ok], c[ok]] = code
+        a_all, b_all = px[start], px[np.flatnonzero(start) + 1]
+        # in chunks of segments, so the sample arrays stay small at 100 000 parcels (same pixels)
+        for k in range(0, len(a_all), _BURN_CHUNK):
+            a, b = a_all[k : k + _BURN_CHUNK], b_all[k : k + _BURN_CHUNK]
+            steps = np.maximum(1, np.ceil(2.0 * np.abs(b - a).max(axis=1)).astype(np.int64))
+            seg = np.repeat(np.arange(len(a)), steps + 1)
+            t = np.arange(len(seg)) - np.repeat(np.cumsum(steps + 1) - (steps + 1), steps + 1)
+            t = t / np.repeat(steps, steps + 1)
+            pts = a[seg] + (b[seg] - a[seg]) * t[:, None]
+            c = np.floor(pts[:, 0]).astype(np.int64)
+            r = np.floor(pts[:, 1]).astype(np.int64)
+            ok = (c >= 0) & (c < w_px) & (r >= 0) & (r < h_px)
+            codes[r[ok], c[ok]] = code
     rgba8 = np.round(palette * 255.0).astype(np.uint8)[codes]
     ax.imshow(rgba8, extent=(x0, x1, y0, y1), origin="upper", interpolation="nearest", zorder=5)
 

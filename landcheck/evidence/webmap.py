@@ -563,6 +563,10 @@ def webmap_section(folder: AuditFolder, data: _MapData, breaks: np.ndarray, clas
     css, js, lic = leaflet_assets()
     n = sum(v["count"] for v in d["verdicts"])
     simplify = f"{d['simplify_m']:,.0f} m" if d["simplify_m"] >= 1 else f"{d['simplify_m']:.2f} m"
+    legend, relief_note = _legend_html(d), d["relief_note"]
+    # the data as page text, then the dict goes: at 100 000 parcels both are tens of MB
+    data_json = _json_for_script(d)
+    del d
     return (
         f"<style>{css}</style>"
         '<div id="webmap-wrap">'
@@ -570,14 +574,14 @@ def webmap_section(folder: AuditFolder, data: _MapData, breaks: np.ndarray, clas
         'scroll or use + and - to zoom, click a parcel for its figures"></div>'
         '<p id="webmap-status" role="status" aria-live="polite">Click a parcel for its figures and reasons, '
         "or click a row of the per-parcel table to find it here.</p>"
-        + _legend_html(d)
+        + legend
         + f'<p class="muted">{count_text(n, "parcel")}. Outlines are simplified for display (tolerance about one cell, '
         f"{escape(simplify)}); every figure in the pop-ups and tables comes from the unsimplified parcels. "
-        f"Relief: {escape(d['relief_note'])}. Runs offline with Leaflet {LEAFLET_VERSION} "
+        f"Relief: {escape(relief_note)}. Runs offline with Leaflet {LEAFLET_VERSION} "
         "(BSD 2-Clause licence, included in this page).</p></div>"
         '<p id="webmap-print-note" class="muted" style="display:none">The interactive map is shown on screen '
         "only; the printed overview map follows.</p>"
-        f'<script type="application/json" id="webmap-data">{_json_for_script(d)}</script>'
+        f'<script type="application/json" id="webmap-data">{data_json}</script>'
         f"<script>/*! Leaflet {LEAFLET_VERSION}\n{lic.replace('*/', '* /')}*/\n{js}</script>"
         f"<script>{_WEBMAP_JS}</script>"
     )
