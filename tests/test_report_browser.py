@@ -203,6 +203,92 @@ def test_map_popup_and_table_link_offline(demo_report, tmp_path):
         d.quit()
 
 
+def _cells_in_zone(out: Path, bit: int, natural_w: int, natural_h: int) -> int:
+    """Display blocks with any cell of zone bit ``bit`` in zones/cells.tif, counted with numpy."""
+    import numpy as np
+    import rasterio
+
+    with rasterio.open(out / "zones" / "cells.tif") as ds:
+        a = ds.read(1)
+    f = math.ceil(a.shape[1] / natural_w)
+    pad = np.zeros((natural_h * f, natural_w * f), dtype=bool)
+    pad[: a.shape[0], : a.shape[1]] = (a & (1 << bit)) > 0
+    return int(pad.reshape(natural_h, f, natural_w, f).any(axis=(1, 3)).sum())
+
+
+def test_cell_zone_layers_switch_on(demo_report, tmp_path):
+    """Each cell-based hazard zone of the demo rulebook (HAND, sea-level rise) is a layer of its own:
+    listed in the layer control by its rulebook label, off at first, drawn once switched on."""
+    out, path = demo_report
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    labels = {c["name"]: c["label"] for c in summary["zone_columns"]}
+    bits = summary["cell_zone_bits"]
+    assert bits == ["flood_hand", "sea_rise_1m"]  # the demo rulebook's two cell-based zones, in rulebook order
+
+    from selenium.webdriver.common.by import By
+
+    d = _driver(tmp_path)
+    try:
+        d.get(path.as_uri())
+        _wait(lambda: d.execute_script("return window.landcheckMapReady === true"))
+        el = d.find_element(By.ID, "webmap")
+        d.execute_script("arguments[0].scrollIntoView({block: 'center'})", el)
+        control = d.find_element(By.CSS_SELECTOR, ".leaflet-control-layers")
+        for k, name in enumerate(bits):
+            layer = f"Hazard zone: {labels[name]} (cells)"
+            # Reference: Chromium - the layer control Leaflet drew, as a reader sees it
+            label = [lab for lab in control.find_elements(By.TAG_NAME, "label") if lab.text.strip() == layer]
+            assert len(label) == 1, [lab.text for lab in control.find_elements(By.TAG_NAME, "label")]
+            box = label[0].find_element(By.CSS_SELECTOR, "input[type=checkbox]")
+            assert not box.is_selected()  # off at first
+            assert d.find_elements(By.CSS_SELECTOR, f'img.wm-cell-zone[alt="{layer}"]') == []
+            box.click()
+            img = _wait(lambda layer=layer: d.find_elements(By.CSS_SELECTOR, f'img.wm-cell-zone[alt="{layer}"]'))[0]
+            _wait(
+                lambda img=img: d.execute_script("return arguments[0].complete && arguments[0].naturalWidth > 0", img)
+            )
+            assert img.is_displayed()
+            # the overlay covers the whole map area, as the relief image does
+            rel = d.find_elements(By.CSS_SELECTOR, "img.leaflet-image-layer")[0]
+            assert img.rect == pytest.approx(rel.rect, abs=1.0)
+            # its coloured pixels, read back by Chromium, are the display blocks holding the zone's
+            # cells in zones/cells.tif (Reference: Chromium canvas getImageData; numpy block count)
+            w, h, drawn = d.execute_script(
+                "var i = arguments[0], c = document.createElement('canvas');"
+                "c.width = i.naturalWidth; c.height = i.naturalHeight;"
+                "var g = c.getContext('2d'); g.drawImage(i, 0, 0);"
+                "var a = g.getImageData(0, 0, c.width, c.height).data, n = 0;"
+                "for (var p = 3; p < a.length; p += 4) { if (a[p] > 0) { n++; } }"
+                "return [c.width, c.height, n];",
+                img,
+            )
+            expected = _cells_in_zone(out, k, w, h)
+            assert expected > 0
+            assert drawn == expected
+            # the legend under the map names the zone too
+            legend = d.find_element(By.CSS_SELECTOR, ".wm-legend").text
+            assert f"{labels[name]} (cells)" in legend
+            # switched off again, the overlay leaves the map
+            box.click()
+            _wait(lambda layer=layer: not d.find_elements(By.CSS_SELECTOR, f'img.wm-cell-zone[alt="{layer}"]'))
+        assert [e for e in d.get_log("browser") if e.get("level") == "SEVERE"] == []
+    finally:
+        d.quit()
+
+
+def test_cell_zones_in_overview_legend(demo_report, tmp_path):
+    """The overview map names each cell-based zone in its legend, after the zone's rulebook label."""
+    from landcheck.evidence.maps import overview_map
+
+    out, _ = demo_report
+    files = overview_map(out, dest_dir=tmp_path, formats=("png",), dpi=60)
+    zones = {e.key: e.label for e in files.legend_entries if e.group == "zone"}
+    # demo_area/rulebook.toml: zones flood_hand (HAND) and sea_rise_1m (sea-level rise); common practice
+    # that a legend uses the names a reader knows from the rulebook
+    assert zones["flood_hand"] == "flood hand (cells)"
+    assert zones["sea_rise_1m"] == "sea rise 1m (cells)"
+
+
 def frame_zoom(d, geom, frame) -> float:
     """Zoom at which the parcel spans about 300 px (Leaflet CRS.Simple: 2**zoom px per unit)."""
     span = max(geom.bounds[2] - geom.bounds[0], geom.bounds[3] - geom.bounds[1]) / frame["q"]

@@ -210,9 +210,17 @@ width_m = 15.0
     # raster strip (docs/scale.md, "Hazard zones"): cell centres within 15 m on the ground of the channel centre x = 305 ->
     # the channel column and its two neighbours (10 m / 0.9996 UTM scale away), 30 of the parcel's 200 m
     assert p.loc[0, "zone_stream_strip_share"] == pytest.approx(30 / 200, abs=1e-9)
-    # without the option the cell zones stay rasters: no polygons written
+    # without the option the cell zones stay rasters: no polygons written, only zones/cells.tif (docs/outputs.md)
     res2 = audit(dem, parcels, tmp_path / "r.toml", tmp_path / "out2", make_report=False)
-    assert not (res2.out_dir / "zones").exists()
+    assert sorted(q.name for q in (res2.out_dir / "zones").iterdir()) == ["cells.tif"]
+    assert res2.summary["cell_zone_bits"] == ["valley_floor", "stream_strip"]  # rulebook order
+    import rasterio
+
+    with rasterio.open(res2.out_dir / "zones" / "cells.tif") as ds:
+        cells = ds.read(1, window=ds.window(*polys[0].bounds))
+    # inside the parcel: the same cells as the zone shares above, 5 columns of HAND <= 2 m and 3 of the strip
+    assert int(((cells & 1) > 0).sum()) == 50
+    assert int(((cells & 2) > 0).sum()) == 30
     assert res2.parcels["zone_valley_floor_share"].tolist() == p["zone_valley_floor_share"].tolist()
 
 

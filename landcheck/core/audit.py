@@ -12,6 +12,7 @@ from __future__ import annotations
 import datetime as _dt
 import logging
 import os
+import sys
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, fields
 from pathlib import Path
@@ -21,6 +22,7 @@ import pandas as pd
 
 from landcheck.core.run import AuditRun, _RasterHook, _run_audit, open_rules
 from landcheck.core.settings import AuditSettings, CapabilityOptions
+from landcheck.engine.windows import progress_bar
 from landcheck.inputs.rulebook import Rulebook
 from landcheck.outputs.folder import write_run_times
 from landcheck.outputs.writers import (
@@ -133,16 +135,104 @@ class _FolderRasters(_RasterHook):
             self.cap_sink.write(win, out.capability_codes)
 
     def close(self) -> None:
-        for s in self.sinks:
-            s.close()
+        """Finish every raster (COG: the copy with overviews, the long part), with a progress bar."""
+        bar = progress_bar(len(self.sinks), "COG rasters" if self.fmt is RasterFormat.COG else "rasters", unit="raster")
+        try:
+            for s in self.sinks:
+                bar.set_postfix_str(s.final.name, refresh=False)
+                s.close()
+                bar.update(1)
+        finally:
+            bar.close()
 
     def abort(self) -> None:
         for s in self.sinks:
             s.abort()
 
 
+def _release_free_memory() -> None:
+    """Hand memory freed by the pass and the raster thread back to the system before the report.
+
+    glibc keeps freed memory in per-thread arenas; ``malloc_trim`` returns it, so the report's own
+    memory is not added on top of it.  Nothing happens where glibc is not the allocator.
+    """
+    import ctypes
+    import ctypes.util
+    import gc
+
+    gc.collect()
+    name = ctypes.util.find_library("c")
+    if not name or not sys.platform.startswith("linux"):
+        return
+    try:
+        ctypes.CDLL(name).malloc_trim(0)
+    except (OSError, AttributeError):  # not glibc
+        pass
+
+
+class _Background:
+    """Run ``fn`` on a thread; :meth:`join` waits and re-raises what it raised."""
+
+    def __init__(self, fn: Callable[[], object]):
+        import threading
+
+        self._error: BaseException | None = None
+
+        def target() -> None:
+            try:
+                fn()
+            except BaseException as exc:  # handed to the joining thread
+                self._error = exc
+
+        self._thread = threading.Thread(target=target, name="landcheck-rasters", daemon=True)
+        self._thread.start()
+
+    def join(self) -> None:
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+
+
 def _needs_rasters(s: AuditSettings) -> bool:
     return s.rasters is not RasterFormat.NONE or s.capability is not None
+
+
+#: bit k of ``zones/cells.tif`` is the k-th cell-based rulebook zone (summary.json -> ``cell_zone_bits``)
+CELL_ZONES_FILE = "zones/cells.tif"
+
+
+def _write_cell_zones(stage: Path, run: AuditRun) -> None:
+    """Stream the cell-based zones (HAND, sea-level rise, derived strips) into ``zones/cells.tif``.
+
+    One uint8 band of bit flags, bit k = ``run.summary["cell_zone_bits"][k]``, so the maps can show
+    each zone as its own layer.  Written only when the audit writes rasters; tile by tile from the
+    zone masks, so nothing of the size of the raster is held.
+    """
+    from landcheck.geo.grid import iter_windows
+
+    zones, s = run.zones, run.settings
+    cols = zones.cell_columns
+    if not cols or s.rasters is RasterFormat.NONE:
+        return
+    g = zones.grid
+    names = [c.name for c in cols]
+    sink = RasterSink(
+        stage / CELL_ZONES_FILE,
+        g,
+        dtype="uint8",
+        nodata=None,
+        fmt=s.rasters,
+        categorical=True,
+        band_names=["cell zone bits: " + ", ".join(f"{1 << k}={n}" for k, n in enumerate(names))],
+    )
+    try:
+        for win in iter_windows(g.height, g.width, 2048):
+            sink.write(win, zones.cell_zone_bits(win))
+    except BaseException:
+        sink.abort()
+        raise
+    sink.close()
+    run.summary["cell_zone_bits"] = names
 
 
 def write_audit_folder(stage: Path, run: AuditRun) -> None:
@@ -165,6 +255,7 @@ def write_audit_folder(stage: Path, run: AuditRun) -> None:
         write_csv(stage / "reclassification_moves.csv", moves)
     if run.zones is not None:
         run.zones.write_layers(stage)
+        _write_cell_zones(stage, run)
     write_gpkg(stage / "parcels.gpkg", run.parcels, layer="parcels")
     write_csv(stage / "parcels.csv", parcels)
     write_csv(stage / "classes.csv", run.classes)
@@ -218,12 +309,18 @@ def audit(
             if hook is not None:
                 hook.abort()
             raise
-        if hook is not None:
-            hook.close()
-        write_audit_folder(stage, run)
+        # the COG copies (GDAL, outside the GIL) are made while the tables and layers are written
+        closing = _Background(hook.close) if hook is not None else None
+        try:
+            write_audit_folder(stage, run)
+        finally:
+            if closing is not None:
+                closing.join()
+        _release_free_memory()
         if s.report:
             step("building the report")
-            build_report(stage)
+            # the parcel shapes just written to parcels.gpkg are passed on, not read back
+            build_report(stage, parcel_shapes=run.parcels)
         # the one file a rerun changes (docs/outputs.md): times, and how the run was executed
         write_run_times(stage, started, execution={"tile_cells": s.tile_cells, **s.engine.describe()})
     step(f"outputs in {out}")

@@ -106,6 +106,26 @@ class AuditFolder:
         """classes.csv as a DataFrame."""
         return _read_csv(self.require("classes.csv"), _CLASS_REQUIRED, ("class_name", "label", "development"))
 
+    def use_parcel_shapes(self, gdf) -> bool:
+        """Take ``parcels.gpkg``'s rows from memory (the audit's own frame, just written) instead of the file.
+
+        Only the id, the verdict and the shape are kept, as :attr:`parcels_gdf` reads them.  Used only
+        when every shape is present and not empty (the GeoPackage round trip keeps those bit for
+        bit); otherwise the file is read as usual.  Returns whether the frame was taken.
+        """
+        import shapely
+
+        geoms = gdf.geometry.values
+        if len(gdf) == 0 or shapely.is_missing(geoms).any() or shapely.is_empty(geoms).any():
+            return False
+        keep = gdf[["parcel_id", "verdict", gdf.geometry.name]].reset_index(drop=True)
+        if keep.geometry.name != "geometry":
+            keep = keep.rename_geometry("geometry")
+        keep["parcel_id"] = keep["parcel_id"].astype(str)
+        keep["verdict"] = keep["verdict"].fillna("").astype(str)
+        self.__dict__["parcels_gdf"] = keep
+        return True
+
     @cached_property
     def parcels_gdf(self):
         import geopandas as gpd

@@ -82,6 +82,10 @@ _CONFLICT_TEXT = {
     3: "both slope and forbidden zone",
 }
 _ZONE_STYLE = [("#0b5f8a", ".."), ("#2f7d4f", "oo"), ("#6a4c93", "++"), ("#8a5a0b", "--")]
+#: cell-based hazard zones (zones/cells.tif, one bit each): fill colour per bit, drawn as a light tint
+#: with a darker edge tone in the legend; apart from the slope ramp, the conflict tints and the water blue
+CELL_ZONE_COLOURS = ["#1d7a8c", "#9a6b00", "#5a3e9b", "#3f7f1f", "#a33c6b", "#2b4f9e", "#7a4a2a"]
+_CELL_ZONE_ALPHA = 0.42
 _NODATA_GREY = np.array([0.86, 0.86, 0.86])
 _PNG_METADATA = {"Software": None}
 #: permission bits of written figures (mkstemp creates 0600; common practice for shared outputs is 0644)
@@ -91,6 +95,8 @@ _WATER_COLOUR = "#1f5fa0"
 _MANY_PARCELS = 3000
 #: above this many conflict display cells, conflict cells are tinted, not hatched polygons
 _MANY_CONFLICT_CELLS = 40_000
+#: ring segments sampled at once when outlines are burnt into an image
+_BURN_CHUNK = 100_000
 _CONFLICT_TINT = {1: (0.09, 0.09, 0.09, 0.5), 2: (0.42, 0.0, 0.36, 0.5), 3: (0.0, 0.0, 0.0, 0.78)}
 _LEGEND_WRAP_CHARS = 34
 _SVG_METADATA = {"Date": None}
@@ -692,12 +698,48 @@ def _format_axes(ax, crs, extent) -> None:
 
 
 @dataclass
+class CellZone:
+    """One cell-based hazard zone read for a map: any of its cells in each display block."""
+
+    name: str
+    label: str
+    colour: str
+    mask: np.ndarray  # bool, on the display grid of the slope
+
+
+@dataclass
 class _MapData:
     folder: AuditFolder
     slope: _Grid
     bits: _Grid | None
     relief: np.ndarray
     relief_note: str
+    cell_zones: list[CellZone] = field(default_factory=list)
+
+
+def _read_cell_zones(folder: AuditFolder, slope: _Grid, max_px: int) -> list[CellZone]:
+    """The cell-based zones of ``zones/cells.tif`` on the slope's display grid (any cell per block).
+
+    A zone whose polygons were also written (``zones/zone_<name>.gpkg``, ``--zone-polygons``) is
+    drawn from those polygons instead, so it is not listed twice.
+    """
+    names = folder.section("cell_zone_bits", default=[]) or []
+    path = folder.path("zones/cells.tif")
+    if not names or not path.exists():
+        return []
+    grid = _read_reduced(path, _grid_bounds(slope), max_px, "bits")
+    if grid is None or grid.data.shape != slope.data.shape:
+        return []
+    vector = {stem for stem, _ in folder.zone_layers}
+    out = []
+    for k, name in enumerate(names):
+        if f"zone_{name}" in vector:
+            continue
+        mask = (grid.data != 255) & ((grid.data & (1 << k)) > 0)
+        if mask.any():
+            colour = CELL_ZONE_COLOURS[k % len(CELL_ZONE_COLOURS)]
+            out.append(CellZone(str(name), folder.zone_label(str(name)), colour, mask))
+    return out
 
 
 def load_map_data(folder: AuditFolder, bounds=None, max_px: int = 1600) -> _MapData:
@@ -713,7 +755,7 @@ def _load_map_data(folder: AuditFolder, bounds, max_px: int) -> _MapData:
     if bits is not None and bits.data.shape != slope.data.shape:
         bits = None if bits.factor != slope.factor else bits
     shade, note = _read_relief(folder, slope)
-    return _MapData(folder, slope, bits, shade, note)
+    return _MapData(folder, slope, bits, shade, note, _read_cell_zones(folder, slope, max_px))
 
 
 def _grid_bounds(g: _Grid) -> tuple[float, float, float, float]:
@@ -723,6 +765,7 @@ def _grid_bounds(g: _Grid) -> tuple[float, float, float, float]:
 
 def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str | None = None):  # noqa: C901
     """Draw the map layers into a new axes; return (axes, legend groups, legend entries)."""
+    from matplotlib.colors import to_rgb
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
 
@@ -756,9 +799,16 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
     if len(relief_l) > 1:
         entries.append(LegendEntry("relief", "no_slope", relief_l[1]))
 
-    # hazard zones and water features
+    # hazard zones and water features: cell-based zones tinted first, vector zones outlined over them
     x0, y0, x1, y1 = view
     zh, zl = [], []
+    for cz in data.cell_zones:
+        rgba = np.zeros((*cz.mask.shape, 4), dtype=np.float32)
+        rgba[cz.mask] = (*to_rgb(cz.colour), _CELL_ZONE_ALPHA)
+        ax.imshow(rgba, extent=data.slope.extent, origin="upper", interpolation="nearest", zorder=2)
+        zh.append(Patch(facecolor=(*to_rgb(cz.colour), _CELL_ZONE_ALPHA), edgecolor=cz.colour, lw=1.0))
+        zl.append(f"{cz.label} (cells)")
+        entries.append(LegendEntry("zone", cz.name, zl[-1]))
     for i, (name, gdf) in enumerate(folder.zone_layers):
         if gdf.crs is not None and _crs(gdf.crs) != crs:
             gdf = gdf.to_crs(crs.to_wkt())
@@ -796,7 +846,7 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
         shapes = [] if many_cells else _conflict_shapes(data.bits, n_zone_bits)
         if many_cells:
             # tens of thousands of hatched polygons take matplotlib minutes: tint the cells instead
-            rgba = np.zeros((*kinds.shape, 4))
+            rgba = np.zeros((*kinds.shape, 4), dtype=np.float32)  # float32: half the memory of float64
             for kind, colour in _CONFLICT_TINT.items():
                 rgba[kinds == kind] = colour
                 if (kinds == kind).any():
@@ -917,16 +967,19 @@ def _burn_outlines(fig, ax, rect, geoms, verdicts, present, view) -> None:
         last = np.cumsum(lengths) - 1
         start = np.ones(len(px), dtype=bool)
         start[last] = False
-        a, b = px[start], px[np.flatnonzero(start) + 1]
-        steps = np.maximum(1, np.ceil(2.0 * np.abs(b - a).max(axis=1)).astype(np.int64))
-        seg = np.repeat(np.arange(len(a)), steps + 1)
-        t = np.arange(len(seg)) - np.repeat(np.cumsum(steps + 1) - (steps + 1), steps + 1)
-        t = t / np.repeat(steps, steps + 1)
-        pts = a[seg] + (b[seg] - a[seg]) * t[:, None]
-        c = np.floor(pts[:, 0]).astype(np.int64)
-        r = np.floor(pts[:, 1]).astype(np.int64)
-        ok = (c >= 0) & (c < w_px) & (r >= 0) & (r < h_px)
-        codes[r[ok], c[ok]] = code
+        a_all, b_all = px[start], px[np.flatnonzero(start) + 1]
+        # in chunks of segments, so the sample arrays stay small at 100 000 parcels (same pixels)
+        for k in range(0, len(a_all), _BURN_CHUNK):
+            a, b = a_all[k : k + _BURN_CHUNK], b_all[k : k + _BURN_CHUNK]
+            steps = np.maximum(1, np.ceil(2.0 * np.abs(b - a).max(axis=1)).astype(np.int64))
+            seg = np.repeat(np.arange(len(a)), steps + 1)
+            t = np.arange(len(seg)) - np.repeat(np.cumsum(steps + 1) - (steps + 1), steps + 1)
+            t = t / np.repeat(steps, steps + 1)
+            pts = a[seg] + (b[seg] - a[seg]) * t[:, None]
+            c = np.floor(pts[:, 0]).astype(np.int64)
+            r = np.floor(pts[:, 1]).astype(np.int64)
+            ok = (c >= 0) & (c < w_px) & (r >= 0) & (r < h_px)
+            codes[r[ok], c[ok]] = code
     rgba8 = np.round(palette * 255.0).astype(np.uint8)[codes]
     ax.imshow(rgba8, extent=(x0, x1, y0, y1), origin="upper", interpolation="nearest", zorder=5)
 

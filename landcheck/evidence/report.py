@@ -40,7 +40,7 @@ from landcheck.evidence.webmap import WEBMAP_CSS, webmap_section
 from landcheck.hashing import sha256_file
 from landcheck.inputs.gdal_cache import cap_gdal_cache
 from landcheck.outputs.folder import source_date_utc
-from landcheck.outputs.writers import write_bytes
+from landcheck.outputs.writers import atomic_file
 from landcheck.verdicts.labels import verdict_badge_css
 
 __all__ = ["PAGE_SIZES", "build_report", "sha256_file"]
@@ -839,6 +839,7 @@ def build_report(
     verify_inputs: bool = True,
     page_size: str = "A4",
     show_progress: bool | None = None,
+    parcel_shapes=None,
 ) -> Path:
     """Write a self-contained HTML report of an audit output folder.
 
@@ -871,6 +872,9 @@ def build_report(
         caution stands at the foot of every page.
     show_progress : bool, optional
         A progress bar on stderr (default: when stderr is a terminal).
+    parcel_shapes : GeoDataFrame, optional
+        The rows of ``parcels.gpkg`` already in memory (the audit passes its own, just written),
+        so the file is not read a second time; see :meth:`AuditFolder.use_parcel_shapes`.
 
     Returns
     -------
@@ -887,6 +891,8 @@ def build_report(
     if str(page_size).lower() not in PAGE_SIZES:
         raise ValueError(f"page_size: got {page_size!r}; expected one of {', '.join(PAGE_SIZES.values())}")
     folder = load_audit_folder(out_dir)
+    if parcel_shapes is not None:
+        folder.use_parcel_shapes(parcel_shapes)
     report_path = Path(report_path) if report_path is not None else folder.out_dir / "report.html"
     figures_dir = Path(figures_dir) if figures_dir is not None else folder.out_dir / "figures"
     formats = tuple(dict.fromkeys(("png", *figure_formats)))
@@ -995,7 +1001,13 @@ def build_report(
         "folder; no network resource is used.</p></footer>"
     )
     parts.append(f"<script>{_JS}</script></body></html>\n")
-    write_bytes(report_path, "\n".join(parts).encode("utf-8"))
+    # part by part: at 100 000 parcels the page is tens of MB, and one joined copy plus its
+    # encoded copy would add that twice to the peak memory
+    with atomic_file(report_path, overwrite=True) as tmp, open(tmp, "wb") as fh:
+        for i, part in enumerate(parts):
+            if i:
+                fh.write(b"\n")
+            fh.write(part.encode("utf-8"))
     done("written")
     bar.close()
     logger.info("report written: %s (%d close-ups)", report_path, len(closeups.items))

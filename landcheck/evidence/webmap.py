@@ -6,7 +6,8 @@ the page itself:
 * relief and slope classes as one PNG image overlay (a data URI) on the display
   grid of the static overview map;
 * conflict cells as a second, transparent PNG overlay (any conflict in a
-  display block, as on the overview map);
+  display block, as on the overview map), and one more per cell-based hazard
+  zone (HAND, sea-level rise, derived strips; ``zones/cells.tif``);
 * hazard zones and parcels as GeoJSON, one layer per zone and per verdict,
   drawn on a canvas renderer so 100 000 parcels stay usable.
 
@@ -55,6 +56,8 @@ _CONFLICT_RGBA = {
     2: (232, 120, 0, 170),
     3: (92, 0, 150, 190),
 }
+#: opacity (0-255) of a cell-based hazard zone overlay
+_CELL_ZONE_ALPHA = 120
 _CONFLICT_KIND_TEXT = {
     1: "slope at or over the class limit",
     2: "inside a zone the class forbids",
@@ -138,11 +141,23 @@ class _Frame:
 _DOT_ZERO = re.compile(r"\.0(?=[,\]])")
 
 
+#: geometries simplified and written at once: each is done on its own, so the chunks change nothing but
+#: the memory (at 100 000 parcels the simplified and moved copies are about 100 MB each when made whole)
+_GEOJSON_CHUNK = 10_000
+
+
 def _geojson_geometries(geoms, frame: _Frame, tolerance: float) -> list[str]:
     """Simplified (display only), rounded GeoJSON geometry strings; '' for empty or missing."""
+    arr = np.asarray(geoms, dtype=object)
+    out: list[str] = []
+    for k in range(0, len(arr), _GEOJSON_CHUNK):
+        out += _geojson_chunk(arr[k : k + _GEOJSON_CHUNK], frame, tolerance)
+    return out
+
+
+def _geojson_chunk(arr: np.ndarray, frame: _Frame, tolerance: float) -> list[str]:
     import shapely
 
-    arr = np.asarray(geoms, dtype=object)
     missing = np.array([g is None for g in arr])
     arr = np.where(missing, shapely.Polygon(), arr)
     simple = shapely.simplify(arr, tolerance, preserve_topology=True)
@@ -198,6 +213,18 @@ def _conflict_overlay(data: _MapData, n_zone_bits: int) -> str | None:
     for k, colour in _CONFLICT_RGBA.items():
         rgba[kind == k] = colour
     return _png_data_uri(rgba)
+
+
+def _cell_zone_overlays(data: _MapData) -> list[dict]:
+    """One transparent PNG per cell-based hazard zone, on the display grid of the overview map."""
+    from matplotlib.colors import to_rgb
+
+    out = []
+    for cz in data.cell_zones:
+        rgba = np.zeros((*cz.mask.shape, 4), dtype=np.uint8)
+        rgba[cz.mask] = (*(round(255 * c) for c in to_rgb(cz.colour)), _CELL_ZONE_ALPHA)
+        out.append({"name": cz.label, "colour": cz.colour, "png": _png_data_uri(rgba)})
+    return out
 
 
 def _relief_overlay(data: _MapData, breaks: np.ndarray) -> str:
@@ -297,6 +324,7 @@ def webmap_data(folder: AuditFolder, data: _MapData, breaks: np.ndarray, class_l
         "rows": rows,
         "parcels": _feature_collection(geom_texts, props),
         "zones": zones,
+        "cell_zones": _cell_zone_overlays(data),
         "slope_classes": [
             {"text": t, "colour": c} for t, c in zip(slope_class_labels(breaks), slope_class_colours(len(breaks) - 1))
         ],
@@ -358,6 +386,11 @@ _WEBMAP_JS = r"""
                      : {color: z.colour, weight: 1.5, fillColor: z.colour, fillOpacity: 0.18, dashArray: '4 3'};
     }});
     overlays[esc((z.lines ? 'Water: ' : 'Hazard zone: ') + z.name)] = lyr;
+  });
+  D.cell_zones.forEach(function (z) {
+    var name = 'Hazard zone: ' + z.name + ' (cells)';
+    overlays[esc(name)] = L.imageOverlay(z.png, bounds, {interactive: false, alt: name,
+                                                         className: 'wm-cell-zone'});
   });
   if (D.conflict) {
     overlays['Conflict cells'] = L.imageOverlay(D.conflict, bounds, {interactive: false}).addTo(map);
@@ -509,8 +542,11 @@ def _legend_html(d: dict) -> str:
             f'{v["colour"]}"></span>{escape(v["text"])} ({v["count"]:,d})</li>'
         )
     parts.append("</ul></div>")
-    if d["zones"]:
+    if d["zones"] or d["cell_zones"]:
         parts.append("<div><h4>Hazard zones and water (off at first)</h4><ul>")
+        for z in d["cell_zones"]:
+            sw = f'<span class="wm-sw" style="background:{z["colour"]}{_CELL_ZONE_ALPHA:02x}"></span>'
+            parts.append(f"<li>{sw}{escape(z['name'])} (cells)</li>")
         for z in d["zones"]:
             if z["lines"]:
                 sw = f'<span class="wm-ln" style="border-top:3px solid {z["colour"]}"></span>'
@@ -539,6 +575,10 @@ def webmap_section(folder: AuditFolder, data: _MapData, breaks: np.ndarray, clas
     css, js, lic = leaflet_assets()
     n = sum(v["count"] for v in d["verdicts"])
     simplify = f"{d['simplify_m']:,.0f} m" if d["simplify_m"] >= 1 else f"{d['simplify_m']:.2f} m"
+    legend, relief_note = _legend_html(d), d["relief_note"]
+    # the data as page text, then the dict goes: at 100 000 parcels both are tens of MB
+    data_json = _json_for_script(d)
+    del d
     return (
         f"<style>{css}</style>"
         '<div id="webmap-wrap">'
@@ -546,14 +586,14 @@ def webmap_section(folder: AuditFolder, data: _MapData, breaks: np.ndarray, clas
         'scroll or use + and - to zoom, click a parcel for its figures"></div>'
         '<p id="webmap-status" role="status" aria-live="polite">Click a parcel for its figures and reasons, '
         "or click a row of the per-parcel table to find it here.</p>"
-        + _legend_html(d)
+        + legend
         + f'<p class="muted">{count_text(n, "parcel")}. Outlines are simplified for display (tolerance about one cell, '
         f"{escape(simplify)}); every figure in the pop-ups and tables comes from the unsimplified parcels. "
-        f"Relief: {escape(d['relief_note'])}. Runs offline with Leaflet {LEAFLET_VERSION} "
+        f"Relief: {escape(relief_note)}. Runs offline with Leaflet {LEAFLET_VERSION} "
         "(BSD 2-Clause licence, included in this page).</p></div>"
         '<p id="webmap-print-note" class="muted" style="display:none">The interactive map is shown on screen '
         "only; the printed overview map follows.</p>"
-        f'<script type="application/json" id="webmap-data">{_json_for_script(d)}</script>'
+        f'<script type="application/json" id="webmap-data">{data_json}</script>'
         f"<script>/*! Leaflet {LEAFLET_VERSION}\n{lic.replace('*/', '* /')}*/\n{js}</script>"
         f"<script>{_WEBMAP_JS}</script>"
     )

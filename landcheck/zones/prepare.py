@@ -108,6 +108,27 @@ class ZoneSet:
             return None
         return self.raster_bits[win.rows, win.cols]
 
+    @property
+    def cell_columns(self) -> list[ZoneColumn]:
+        """The rulebook zones made of cells (HAND, sea-level rise, derived strips), in column order."""
+        return [c for c in self.columns if c.zone_index is not None and c.raster_channel >= 0]
+
+    def cell_zone_bits(self, win: Window) -> np.ndarray:
+        """uint8 over ``win``: bit k set where a land cell lies in ``cell_columns[k]`` (any of its strip
+        widths); cells of the sea carry no bit."""
+        out = np.zeros((win.height, win.width), dtype=np.uint8)
+        bits = self.bits(win)
+        if bits is None:
+            return out
+        for k, col in enumerate(self.cell_columns):
+            channels = {col.raster_channel, *col.context_channels.values()}
+            want = np.uint32(sum(1 << ch for ch in channels if ch >= 0))
+            out |= ((bits & want) != 0).astype(np.uint8) << np.uint8(k)
+        land = self.land(win)
+        if land is not None:
+            out[~land] = 0
+        return out
+
     def land(self, win: Window) -> np.ndarray | None:
         if self.store is not None:
             return None if self.sea_name is None else ~self.store.read(self.sea_name, win)
