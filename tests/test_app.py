@@ -411,6 +411,7 @@ def test_whole_job_in_headless_chromium(tmp_path):
             wait.until(lambda d: d.find_element(By.ID, "rulebook-error").text == expected)
         except TimeoutException:
             pass  # the assertion below reports what is shown
+        time.sleep(1.0)  # longer than the form's 200 ms re-check: the refused file's message must stay
         assert driver.find_element(By.ID, "rulebook-error").text == expected
         assert driver.find_element(By.CSS_SELECTOR, "#toml-preview span.hit").text == "slope_limit = 18"
     finally:

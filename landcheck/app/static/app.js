@@ -290,12 +290,15 @@
   }
 
   let tomlTimer = null;
+  let tomlTicket = 0; // the latest check or load; answers to older requests are dropped
   function renderToml() { clearTimeout(tomlTimer); tomlTimer = setTimeout(renderTomlNow, 200); }
   async function renderTomlNow() {
     const pre = document.getElementById("toml-preview"); const st = document.getElementById("rulebook-status");
     if (!pre) return;
+    const ticket = ++tomlTicket;
     try {
       const r = await api("POST", `/api/projects/${P.project.id}/rulebook/render`, { state: stateForServer() });
+      if (ticket !== tomlTicket) return;
       lastToml = r.toml; showToml(r.toml, r.message);
       st.replaceChildren(r.ok ? msg("good", "The rulebook is valid.", "rulebook-ok") : msg("bad", r.message, "rulebook-error"));
       const dl = document.getElementById("toml-download");
@@ -312,10 +315,15 @@
     const load = h("input", { type: "file", id: "toml-load", accept: ".toml,text/plain" });
     load.addEventListener("change", async () => {
       const f = load.files[0]; if (!f) return;
+      clearTimeout(tomlTimer);
+      const ticket = ++tomlTicket;
       const text = await f.text();
       const r = await api("POST", `/api/projects/${P.project.id}/rulebook/load`, { text });
+      if (ticket !== tomlTicket) return;
       const st = document.getElementById("rulebook-status");
-      if (r.state) { RB = Object.assign({ _pid: P.project.id }, r.state); drawRulebookAgain(); }
+      // a refused file leaves the form as it was: the file's own text and the CLI's message (its line marked)
+      // stay shown, instead of the form's re-written TOML replacing them a moment later
+      if (r.ok && r.state) { RB = Object.assign({ _pid: P.project.id }, r.state); drawRulebookAgain(); }
       showToml(r.toml, r.message);
       st.replaceChildren(r.ok ? msg("good", "Loaded " + f.name + "; the rulebook is valid.", "rulebook-ok") : msg("bad", r.message, "rulebook-error"));
       if (r.ok) renderToml();
