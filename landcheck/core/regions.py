@@ -592,6 +592,7 @@ def _drive(
         _input_files,
         _manifest,
         _rewarn,
+        check_parcels_on_dem,
         warn_unmatched_classes,
         whole_area_ground_factor,
     )
@@ -724,16 +725,7 @@ def _drive(
     region = np.concatenate(P.region)
     rects = np.concatenate(P.rects)
     del P
-    if not inside.any():
-        raise InputDataError(
-            f"{where}: no parcel overlaps the DEM {dem.path} (DEM bounds {tuple(round(b, 3) for b in g.bounds)} "
-            "in its CRS); check that the parcels and the DEM cover the same area and CRS."
-        )
-    n_out = int((~inside & ~empty).sum())
-    if n_out:
-        msg = f"{where}: {n_out} parcels lie entirely outside the DEM; they are reported with verdict no_data."
-        collected.append(msg)
-        warnings.warn(msg, LandcheckWarning, stacklevel=3)
+    check_parcels_on_dem(inside, empty, where, dem, collected)
     pr = parcel_rules(rules, class_value.to_numpy(dtype=object, na_value=pd.NA))
     warn_unmatched_classes(pr, pd.Series(class_value), where, collected)
     ground_factor = whole_area_ground_factor(g)

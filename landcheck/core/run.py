@@ -214,6 +214,21 @@ def _check_against_rules(s: AuditSettings, rules: Rulebook) -> None:
         )
 
 
+def check_parcels_on_dem(inside, empty, where: str, dem, collected: list) -> None:
+    """Refuse when no parcel meets the DEM; warn about the parcels that lie wholly outside it."""
+    g = dem.grid
+    if not inside.any():
+        raise InputDataError(
+            f"{where}: no parcel overlaps the DEM {dem.path} (DEM bounds {tuple(round(b, 3) for b in g.bounds)} "
+            "in its CRS); check that the parcels and the DEM cover the same area and CRS."
+        )
+    n_out = int((~inside & ~empty).sum())
+    if n_out:
+        msg = f"{where}: {n_out} parcels lie entirely outside the DEM; they are reported with verdict no_data."
+        collected.append(msg)
+        warnings.warn(msg, LandcheckWarning, stacklevel=4)
+
+
 def warn_unmatched_classes(pr, class_value, where: str, collected: list) -> None:
     """Warn (once, listing up to ten values) about parcels whose non-NULL class value has no rule."""
     no_rule_valued = (pr.class_name == "no_rule") & class_value.notna().to_numpy()  # NULLs: warned on read
@@ -302,16 +317,7 @@ def _run_audit(
     empty = shapely.is_empty(geoms)
     dem_box = shapely.box(*g.bounds)
     inside = shapely.intersects(geoms, dem_box)
-    if not inside.any():
-        raise InputDataError(
-            f"{ps.where}: no parcel overlaps the DEM {dem.path} (DEM bounds {tuple(round(b, 3) for b in g.bounds)} "
-            "in its CRS); check that the parcels and the DEM cover the same area and CRS."
-        )
-    n_out = int((~inside & ~empty).sum())
-    if n_out:
-        msg = f"{ps.where}: {n_out} parcels lie entirely outside the DEM; they are reported with verdict no_data."
-        collected.append(msg)
-        warnings.warn(msg, LandcheckWarning, stacklevel=3)
+    check_parcels_on_dem(inside, empty, ps.where, dem, collected)
     area_m2, area_factor = ground_areas(frame, g.crs_wkt)
     pr = parcel_rules(rules, frame["class_value"].to_numpy())
     warn_unmatched_classes(pr, frame["class_value"], ps.where, collected)

@@ -24,6 +24,18 @@ logger = logging.getLogger(__name__)
 _PARQUET_SUFFIXES = (".parquet", ".geoparquet")
 
 
+def choose_layer(path: str, layer: str | None, how: str) -> str | None:
+    """The layer to read from ``path``: ``layer`` if the file has it, else its only layer; ``how`` says how to choose."""
+    names = _layer_names(path)
+    if layer is None:
+        if len(names) > 1:
+            raise InputDataError(f"{path}: holds {len(names)} layers ({', '.join(names)}); choose one with {how}.")
+        return names[0] if names else None
+    if layer not in names:
+        raise InputDataError(f"{path}: no layer {layer!r}; layers here: {', '.join(names) or 'none'}.")
+    return layer
+
+
 def _layer_names(path: str) -> list[str]:
     import pyogrio
 
@@ -47,15 +59,7 @@ def read_layer(path: str | os.PathLike, *, layer: str | None = None, role: str =
             gdf = gpd.read_parquet(path)
             where = path
         else:
-            names = _layer_names(path)
-            if layer is None:
-                if len(names) > 1:
-                    raise InputDataError(
-                        f"{path}: holds {len(names)} layers ({', '.join(names)}); choose one with --parcels-layer (or the layer key)."
-                    )
-                layer = names[0] if names else None
-            elif layer not in names:
-                raise InputDataError(f"{path}: no layer {layer!r}; layers here: {', '.join(names) or 'none'}.")
+            layer = choose_layer(path, layer, "--parcels-layer (or the layer key)")
             gdf = gpd.read_file(path, layer=layer, engine="pyogrio")
             where = f"{path} (layer {layer})" if layer else path
     except InputDataError:

@@ -110,7 +110,7 @@ def iter_parcel_parts(
     import geopandas as gpd
     import pyogrio
 
-    from landcheck.inputs.layers import _layer_names
+    from landcheck.inputs.layers import choose_layer
 
     p = os.fspath(path)
     if not os.path.exists(p):
@@ -124,15 +124,7 @@ def iter_parcel_parts(
                 if len(part.frame):
                     yield _with_crs(part, crs)
     else:
-        names = _layer_names(p)
-        if layer is None:
-            if len(names) > 1:
-                raise InputDataError(
-                    f"{p}: holds {len(names)} layers ({', '.join(names)}); choose one with --parcels-layer."
-                )
-            layer = names[0] if names else None
-        elif layer not in names:
-            raise InputDataError(f"{p}: no layer {layer!r}; layers here: {', '.join(names) or 'none'}.")
+        layer = choose_layer(p, layer, "--parcels-layer")
         total = int(pyogrio.read_info(p, layer=layer)["features"])
         base = f"{p} (layer {layer})" if layer else p
         for start in range(0, total, chunk):
