@@ -37,7 +37,7 @@ from pathlib import Path
 
 import numpy as np
 
-from landcheck.engine.windows import run_windows
+from landcheck.engine.windows import progress_bar, run_windows
 from landcheck.geo.grid import Window, iter_windows
 from landcheck.terrain import tiled_fill as tf
 from landcheck.terrain import tiled_routing_loops as loops
@@ -192,6 +192,7 @@ def route_tiles(
     workers: int | None = None,
     scratch_parent: str | None = None,
     step: Callable[[str], None] | None = None,
+    show_progress: bool | None = None,
 ) -> Iterator[tuple[Window, list[np.ndarray], list[np.ndarray], np.ndarray]]:
     """Yield ``(win, streams, hand_masks, d8)`` row-major for every tile of the raster.
 
@@ -199,7 +200,8 @@ def route_tiles(
     HAND is at most ``hands[i].max_hand_m`` above the streams of ``hands[i].channel_area_m2`` (which
     must be one of ``channel_areas_m2``); ``d8`` the tile's flow directions (pyflwdir's D8 codes:
     0 outlet, 247 nodata).  Outlets (raster border, cells next to nodata or to the
-    cells ``read_with_halo`` marks NaN, e.g. the sea) count as drains.
+    cells ``read_with_halo`` marks NaN, e.g. the sea) count as drains.  Each sweep over the tiles
+    shows a progress bar (``show_progress``; None: when stderr is a terminal).
     """
     step = step or (lambda s: logger.info(s))
     thresholds = [float(a) for a in channel_areas_m2]
@@ -214,13 +216,18 @@ def route_tiles(
     cols = spec.shape[1]
     own_units = area_units(spec.cell_area_m2)
     scratch = _Scratch(scratch_parent)
+
+    def sweep(task, items, desc):
+        with progress_bar(len(items), f"flow routing: {desc}", enabled=show_progress, unit="tile") as bar:
+            yield from run_windows(task, items, workers=workers, progress=bar)
+
     try:
-        yield from _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scratch, workers, step)
+        yield from _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scratch, sweep, step)
     finally:
         scratch.close()
 
 
-def _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scratch, workers, step):
+def _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scratch, sweep, step):
     # ---- 1. depression filling: Priority-Flood per tile (kept on disk), spill graph, raise
     step(f"flow routing by tiles: depression filling ({len(wins)} tiles)")
 
@@ -233,7 +240,7 @@ def _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scrat
         # int32 labels: the spill graph of every tile is held until it is solved
         return n_labels, ea.astype(np.int32), eb.astype(np.int32), ew, tf.perimeter(label), tf.perimeter(zh[1:-1, 1:-1])
 
-    floods = [res for _, res in run_windows(flood, wins, workers=workers)]
+    floods = [res for _, res in sweep(flood, wins, "filling")]
     level, offsets = tf.spill_levels(tiles.n_tc, floods)
     del floods
 
@@ -245,7 +252,7 @@ def _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scrat
         (scratch.folder / f"label_{k}.npy").unlink()
         return _ring(z)
 
-    z_rings = [res for _, res in run_windows(raise_tile, wins, workers=workers)]
+    z_rings = [res for _, res in sweep(raise_tile, wins, "raising to spill levels")]
 
     # ---- 2. flats: distances to their exits, searched again where a neighbour's edge changed
     def z_halo(k):
@@ -280,7 +287,7 @@ def _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scrat
         rounds += 1
         searched += len(work)
         changed = []
-        for win, (ring, halo, rel) in run_windows(flats, [wins[k] for k in work], workers=workers):
+        for win, (ring, halo, rel) in sweep(flats, [wins[k] for k in work], f"flats, round {rounds}"):
             k = tiles.k(win)
             relevant[k] = rel
             used[k] = halo
@@ -314,7 +321,7 @@ def _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scrat
         (scratch.folder / f"dist_{k}.npy").unlink()
         return _ring(code)
 
-    d8_rings = [res for _, res in run_windows(directions, wins, workers=workers)]
+    d8_rings = [res for _, res in sweep(directions, wins, "D8")]
     d_rings = []
 
     def d8_halo(k):
@@ -359,7 +366,7 @@ def _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scrat
             np.where(ent_exit >= 0, gid(win, np.maximum(ent_exit, 0)), -1),
         )
 
-    parts = [res for _, res in run_windows(local_area, wins, workers=workers)]
+    parts = [res for _, res in sweep(local_area, wins, "upstream area")]
     ex_gid = np.concatenate([p[0] for p in parts])
     ex_acc = np.concatenate([p[1] for p in parts])
     ex_recv = np.concatenate([p[2] for p in parts])
@@ -425,7 +432,7 @@ def _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scrat
     step("flow routing by tiles: streams and HAND")
     en_val = {j: np.full(len(en_gid), np.nan) for j in hand_sets}
     en_link = {j: np.full(len(en_gid), -1, np.int64) for j in hand_sets}
-    for _, (pos, res) in run_windows(stream_tile, wins, workers=workers):
+    for _, (pos, res) in sweep(stream_tile, wins, "streams"):
         for j, (val, link) in zip(hand_sets, res):
             en_val[j][pos] = val
             en_link[j][pos] = link
@@ -462,5 +469,5 @@ def _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scrat
                     masks.append(np.isfinite(hand) & (hand <= h.max_hand_m))
         return streams, masks, d8h[1:-1, 1:-1]
 
-    for win, (streams, masks, d8) in run_windows(final_tile, wins, workers=workers):
+    for win, (streams, masks, d8) in sweep(final_tile, wins, "HAND"):
         yield win, streams, masks, d8

@@ -397,6 +397,7 @@ def prepare_zones(
                 workers=getattr(engine, "workers", None),
                 scratch_parent=None if store.in_memory else store.folder,
                 step=step,
+                show_progress=getattr(settings, "show_progress", None),
             ):
                 for w, m in zip(s_writers, streams):
                     w.write(win, m)
