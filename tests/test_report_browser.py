@@ -89,6 +89,17 @@ def _driver(tmp_path, width=1300, height=1100):
     return d
 
 
+def _open_map(d, path):
+    """Open the report, wait until its map is usable and scroll the map into view; returns the map element."""
+    from selenium.webdriver.common.by import By
+
+    d.get(path.as_uri())
+    _wait(lambda: d.execute_script("return window.landcheckMapReady === true"))
+    el = d.find_element(By.ID, "webmap")
+    d.execute_script("arguments[0].scrollIntoView({block: 'center'})", el)
+    return el
+
+
 def _wait(pred, timeout=20.0, step=0.05):
     end = time.time() + timeout
     while time.time() < end:
@@ -134,10 +145,7 @@ def test_map_popup_and_table_link_offline(demo_report, tmp_path):
 
     d = _driver(tmp_path)
     try:
-        d.get(path.as_uri())
-        _wait(lambda: d.execute_script("return window.landcheckMapReady === true"))
-        el = d.find_element(By.ID, "webmap")
-        d.execute_script("arguments[0].scrollIntoView({block: 'center'})", el)
+        el = _open_map(d, path)
         # zoom in on the parcel as a reader would, then click inside it
         d.execute_script(
             "window.landcheckMap.setView([arguments[0], arguments[1]], arguments[2], {animate: false})",
@@ -229,10 +237,7 @@ def test_cell_zone_layers_switch_on(demo_report, tmp_path):
 
     d = _driver(tmp_path)
     try:
-        d.get(path.as_uri())
-        _wait(lambda: d.execute_script("return window.landcheckMapReady === true"))
-        el = d.find_element(By.ID, "webmap")
-        d.execute_script("arguments[0].scrollIntoView({block: 'center'})", el)
+        _open_map(d, path)
         control = d.find_element(By.CSS_SELECTOR, ".leaflet-control-layers")
         for k, name in enumerate(bits):
             layer = f"Hazard zone: {labels[name]} (cells)"

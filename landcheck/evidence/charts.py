@@ -30,10 +30,12 @@ _SERIES_STYLE = [  # (colour, marker, dash) for chart lines; marker + dash separ
 ]
 
 
-def _chart_frame(fig, folder: AuditFolder, title: str) -> None:
+def _finish_chart(fig, folder: AuditFolder, dest_dir, name: str, title: str, caption: str, dpi, formats) -> FigureFiles:
+    """Frame a chart (title, run date, caution), save it in each format and describe it for the report."""
     fig.text(0.02, 0.985, title, ha="left", va="top", fontsize=11, fontweight="bold")
     fig.text(0.98, 0.985, f"audit run {folder.run_date_text}", ha="right", va="top", fontsize=7.5, color="#444444")
     fig.text(0.02, 0.008, CAUTION, ha="left", va="bottom", fontsize=6.5, color="#5a1a00")
+    return FigureFiles([FigureItem(name, caption, _save(fig, _dest(folder, dest_dir), name, dpi, formats))])
 
 
 def class_share_chart(
@@ -96,17 +98,16 @@ def class_share_chart(
         fontsize=7.5,
         framealpha=0.9,
     )
-    _chart_frame(fig, folder, "Share of each class over its limit")
-    paths = _save(fig, _dest(folder, dest_dir), "chart_class_shares", dpi, formats)
-    return FigureFiles(
-        [
-            FigureItem(
-                "chart_class_shares",
-                "Per class: share of the evaluated area with slope at or over the class limit, "
-                "and share breaching any rule (slope or forbidden zone).",
-                paths,
-            )
-        ]
+    return _finish_chart(
+        fig,
+        folder,
+        dest_dir,
+        "chart_class_shares",
+        "Share of each class over its limit",
+        "Per class: share of the evaluated area with slope at or over the class limit, "
+        "and share breaching any rule (slope or forbidden zone).",
+        dpi,
+        formats,
     )
 
 
@@ -195,17 +196,16 @@ def slope_distribution_chart(
         ax.set_axisbelow(True)
         if i // ncols == nrows - 1 or i + ncols >= n:
             ax.set_xlabel("slope (%), 1 % bins", fontsize=7.5)
-    _chart_frame(fig, folder, "Slope distribution of classified land")
-    paths = _save(fig, _dest(folder, dest_dir), "chart_slope_distribution", dpi, formats)
-    return FigureFiles(
-        [
-            FigureItem(
-                "chart_slope_distribution",
-                "Evaluated area per 1 % slope bin for each class; dark hatched bars lie at or "
-                "over the class limit (dashed line).",
-                paths,
-            )
-        ]
+    return _finish_chart(
+        fig,
+        folder,
+        dest_dir,
+        "chart_slope_distribution",
+        "Slope distribution of classified land",
+        "Evaluated area per 1 % slope bin for each class; dark hatched bars lie at or "
+        "over the class limit (dashed line).",
+        dpi,
+        formats,
     )
 
 
@@ -269,14 +269,13 @@ def sensitivity_chart(
     # the legend column is about 2.2 in wide: long class labels wrap instead of running off the figure
     labels = [textwrap.fill(t, _LEGEND_WRAP_CHARS - 4) for t in labels]
     fig.legend(handles, labels, loc="upper left", bbox_to_anchor=(0.71, 0.88), fontsize=7.5, frameon=False)
-    _chart_frame(fig, folder, "Sensitivity to the slope limit")
-    paths = _save(fig, _dest(folder, dest_dir), "chart_sensitivity", dpi, formats)
-    return FigureFiles(
-        [
-            FigureItem(
-                "chart_sensitivity",
-                "How the share of land at or over a slope limit changes as the limit moves from 10 % to 30 %.",
-                paths,
-            )
-        ]
+    return _finish_chart(
+        fig,
+        folder,
+        dest_dir,
+        "chart_sensitivity",
+        "Sensitivity to the slope limit",
+        "How the share of land at or over a slope limit changes as the limit moves from 10 % to 30 %.",
+        dpi,
+        formats,
     )
