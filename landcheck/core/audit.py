@@ -134,16 +134,39 @@ class _FolderRasters(_RasterHook):
         if self.cap_sink is not None:
             self.cap_sink.write(win, out.capability_codes)
 
-    def close(self) -> None:
-        """Finish every raster (COG: the copy with overviews, the long part), with a progress bar."""
+    def adopt(self, sink: RasterSink | None) -> None:
+        """Publish ``sink`` (already written) with the pass's rasters."""
+        if sink is not None:
+            self.sinks.append(sink)
+
+    def finish(self) -> None:
+        """End every window stream; from here on :meth:`readable_files` may be read (fast)."""
+        for s in self.sinks:
+            s.finish()
+
+    def readable_files(self) -> dict[str, Path]:
+        """Folder-relative name -> a finished file with that raster's values (the scratch while a COG is laid out)."""
+        out = {}
+        for s in self.sinks:
+            p = s.readable
+            if p is not None:
+                out[s.final.relative_to(self.stage).as_posix()] = p
+        return out
+
+    def publish(self) -> None:
+        """Lay out every COG (the long part), with a progress bar; scratch files stay until :meth:`discard_scratch`."""
         bar = progress_bar(len(self.sinks), "COG rasters" if self.fmt is RasterFormat.COG else "rasters", unit="raster")
         try:
             for s in self.sinks:
                 bar.set_postfix_str(s.final.name, refresh=False)
-                s.close()
+                s.publish(keep_scratch=True)
                 bar.update(1)
         finally:
             bar.close()
+
+    def discard_scratch(self) -> None:
+        for s in self.sinks:
+            s.discard_scratch()
 
     def abort(self) -> None:
         for s in self.sinks:
@@ -201,19 +224,22 @@ def _needs_rasters(s: AuditSettings) -> bool:
 CELL_ZONES_FILE = "zones/cells.tif"
 
 
-def _write_cell_zones(stage: Path, run: AuditRun) -> None:
+def _write_cell_zones(stage: Path, run: AuditRun) -> RasterSink | None:
     """Stream the cell-based zones (HAND, sea-level rise, derived strips) into ``zones/cells.tif``.
 
     One uint8 band of bit flags, bit k = ``run.summary["cell_zone_bits"][k]``, so the maps can show
     each zone as its own layer.  Written only when the audit writes rasters; tile by tile from the
-    zone masks, so nothing of the size of the raster is held.
+    zone masks, so nothing of the size of the raster is held.  Returns the finished sink, to be
+    published (:meth:`RasterSink.publish`) by the caller; None when there is nothing to write.
     """
     from landcheck.geo.grid import iter_windows
 
     zones, s = run.zones, run.settings
+    if zones is None:
+        return None
     cols = zones.cell_columns
     if not cols or s.rasters is RasterFormat.NONE:
-        return
+        return None
     g = zones.grid
     names = [c.name for c in cols]
     sink = RasterSink(
@@ -228,15 +254,20 @@ def _write_cell_zones(stage: Path, run: AuditRun) -> None:
     try:
         for win in iter_windows(g.height, g.width, 2048):
             sink.write(win, zones.cell_zone_bits(win))
+        sink.finish()
     except BaseException:
         sink.abort()
         raise
-    sink.close()
     run.summary["cell_zone_bits"] = names
+    return sink
 
 
-def write_audit_folder(stage: Path, run: AuditRun) -> None:
-    """Write every table, layer and (when asked) the report of ``run`` into ``stage`` (docs/outputs.md)."""
+def write_audit_folder(stage: Path, run: AuditRun, *, cell_zones_written: bool = False) -> None:
+    """Write every table and layer of ``run`` into ``stage`` (docs/outputs.md).
+
+    ``cell_zones_written``: ``zones/cells.tif`` was already written (the audit publishes it with the
+    pass's rasters, on their thread).
+    """
     parcels = run.table
     if run.confidence is not None:
         cparcels, cclasses = run.confidence
@@ -255,7 +286,10 @@ def write_audit_folder(stage: Path, run: AuditRun) -> None:
         write_csv(stage / "reclassification_moves.csv", moves)
     if run.zones is not None:
         run.zones.write_layers(stage)
-        _write_cell_zones(stage, run)
+    if not cell_zones_written:
+        sink = _write_cell_zones(stage, run)
+        if sink is not None:
+            sink.close()
     write_gpkg(stage / "parcels.gpkg", run.parcels, layer="parcels")
     write_csv(stage / "parcels.csv", parcels)
     write_csv(stage / "classes.csv", run.classes)
@@ -309,18 +343,34 @@ def audit(
             if hook is not None:
                 hook.abort()
             raise
-        # the COG copies (GDAL, outside the GIL) are made while the tables and layers are written
-        closing = _Background(hook.close) if hook is not None else None
+        cells = None
+        if hook is not None:
+            try:
+                cells = _write_cell_zones(stage, run)
+                hook.adopt(cells)
+                hook.finish()
+            except BaseException:
+                hook.abort()
+                raise
+        # the COG copies (GDAL, outside the GIL) are made on a thread while the tables, the layers and
+        # the report are written; the report reads the finished scratch files meanwhile
+        closing = _Background(hook.publish) if hook is not None else None
         try:
-            write_audit_folder(stage, run)
+            write_audit_folder(stage, run, cell_zones_written=hook is not None)
+            _release_free_memory()
+            if s.report:
+                step("building the report")
+                # the parcel shapes just written to parcels.gpkg are passed on, not read back
+                build_report(
+                    stage,
+                    parcel_shapes=run.parcels,
+                    raster_files=hook.readable_files() if hook is not None else None,
+                    before_output_hashes=closing.join if closing is not None else None,
+                )
         finally:
             if closing is not None:
                 closing.join()
-        _release_free_memory()
-        if s.report:
-            step("building the report")
-            # the parcel shapes just written to parcels.gpkg are passed on, not read back
-            build_report(stage, parcel_shapes=run.parcels)
+                hook.discard_scratch()
         # the one file a rerun changes (docs/outputs.md): times, and how the run was executed
         write_run_times(stage, started, execution={"tile_cells": s.tile_cells, **s.engine.describe()})
     step(f"outputs in {out}")

@@ -9,8 +9,8 @@ from __future__ import annotations
 
 import json
 import math
-from collections.abc import Sequence
-from dataclasses import dataclass
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from functools import cached_property
 from pathlib import Path
@@ -74,12 +74,19 @@ class AuditFolder:
 
     out_dir: Path
     summary: dict
+    #: folder-relative raster name -> the file to read it from instead (:meth:`use_raster_files`)
+    raster_files: dict[str, Path] = field(default_factory=dict)
 
     def path(self, name: str) -> Path:
-        return self.out_dir / name
+        return self.raster_files.get(name, self.out_dir / name)
+
+    def use_raster_files(self, files: Mapping[str, Path]) -> None:
+        """Read these rasters from other files with the same values (the audit's finished scratch files,
+        while the Cloud-Optimized copies are laid out on another thread)."""
+        self.raster_files.update({str(k): Path(v) for k, v in files.items()})
 
     def require(self, name: str) -> Path:
-        p = self.out_dir / name
+        p = self.path(name)
         if not p.exists():
             raise InputDataError(
                 f"{p}: not found; expected the output folder of `landcheck audit` "

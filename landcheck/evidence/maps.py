@@ -88,6 +88,9 @@ CELL_ZONE_COLOURS = ["#1d7a8c", "#9a6b00", "#5a3e9b", "#3f7f1f", "#a33c6b", "#2b
 _CELL_ZONE_ALPHA = 0.42
 _NODATA_GREY = np.array([0.86, 0.86, 0.86])
 _PNG_METADATA = {"Software": None}
+#: zlib level of the PNG figures: level 1 encodes several times faster than the default 6 for
+#: files about a quarter larger (measured in docs/scale.md)
+_PNG_ZLIB_LEVEL = 1
 #: permission bits of written figures (mkstemp creates 0600; common practice for shared outputs is 0644)
 _WATER_COLOUR = "#1f5fa0"
 #: above this many parcels in view, outlines are burnt into one image at the map's pixel size
@@ -271,16 +274,16 @@ def _window_for(ds, bounds):
 def _read_reduced(path: Path, bounds, max_px: int, kind: str) -> _Grid | None:
     """Read a window of band 1 reduced by an integer factor so neither side exceeds ``max_px``.
 
-    ``kind="mean"``: mean of valid cells per block (NaN when none), by GDAL's average
-    resampling; on a COG it reads the nearest overview, so a display block may differ from the
-    exact block mean by a few slope points (display only: every figure comes from the tables).
+    ``kind="mean"``: mean of valid cells per block (NaN when none), by GDAL's average resampling
+    of the full-resolution cells (a COG's overviews are not used: the maps are the same whether
+    they are drawn from the COG or from the audit's scratch copy of it, docs/outputs.md).
     ``kind="bits"``: bitwise OR of the cells inside parcels (value != 255); 255 when none.
     """
     import rasterio
     from affine import Affine
     from rasterio.windows import Window
 
-    with rasterio.open(path) as ds:
+    with rasterio.open(path, OVERVIEW_LEVEL="NONE") as ds:
         t = ds.transform
         if t.b != 0 or t.d != 0:
             raise InputDataError(f"{path}: rotated or sheared grids cannot be mapped; expected a north-up GeoTIFF.")
@@ -294,8 +297,8 @@ def _read_reduced(path: Path, bounds, max_px: int, kind: str) -> _Grid | None:
         left, top = tr.c, tr.f
         right, bottom = left + out_w * tr.a, top + out_h * tr.e
         if kind == "mean" and f > 1:
-            # block mean of the valid cells by GDAL (average resampling ignores nodata); it reads a
-            # COG's overviews when they match, so the overview map does not read every cell again
+            # block mean of the valid cells by GDAL (average resampling ignores nodata), from the
+            # full-resolution cells (OVERVIEW_LEVEL=NONE above)
             from rasterio.enums import Resampling
 
             full = Window(win.col_off, win.row_off, out_w * f, out_h * f)
@@ -545,7 +548,8 @@ def _save(fig, dest: Path, stem: str, dpi: int, formats: Sequence[str]) -> list[
                 raise ValueError(f"formats: got {fmt!r}; expected 'png' and/or 'svg'")
             buf = io.BytesIO()
             meta = _PNG_METADATA if fmt == "png" else _SVG_METADATA
-            fig.savefig(buf, format=fmt, dpi=dpi, metadata=meta)
+            extra = {"pil_kwargs": {"compress_level": _PNG_ZLIB_LEVEL}} if fmt == "png" else {}
+            fig.savefig(buf, format=fmt, dpi=dpi, metadata=meta, **extra)
             p = dest / f"{stem}.{fmt}"
             write_bytes(p, buf.getvalue())
             paths.append(p)

@@ -840,6 +840,8 @@ def build_report(
     page_size: str = "A4",
     show_progress: bool | None = None,
     parcel_shapes=None,
+    raster_files=None,
+    before_output_hashes=None,
 ) -> Path:
     """Write a self-contained HTML report of an audit output folder.
 
@@ -875,6 +877,13 @@ def build_report(
     parcel_shapes : GeoDataFrame, optional
         The rows of ``parcels.gpkg`` already in memory (the audit passes its own, just written),
         so the file is not read a second time; see :meth:`AuditFolder.use_parcel_shapes`.
+    raster_files : mapping, optional
+        Folder-relative raster name -> a file with the same values to read instead (the audit's
+        finished scratch files while their Cloud-Optimized copies are made on another thread);
+        see :meth:`AuditFolder.use_raster_files`.
+    before_output_hashes : callable, optional
+        Called before the output files are hashed for the manifest (the audit waits there for
+        those copies).
 
     Returns
     -------
@@ -893,6 +902,8 @@ def build_report(
     folder = load_audit_folder(out_dir)
     if parcel_shapes is not None:
         folder.use_parcel_shapes(parcel_shapes)
+    if raster_files:
+        folder.use_raster_files(raster_files)
     report_path = Path(report_path) if report_path is not None else folder.out_dir / "report.html"
     figures_dir = Path(figures_dir) if figures_dir is not None else folder.out_dir / "figures"
     formats = tuple(dict.fromkeys(("png", *figure_formats)))
@@ -951,6 +962,8 @@ def build_report(
     parcels_html, notes = _parcels_section(folder, max_table_rows)
     extra_warnings += notes
     done("parcel table")
+    if before_output_hashes is not None:
+        before_output_hashes()
     manifest_html, manifest_warnings = _manifest_section(folder, verify_inputs, built_utc)
     done("hashes")
     extra_warnings = manifest_warnings + extra_warnings

@@ -138,10 +138,82 @@ def csv_rows(path: str | os.PathLike, *, overwrite: bool = True) -> Iterator[Cal
         first = [True]
 
         def add(frame) -> None:
-            frame.to_csv(f, index=False, header=first[0], float_format="%.10g")
+            _write_csv_slice(f, frame, header=first[0])
             first[0] = False
 
         yield add
+
+
+#: how every float of a CSV table is written: ten significant digits (sub-micrometre for areas in m²)
+CSV_FLOAT_FORMAT = "%.10g"
+
+
+def _csv_column_text(col) -> list[str] | None:
+    """The CSV text of each value of one column, as pandas' ``to_csv`` writes it; None if not handled here.
+
+    Floats (NumPy or Arrow-backed, NaN/NA empty) by :data:`CSV_FLOAT_FORMAT`, integers and booleans
+    by ``str``, text as is (missing empty).  Other kinds (dates, categories, mixed objects) are left
+    to pandas.  Formatting a column at once is several times faster than pandas' per-cell path
+    at 100 000 parcels (docs/scale.md); tests/test_writers.py checks the bytes against pandas.
+    """
+    import pandas as pd
+
+    dt = col.dtype
+    kind: str | None
+    if isinstance(dt, pd.StringDtype) or (isinstance(dt, pd.ArrowDtype) and dt.pyarrow_dtype in _arrow_text()):
+        kind = "U"
+    elif isinstance(dt, np.dtype):
+        kind = dt.kind
+    else:  # pandas' nullable and Arrow-backed numbers
+        kind = getattr(getattr(dt, "numpy_dtype", None), "kind", None)
+    if kind not in ("f", "i", "u", "b", "U", "O"):
+        return None
+    if kind == "f":
+        values = col.to_numpy(dtype="float64", na_value=np.nan).tolist()
+    elif isinstance(dt, np.dtype):
+        values = col.to_numpy().tolist()
+    else:
+        values = col.to_numpy(dtype=object, na_value=None).tolist()
+    fmt = CSV_FLOAT_FORMAT
+    if kind == "f":
+        return ["" if (v is None or v != v) else fmt % v for v in values]
+    if kind in ("i", "u", "b"):
+        return ["" if v is None else str(v) for v in values]
+    if kind == "U":
+        return ["" if v is None else v for v in values]
+    # object columns: text and missing values only
+    out = []
+    for v in values:
+        if v is None or (isinstance(v, float) and v != v):
+            out.append("")
+        elif isinstance(v, str):
+            out.append(v)
+        else:
+            return None
+    return out
+
+
+def _arrow_text():
+    import pyarrow as pa
+
+    return (pa.string(), pa.large_string())
+
+
+def _write_csv_slice(f, frame, *, header: bool) -> None:
+    """Append ``frame`` to the open text file ``f`` as CSV rows (the header row first when ``header``)."""
+    import csv
+
+    texts = []
+    for name in frame.columns:
+        t = _csv_column_text(frame[name])
+        if t is None:  # a kind of column this path does not handle: pandas writes the whole slice
+            frame.to_csv(f, index=False, header=header, float_format=CSV_FLOAT_FORMAT)
+            return
+        texts.append(t)
+    w = csv.writer(f, lineterminator="\n")
+    if header:
+        w.writerow([str(c) for c in frame.columns])
+    w.writerows(zip(*texts))
 
 
 def write_gpkg(path: str | os.PathLike, gdf, layer: str, *, overwrite: bool = True) -> Path:
@@ -285,26 +357,59 @@ class RasterSink:
         if self._ds is not None:
             with contextlib.suppress(Exception):
                 self._ds.close()
-        if self._scratch is not None:
-            self._scratch.unlink(missing_ok=True)
+            self._ds = None
+        self.discard_scratch()
 
     def close(self) -> Path | None:
         """Finish the file and rename it into place; returns its path (None for ``none``)."""
-        import rasterio.shutil
+        self.finish()
+        return self.publish(keep_scratch=False)
 
-        if self.fmt is RasterFormat.NONE:
-            return None
+    def finish(self) -> None:
+        """End the window stream (``gtiff``: the file goes into place now; ``cog``: the scratch is complete).
+
+        Between :meth:`finish` and :meth:`publish`, :attr:`readable` holds every value written.
+        """
+        if self.fmt is RasterFormat.NONE or self._ds is None:
+            return
         try:
             if self._band_names:
                 for i, name in enumerate(self._band_names, start=1):
                     self._ds.set_band_description(i, name)
             self._ds.close()
+            self._ds = None
             if self.fmt is RasterFormat.GTIFF:
                 if self.final.exists():
                     self.final.unlink()
                 os.chmod(self._scratch, 0o666 & ~_umask())
                 os.replace(self._scratch, self.final)
-                return self.final
+                self._scratch = None
+        except Exception as exc:
+            self.abort()
+            raise OutputWriteError(
+                f"{self.final}: writing the raster failed ({exc}); nothing was left behind."
+            ) from exc
+
+    @property
+    def readable(self) -> Path | None:
+        """A finished file with the raster's values: the scratch (``cog``, until discarded) or the file."""
+        if self.fmt is RasterFormat.NONE:
+            return None
+        return self._scratch if self._scratch is not None else self.final
+
+    def publish(self, *, keep_scratch: bool = False) -> Path | None:
+        """``cog``: lay the COG out from the finished scratch and rename it into place.
+
+        With ``keep_scratch`` the scratch stays readable until :meth:`discard_scratch` (the report
+        reads it while the copy runs on another thread).  Returns the final path (None for ``none``).
+        """
+        import rasterio.shutil
+
+        if self.fmt is RasterFormat.NONE:
+            return None
+        if self.fmt is RasterFormat.GTIFF:
+            return self.final
+        try:
             with atomic_file(self.final, overwrite=True, suffix=".tif") as tmp:
                 rasterio.shutil.copy(
                     self._scratch,
@@ -326,8 +431,14 @@ class RasterSink:
             raise OutputWriteError(
                 f"{self.final}: writing the raster failed ({exc}); nothing was left behind."
             ) from exc
-        self._scratch.unlink(missing_ok=True)
+        if not keep_scratch:
+            self.discard_scratch()
         return self.final
+
+    def discard_scratch(self) -> None:
+        if self._scratch is not None:
+            self._scratch.unlink(missing_ok=True)
+            self._scratch = None
 
     def __enter__(self):
         return self
