@@ -225,3 +225,79 @@ def test_missing_folder_is_input_error(tmp_path):
     # error contract (common practice: InputDataError naming the missing file)
     with pytest.raises(InputDataError, match="summary.json"):
         maps.overview_map(tmp_path)
+
+
+def _write_tif(path, data, nodata):
+    import rasterio
+    from rasterio.transform import from_origin
+
+    with rasterio.open(
+        path,
+        "w",
+        driver="GTiff",
+        width=data.shape[1],
+        height=data.shape[0],
+        count=1,
+        dtype=data.dtype,
+        crs="EPSG:32651",
+        transform=from_origin(500000.0, 1700000.0, 10.0, 10.0),
+        nodata=nodata,
+        tiled=True,
+        blockxsize=64,
+        blockysize=64,
+    ) as ds:
+        ds.write(data, 1)
+    return path
+
+
+def test_display_block_means_equal_gdal_average_resampling(tmp_path):
+    """Map blocks are the mean of the valid cells.
+
+    Reference: GDAL's ``average`` resampling (a general-purpose reference tool, docs/references.md
+    §19) read into the same block grid for the 33 x 33 whole blocks; nodata cells are left out of
+    both.  The partial blocks at the right and bottom edges (233 = 7 * 33 + 2) average the cells
+    present, checked against ``np.nanmean`` (rasterio's boundless read pads them differently).
+    """
+    import rasterio
+    from rasterio.enums import Resampling
+    from rasterio.windows import Window
+
+    rng = np.random.default_rng(11)
+    a = (rng.random((233, 233)) * 60).astype(np.float32)
+    a[rng.random(a.shape) < 0.1] = -9999.0
+    a[:14, :14] = -9999.0  # whole blocks without data -> NaN
+    path = _write_tif(tmp_path / "slope.tif", a, -9999.0)
+    grid = maps._read_reduced(path, None, 34, "mean")
+    assert grid.factor == 7 and grid.data.shape == (34, 34)
+    with rasterio.open(path) as ds:
+        ref = ds.read(1, window=Window(0, 0, 231, 231), out_shape=(33, 33), resampling=Resampling.average, masked=True)
+    ref = np.ma.filled(ref.astype(np.float32), np.nan)
+    assert np.isnan(grid.data[:2, :2]).all()
+    np.testing.assert_allclose(grid.data[:33, :33], ref, rtol=1e-6, equal_nan=True)
+    valid = np.where(a == -9999.0, np.nan, a.astype(np.float64))
+    edge = [np.nanmean(valid[231:, 7 * j : 7 * j + 7]) for j in range(34)]
+    np.testing.assert_allclose(grid.data[33, :], edge, rtol=1e-6)
+    np.testing.assert_allclose(
+        grid.data[:, 33], [np.nanmean(valid[7 * i : 7 * i + 7, 231:]) for i in range(34)], rtol=1e-6
+    )
+
+
+def test_display_block_bits_are_the_or_of_the_cells_inside_parcels(tmp_path):
+    """Conflict bits per block: bitwise OR of the cells that are not 255 (outside every parcel);
+    255 where a block has none.  Reference: the NumPy formulation (reshape, ``np.bitwise_or.reduce``),
+    computed independently here (common practice)."""
+    rng = np.random.default_rng(12)
+    a = rng.choice(np.array([0, 1, 2, 4, 6, 255], dtype=np.uint8), size=(101, 150))
+    a[:5, :5] = 255
+    path = _write_tif(tmp_path / "conflict.tif", a, 255)
+    grid = maps._read_reduced(path, None, 30, "bits")
+    f = grid.factor
+    assert f == 5
+    pad = np.full((105, 150), 255, dtype=np.uint8)
+    pad[:101] = a
+    blocks = pad.reshape(21, f, 30, f)
+    inside = blocks != 255
+    ref = np.bitwise_or.reduce(np.bitwise_or.reduce(np.where(inside, blocks, 0).astype(np.uint8), axis=3), axis=1)
+    ref[~inside.any(axis=(1, 3))] = 255
+    assert grid.data[0, 0] == 255
+    np.testing.assert_array_equal(grid.data, ref)

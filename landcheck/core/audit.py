@@ -23,6 +23,7 @@ import pandas as pd
 from landcheck.core.run import AuditRun, _RasterHook, _run_audit, open_rules
 from landcheck.core.settings import AuditSettings, CapabilityOptions
 from landcheck.engine.windows import progress_bar
+from landcheck.inputs.gdal_cache import cap_gdal_cache
 from landcheck.inputs.rulebook import Rulebook
 from landcheck.outputs.folder import write_run_times
 from landcheck.outputs.writers import (
@@ -173,7 +174,7 @@ class _FolderRasters(_RasterHook):
             s.abort()
 
 
-def _release_free_memory() -> None:
+def _release_free_memory(*, collect: bool = True) -> None:
     """Hand memory freed by the pass and the raster thread back to the system before the report.
 
     glibc keeps freed memory in per-thread arenas; ``malloc_trim`` returns it, so the report's own
@@ -183,7 +184,8 @@ def _release_free_memory() -> None:
     import ctypes.util
     import gc
 
-    gc.collect()
+    if collect:
+        gc.collect()
     name = ctypes.util.find_library("c")
     if not name or not sys.platform.startswith("linux"):
         return
@@ -206,6 +208,8 @@ class _Background:
                 fn()
             except BaseException as exc:  # handed to the joining thread
                 self._error = exc
+            finally:  # GDAL's buffers of this thread's arena back to the system, not kept beside the report
+                _release_free_memory(collect=False)
 
         self._thread = threading.Thread(target=target, name="landcheck-rasters", daemon=True)
         self._thread.start()
@@ -219,6 +223,9 @@ class _Background:
 def _needs_rasters(s: AuditSettings) -> bool:
     return s.rasters is not RasterFormat.NONE or s.capability is not None
 
+
+#: GDAL block cache while the COGs are laid out beside the report (the pass itself uses GDAL_CACHE_CAP_BYTES)
+AFTER_PASS_GDAL_CACHE_BYTES = 16 * 2**20
 
 #: bit k of ``zones/cells.tif`` is the k-th cell-based rulebook zone (summary.json -> ``cell_zone_bits``)
 CELL_ZONES_FILE = "zones/cells.tif"
@@ -353,7 +360,10 @@ def audit(
                 hook.abort()
                 raise
         # the COG copies (GDAL, outside the GIL) are made on a thread while the tables, the layers and
-        # the report are written; the report reads the finished scratch files meanwhile
+        # the report are written; the report reads the finished scratch files meanwhile.  From here on
+        # GDAL's block cache holds nothing worth keeping (every raster is read or copied once): a smaller
+        # cap keeps the copies' memory beside the report's low (docs/scale.md)
+        cap_gdal_cache(AFTER_PASS_GDAL_CACHE_BYTES)
         closing = _Background(hook.publish) if hook is not None else None
         try:
             write_audit_folder(stage, run, cell_zones_written=hook is not None)

@@ -274,16 +274,16 @@ def _window_for(ds, bounds):
 def _read_reduced(path: Path, bounds, max_px: int, kind: str) -> _Grid | None:
     """Read a window of band 1 reduced by an integer factor so neither side exceeds ``max_px``.
 
-    ``kind="mean"``: mean of valid cells per block (NaN when none), by GDAL's average resampling
-    of the full-resolution cells (a COG's overviews are not used: the maps are the same whether
-    they are drawn from the COG or from the audit's scratch copy of it, docs/outputs.md).
+    ``kind="mean"``: mean of the valid cells per block (NaN when none).
     ``kind="bits"``: bitwise OR of the cells inside parcels (value != 255); 255 when none.
+    Every full-resolution cell is read once, in rows, and reduced by compiled loops
+    (:mod:`landcheck.evidence.display_loops`); a COG's overviews are not used, so the maps are the
+    same whether they are drawn from the COG or from the audit's scratch copy of it.
     """
     import rasterio
     from affine import Affine
-    from rasterio.windows import Window
 
-    with rasterio.open(path, OVERVIEW_LEVEL="NONE") as ds:
+    with rasterio.open(path) as ds:
         t = ds.transform
         if t.b != 0 or t.d != 0:
             raise InputDataError(f"{path}: rotated or sheared grids cannot be mapped; expected a north-up GeoTIFF.")
@@ -296,44 +296,37 @@ def _read_reduced(path: Path, bounds, max_px: int, kind: str) -> _Grid | None:
         tr = Affine(t.a * f, 0.0, t.c + t.a * win.col_off, 0.0, t.e * f, t.f + t.e * win.row_off)
         left, top = tr.c, tr.f
         right, bottom = left + out_w * tr.a, top + out_h * tr.e
-        if kind == "mean" and f > 1:
-            # block mean of the valid cells by GDAL (average resampling ignores nodata), from the
-            # full-resolution cells (OVERVIEW_LEVEL=NONE above)
-            from rasterio.enums import Resampling
-
-            full = Window(win.col_off, win.row_off, out_w * f, out_h * f)
-            a = ds.read(
-                1, window=full, out_shape=(out_h, out_w), resampling=Resampling.average, masked=True, boundless=True
-            )
-            out = np.ma.filled(a.astype(np.float32), np.nan)
-            return _Grid(out, (left, right, bottom, top), tr, f, ds.crs)
-        fill = 255 if kind == "bits" else np.nan
-        out = np.empty((out_h, out_w), dtype=np.uint8 if kind == "bits" else np.float32)
-        chunk = f * max(1, 4_000_000 // max(1, w * f))
-        nodata = ds.nodata
-        for r in range(0, h, chunk):
-            nr = min(chunk, h - r)
-            a = ds.read(1, window=Window(win.col_off, win.row_off + r, w, nr))
-            if kind == "mean":
-                a = a.astype(np.float64)
-                if nodata is not None and not np.isnan(nodata):
-                    a[a == nodata] = np.nan
-            nb = math.ceil(nr / f)
-            pad = np.full((nb * f, out_w * f), fill, dtype=a.dtype)
-            pad[:nr, :w] = a
-            blocks = pad.reshape(nb, f, out_w, f)
-            if kind == "bits":
-                inside = blocks != 255
-                vals = np.where(inside, blocks, 0).astype(np.uint8)
-                red = np.bitwise_or.reduce(np.bitwise_or.reduce(vals, axis=3), axis=1)
-                red[~inside.any(axis=(1, 3))] = 255
-            else:
-                ok = ~np.isnan(blocks)
-                cnt = ok.sum(axis=(1, 3))
-                tot = np.where(ok, blocks, 0.0).sum(axis=(1, 3))
-                red = np.where(cnt > 0, tot / np.maximum(cnt, 1), np.nan)
-            out[r // f : r // f + nb] = red
+        out = _reduce_window(ds, win, f, kind)
         return _Grid(out, (left, right, bottom, top), tr, f, ds.crs)
+
+
+def _reduce_window(ds, win, f: int, kind: str) -> np.ndarray:
+    """Band 1 of the whole-cell window ``win`` of the open raster ``ds``, reduced by ``f`` (see :func:`_read_reduced`)."""
+    from rasterio.windows import Window
+
+    from landcheck.evidence.display_loops import add_block_bits, add_block_means
+
+    h, w = int(win.height), int(win.width)
+    out_h, out_w = math.ceil(h / f), math.ceil(w / f)
+    if kind == "bits":
+        bits = np.zeros((out_h, out_w), dtype=np.uint8)
+        seen = np.zeros((out_h, out_w), dtype=np.bool_)
+    else:
+        sums = np.zeros((out_h, out_w), dtype=np.float64)
+        counts = np.zeros((out_h, out_w), dtype=np.int64)
+        nodata = ds.nodata
+        has_nodata = nodata is not None and not math.isnan(nodata)
+    chunk = f * max(1, 4_000_000 // max(1, w * f))  # whole blocks of rows, about 4 million cells
+    for r in range(0, h, chunk):
+        a = ds.read(1, window=Window(int(win.col_off), int(win.row_off) + r, w, min(chunk, h - r)))
+        if kind == "bits":
+            add_block_bits(a, a.dtype.type(255), f, r // f, bits, seen)
+        else:
+            add_block_means(a, a.dtype.type(nodata if has_nodata else 0), has_nodata, f, r // f, sums, counts)
+    if kind == "bits":
+        return np.where(seen, bits, np.uint8(255))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(counts > 0, sums / counts, np.nan).astype(np.float32)
 
 
 def _read_relief(folder: AuditFolder, slope: _Grid) -> tuple[np.ndarray, str]:
@@ -372,16 +365,32 @@ def _read_relief(folder: AuditFolder, slope: _Grid) -> tuple[np.ndarray, str]:
                     win = Window(c0, r0, c1 - c0, r1 - r0)
                     eps = 1e-6
                     inside = c0 >= -eps and r0 >= -eps and c1 <= ds.width + eps and r1 <= ds.height + eps
-                    z = ds.read(
-                        1,
-                        window=win,
-                        out_shape=slope.data.shape,
-                        resampling=Resampling.average,
-                        boundless=not inside,
-                        masked=True,
-                        fill_value=ds.nodata if ds.nodata is not None else 0,
+                    f = slope.factor
+                    aligned = (
+                        abs(t.a * f - slope.transform.a) <= 1e-9 * abs(t.a * f)
+                        and abs(t.e * f - slope.transform.e) <= 1e-9 * abs(t.e * f)
+                        and min(c0, r0) >= -eps
+                        and all(abs(v - round(v)) <= 1e-6 for v in (c0, r0))
                     )
-                    z = np.ma.filled(z.astype(np.float64), np.nan)
+                    if aligned:  # on the DEM's own grid (the audit's case): block means as for the slope
+                        c0i, r0i = round(c0), round(r0)
+                        whole = Window(c0i, r0i, min(ds.width, round(c1)) - c0i, min(ds.height, round(r1)) - r0i)
+                        part = _reduce_window(ds, whole, f, "mean")
+                        sh, sw = slope.data.shape[0], slope.data.shape[1]
+                        z = np.full((sh, sw), np.nan)
+                        zh, zw = min(part.shape[0], sh), min(part.shape[1], sw)
+                        z[:zh, :zw] = part[:zh, :zw]
+                    else:
+                        z = ds.read(
+                            1,
+                            window=win,
+                            out_shape=slope.data.shape,
+                            resampling=Resampling.average,
+                            boundless=not inside,
+                            masked=True,
+                            fill_value=ds.nodata if ds.nodata is not None else 0,
+                        )
+                        z = np.ma.filled(z.astype(np.float64), np.nan)
                     zunit = str(folder.section("manifest", "parameters", "z_unit", default="m")).lower()
                     z = z * {"ft": 0.3048, "us-ft": 1200.0 / 3937.0}.get(zunit, 1.0)
                     if np.isnan(z).all():
