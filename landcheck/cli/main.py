@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import atexit
+import contextlib
 import gc
 import logging
+import os
 import signal
 import sys
 import threading
@@ -92,4 +94,25 @@ cli.add_command(prescreen_cmd.command)
 cli.add_command(verify_cmd.command)
 cli.add_command(app_cmd.command)
 
-__all__ = ["cli", "CAUTION", "handle_errors"]
+
+
+def main() -> None:
+    """The ``landcheck`` command and ``python -m landcheck``: :func:`cli`, then exit.
+
+    After Ctrl-C the command has already removed everything it staged and said so (exit 130).
+    Worker threads may still be inside a window's computation; Python's normal exit would wait
+    for each of them to finish its window (seconds on a loaded machine), so the process ends
+    at once instead, after flushing its output (docs/cli.md).
+    """
+    try:
+        cli()
+    except SystemExit as exc:
+        if exc.code == 130:
+            for stream in (sys.stdout, sys.stderr):
+                with contextlib.suppress(Exception):
+                    stream.flush()
+            os._exit(130)
+        raise
+
+
+__all__ = ["cli", "main", "CAUTION", "handle_errors"]
