@@ -334,8 +334,16 @@ def webmap_data(folder: AuditFolder, data: _MapData, breaks: np.ndarray, class_l
 
 
 def _json_for_script(obj) -> str:
-    text = json.dumps(obj, separators=(",", ":"), ensure_ascii=False, allow_nan=False)
-    return re.sub(r"[<>&]", lambda m: _JS_ESCAPES[m.group(0)], text)
+    """``obj`` as JSON text safe inside a ``<script>`` element.
+
+    ASCII only (other characters as ``\\u`` escapes, which JSON.parse decodes): Python keeps an
+    ASCII string at one byte a character, where a single "m²" would make the whole text of tens of
+    MB two bytes a character.  ``<``, ``>`` and ``&`` are escaped the same way.
+    """
+    text = json.dumps(obj, separators=(",", ":"), ensure_ascii=True, allow_nan=False)
+    for ch, esc in _JS_ESCAPES.items():
+        text = text.replace(ch, esc)  # returns the same string when there is nothing to replace
+    return text
 
 
 WEBMAP_CSS = """
