@@ -95,7 +95,6 @@ cli.add_command(verify_cmd.command)
 cli.add_command(app_cmd.command)
 
 
-
 def main() -> None:
     """The ``landcheck`` command and ``python -m landcheck``: :func:`cli`, then exit.
 
