@@ -98,6 +98,26 @@ def settings_from_options(settings: AuditSettings | None = None, **options) -> A
     return dataclasses.replace(base, **kw) if kw else base
 
 
+def audit_raster_sinks(stage: Path, g, fmt: RasterFormat, zone_names: list[str]) -> tuple[RasterSink, RasterSink]:
+    """The streamed writers of ``slope_pct.tif`` and ``conflict.tif`` (docs/outputs.md), for the single run and
+    the region run alike: one definition of their types, nodata values and band names."""
+    slope = RasterSink(stage / "slope_pct.tif", g, dtype="float32", nodata=np.nan, band_names=["slope_pct"], fmt=fmt)
+    try:
+        conflict = RasterSink(
+            stage / "conflict.tif",
+            g,
+            dtype="uint8",
+            nodata=CONFLICT_OUTSIDE,
+            fmt=fmt,
+            categorical=True,
+            band_names=["conflict bits: 1=slope" + "".join(f", {1 << (i + 1)}={z}" for i, z in enumerate(zone_names))],
+        )
+    except BaseException:
+        slope.abort()
+        raise
+    return slope, conflict
+
+
 class _FolderRasters(_RasterHook):
     """Streams the window pass's slope, conflict and capability tiles into the staged folder."""
 
@@ -108,20 +128,8 @@ class _FolderRasters(_RasterHook):
         self.cap_sink = None
 
     def open(self, g, zone_names, capability_spec) -> None:
-        self.slope = RasterSink(
-            self.stage / "slope_pct.tif", g, dtype="float32", nodata=np.nan, band_names=["slope_pct"], fmt=self.fmt
-        )
-        self.sinks.append(self.slope)
-        self.conflict = RasterSink(
-            self.stage / "conflict.tif",
-            g,
-            dtype="uint8",
-            nodata=CONFLICT_OUTSIDE,
-            fmt=self.fmt,
-            categorical=True,
-            band_names=["conflict bits: 1=slope" + "".join(f", {1 << (i + 1)}={z}" for i, z in enumerate(zone_names))],
-        )
-        self.sinks.append(self.conflict)
+        self.slope, self.conflict = audit_raster_sinks(self.stage, g, self.fmt, zone_names)
+        self.sinks += [self.slope, self.conflict]
         if capability_spec is not None:
             from landcheck.verdicts.capability import capability_sink
 
@@ -201,19 +209,19 @@ def _needs_rasters(s: AuditSettings) -> bool:
 CELL_ZONES_FILE = "zones/cells.tif"
 
 
-def _write_cell_zones(stage: Path, run: AuditRun) -> None:
+def write_cell_zones(stage: Path, zones, fmt: RasterFormat) -> list[str] | None:
     """Stream the cell-based zones (HAND, sea-level rise, derived strips) into ``zones/cells.tif``.
 
-    One uint8 band of bit flags, bit k = ``run.summary["cell_zone_bits"][k]``, so the maps can show
-    each zone as its own layer.  Written only when the audit writes rasters; tile by tile from the
-    zone masks, so nothing of the size of the raster is held.
+    One uint8 band of bit flags, bit k = the k-th name returned (summary.json -> ``cell_zone_bits``), so
+    the maps can show each zone as its own layer.  Written only when the audit writes rasters and the
+    rulebook has cell-based zones (else None is returned); tile by tile from the zone masks, so nothing
+    of the size of the raster is held.  The single run and the region run both write it here.
     """
     from landcheck.geo.grid import iter_windows
 
-    zones, s = run.zones, run.settings
     cols = zones.cell_columns
-    if not cols or s.rasters is RasterFormat.NONE:
-        return
+    if not cols or fmt is RasterFormat.NONE:
+        return None
     g = zones.grid
     names = [c.name for c in cols]
     sink = RasterSink(
@@ -221,7 +229,7 @@ def _write_cell_zones(stage: Path, run: AuditRun) -> None:
         g,
         dtype="uint8",
         nodata=None,
-        fmt=s.rasters,
+        fmt=fmt,
         categorical=True,
         band_names=["cell zone bits: " + ", ".join(f"{1 << k}={n}" for k, n in enumerate(names))],
     )
@@ -232,7 +240,7 @@ def _write_cell_zones(stage: Path, run: AuditRun) -> None:
         sink.abort()
         raise
     sink.close()
-    run.summary["cell_zone_bits"] = names
+    return names
 
 
 def write_audit_folder(stage: Path, run: AuditRun) -> None:
@@ -255,7 +263,9 @@ def write_audit_folder(stage: Path, run: AuditRun) -> None:
         write_csv(stage / "reclassification_moves.csv", moves)
     if run.zones is not None:
         run.zones.write_layers(stage)
-        _write_cell_zones(stage, run)
+        names = write_cell_zones(stage, run.zones, run.settings.rasters)
+        if names is not None:
+            run.summary["cell_zone_bits"] = names
     write_gpkg(stage / "parcels.gpkg", run.parcels, layer="parcels")
     write_csv(stage / "parcels.csv", parcels)
     write_csv(stage / "classes.csv", run.classes)
