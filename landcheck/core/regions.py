@@ -1,9 +1,10 @@
 """A country in one run: the audit split into regions, run as tasks on a Dask cluster, merged exactly.
 
 :func:`audit_regions` writes the same output folder as :func:`landcheck.core.audit.audit`
-(``parcels.csv``, ``classes.csv`` byte for byte, ``parcels.gpkg``, ``summary.json``), plus
-``parcels.parquet`` (the per-parcel table as GeoParquet), without one process holding the
-parcels' geometries or the per-parcel work:
+(``parcels.csv``, ``classes.csv``, ``parcels.gpkg``, ``summary.json``, ``slope_pct.tif``,
+``conflict.tif``, ``zones/cells.tif`` and ``report.html``, byte for byte), plus ``parcels.parquet``
+(the per-parcel table as GeoParquet), without one process holding the parcels' geometries, the
+per-parcel work or a whole raster:
 
 1. **Layout.** The DEM grid's windows (``tile_cells``) are grouped into blocks of whole
    windows, the regions (:func:`plan_regions`).  A parcel belongs to the region holding the
@@ -24,6 +25,13 @@ parcels' geometries or the per-parcel work:
    windows of the region's own block, so every cell is counted once.  The per-parcel
    accumulators (integer quanta, :class:`landcheck.overlay.sums.Totals`) are saved to the
    scratch folder, atomically, with a marker naming the run's fingerprint.
+   With rasters, the job also writes the slope and conflict tiles of its own block's windows
+   to two GeoTIFFs in the scratch folder.  A cell of the conflict raster shows the parcel
+   covering most of it (ties: the lower parcel index), and parcels of neighbouring regions
+   reach into the block: the driver gives each job those too (its *halo*, from
+   ``halo-K.parquet``), merged into its parcels in parcel order, so the job's coverage of
+   every window of its block is the single run's; the halo's sums are dropped (and it has no
+   class, so it adds nothing to the class histogram).
 4. **Merge.** The regions' accumulators are added into one :class:`Totals` (exact integer
    additions: region order and layout change no bit), then verdicts, class table and summary
    are computed exactly as :func:`landcheck.core.run.run_audit` computes them.  The per-parcel
@@ -31,6 +39,13 @@ parcels' geometries or the per-parcel work:
    parcels at a time (a parcel's row depends only on its own sums); the driver keeps only the
    numeric and categorical columns the class table and summary sum (same arrays, same pandas
    sums, same bits).
+5. **Rasters and report.**  Every window lies in exactly one region's block, so the driver
+   streams the final ``slope_pct.tif`` and ``conflict.tif`` window by window from the regions'
+   tiles, in the single run's window order and through its writers
+   (:func:`landcheck.core.audit.audit_raster_sinks`): the same bytes, one window in memory.
+   ``zones/cells.tif`` comes from the zone masks as in the single run, and
+   :func:`landcheck.evidence.report.build_report` reads the finished folder (``parcels.gpkg``
+   back from disk: the driver holds no geometry).
 
 Faults.  A worker lost mid-run: Dask reschedules its task on another worker (the job is
 idempotent; its result file is replaced atomically).  A region that raises (bad input met only
@@ -40,10 +55,8 @@ same inputs and settings (same fingerprint: SHA-256 of every input file, the rul
 settings and the layout) resumes them instead of redoing them.  The scratch folder is
 removed once the output folder is published.
 
-Not yet in a region run: rasters (``slope_pct.tif``, ``conflict.tif``: the conflict raster of
-neighbouring regions' windows would need a per-cell merge), the HTML report (it needs the
-rasters), confidence, the capability map and the drafted reclassification; they are refused
-with a message.
+Not yet in a region run: confidence, the capability map and the drafted reclassification; they are
+refused with a message.
 """
 
 from __future__ import annotations
@@ -642,7 +655,8 @@ def audit_regions(
     rules, settings, options
         As :func:`landcheck.core.audit.audit`; ``settings.workers`` sizes the local cluster and
         ``settings.scheduler_address`` sends the region jobs to a running one instead.
-        ``rasters`` must be ``"none"`` and ``report`` False (not yet in region runs).
+        Rasters (``rasters``) and the report (``report``) as in the single run; confidence, the
+        capability map and the drafted reclassification are refused (not yet in region runs).
     regions : ``"auto"`` or int
         Region count (see :func:`plan_regions`).
     on_cluster : callable, optional
@@ -741,8 +755,8 @@ def _drive(
         )
         if conf is not None:
             raise InputDataError(
-                "regions: verdict confidence is not yet run in a region run; pass --skip-confidence "
-                "(or leave [uncertainty] out of the rulebook)."
+                f"regions: verdict confidence is not yet run in a region run; leave out --dem-rmse and the "
+                f"[uncertainty] section of the rulebook {rules.path} (API: skip_confidence=True)."
             )
     layout = plan_regions(g.height, g.width, s.tile_cells, regions)
     nreg = layout.n_regions
