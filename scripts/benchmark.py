@@ -273,6 +273,13 @@ def main(argv=None) -> int:
         help="full: HAND + sea-level rise + derived shore and stream easements; no-routing: without HAND and streams "
         "(no flow routing)",
     )
+    ap.add_argument(
+        "--regions-outputs",
+        choices=["tables", "gtiff", "cog-report"],
+        default="tables",
+        help="what the region run writes: tables only (--rasters none --no-report, the figures of docs/scale.md), "
+        "plus plain tiled GeoTIFF rasters, or the default folder (COG rasters and the report)",
+    )
     args = ap.parse_args(argv)
     if args.regions_run:
         rows = _regions_run(args)
@@ -732,6 +739,9 @@ def _regions_run(args) -> list[dict]:
     cmd = [sys.executable, "-m", "landcheck", "audit", "--dem", str(dem), "--parcels", str(parts)]
     cmd += ["--rulebook", str(rules), "--out", str(out), "--regions", str(args.regions)]
     cmd += ["--workers", str(args.regions_workers)]
+    cmd += {"tables": ["--rasters", "none", "--no-report"], "gtiff": ["--rasters", "gtiff", "--no-report"]}.get(
+        args.regions_outputs, []
+    )
     try:
         m = measure(cmd, env)
         if m["rc"] != 0:
@@ -740,7 +750,10 @@ def _regions_run(args) -> list[dict]:
     finally:
         shutil.rmtree(work, ignore_errors=True)
     rows = []
-    print(f"\nregion run: {n}² DEM ({n * n / 1e6:.0f} M cells), {count} parcels, rules {args.regions_rules}")
+    print(
+        f"\nregion run: {n}² DEM ({n * n / 1e6:.0f} M cells), {count} parcels, rules {args.regions_rules}, "
+        f"outputs {args.regions_outputs}"
+    )
     print(f"{'region':>6} {'parcels':>9} {'windows':>8} {'job s':>8} {'worker peak MiB':>16}")
     for r in ex["region_runs"]:
         rows.append(dict(test="region", size=n, parcels=r["parcels"], windows=r["windows"], s=r["seconds"],
@@ -750,11 +763,14 @@ def _regions_run(args) -> list[dict]:
     overall = dict(
         test="regions-overall", size=n, parcels=count, regions=len(ex["region_runs"]), wall_s=m["wall_s"],
         cpu_s=m["cpu_s"], driver_s=ex["driver_seconds"], driver_peak_mib=ex["driver_peak_mib"],
-        worker_peak_mib=worker_peak, largest_process_mib=m["peak_mib"],
+        worker_peak_mib=worker_peak, largest_process_mib=m["peak_mib"], outputs=args.regions_outputs,
+        report_s=ex.get("report_seconds"),
     )  # fmt: skip
     rows.append(overall)
     print(
-        f"overall: {m['wall_s']:.1f} s wall, {m['cpu_s']:.1f} s CPU (all processes); driver {ex['driver_seconds']:.1f} s, "
+        f"overall: {m['wall_s']:.1f} s wall, {m['cpu_s']:.1f} s CPU (all processes); driver {ex['driver_seconds']:.1f} s"
+        + (f" (+ report {ex['report_seconds']:.1f} s)" if ex.get("report_seconds") is not None else "")
+        + ", "
         f"peak {ex['driver_peak_mib']:.0f} MiB; workers' peak {worker_peak:.0f} MiB; largest process of the tree "
         f"{m['peak_mib']:.0f} MiB (2 GiB target: {'met' if max(m['peak_mib'], worker_peak) <= 2048 else 'NOT met'})"
     )

@@ -1,7 +1,9 @@
 """Region runs (landcheck.core.regions): a 4-region run on a LocalCluster of 2 workers writes the same
-parcels.csv, classes.csv and summary.json bytes as the single-process audit, also when a worker is killed
-mid-run; DEM tiles and partitioned GeoParquet give the same bytes; a failing region names itself and a
-rerun resumes the others.
+parcels.csv, classes.csv, summary.json, slope_pct.tif, conflict.tif and zones/cells.tif bytes as the
+single-process audit, also when a worker is killed mid-run; DEM tiles and partitioned GeoParquet give the
+same bytes; the report of a region run is the single run's page; where parcels of two regions share a
+cell, the conflict raster shows the one the single run shows; a failing region names itself and a rerun
+resumes the others.
 
 The reference for every comparison is the single-process audit of the same inputs (itself checked against
 exactextract, gdaldem and scipy elsewhere in the suite); that a distributed run must reproduce the serial
@@ -13,6 +15,7 @@ from __future__ import annotations
 import filecmp
 import json
 import os
+import re
 import signal
 import time
 from pathlib import Path
@@ -27,6 +30,8 @@ from landcheck.core.regions import audit_regions, plan_regions
 from landcheck.errors import RegionError
 
 TABLES = ("parcels.csv", "classes.csv")
+RASTERS = ("slope_pct.tif", "conflict.tif", "zones/cells.tif")
+BUILT = re.compile(r'<time id="report-built">.*?</time>', re.S)
 
 pytestmark = pytest.mark.slow
 
@@ -46,7 +51,7 @@ def big(tmp_path_factory):
     rules = d / "rules.toml"
     rules.write_text(rd.RULES, encoding="utf-8")
     ref = d / "single"
-    audit(dem, parcels, rules, ref, rasters="none", report=False)
+    audit(dem, parcels, rules, ref, rasters="gtiff", report=False)
     return d, dem, parcels, rules, ref
 
 
@@ -55,12 +60,21 @@ def test_four_regions_two_workers_same_bytes_even_when_a_worker_is_killed(big, m
     d, dem, parcels, rules, ref = big
     out = d / "regions"
     monkeypatch.setattr(regions, "TABLE_ROWS", 6_000)  # the tables in 4 slices (6 000, 6 000, 6 000, 2 000)
-    res = audit_regions(dem, parcels, rules, out, regions=4, workers=2, rasters="none", report=False)
-    _same_bytes(ref, out, (*TABLES, "summary.json"))
+    res = audit_regions(dem, parcels, rules, out, regions=4, workers=2, rasters="gtiff", report=False)
+    _same_bytes(ref, out, (*TABLES, "summary.json", *RASTERS))
     assert res.summary["totals"]["parcels"] == 20_000
     assert res.n_conflicts == res.summary["totals"]["verdict_counts"]["conflict"] > 0
     runs = json.loads((out / "run_times.json").read_text())["execution"]
     assert runs["regions"]["n_regions"] == 4 and len(runs["region_runs"]) == 4
+    # lots straddle the region edges: regions drew their blocks with other regions' lots in them
+    assert sum(r["halo_parcels"] for r in runs["region_runs"]) > 100
+    import rasterio
+
+    with rasterio.open(out / "conflict.tif") as c, rasterio.open(out / "slope_pct.tif") as sl:
+        w = rasterio.windows.Window(1900, 1900, 300, 300)  # rows/cols 1900..2199: a corner of all 4 regions
+        bits, slope = c.read(1, window=w), sl.read(1, window=w)
+    # cells outside every parcel keep their slope (the region blocks cover the DEM), and both kinds are here
+    assert (bits == 255).any() and (bits != 255).any() and np.isfinite(slope[bits == 255]).all()
     assert (out / "parcels.gpkg").is_file() and (out / "parcels.parquet").is_file()
     assert not (d / ".regions.regions").exists()  # scratch removed after publishing
 
@@ -81,17 +95,19 @@ def test_four_regions_two_workers_same_bytes_even_when_a_worker_is_killed(big, m
 
     out2 = d / "regions_killed"
     audit_regions(
-        dem, parcels, rules, out2, regions=4, workers=2, rasters="none", report=False, on_cluster=kill_a_busy_worker
+        dem, parcels, rules, out2, regions=4, workers=2, rasters="gtiff", report=False, on_cluster=kill_a_busy_worker
     )
     assert killed
     runs = json.loads((out2 / "run_times.json").read_text())["execution"]["region_runs"]
     assert killed[0] not in {r["pid"] for r in runs}  # every region's result came from a live worker
-    _same_bytes(ref, out2, (*TABLES, "summary.json"))
+    _same_bytes(ref, out2, (*TABLES, "summary.json", *RASTERS))
 
 
 @pytest.fixture(scope="module")
 def small(tmp_path_factory):
-    """1200² DEM as one file and as 4 x 4 tiles, 1 500 lots as GeoPackage and partitioned GeoParquet."""
+    """1200² DEM as one file and as 4 x 4 tiles, 1 500 lots as GeoPackage and partitioned GeoParquet; the
+    single-process audit with tables only (``single``) and with its defaults: COG rasters and the report
+    (``single_cog``)."""
     d = tmp_path_factory.mktemp("regions_small")
     dem = rd.make_dem(d / "dem.tif", 1200, block=256)
     tiles = rd.make_dem(d / "tiles", 1200, tiles=4, block=256)
@@ -103,6 +119,7 @@ def small(tmp_path_factory):
     rules.write_text(rd.RULES, encoding="utf-8")
     ref = d / "single"
     audit(dem, parcels, rules, ref, rasters="none", report=False, tile_cells=200)
+    audit(dem, parcels, rules, d / "single_cog", tile_cells=200)
     return d, dem, tiles, parcels, parts, rules, ref
 
 
@@ -169,7 +186,7 @@ def test_failing_region_names_itself_and_a_rerun_resumes_the_others(small):
             os.replace(work / "dem_3_3.tif", hidden)
 
     out = d / "failing"
-    kw = dict(regions=4, workers=2, tile_cells=200, rasters="none", report=False)
+    kw = dict(regions=4, workers=2, tile_cells=200, rasters="gtiff", report=False)
     with pytest.raises(RegionError, match=r"^region 4 of 4 \(DEM rows 600\.\.1199, cols 600\.\.1199"):
         audit_regions(work, parcels, rules, out, on_step=on_step, **kw)
     assert not out.exists()
@@ -180,6 +197,12 @@ def test_failing_region_names_itself_and_a_rerun_resumes_the_others(small):
     assert "3 of 4 regions finished in an earlier run: resumed, not redone" in steps
     assert sum(s.startswith("region ") and " done: " in s for s in steps) == 1
     _same_bytes(ref, out)
+    # the resumed regions' tiles (kept in the scratch folder) and the redone one's: the single run's cells
+    import rasterio
+
+    for name in RASTERS:
+        with rasterio.open(out / name) as a, rasterio.open(d / "single_cog" / name) as b:
+            assert np.array_equal(a.read(1), b.read(1), equal_nan=True), name
     assert not (d / ".failing.regions").exists()  # scratch removed once published
 
 
@@ -197,6 +220,31 @@ def test_layout_blocks_of_whole_windows():
         plan_regions(1000, 1000, 1024, 4)
 
 
+def _page(path: Path, upto_manifest: bool = False) -> str:
+    """report.html without its build time (common practice, as tests/test_reproducible.py compares reports);
+    optionally only the part before the run manifest (which names the input files)."""
+    page = BUILT.sub("", path.read_text(encoding="utf-8"))
+    return page[: page.index('id="manifest"')] if upto_manifest else page
+
+
+def test_region_run_report_and_cog_rasters_are_the_single_runs(small):
+    # common practice: the distributed run reproduces the serial run bit for bit (module docstring); the
+    # reference is the single-process audit with its defaults (COG rasters and the report)
+    d, dem, tiles, parcels, parts, rules, ref = small
+    single = d / "single_cog"
+    out = d / "regions_cog"
+    audit_regions(dem, parcels, rules, out, regions=4, workers=2, tile_cells=200)  # defaults: COG + report
+    _same_bytes(single, out, (*TABLES, "summary.json", *RASTERS, "parcels.gpkg"))
+    runs = json.loads((out / "run_times.json").read_text())["execution"]
+    assert sum(r["halo_parcels"] for r in runs["region_runs"]) > 0  # lots straddle the region edges
+    # the report reads the same folder files, so it is the same page: every figure, map and per-parcel row
+    assert _page(out / "report.html") == _page(single / "report.html")
+    page = (out / "report.html").read_text(encoding="utf-8")
+    ids = [line.split(",", 1)[0] for line in (out / "parcels.csv").read_text().splitlines()[1:]]
+    assert len(ids) == 1500 and all(f">{i}</td>" in page for i in ids[:: len(ids) // 25])
+    assert "not a survey or legal determination" in page  # the caution (landcheck.about.CAUTION)
+
+
 def test_cli_regions(small):
     # common practice: the command line gives what the API gives (same bytes as the single run)
     import subprocess
@@ -208,12 +256,20 @@ def test_cli_regions(small):
     cmd += ["--rulebook", str(rules), "--out", str(out), "--regions", "2", "--workers", "2", "--tile-size", "200"]
     r = subprocess.run(cmd, capture_output=True, text=True, timeout=600)
     assert r.returncode == 0, r.stderr
-    assert "region 2/2 done" in r.stderr and "regions merged" in r.stderr
+    assert "region 2/2 done" in r.stderr and "regions merged" in r.stderr and "building the report" in r.stderr
     _same_bytes(ref, out)
+    # rasters and the report by default, as the single run: the same rasters, and the same page up to its
+    # manifest (which names the tiles and the GeoParquet parts); the relief is drawn from the tiles' mosaic
+    _same_bytes(d / "single_cog", out, RASTERS)
+    assert _page(out / "report.html", upto_manifest=True) == _page(d / "single_cog" / "report.html", True)
+    assert "dem_1_2.tif" in _page(out / "report.html")
     bad = subprocess.run(
-        [*cmd[:-8], "--out", str(d / "cli2"), "--regions", "2", "--rasters", "gtiff"], capture_output=True, text=True
+        [*cmd[:-8], "--out", str(d / "cli2"), "--regions", "2", "--capability-map", "planning-6"],
+        capture_output=True,
+        text=True,
     )
-    assert bad.returncode == 3 and "--rasters none" in bad.stderr
+    assert bad.returncode == 3 and "the capability map (leave out --capability-map)" in bad.stderr
+    assert not (d / "cli2").exists()
 
 
 def test_tables_in_slices_of_parcels_give_the_whole_tables_bytes(tmp_path):
@@ -291,3 +347,42 @@ def test_tables_in_slices_of_parcels_give_the_whole_tables_bytes(tmp_path):
     ):
         expected = (totals.over_m2[sel][:, idx].sum(axis=0) / totals.evaluated_m2[sel].sum()).tolist()
         assert (got["all_development"] if name == "all" else got["classes"][name]) == expected
+
+
+def test_cells_shared_by_parcels_of_two_regions_show_the_single_runs_parcel(tmp_path):
+    # Source: the ramp's slope is exactly 0.04·x % at a cell centre x metres east (docs/references.md §1), so
+    # 13 % at the cells of column 32 and 12.6 % at column 31, over the residential limit of 5 %; a boundary
+    # through a cell's middle covers exactly half of it (docs/references.md §15). The conflict raster shows
+    # the parcel covering most of a cell, ties to the earlier parcel (docs/outputs.md); the region run must
+    # give the single run's bytes (common practice, module docstring).
+    import rasterio
+    import shapely
+    from _support import ramp_dem, write_parcels, write_rules
+
+    dem = ramp_dem(tmp_path / "dem.tif", n=64)  # 64 x 64 cells of 10 m; 4 regions of 32 x 32 cells
+    rules = write_rules(tmp_path / "rules.toml", limit=5.0)
+    x0, y0 = 400000.0, 1600000.0
+
+    def lot(c0: float, c1: float, r0: int, r1: int):
+        return shapely.box(x0 + 10 * c0, y0 - 10 * r1, x0 + 10 * c1, y0 - 10 * r0)
+
+    # region edge between columns 31 and 32; each lot's own region is the one holding its middle
+    geoms = [
+        lot(20, 32.5, 8, 16),  # pid 1, R, west: ties with pid 2 on column 32 (east region), wins by order
+        lot(32.5, 45, 8, 16),  # pid 2, F, east
+        lot(32.5, 45, 40, 48),  # pid 3, F, east: ties with pid 4 on column 32, wins by order
+        lot(20, 32.5, 40, 48),  # pid 4, R, west
+        lot(20, 32.7, 20, 28),  # pid 5, R, west: 70 % of each column-32 cell
+        lot(32.7, 45, 20, 28),  # pid 6, F, east: 30 %
+    ]
+    parcels = write_parcels(tmp_path / "p.gpkg", geoms, pid=np.arange(1, 7), zoning=["R", "F", "F", "R", "R", "F"])
+    kw = dict(tile_cells=16, rasters="gtiff", report=False)
+    audit(dem, parcels, rules, tmp_path / "single", **kw)
+    audit_regions(dem, parcels, rules, tmp_path / "regions", regions=4, workers=1, **kw)
+    _same_bytes(tmp_path / "single", tmp_path / "regions", ("conflict.tif", "slope_pct.tif", *TABLES))
+    with rasterio.open(tmp_path / "regions" / "conflict.tif") as ds:
+        bits = ds.read(1)
+    assert (bits[8:16, 31:33] == 1).all() and (bits[8:16, 33] == 0).all()  # pid 1 on column 32
+    assert (bits[40:48, 31] == 1).all() and (bits[40:48, 32:34] == 0).all()  # pid 3 on column 32
+    assert (bits[20:28, 31:33] == 1).all() and (bits[20:28, 33] == 0).all()  # pid 5 on column 32
+    assert (bits[:8] == 255).all() and (bits[8:16, 19] == 255).all()  # outside every lot

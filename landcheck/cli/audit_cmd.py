@@ -201,7 +201,8 @@ Examples:
     metavar="auto|N",
     callback=lambda ctx, param, v: _regions_value(v),
     help="Split the run into region jobs (blocks of whole windows) on a Dask cluster: a local one, or "
-    "--scheduler's; tables only (no rasters or report); a rerun resumes finished regions. --dem may then "
+    "--scheduler's; the same output folder as a single run (tables, rasters, report) plus parcels.parquet; "
+    "a rerun resumes finished regions. --dem may then "
     "also be a folder of tiles or a .txt list of tiles, --parcels a partitioned GeoParquet folder "
     "(docs/scale.md).",
 )
@@ -241,11 +242,6 @@ def command(
     as_json,
     fail_on_conflict,
 ):
-    if regions is not None:
-        # region runs write tables only: rasters none and no report unless asked for (then refused, with why)
-        if ctx.get_parameter_source("rasters") is click.core.ParameterSource.DEFAULT:
-            rasters = "none"
-        no_report = True
     if capability_scheme is not None and "," in capability_scheme:
         try:
             capability_scheme = [float(b) for b in capability_scheme.split(",")]

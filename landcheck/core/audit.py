@@ -99,6 +99,26 @@ def settings_from_options(settings: AuditSettings | None = None, **options) -> A
     return dataclasses.replace(base, **kw) if kw else base
 
 
+def audit_raster_sinks(stage: Path, g, fmt: RasterFormat, zone_names: list[str]) -> tuple[RasterSink, RasterSink]:
+    """The streamed writers of ``slope_pct.tif`` and ``conflict.tif`` (docs/outputs.md), for the single run and
+    the region run alike: one definition of their types, nodata values and band names."""
+    slope = RasterSink(stage / "slope_pct.tif", g, dtype="float32", nodata=np.nan, band_names=["slope_pct"], fmt=fmt)
+    try:
+        conflict = RasterSink(
+            stage / "conflict.tif",
+            g,
+            dtype="uint8",
+            nodata=CONFLICT_OUTSIDE,
+            fmt=fmt,
+            categorical=True,
+            band_names=["conflict bits: 1=slope" + "".join(f", {1 << (i + 1)}={z}" for i, z in enumerate(zone_names))],
+        )
+    except BaseException:
+        slope.abort()
+        raise
+    return slope, conflict
+
+
 class _FolderRasters(_RasterHook):
     """Streams the window pass's slope, conflict and capability tiles into the staged folder."""
 
@@ -109,20 +129,8 @@ class _FolderRasters(_RasterHook):
         self.cap_sink = None
 
     def open(self, g, zone_names, capability_spec) -> None:
-        self.slope = RasterSink(
-            self.stage / "slope_pct.tif", g, dtype="float32", nodata=np.nan, band_names=["slope_pct"], fmt=self.fmt
-        )
-        self.sinks.append(self.slope)
-        self.conflict = RasterSink(
-            self.stage / "conflict.tif",
-            g,
-            dtype="uint8",
-            nodata=CONFLICT_OUTSIDE,
-            fmt=self.fmt,
-            categorical=True,
-            band_names=["conflict bits: 1=slope" + "".join(f", {1 << (i + 1)}={z}" for i, z in enumerate(zone_names))],
-        )
-        self.sinks.append(self.conflict)
+        self.slope, self.conflict = audit_raster_sinks(self.stage, g, self.fmt, zone_names)
+        self.sinks += [self.slope, self.conflict]
         if capability_spec is not None:
             from landcheck.verdicts.capability import capability_sink
 
@@ -168,6 +176,12 @@ class _FolderRasters(_RasterHook):
     def discard_scratch(self) -> None:
         for s in self.sinks:
             s.discard_scratch()
+
+    def close(self) -> None:
+        """Finish and publish every raster, then drop the scratch files (when nothing reads them meanwhile)."""
+        self.finish()
+        self.publish()
+        self.discard_scratch()
 
     def abort(self) -> None:
         for s in self.sinks:
@@ -231,21 +245,29 @@ AFTER_PASS_GDAL_CACHE_BYTES = 16 * 2**20
 CELL_ZONES_FILE = "zones/cells.tif"
 
 
-def _write_cell_zones(stage: Path, run: AuditRun) -> RasterSink | None:
+def write_cell_zones(stage: Path, zones, fmt: RasterFormat) -> list[str] | None:
     """Stream the cell-based zones (HAND, sea-level rise, derived strips) into ``zones/cells.tif``.
 
-    One uint8 band of bit flags, bit k = ``run.summary["cell_zone_bits"][k]``, so the maps can show
-    each zone as its own layer.  Written only when the audit writes rasters; tile by tile from the
-    zone masks, so nothing of the size of the raster is held.  Returns the finished sink, to be
-    published (:meth:`RasterSink.publish`) by the caller; None when there is nothing to write.
+    One uint8 band of bit flags, bit k = the k-th name returned (summary.json -> ``cell_zone_bits``), so
+    the maps can show each zone as its own layer.  Written only when the audit writes rasters and the
+    rulebook has cell-based zones (else None is returned); tile by tile from the zone masks, so nothing
+    of the size of the raster is held.  The single run and the region run both write it here.
     """
+    done = _cell_zones_sink(stage, zones, fmt)
+    if done is None:
+        return None
+    names, sink = done
+    sink.close()
+    return names
+
+
+def _cell_zones_sink(stage: Path, zones, fmt: RasterFormat) -> tuple[list[str], RasterSink] | None:
+    """:func:`write_cell_zones` up to a finished, not yet published writer (the single run publishes it on
+    the raster thread with the pass's rasters)."""
     from landcheck.geo.grid import iter_windows
 
-    zones, s = run.zones, run.settings
-    if zones is None:
-        return None
     cols = zones.cell_columns
-    if not cols or s.rasters is RasterFormat.NONE:
+    if not cols or fmt is RasterFormat.NONE:
         return None
     g = zones.grid
     names = [c.name for c in cols]
@@ -254,7 +276,7 @@ def _write_cell_zones(stage: Path, run: AuditRun) -> RasterSink | None:
         g,
         dtype="uint8",
         nodata=None,
-        fmt=s.rasters,
+        fmt=fmt,
         categorical=True,
         band_names=["cell zone bits: " + ", ".join(f"{1 << k}={n}" for k, n in enumerate(names))],
     )
@@ -265,8 +287,7 @@ def _write_cell_zones(stage: Path, run: AuditRun) -> RasterSink | None:
     except BaseException:
         sink.abort()
         raise
-    run.summary["cell_zone_bits"] = names
-    return sink
+    return names, sink
 
 
 def write_audit_folder(stage: Path, run: AuditRun, *, cell_zones_written: bool = False) -> None:
@@ -293,10 +314,10 @@ def write_audit_folder(stage: Path, run: AuditRun, *, cell_zones_written: bool =
         write_csv(stage / "reclassification_moves.csv", moves)
     if run.zones is not None:
         run.zones.write_layers(stage)
-    if not cell_zones_written:
-        sink = _write_cell_zones(stage, run)
-        if sink is not None:
-            sink.close()
+        if not cell_zones_written:
+            names = write_cell_zones(stage, run.zones, run.settings.rasters)
+            if names is not None:
+                run.summary["cell_zone_bits"] = names
     write_gpkg(stage / "parcels.gpkg", run.parcels, layer="parcels")
     write_csv(stage / "parcels.csv", parcels)
     write_csv(stage / "classes.csv", run.classes)
@@ -353,8 +374,10 @@ def audit(
         cells = None
         if hook is not None:
             try:
-                cells = _write_cell_zones(stage, run)
-                hook.adopt(cells)
+                cells = _cell_zones_sink(stage, run.zones, s.rasters) if run.zones is not None else None
+                if cells is not None:
+                    run.summary["cell_zone_bits"] = cells[0]
+                    hook.adopt(cells[1])
                 hook.finish()
             except BaseException:
                 hook.abort()

@@ -1,9 +1,10 @@
 """A country in one run: the audit split into regions, run as tasks on a Dask cluster, merged exactly.
 
 :func:`audit_regions` writes the same output folder as :func:`landcheck.core.audit.audit`
-(``parcels.csv``, ``classes.csv`` byte for byte, ``parcels.gpkg``, ``summary.json``), plus
-``parcels.parquet`` (the per-parcel table as GeoParquet), without one process holding the
-parcels' geometries or the per-parcel work:
+(``parcels.csv``, ``classes.csv``, ``parcels.gpkg``, ``summary.json``, ``slope_pct.tif``,
+``conflict.tif``, ``zones/cells.tif`` and ``report.html``, byte for byte), plus ``parcels.parquet``
+(the per-parcel table as GeoParquet), without one process holding the parcels' geometries, the
+per-parcel work or a whole raster:
 
 1. **Layout.** The DEM grid's windows (``tile_cells``) are grouped into blocks of whole
    windows, the regions (:func:`plan_regions`).  A parcel belongs to the region holding the
@@ -24,6 +25,13 @@ parcels' geometries or the per-parcel work:
    windows of the region's own block, so every cell is counted once.  The per-parcel
    accumulators (integer quanta, :class:`landcheck.overlay.sums.Totals`) are saved to the
    scratch folder, atomically, with a marker naming the run's fingerprint.
+   With rasters, the job also writes the slope and conflict tiles of its own block's windows
+   to two GeoTIFFs in the scratch folder.  A cell of the conflict raster shows the parcel
+   covering most of it (ties: the lower parcel index), and parcels of neighbouring regions
+   reach into the block: the driver gives each job those too (its *halo*, from
+   ``halo-K.parquet``), merged into its parcels in parcel order, so the job's coverage of
+   every window of its block is the single run's; the halo's sums are dropped (and it has no
+   class, so it adds nothing to the class histogram).
 4. **Merge.** The regions' accumulators are added into one :class:`Totals` (exact integer
    additions: region order and layout change no bit), then verdicts, class table and summary
    are computed exactly as :func:`landcheck.core.run.run_audit` computes them.  The per-parcel
@@ -31,6 +39,13 @@ parcels' geometries or the per-parcel work:
    parcels at a time (a parcel's row depends only on its own sums); the driver keeps only the
    numeric and categorical columns the class table and summary sum (same arrays, same pandas
    sums, same bits).
+5. **Rasters and report.**  Every window lies in exactly one region's block, so the driver
+   streams the final ``slope_pct.tif`` and ``conflict.tif`` window by window from the regions'
+   tiles, in the single run's window order and through its writers
+   (:func:`landcheck.core.audit.audit_raster_sinks`): the same bytes, one window in memory.
+   ``zones/cells.tif`` comes from the zone masks as in the single run, and
+   :func:`landcheck.evidence.report.build_report` reads the finished folder (``parcels.gpkg``
+   back from disk: the driver holds no geometry).
 
 Faults.  A worker lost mid-run: Dask reschedules its task on another worker (the job is
 idempotent; its result file is replaced atomically).  A region that raises (bad input met only
@@ -40,10 +55,8 @@ same inputs and settings (same fingerprint: SHA-256 of every input file, the rul
 settings and the layout) resumes them instead of redoing them.  The scratch folder is
 removed once the output folder is published.
 
-Not yet in a region run: rasters (``slope_pct.tif``, ``conflict.tif``: the conflict raster of
-neighbouring regions' windows would need a per-cell merge), the HTML report (it needs the
-rasters), confidence, the capability map and the drafted reclassification; they are refused
-with a message.
+Not yet in a region run: confidence, the capability map and the drafted reclassification; they are
+refused with a message.
 """
 
 from __future__ import annotations
@@ -204,6 +217,11 @@ class RegionTask:
     zones: Any = None
     n_parcels: int = 0
     where: str = ""
+    #: the slope and conflict tiles of the region's own block go to per-region rasters in the scratch folder
+    rasters: bool = False
+    #: parcels of other regions whose windows meet this region's block (``halo-K.parquet``): in the job's
+    #: coverage for the conflict raster only (which parcel covers most of a cell), never in its sums
+    n_halo: int = 0
 
 
 def _result_paths(scratch: str, k: int) -> tuple[Path, Path]:
@@ -211,13 +229,23 @@ def _result_paths(scratch: str, k: int) -> tuple[Path, Path]:
     return d / f"region-{k:05d}.npz", d / f"region-{k:05d}.json"
 
 
-def _finished(scratch: str, k: int, fingerprint: str) -> dict | None:
+def _raster_paths(scratch: str, k: int) -> tuple[Path, Path]:
+    """The region's slope and conflict tiles (its own block), beside its accumulators."""
+    d = Path(scratch) / "results"
+    return d / f"region-{k:05d}-slope.tif", d / f"region-{k:05d}-conflict.tif"
+
+
+def _finished(scratch: str, k: int, fingerprint: str, rasters: bool = False) -> dict | None:
+    """The marker of region ``k`` when it finished with this fingerprint (and wrote its rasters when
+    ``rasters``: a region finished by a tables-only run is redone for them), else None."""
     npz, marker = _result_paths(scratch, k)
     try:
         info = json.loads(marker.read_text(encoding="utf-8"))
     except (OSError, ValueError):
         return None
     if info.get("fingerprint") != fingerprint or not npz.is_file():
+        return None
+    if rasters and not all(p.is_file() for p in _raster_paths(scratch, k)):
         return None
     return info
 
@@ -248,23 +276,28 @@ def _emit(task: RegionTask, done: int, total: int) -> None:
 
 def run_region(task: RegionTask) -> dict:
     """Run one region's window pass and save its accumulators in the scratch folder; return its figures."""
-    import shapely
 
     from landcheck.core.window_pass import WindowJob
     from landcheck.overlay.sums import Totals
 
-    done = _finished(task.scratch, task.index, task.fingerprint)
+    done = _finished(task.scratch, task.index, task.fingerprint, task.rasters)
     if done is not None:  # a rescheduled task whose first attempt finished writing
         return done
     started = time.perf_counter()
+    sinks: list = []
     try:
-        import pyarrow.parquet as pq
-
-        table = pq.read_table(Path(task.scratch) / "parcels" / f"region-{task.index:05d}.parquet")
-        gidx = table.column("gidx").to_numpy()
-        geoms = shapely.from_wkb(table.column("wkb").to_numpy(zero_copy_only=False))
-        if len(gidx) != task.n_parcels:
-            raise InputDataError(f"parcel partition holds {len(gidx)} parcels, the driver wrote {task.n_parcels}")
+        gidx, geoms = _read_partition(task.scratch, f"region-{task.index:05d}", task.n_parcels)
+        own = None  # all the job's parcels are the region's own
+        if task.rasters:
+            # the halo: other regions' parcels in this block's windows, merged in parcel order, so the
+            # conflict raster's "parcel covering most of the cell (ties: lower parcel index)" sees every
+            # parcel the single run sees there
+            hidx, hgeoms = _read_partition(task.scratch, f"halo-{task.index:05d}", task.n_halo)
+            if len(hidx):
+                both = np.concatenate([gidx, hidx])
+                order = np.argsort(both, kind="stable")
+                own = np.concatenate([np.ones(len(gidx), bool), np.zeros(len(hidx), bool)])[order]
+                gidx, geoms = both[order], np.concatenate([geoms, hgeoms])[order]
         plan = task.plan
         all_geoms = geoms
         if task.zones is not None:
@@ -278,27 +311,43 @@ def run_region(task: RegionTask) -> dict:
                     geom_parcel=np.concatenate([plan.geom_parcel, piece_parcel]),
                     geom_role=np.concatenate([plan.geom_role, piece_role]),
                 )
-        job = WindowJob(task.dem, task.method, all_geoms, plan, task.zones, capability=None, keep_rasters=False)
+        job = WindowJob(task.dem, task.method, all_geoms, plan, task.zones, capability=None, keep_rasters=task.rasters)
         totals = Totals(len(gidx), len(plan.thresholds_pct), plan.n_cols, plan.n_classes)
         wr0, wr1, wc0, wc1 = task.own
+        r0, r1, c0, c1 = task.layout.cells(task.index)
+        if task.rasters:
+            sinks = _region_sinks(task.scratch, task.index, task.dem.grid, Window(r0, c0, r1 - r0, c1 - c0))
         n = len(task.windows)
         step = max(1, n // 10)
         for i, (wr, wc) in enumerate(task.windows):
-            out = job(task.layout.window(wr, wc))
+            win = task.layout.window(wr, wc)
+            out = job(win)
             sums: Any = out.sums
             if not (wr0 <= wr < wr1 and wc0 <= wc < wc1):  # another region's cells: its land is counted there
                 sums = dataclasses.replace(sums, land_m2=0.0, land_within_m2=0.0)
+            elif sinks:  # a window of its own block: its tiles are the whole run's
+                local = Window(win.row_off - r0, win.col_off - c0, win.height, win.width)
+                sinks[0].write(local, out.slope_pct)
+                sinks[1].write(local, out.conflict)
             totals.add(sums)
             if (i + 1) % step == 0 or i + 1 == n:
                 _emit(task, i + 1, n)
+        for sink in sinks:
+            sink.close()
+        sinks = []
     except Exception as exc:
+        for sink in sinks:
+            sink.abort()
         raise RegionError(
             f"region {task.index + 1} of {task.n_regions} ({task.where}): {type(exc).__name__}: {exc}"
         ) from None
+    arrays = totals.to_arrays()
+    if own is not None:  # the halo parcels' sums belong to their own regions
+        gidx, arrays = gidx[own], _rows_of(arrays, own)
     npz, marker = _result_paths(task.scratch, task.index)
     npz.parent.mkdir(parents=True, exist_ok=True)
     tmp = npz.with_name(f".{npz.name}.{os.getpid()}.tmp.npz")
-    np.savez(tmp, gidx=gidx, **totals.to_arrays())
+    np.savez(tmp, gidx=gidx, **arrays)
     os.replace(tmp, npz)
     import socket
 
@@ -306,6 +355,7 @@ def run_region(task: RegionTask) -> dict:
         "fingerprint": task.fingerprint,
         "region": task.index,
         "parcels": int(len(gidx)),
+        "halo_parcels": task.n_halo,
         "windows": n,
         "seconds": round(time.perf_counter() - started, 3),
         "peak_mib": round(_peak_mib(), 1),
@@ -316,6 +366,43 @@ def run_region(task: RegionTask) -> dict:
     tmpj.write_text(json.dumps(info, indent=1), encoding="utf-8")
     os.replace(tmpj, marker)
     return info
+
+
+def _read_partition(scratch: str, name: str, expected: int) -> tuple[np.ndarray, np.ndarray]:
+    """Parcel indices and geometries of one scratch partition (``parcels/NAME.parquet``)."""
+    import pyarrow.parquet as pq
+    import shapely
+
+    table = pq.read_table(Path(scratch) / "parcels" / f"{name}.parquet")
+    gidx = table.column("gidx").to_numpy()
+    if len(gidx) != expected:
+        raise InputDataError(f"parcel partition {name} holds {len(gidx)} parcels, the driver wrote {expected}")
+    return gidx, shapely.from_wkb(table.column("wkb").to_numpy(zero_copy_only=False))
+
+
+def _rows_of(arrays: dict, keep: np.ndarray) -> dict:
+    """:meth:`Totals.to_arrays` restricted to the parcels ``keep`` (the per-class histogram and the land
+    figures are not per parcel: kept whole)."""
+    return {k: v if k in ("q_class_hist_m2", "q_land") else v[keep] for k, v in arrays.items()}
+
+
+def _region_sinks(scratch: str, k: int, g, block: Window) -> list:
+    """Writers of region ``k``'s slope and conflict tiles: plain tiled GeoTIFFs of its block (the final
+    rasters' types and nodata), renamed into place when the region's windows are all written."""
+    from landcheck.outputs.writers import RasterFormat, RasterSink
+    from landcheck.overlay.sums import CONFLICT_OUTSIDE
+
+    sub = dataclasses.replace(g, transform=g.window_transform(block), width=block.width, height=block.height)
+    slope_path, conflict_path = _raster_paths(scratch, k)
+    slope_path.parent.mkdir(parents=True, exist_ok=True)
+    kw: dict = dict(overwrite=True, fmt=RasterFormat.GTIFF)
+    slope = RasterSink(slope_path, sub, dtype="float32", nodata=np.nan, **kw)
+    try:
+        conflict = RasterSink(conflict_path, sub, dtype="uint8", nodata=CONFLICT_OUTSIDE, **kw)
+    except BaseException:
+        slope.abort()
+        raise
+    return [slope, conflict]
 
 
 # --------------------------------------------------------------------------- the driver
@@ -338,20 +425,14 @@ def _scratch_for(out: Path) -> Path:
 
 
 def _refuse_unsupported(s: AuditSettings) -> None:
-    from landcheck.outputs.writers import RasterFormat
-
     what = []
-    if s.rasters is not RasterFormat.NONE:
-        what.append("rasters (pass --rasters none)")
-    if s.report:
-        what.append("the HTML report (pass --no-report)")
     if s.capability is not None:
-        what.append("the capability map")
+        what.append("the capability map (leave out --capability-map)")
     if s.draft_mmu_m2 is not None:
-        what.append("the drafted reclassification")
+        what.append("the drafted reclassification (leave out --draft-reclassification)")
     if what:
         raise InputDataError(
-            "regions: a region run writes the tables and summary only (docs/scale.md); not yet: "
+            "regions: a region run writes the tables, summary, rasters and report (docs/scale.md); not yet: "
             + "; ".join(what)
             + "."
         )
@@ -371,6 +452,8 @@ class _Parcels:
         self.region: list = []
         self.rects: list = []  # (wr0, wr1, wc0, wc1) per parcel, -1 when it touches no window
         self.wheres: list[str] = []
+        self.halo_parcel: list = []  # (parcel, region) pairs of the halos (rasters only)
+        self.halo_region: list = []
 
 
 def _release_memory() -> None:
@@ -427,14 +510,40 @@ def _windows_of(geoms, g, layout: RegionLayout) -> tuple[np.ndarray, np.ndarray]
     return region, rects
 
 
-class _PartWriters:
-    """Per-region GeoParquet of the parcels' geometries (``gidx``, ``wkb``), plus one in parcel order."""
+def _halo_pairs(rects: np.ndarray, region: np.ndarray, layout: RegionLayout) -> tuple[np.ndarray, np.ndarray]:
+    """``(parcel, region)`` for every region other than a parcel's own whose block meets the windows of
+    the parcel's bounds: that region's job must see the parcel to draw its block's conflict raster."""
+    re_, ce = np.asarray(layout.row_edges), np.asarray(layout.col_edges)
+    ok = rects[:, 0] >= 0
+    i0 = np.searchsorted(re_, rects[:, 0], side="right") - 1
+    i1 = np.searchsorted(re_, rects[:, 1] - 1, side="right") - 1
+    j0 = np.searchsorted(ce, rects[:, 2], side="right") - 1
+    j1 = np.searchsorted(ce, rects[:, 3] - 1, side="right") - 1
+    cand = np.flatnonzero(ok & ((i0 != i1) | (j0 != j1) | (i0 * layout.n_cols + j0 != region)))
+    pairs = [
+        (p, k)
+        for p in cand.tolist()
+        for i in range(int(i0[p]), int(i1[p]) + 1)
+        for j in range(int(j0[p]), int(j1[p]) + 1)
+        if (k := i * layout.n_cols + j) != region[p]
+    ]
+    if not pairs:
+        return np.empty(0, np.int64), np.empty(0, np.int64)
+    a = np.array(pairs, dtype=np.int64)
+    return a[:, 0], a[:, 1]
 
-    def __init__(self, folder: Path, n_regions: int):
+
+class _PartWriters:
+    """Per-region GeoParquet of the parcels' geometries (``gidx``, ``wkb``), plus one in parcel order and,
+    for the rasters, one per region of the other regions' parcels reaching into its block (``halo-K``)."""
+
+    def __init__(self, folder: Path, n_regions: int, halo: bool = False):
         self.folder = folder
         self.n = n_regions
+        self.halo = halo
         self.writers: dict = {}
         self.counts = np.zeros(n_regions, np.int64)
+        shutil.rmtree(folder, ignore_errors=True)  # partitions of an earlier run (other inputs) are not reused
         folder.mkdir(parents=True, exist_ok=True)
 
     def _writer(self, name: str):
@@ -447,7 +556,7 @@ class _PartWriters:
             w = self.writers[name] = pq.ParquetWriter(self.folder / f"{name}.parquet", schema)
         return w
 
-    def add(self, gidx: np.ndarray, geoms, region: np.ndarray) -> None:
+    def add(self, gidx: np.ndarray, geoms, region: np.ndarray, halo: tuple[np.ndarray, np.ndarray] | None = None):
         import pyarrow as pa
         import shapely
 
@@ -455,6 +564,14 @@ class _PartWriters:
         self._writer("ordered").write_table(
             pa.table({"gidx": gidx, "wkb": pa.array(wkb, pa.binary())}), row_group_size=TABLE_ROWS
         )
+        self._split(gidx, wkb, np.arange(len(gidx)), region, "region")
+        if halo is not None:
+            self._split(gidx, wkb, *halo, "halo")
+
+    def _split(self, gidx: np.ndarray, wkb: np.ndarray, rows: np.ndarray, region: np.ndarray, name: str) -> None:
+        """Append ``rows`` to the partition ``NAME-K`` of their region ``K`` (in row order within each)."""
+        import pyarrow as pa
+
         order = np.argsort(region, kind="stable")
         rs = region[order]
         cuts = np.flatnonzero(np.diff(rs)) + 1
@@ -462,9 +579,11 @@ class _PartWriters:
             if len(sl) == 0:
                 continue
             k = int(region[sl[0]])
-            self.counts[k] += len(sl)
-            self._writer(f"region-{k:05d}").write_table(
-                pa.table({"gidx": gidx[sl], "wkb": pa.array(wkb[sl], pa.binary())})
+            if name == "region":
+                self.counts[k] += len(sl)
+            r = rows[sl]
+            self._writer(f"{name}-{k:05d}").write_table(
+                pa.table({"gidx": gidx[r], "wkb": pa.array(wkb[r], pa.binary())})
             )
 
     def close(self) -> None:
@@ -472,12 +591,13 @@ class _PartWriters:
 
         for w in self.writers.values():
             w.close()
-        for k in range(self.n):  # a region with no parcel still gets its (empty) partition
-            p = self.folder / f"region-{k:05d}.parquet"
-            if not p.exists():
-                import pyarrow.parquet as pq
+        import pyarrow.parquet as pq
 
-                pq.write_table(pa.table({"gidx": pa.array([], pa.int64()), "wkb": pa.array([], pa.binary())}), p)
+        for k in range(self.n):  # a region with no parcel (or no halo) still gets its (empty) partition
+            for name in ("region", "halo") if self.halo else ("region",):
+                p = self.folder / f"{name}-{k:05d}.parquet"
+                if not p.exists():
+                    pq.write_table(pa.table({"gidx": pa.array([], pa.int64()), "wkb": pa.array([], pa.binary())}), p)
 
 
 def _check_unique(ids: np.ndarray, id_field: str | None, where: str) -> None:
@@ -535,7 +655,8 @@ def audit_regions(
     rules, settings, options
         As :func:`landcheck.core.audit.audit`; ``settings.workers`` sizes the local cluster and
         ``settings.scheduler_address`` sends the region jobs to a running one instead.
-        ``rasters`` must be ``"none"`` and ``report`` False (not yet in region runs).
+        Rasters (``rasters``) and the report (``report``) as in the single run; confidence, the
+        capability map and the drafted reclassification are refused (not yet in region runs).
     regions : ``"auto"`` or int
         Region count (see :func:`plan_regions`).
     on_cluster : callable, optional
@@ -559,6 +680,9 @@ def audit_regions(
 
     s = settings_from_options(settings, **options)
     _refuse_unsupported(s)
+    if s.report:
+        # the report is a promise: fail now, not after the region jobs, if it cannot be built
+        from landcheck.evidence.report import build_report
     rules = open_rules(rules)
     _check_against_rules(s, rules)
     if s.method is None:
@@ -575,6 +699,13 @@ def audit_regions(
     scratch = _scratch_for(out)
     with staged_folder(out, overwrite=overwrite) as stage:
         result, execution = _drive(dem, parcels, rules, s, regions, scratch, stage, step, on_cluster, started)
+        if s.report:
+            _release_memory()
+            step("building the report")
+            t0 = time.perf_counter()
+            build_report(stage)  # reads parcels.gpkg back: the driver holds no parcel geometry
+            execution["report_seconds"] = round(time.perf_counter() - t0, 3)
+            execution["driver_peak_mib"] = round(_peak_mib(), 1)
         from landcheck.outputs.folder import write_run_times
 
         write_run_times(stage, started, execution=execution)
@@ -602,6 +733,7 @@ def _drive(
     from landcheck.inputs.layers import validate_parcels
     from landcheck.inputs.partitions import iter_parcel_parts, parcel_files
     from landcheck.inputs.tiles import resolve_dem
+    from landcheck.outputs.writers import RasterFormat
     from landcheck.overlay.sums import Totals
     from landcheck.verdicts.evaluate import Verdict, evaluate_parcels, parcel_rules, summarise_classes
 
@@ -623,8 +755,8 @@ def _drive(
         )
         if conf is not None:
             raise InputDataError(
-                "regions: verdict confidence is not yet run in a region run; pass --skip-confidence "
-                "(or leave [uncertainty] out of the rulebook)."
+                f"regions: verdict confidence is not yet run in a region run; leave out --dem-rmse and the "
+                f"[uncertainty] section of the rulebook {rules.path} (API: skip_confidence=True)."
             )
     layout = plan_regions(g.height, g.width, s.tile_cells, regions)
     nreg = layout.n_regions
@@ -673,7 +805,8 @@ def _drive(
     # ---- parcels, part by part
     step("reading and distributing the parcels")
     P = _Parcels()
-    writers = _PartWriters(scratch / "parcels", nreg)
+    rasters = s.rasters is not RasterFormat.NONE
+    writers = _PartWriters(scratch / "parcels", nreg, halo=rasters)
     dem_box = shapely.box(*g.bounds)
     n_total = 0
     try:
@@ -707,7 +840,11 @@ def _drive(
             P.region.append(region)
             P.rects.append(rects)
             P.wheres.append(part.where)
-            writers.add(np.arange(n_total, n_total + k, dtype=np.int64), geoms, region)
+            halo = _halo_pairs(rects, region, layout) if rasters else None
+            if halo is not None:
+                P.halo_parcel.append(halo[0] + n_total)
+                P.halo_region.append(halo[1])
+            writers.add(np.arange(n_total, n_total + k, dtype=np.int64), geoms, region, halo)
             n_total += k
             del frame, geoms, ps, part
             _release_memory()
@@ -724,6 +861,8 @@ def _drive(
     inside = np.concatenate(P.inside)
     region = np.concatenate(P.region)
     rects = np.concatenate(P.rects)
+    halo_parcel = np.concatenate([np.empty(0, np.int64), *P.halo_parcel])
+    halo_region = np.concatenate([np.empty(0, np.int64), *P.halo_region])
     del P
     check_parcels_on_dem(inside, empty, where, dem, collected)
     pr = parcel_rules(rules, class_value.to_numpy(dtype=object, na_value=pd.NA))
@@ -753,6 +892,14 @@ def _drive(
     tasks = []
     for k in range(nreg):
         idx = order[cuts[k] : cuts[k + 1]]
+        halo_idx = np.sort(halo_parcel[halo_region == k])
+        job_idx = np.union1d(idx, halo_idx)  # parcel order: the conflict raster's ties go to the lower index
+        job_plan = _subset_plan(plan, job_idx)
+        if len(halo_idx):
+            # the halo adds no sums (they are dropped in the job); no class keeps it out of the histogram
+            ci = job_plan.class_index.copy()
+            ci[np.isin(job_idx, halo_idx)] = -1
+            job_plan = dataclasses.replace(job_plan, class_index=ci)
         wr0, wr1, wc0, wc1 = layout.block(k)
         need = np.zeros((layout.n_win_rows, layout.n_win_cols), bool)
         need[wr0:wr1, wc0:wc1] = True
@@ -773,12 +920,14 @@ def _drive(
                 windows=wins,
                 own=(wr0, wr1, wc0, wc1),
                 layout=layout,
-                plan=_subset_plan(plan, idx),
-                class_names=pr.class_name[idx],
+                plan=job_plan,
+                class_names=pr.class_name[job_idx],
                 rules=rules,
                 zones=zones,
                 n_parcels=len(idx),
                 where=f"DEM rows {r0}..{r1 - 1}, cols {c0}..{c1 - 1}; {len(idx)} parcels",
+                rasters=rasters,
+                n_halo=len(halo_idx),
             )
         )
     infos = _run_tasks(tasks, s, step, on_cluster)
@@ -815,25 +964,37 @@ def _drive(
         return rows
 
     # ---- the folder of a single run (+ parcels.parquet)
+    from landcheck.core.audit import _Background, write_cell_zones
     from landcheck.core.run import _summary
     from landcheck.outputs.writers import write_csv, write_json
 
-    if zones is not None:
-        zones.write_layers(stage)
-    step("writing parcels.csv, parcels.gpkg and parcels.parquet")
-    kept = _SummedColumns(ids, rules, [f"zone_{c.name}_m2" for c in columns])
-    _write_parcel_tables(stage, scratch / "parcels" / "ordered.parquet", parcel_rows, kept.add, g.crs_wkt)
-    table = kept.frame()
-    del kept
-    classes = summarise_classes(table, rules)
     zone_names = [z.name for z in rules.zones]
-    counted = (table["verdict"] != Verdict.NO_DATA).to_numpy() & (table["verdict"] != Verdict.NO_RULE).to_numpy()
-    summary = _summary(rules, table, classes, totals, plan, pr, counted, zone_names, collected, columns)
-    summary["manifest"] = _manifest(started, dem, parcels, rules, s, g, None, inputs=inputs)
-    if zones is not None:
-        summary["zones"] = zones.describe()
-    write_csv(stage / "classes.csv", classes)
-    write_json(stage / "summary.json", summary)
+    hook = _merge_rasters(stage, g, layout, scratch, s, zone_names, step) if rasters else None
+    # the COG copies (GDAL, outside the GIL) are made while the tables and layers are written, as in the single run
+    closing = _Background(hook.close) if hook is not None else None
+    try:
+        cell_zone_bits = None
+        if zones is not None:
+            zones.write_layers(stage)
+            cell_zone_bits = write_cell_zones(stage, zones, RasterFormat.from_user(s.rasters))
+        step("writing parcels.csv, parcels.gpkg and parcels.parquet")
+        kept = _SummedColumns(ids, rules, [f"zone_{c.name}_m2" for c in columns])
+        _write_parcel_tables(stage, scratch / "parcels" / "ordered.parquet", parcel_rows, kept.add, g.crs_wkt)
+        table = kept.frame()
+        del kept
+        classes = summarise_classes(table, rules)
+        counted = (table["verdict"] != Verdict.NO_DATA).to_numpy() & (table["verdict"] != Verdict.NO_RULE).to_numpy()
+        summary = _summary(rules, table, classes, totals, plan, pr, counted, zone_names, collected, columns)
+        summary["manifest"] = _manifest(started, dem, parcels, rules, s, g, None, inputs=inputs)
+        if zones is not None:
+            summary["zones"] = zones.describe()
+        if cell_zone_bits is not None:
+            summary["cell_zone_bits"] = cell_zone_bits
+        write_csv(stage / "classes.csv", classes)
+        write_json(stage / "summary.json", summary)
+    finally:
+        if closing is not None:
+            closing.join()
     execution = {
         "tile_cells": s.tile_cells,
         "engine": "dask (region jobs)",
@@ -845,6 +1006,53 @@ def _drive(
         "driver_peak_mib": round(_peak_mib(), 1),
     }
     return {"summary": summary, "table": table, "classes": classes, "warnings": collected}, execution
+
+
+def _merge_rasters(stage: Path, g, layout: RegionLayout, scratch: Path, s: AuditSettings, zone_names, step):
+    """Stream the regions' tiles into ``slope_pct.tif`` and ``conflict.tif`` (the single run's writers, windows
+    and window order, so the same bytes); returns the writers, to be closed.  One window in memory at a time.
+
+    Every window belongs to exactly one region's block, and that region's job wrote its tiles: its slope
+    (defined wherever the DEM is, parcels or not) and its conflict bits, drawn with every parcel that meets
+    the window (its own and its halo), as the single run draws them.
+    """
+    import rasterio
+    from rasterio.errors import RasterioError
+
+    from landcheck.core.audit import _FolderRasters
+    from landcheck.core.window_pass import WindowOutput
+    from landcheck.engine.windows import progress_bar
+    from landcheck.geo.grid import iter_windows
+    from landcheck.outputs.writers import RasterFormat
+
+    windows = list(iter_windows(g.height, g.width, s.tile_cells))  # the single run's windows, in its order
+    step(f"writing the rasters from the regions' tiles ({len(windows)} windows)")
+    hook = _FolderRasters(stage, RasterFormat.from_user(s.rasters))
+    t = layout.tile
+    try:
+        hook.open(g, zone_names, None)
+        with progress_bar(len(windows), "rasters", enabled=s.show_progress) as bar:
+            for win in windows:
+                k = int(layout.region_of_windows(np.array([win.row_off // t]), np.array([win.col_off // t]))[0])
+                r0, _, c0, _ = layout.cells(k)
+                rw = rasterio.windows.Window(win.col_off - c0, win.row_off - r0, win.width, win.height)
+                tiles = []
+                for path in _raster_paths(str(scratch), k):
+                    try:
+                        with rasterio.open(path) as src:
+                            tiles.append(src.read(1, window=rw))
+                    except RasterioError as exc:
+                        _result_paths(str(scratch), k)[1].unlink(missing_ok=True)  # redo this region on a rerun
+                        raise RegionError(
+                            f"region {k + 1} of {layout.n_regions}: its tiles {path} cannot be read ({exc}); rerun "
+                            "the same command: the other regions are resumed, this one is redone."
+                        ) from None
+                hook.write(win, WindowOutput(None, tiles[0], tiles[1]))
+                bar.update(1)
+    except BaseException:
+        hook.abort()
+        raise
+    return hook
 
 
 def _abs(path: str) -> str:
@@ -878,7 +1086,7 @@ def _run_tasks(tasks: list[RegionTask], s: AuditSettings, step, on_cluster) -> l
     infos: dict[int, dict] = {}
     todo = []
     for t in tasks:
-        info = _finished(t.scratch, t.index, t.fingerprint)
+        info = _finished(t.scratch, t.index, t.fingerprint, t.rasters)
         if info is not None:
             infos[t.index] = {**info, "resumed": True}
         else:

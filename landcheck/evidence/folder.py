@@ -198,12 +198,20 @@ class AuditFolder:
         return dt.strftime("%Y-%m-%d %H:%M UTC") if dt else "(date and time in run_times.json)"
 
     @property
-    def dem_path(self) -> Path | None:
-        """The DEM named in the manifest (role "dem"), if recorded; may not exist on this machine."""
+    def dem_paths(self) -> list[Path]:
+        """The DEM files named in the manifest (role "dem"), in its order: one file, or the tiles a region run
+        joined (``landcheck.inputs.tiles``); empty when none is recorded.  They may not exist on this machine."""
+        out = []
         for item in self.section("manifest", "inputs", default=[]) or []:
             if isinstance(item, dict) and item.get("role") == "dem" and item.get("path"):
-                return Path(item["path"])
-        return None
+                out.append(Path(item["path"]))
+        return out
+
+    @property
+    def dem_path(self) -> Path | None:
+        """The first DEM file named in the manifest (role "dem"), if recorded; may not exist on this machine."""
+        paths = self.dem_paths
+        return paths[0] if paths else None
 
     @cached_property
     def class_limits_pct(self) -> dict[str, float]:

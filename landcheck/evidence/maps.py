@@ -18,12 +18,14 @@ and conflict cells are hatched rather than coloured.
 
 from __future__ import annotations
 
+import contextlib
 import io
 import logging
 import math
 import re
+import tempfile
 import textwrap
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -329,6 +331,19 @@ def _reduce_window(ds, win, f: int, kind: str) -> np.ndarray:
         return np.where(counts > 0, sums / counts, np.nan).astype(np.float32)
 
 
+@contextlib.contextmanager
+def _dem_mosaic(paths: list[Path]) -> Iterator[Path]:
+    """The one DEM file, or for the tiles of a region run their mosaic as the audit read it (a VRT in a
+    temporary folder, removed afterwards)."""
+    if len(paths) == 1:
+        yield paths[0]
+        return
+    from landcheck.inputs.tiles import write_tile_vrt
+
+    with tempfile.TemporaryDirectory(prefix="landcheck-relief-") as tmp:
+        yield write_tile_vrt([str(p) for p in paths], Path(tmp) / "dem_tiles.vrt")
+
+
 def _read_relief(folder: AuditFolder, slope: _Grid) -> tuple[np.ndarray, str]:
     """Relief intensity 0-1 on the slope display grid: DEM hillshade, else shaded slope."""
     import rasterio
@@ -344,15 +359,15 @@ def _read_relief(folder: AuditFolder, slope: _Grid) -> tuple[np.ndarray, str]:
         dy_m = abs(slope.transform.e) * float(metres_per_degree_lat(lat_c))
     else:
         dy_m = abs(slope.transform.e) * float(crs.axis_info[1].unit_conversion_factor)
-    dem = folder.dem_path
+    dems = folder.dem_paths
     reason = ""
-    if dem is None:
+    if not dems:
         reason = "no DEM recorded in the manifest"
-    elif not dem.exists():
+    elif not all(p.exists() for p in dems):
         reason = "DEM not found"
     else:
         try:
-            with rasterio.open(dem) as ds:
+            with _dem_mosaic(dems) as dem, rasterio.open(dem) as ds:
                 t = ds.transform
                 if ds.crs is None or _crs(ds.crs) != crs:
                     reason = "DEM on another CRS"
@@ -400,7 +415,7 @@ def _read_relief(folder: AuditFolder, slope: _Grid) -> tuple[np.ndarray, str]:
                         shade = hillshade(filled, dx_m, dy_m, north_up=slope.transform.e < 0)
                         shade = np.where(np.isnan(z), np.nan, shade)
                         return shade, "hillshade of the DEM (sun from the north-west, 45\u00b0 up)"
-        except rasterio.errors.RasterioIOError:
+        except (rasterio.errors.RasterioIOError, InputDataError):
             reason = "DEM unreadable"
     logger.info("relief from slope shading: %s", reason)
     s = slope.data.astype(np.float64)
