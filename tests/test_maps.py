@@ -9,6 +9,7 @@ import xml.etree.ElementTree as ET
 
 import numpy as np
 import pytest
+from _support import write_raster
 from report_fixture import build_audit_folder
 
 from landcheck.errors import InputDataError
@@ -227,29 +228,6 @@ def test_missing_folder_is_input_error(tmp_path):
         maps.overview_map(tmp_path)
 
 
-def _write_tif(path, data, nodata):
-    import rasterio
-    from rasterio.transform import from_origin
-
-    with rasterio.open(
-        path,
-        "w",
-        driver="GTiff",
-        width=data.shape[1],
-        height=data.shape[0],
-        count=1,
-        dtype=data.dtype,
-        crs="EPSG:32651",
-        transform=from_origin(500000.0, 1700000.0, 10.0, 10.0),
-        nodata=nodata,
-        tiled=True,
-        blockxsize=64,
-        blockysize=64,
-    ) as ds:
-        ds.write(data, 1)
-    return path
-
-
 def test_display_block_means_equal_gdal_average_resampling(tmp_path):
     """Map blocks are the mean of the valid cells.
 
@@ -266,7 +244,7 @@ def test_display_block_means_equal_gdal_average_resampling(tmp_path):
     a = (rng.random((233, 233)) * 60).astype(np.float32)
     a[rng.random(a.shape) < 0.1] = -9999.0
     a[:14, :14] = -9999.0  # whole blocks without data -> NaN
-    path = _write_tif(tmp_path / "slope.tif", a, -9999.0)
+    path = write_raster(tmp_path / "slope.tif", a, nodata=-9999.0)
     grid = maps._read_reduced(path, None, 34, "mean")
     assert grid.factor == 7 and grid.data.shape == (34, 34)
     with rasterio.open(path) as ds:
@@ -289,7 +267,7 @@ def test_display_block_bits_are_the_or_of_the_cells_inside_parcels(tmp_path):
     rng = np.random.default_rng(12)
     a = rng.choice(np.array([0, 1, 2, 4, 6, 255], dtype=np.uint8), size=(101, 150))
     a[:5, :5] = 255
-    path = _write_tif(tmp_path / "conflict.tif", a, 255)
+    path = write_raster(tmp_path / "conflict.tif", a, nodata=255)
     grid = maps._read_reduced(path, None, 30, "bits")
     f = grid.factor
     assert f == 5
