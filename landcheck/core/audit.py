@@ -12,7 +12,6 @@ from __future__ import annotations
 import datetime as _dt
 import logging
 import os
-import sys
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, fields
 from pathlib import Path
@@ -22,6 +21,7 @@ import pandas as pd
 
 from landcheck.core.run import AuditRun, _RasterHook, _run_audit, open_rules
 from landcheck.core.settings import AuditSettings, CapabilityOptions
+from landcheck.engine.memory import release_heap
 from landcheck.engine.windows import progress_bar
 from landcheck.inputs.gdal_cache import cap_gdal_cache
 from landcheck.inputs.rulebook import Rulebook
@@ -188,27 +188,6 @@ class _FolderRasters(_RasterHook):
             s.abort()
 
 
-def _release_free_memory(*, collect: bool = True) -> None:
-    """Hand memory freed by the pass and the raster thread back to the system before the report.
-
-    glibc keeps freed memory in per-thread arenas; ``malloc_trim`` returns it, so the report's own
-    memory is not added on top of it.  Nothing happens where glibc is not the allocator.
-    """
-    import ctypes
-    import ctypes.util
-    import gc
-
-    if collect:
-        gc.collect()
-    name = ctypes.util.find_library("c")
-    if not name or not sys.platform.startswith("linux"):
-        return
-    try:
-        ctypes.CDLL(name).malloc_trim(0)
-    except (OSError, AttributeError):  # not glibc
-        pass
-
-
 class _Background:
     """Run ``fn`` on a thread; :meth:`join` waits and re-raises what it raised."""
 
@@ -223,7 +202,7 @@ class _Background:
             except BaseException as exc:  # handed to the joining thread
                 self._error = exc
             finally:  # GDAL's buffers of this thread's arena back to the system, not kept beside the report
-                _release_free_memory(collect=False)
+                release_heap()
 
         self._thread = threading.Thread(target=target, name="landcheck-rasters", daemon=True)
         self._thread.start()
@@ -390,7 +369,8 @@ def audit(
         closing = _Background(hook.publish) if hook is not None else None
         try:
             write_audit_folder(stage, run, cell_zones_written=hook is not None)
-            _release_free_memory()
+            # memory freed by the pass and the raster thread goes back before the report adds its own
+            release_heap(collect=True)
             if s.report:
                 step("building the report")
                 # the parcel shapes just written to parcels.gpkg are passed on, not read back

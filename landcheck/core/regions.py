@@ -79,6 +79,7 @@ import numpy as np
 import pandas as pd
 
 from landcheck.core.settings import AuditSettings
+from landcheck.engine.memory import release_heap
 from landcheck.errors import InputDataError, LandcheckWarning, RegionError
 from landcheck.geo.grid import Window
 from landcheck.inputs.rulebook import Rulebook
@@ -456,23 +457,6 @@ class _Parcels:
         self.halo_region: list = []
 
 
-def _release_memory() -> None:
-    """Hand freed heap back to the system (pyarrow's pool, glibc's arenas): the driver reads a country's
-    parcels part by part, and freed parts would otherwise stay in its resident size."""
-    try:
-        import pyarrow as pa
-
-        pa.default_memory_pool().release_unused()
-    except Exception:  # an older pyarrow
-        pass
-    try:
-        import ctypes
-
-        ctypes.CDLL("libc.so.6").malloc_trim(0)
-    except (OSError, AttributeError):  # not glibc
-        pass
-
-
 def _windows_of(geoms, g, layout: RegionLayout) -> tuple[np.ndarray, np.ndarray]:
     """Region of each parcel and the rectangle of windows its bounds touch (``-1`` rows when none)."""
     import shapely
@@ -700,7 +684,7 @@ def audit_regions(
     with staged_folder(out, overwrite=overwrite) as stage:
         result, execution = _drive(dem, parcels, rules, s, regions, scratch, stage, step, on_cluster, started)
         if s.report:
-            _release_memory()
+            release_heap()
             step("building the report")
             t0 = time.perf_counter()
             build_report(stage)  # reads parcels.gpkg back: the driver holds no parcel geometry
@@ -847,7 +831,7 @@ def _drive(
             writers.add(np.arange(n_total, n_total + k, dtype=np.int64), geoms, region, halo)
             n_total += k
             del frame, geoms, ps, part
-            _release_memory()
+            release_heap()
     finally:
         writers.close()
     where = os.fspath(parcels)
@@ -883,7 +867,7 @@ def _drive(
         zones = prepare_zones(rules, dem, None, pr, zs, step=step, mask_folder=scratch / "zones")
         collected += zones.warnings
         step(f"zones ready: {len(zones.columns)} zone columns")
-        _release_memory()
+        release_heap()
     plan = build_plan(rules, pr.class_name, area_factor, ground_factor, zones)
 
     # ---- region tasks
@@ -932,7 +916,7 @@ def _drive(
         )
     infos = _run_tasks(tasks, s, step, on_cluster)
     del tasks  # their per-region plans: the merge needs only the whole plan
-    _release_memory()
+    release_heap()
 
     # ---- merge: exact integer sums, then everything as the single run computes it
     totals = Totals(n_total, len(plan.thresholds_pct), plan.n_cols, plan.n_classes)
@@ -1243,7 +1227,7 @@ def _write_parcel_tables(
                 del part, tab, geoms
                 on_rows(rows)
                 del rows
-                _release_memory()
+                release_heap()
         if pw is not None:
             pw.close()
             pw = None

@@ -39,6 +39,7 @@ from scipy import ndimage
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
+from landcheck.engine.memory import trim_every
 from landcheck.geo.grid import Window, iter_windows
 
 __all__ = ["seeded_components", "TileReader"]
@@ -129,7 +130,7 @@ def seeded_components(
     seeded_ids: list[list[np.ndarray]] = [[] for _ in range(n_masks)]
     next_id = [1] * n_masks
     # ---- sweep 1: label tiles, keep border and seeded labels
-    for win in wins:
+    for win in trim_every(wins):
         pairs = reader(win)
         for m, (cand, seeds) in enumerate(pairs):
             lab, n = ndimage.label(cand, structure=_S8)
@@ -178,7 +179,7 @@ def seeded_components(
         borders[m] = []
     # ---- sweep 2: relabel, emit the cells of seeded components
     next2 = [1] * n_masks
-    for win in wins:
+    for win in trim_every(wins):
         pairs = reader(win)
         out = []
         for m, (cand, seeds) in enumerate(pairs):

@@ -36,6 +36,7 @@ from collections.abc import Callable, Iterator
 import numba
 import numpy as np
 
+from landcheck.engine.memory import trim_every
 from landcheck.geo.grid import Window, iter_windows
 
 __all__ = ["tiled_fill", "fill_whole", "spill_levels", "raise_to_levels", "perimeter"]
@@ -332,13 +333,13 @@ def tiled_fill(
     wins = list(iter_windows(rows, cols, tile))
     n_tc = -(-cols // tile)
     tiles = []
-    for win in wins:
+    for win in trim_every(wins):
         zh = np.ascontiguousarray(read_with_halo(win), dtype=np.float32)
         _, label, n_labels, ea, eb, ew = _tile_flood(zh, _DR, _DC)
         tiles.append((n_labels, ea, eb, ew, perimeter(label), perimeter(zh[1:-1, 1:-1])))
     level, offsets = spill_levels(n_tc, tiles)
     tiles = []
-    for k, win in enumerate(wins):
+    for k, win in enumerate(trim_every(wins)):
         zh = np.ascontiguousarray(read_with_halo(win), dtype=np.float32)
         filled, label, _, _, _, _ = _tile_flood(zh, _DR, _DC)
         yield win, raise_to_levels(filled, label, level, offsets[k])

@@ -37,6 +37,7 @@ from pathlib import Path
 
 import numpy as np
 
+from landcheck.engine.memory import trim_every
 from landcheck.engine.windows import progress_bar, run_windows
 from landcheck.geo.grid import Window, iter_windows
 from landcheck.terrain import tiled_fill as tf
@@ -219,7 +220,8 @@ def route_tiles(
 
     def sweep(task, items, desc):
         with progress_bar(len(items), f"flow routing: {desc}", enabled=show_progress, unit="tile") as bar:
-            yield from run_windows(task, items, workers=workers, progress=bar)
+            # the driver's heap is trimmed as tiles come back (landcheck.engine.memory)
+            yield from trim_every(run_windows(task, items, workers=workers, progress=bar))
 
     try:
         yield from _route(spec, tiles, wins, cols, own_units, thr_units, hand_thr, hands, scratch, sweep, step)

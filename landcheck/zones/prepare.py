@@ -37,6 +37,7 @@ from pathlib import Path
 
 import numpy as np
 
+from landcheck.engine.memory import trim_every
 from landcheck.errors import InputDataError
 from landcheck.geo.grid import GridSpec, Window, apply_transform, iter_windows
 from landcheck.geo.shapes import polygonal_part
@@ -257,7 +258,7 @@ def union_by_tiles(geoms, grid: GridSpec, tile: int):
     pieces: list = []
     gx0, gy0, gx1, gy1 = shapely.total_bounds(g)
     north_up = grid.transform.e < 0
-    for win in iter_windows(grid.height, grid.width, tile):
+    for win in trim_every(iter_windows(grid.height, grid.width, tile)):
         x0, y0, x1, y1 = grid.window_bounds(win)
         # tiles on the grid's border reach out to the geometries' bounds: nothing is dropped
         top, bottom = win.row_off == 0, win.row_off + win.height == grid.height
@@ -704,7 +705,7 @@ def _tiled_polygons(store: MaskStore, names, g: GridSpec, tile: int, attrs=None,
     from landcheck.terrain import hydrology
 
     per_mask = {n: [] for n in names}
-    for win in iter_windows(g.height, g.width, tile):
+    for win in trim_every(iter_windows(g.height, g.width, tile)):
         ex = store.read(exclude, win) if exclude else None
         for n in dict.fromkeys(names):
             m = store.read(n, win)

@@ -39,6 +39,7 @@ import math
 import numpy as np
 from scipy import ndimage
 
+from landcheck.engine.memory import trim_every
 from landcheck.geo.grid import GridSpec, iter_windows
 from landcheck.zones.cells import MaskStore
 
@@ -91,7 +92,7 @@ def write_strips(
     halo = int(math.ceil(reach / min(dy_all, dx_all))) + 1
     writers = {name: store.writer(name) for name in outputs}
     try:
-        for win in iter_windows(g.height, g.width, tile):
+        for win in trim_every(iter_windows(g.height, g.width, tile)):
             m, inside = store.read_with_halo(source, win, halo)
             core = (slice(halo, halo + win.height), slice(halo, halo + win.width))
             results = {name: np.zeros((win.height, win.width), dtype=bool) for name in outputs}
