@@ -652,7 +652,7 @@ def _manifest_section(folder: AuditFolder, verify_inputs: bool, built_utc: str) 
             parts.append(
                 f'<tr data-file="{_e(rel)}"><td><code>{_e(rel)}</code></td>'
                 f'<td class="n">{p.stat().st_size:,d}</td>'
-                f'<td><code class="sha256">{sha256_file(p)}</code></td></tr>'
+                f'<td><code class="sha256">{sha256_file(p, written=True)}</code></td></tr>'
             )
     parts.append("</tbody></table>")
     manifest_b64 = base64.b64encode(json.dumps(m, indent=2, sort_keys=True).encode("utf-8")).decode("ascii")

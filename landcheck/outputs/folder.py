@@ -270,7 +270,10 @@ def write_file_list(folder: str | os.PathLike) -> list[dict]:
     """
     folder = Path(folder)
     names = [n for n in _files_under(folder) if n not in _OWN_BOOKKEEPING and Path(n).name != PARTIAL_MARKER]
-    entries = [{"path": n, "bytes": (folder / n).stat().st_size, "sha256": sha256_file(folder / n)} for n in names]
+    entries = [
+        {"path": n, "bytes": (folder / n).stat().st_size, "sha256": sha256_file(folder / n, written=True)}
+        for n in names
+    ]
     from landcheck.about import __version__
 
     where = "OUT"  # not the folder's name: a rerun into another folder writes the same bytes

@@ -21,6 +21,7 @@ import numpy as np
 from landcheck.choices import UserChoice
 from landcheck.errors import OutputExistsError, OutputWriteError
 from landcheck.geo.grid import GridSpec, Window
+from landcheck.hashing import remember_written
 from landcheck.inputs.gdal_cache import cap_gdal_cache
 from landcheck.outputs.folder import check_output_path, staged_folder
 
@@ -397,11 +398,13 @@ class RasterSink:
             return None
         return self._scratch if self._scratch is not None else self.final
 
-    def publish(self, *, keep_scratch: bool = False) -> Path | None:
+    def publish(self, *, keep_scratch: bool = False, threads: int | None = None) -> Path | None:
         """``cog``: lay the COG out from the finished scratch and rename it into place.
 
         With ``keep_scratch`` the scratch stays readable until :meth:`discard_scratch` (the report
-        reads it while the copy runs on another thread).  Returns the final path (None for ``none``).
+        reads it while the copy runs on another thread).  ``threads``: GDAL's compression threads
+        (default all cores; one leaves a core to work running beside the copy).  Returns the final
+        path (None for ``none``).
         """
         import rasterio.shutil
 
@@ -421,7 +424,7 @@ class RasterSink:
                     BLOCKSIZE=512,
                     OVERVIEWS="AUTO",
                     BIGTIFF="IF_SAFER",
-                    NUM_THREADS="ALL_CPUS",
+                    NUM_THREADS=str(threads) if threads else "ALL_CPUS",
                     RESAMPLING="NEAREST" if self._categorical else "AVERAGE",
                 )
         except Exception as exc:
@@ -433,6 +436,7 @@ class RasterSink:
             ) from exc
         if not keep_scratch:
             self.discard_scratch()
+        remember_written(self.final)  # hashed here, beside other work, not again for the manifests
         return self.final
 
     def discard_scratch(self) -> None:
