@@ -23,7 +23,7 @@ from landcheck.core.run import AuditRun, _RasterHook, _run_audit, open_rules
 from landcheck.core.settings import AuditSettings, CapabilityOptions
 from landcheck.engine.memory import release_heap
 from landcheck.engine.windows import progress_bar
-from landcheck.inputs.gdal_cache import cap_gdal_cache
+from landcheck.inputs.gdal_cache import lowered_gdal_cache
 from landcheck.inputs.rulebook import Rulebook
 from landcheck.outputs.folder import write_run_times
 from landcheck.outputs.writers import (
@@ -363,32 +363,31 @@ def audit(
             except BaseException:
                 hook.abort()
                 raise
-        # the COG copies (GDAL, outside the GIL) are made on a thread while the tables, the layers and
-        # the report are written; the report reads the finished scratch files meanwhile.  From here on
-        # GDAL's block cache holds nothing worth keeping (every raster is read or copied once): a smaller
-        # cap keeps the copies' memory beside the report's low (docs/scale.md)
-        cap_gdal_cache(AFTER_PASS_GDAL_CACHE_BYTES)
-        # beside the report the copies compress on one core and leave the other to the report (measured
-        # 1.3 s faster at 100 000 parcels than all cores for both, docs/scale.md)
+        # The COG copies (GDAL, outside the GIL) are made on a thread while the tables, the layers and the
+        # report are written; the report reads the finished scratch files meanwhile.  Beside the report the
+        # copies compress on one core and leave the other to it (1.3 s faster at 100 000 parcels than all
+        # cores for both).  GDAL's block cache holds nothing worth keeping from here on (every raster is
+        # read or copied once): a smaller cap keeps the copies' memory beside the report's low (docs/scale.md).
         threads = 1 if s.report else None
-        closing = _Background(lambda: hook.publish(threads)) if hook is not None else None
-        try:
-            write_audit_folder(stage, run, cell_zones_written=hook is not None)
-            # memory freed by the pass and the raster thread goes back before the report adds its own
-            release_heap(collect=True)
-            if s.report:
-                step("building the report")
-                # the parcel shapes just written to parcels.gpkg are passed on, not read back
-                build_report(
-                    stage,
-                    parcel_shapes=run.parcels,
-                    raster_files=hook.readable_files() if hook is not None else None,
-                    before_output_hashes=closing.join if closing is not None else None,
-                )
-        finally:
-            if closing is not None:
-                closing.join()
-                hook.discard_scratch()
+        with lowered_gdal_cache(AFTER_PASS_GDAL_CACHE_BYTES):
+            closing = _Background(lambda: hook.publish(threads)) if hook is not None else None
+            try:
+                write_audit_folder(stage, run, cell_zones_written=hook is not None)
+                # memory freed by the pass and the raster thread goes back before the report adds its own
+                release_heap(collect=True)
+                if s.report:
+                    step("building the report")
+                    # the parcel shapes just written to parcels.gpkg are passed on, not read back
+                    build_report(
+                        stage,
+                        parcel_shapes=run.parcels,
+                        raster_files=hook.readable_files() if hook is not None else None,
+                        before_output_hashes=closing.join if closing is not None else None,
+                    )
+            finally:
+                if closing is not None:
+                    closing.join()
+                    hook.discard_scratch()
         # the one file a rerun changes (docs/outputs.md): times, and how the run was executed
         write_run_times(stage, started, execution={"tile_cells": s.tile_cells, **s.engine.describe()})
     step(f"outputs in {out}")

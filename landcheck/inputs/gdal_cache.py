@@ -2,9 +2,11 @@
 
 from __future__ import annotations
 
+import contextlib
 import os
+from collections.abc import Iterator
 
-__all__ = ["GDAL_CACHE_CAP_BYTES", "cap_gdal_cache"]
+__all__ = ["GDAL_CACHE_CAP_BYTES", "cap_gdal_cache", "lowered_gdal_cache"]
 
 #: largest GDAL block cache landcheck lets its own runs use (bytes); GDAL's default is 5 % of RAM
 GDAL_CACHE_CAP_BYTES = 64 * 2**20
@@ -26,3 +28,18 @@ def cap_gdal_cache(max_bytes: int = GDAL_CACHE_CAP_BYTES) -> None:
         current = 0
     if current <= 0 or current > max_bytes:
         set_gdal_config("GDAL_CACHEMAX", int(max_bytes))
+
+
+@contextlib.contextmanager
+def lowered_gdal_cache(max_bytes: int) -> Iterator[None]:
+    """:func:`cap_gdal_cache` to ``max_bytes`` inside the block, and GDAL's earlier setting back after it
+    (a process that runs several audits keeps its own cache size for the next one)."""
+    from rasterio._env import get_gdal_config, set_gdal_config
+
+    before = get_gdal_config("GDAL_CACHEMAX")
+    cap_gdal_cache(max_bytes)
+    try:
+        yield
+    finally:
+        if before is not None and "GDAL_CACHEMAX" not in os.environ:
+            set_gdal_config("GDAL_CACHEMAX", before)
