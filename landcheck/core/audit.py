@@ -170,7 +170,7 @@ class _FolderRasters(_RasterHook):
         try:
             for s in self.sinks:
                 bar.set_postfix_str(s.final.name, refresh=False)
-                s.publish(keep_scratch=True, threads=threads)
+                s.publish(keep_scratch=True, threads=threads, hash_it=True)
                 bar.update(1)
         finally:
             bar.close()

@@ -398,19 +398,22 @@ class RasterSink:
             return None
         return self._scratch if self._scratch is not None else self.final
 
-    def publish(self, *, keep_scratch: bool = False, threads: int | None = None) -> Path | None:
+    def publish(self, *, keep_scratch: bool = False, threads: int | None = None, hash_it: bool = False) -> Path | None:
         """``cog``: lay the COG out from the finished scratch and rename it into place.
 
         With ``keep_scratch`` the scratch stays readable until :meth:`discard_scratch` (the report
         reads it while the copy runs on another thread).  ``threads``: GDAL's compression threads
-        (default all cores; one leaves a core to work running beside the copy).  Returns the final
-        path (None for ``none``).
+        (default all cores; one leaves a core to work running beside the copy).  ``hash_it``: hash
+        the finished file here (:func:`landcheck.hashing.remember_written`), for a folder whose
+        manifests list it.  Returns the final path (None for ``none``).
         """
         import rasterio.shutil
 
         if self.fmt is RasterFormat.NONE:
             return None
         if self.fmt is RasterFormat.GTIFF:
+            if hash_it:
+                remember_written(self.final)
             return self.final
         try:
             with atomic_file(self.final, overwrite=True, suffix=".tif") as tmp:
@@ -436,7 +439,8 @@ class RasterSink:
             ) from exc
         if not keep_scratch:
             self.discard_scratch()
-        remember_written(self.final)  # hashed here, beside other work, not again for the manifests
+        if hash_it:  # hashed here, beside other work, not again for the manifests
+            remember_written(self.final)
         return self.final
 
     def discard_scratch(self) -> None:
