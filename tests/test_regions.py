@@ -386,3 +386,20 @@ def test_cells_shared_by_parcels_of_two_regions_show_the_single_runs_parcel(tmp_
     assert (bits[40:48, 31] == 1).all() and (bits[40:48, 32:34] == 0).all()  # pid 3 on column 32
     assert (bits[20:28, 31:33] == 1).all() and (bits[20:28, 33] == 0).all()  # pid 5 on column 32
     assert (bits[:8] == 255).all() and (bits[8:16, 19] == 255).all()  # outside every lot
+
+
+def test_a_region_finished_without_rasters_is_redone_when_rasters_are_asked_for(tmp_path):
+    """Resume rule (docs/scale.md, common practice for resumable jobs): a finished region is reused only
+    when its result matches the run's fingerprint and, when the run writes rasters, its tiles exist."""
+    npz, marker = regions._result_paths(str(tmp_path), 3)
+    npz.parent.mkdir(parents=True)
+    np.savez(npz, gidx=np.arange(3))
+    marker.write_text(json.dumps({"fingerprint": "abc", "region": 3}), encoding="utf-8")
+    assert regions._finished(str(tmp_path), 3, "abc", rasters=False) == {"fingerprint": "abc", "region": 3}
+    assert regions._finished(str(tmp_path), 3, "other", rasters=False) is None
+    assert regions._finished(str(tmp_path), 3, "abc", rasters=True) is None  # a tables-only result
+    slope, conflict = regions._raster_paths(str(tmp_path), 3)
+    slope.write_bytes(b"tiles")
+    assert regions._finished(str(tmp_path), 3, "abc", rasters=True) is None  # one of the two tiles only
+    conflict.write_bytes(b"tiles")
+    assert regions._finished(str(tmp_path), 3, "abc", rasters=True) == {"fingerprint": "abc", "region": 3}
