@@ -275,6 +275,46 @@ def _emit(task: RegionTask, done: int, total: int) -> None:
         pass
 
 
+def _task_path(scratch: str, k: int) -> Path:
+    return Path(scratch) / "tasks" / f"region-{k:05d}.pkl"
+
+
+@dataclass(frozen=True)
+class _TaskRef:
+    """What the driver keeps of a region job written to the scratch folder (:func:`_save_task`)."""
+
+    index: int
+    where: str
+    path: str
+    scratch: str
+    fingerprint: str
+    rasters: bool
+
+
+def _save_task(task: RegionTask) -> _TaskRef:
+    """Write the region's job (its parcels' overlay plan is tens of MB at 400 000 parcels) to the scratch
+    folder, atomically, and return a reference to it: Dask's task graph then carries a path, not the data
+    (no large-graph warning), and the driver does not keep every region's plan while the jobs run.  A job
+    rescheduled after a lost worker reads the same file."""
+    import cloudpickle
+
+    path = _task_path(task.scratch, task.index)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_suffix(f".{os.getpid()}.part")
+    tmp.write_bytes(cloudpickle.dumps(task))
+    os.replace(tmp, path)
+    return _TaskRef(task.index, task.where, str(path), task.scratch, task.fingerprint, task.rasters)
+
+
+def run_region_saved(path: str) -> dict:
+    """:func:`run_region` of the job written by :func:`_save_task` (what the Dask workers run)."""
+    import pickle
+
+    with open(path, "rb") as f:
+        task = pickle.load(f)
+    return run_region(task)
+
+
 def run_region(task: RegionTask) -> dict:
     """Run one region's window pass and save its accumulators in the scratch folder; return its figures."""
 
@@ -893,30 +933,33 @@ def _drive(
             need[a0:a1, b0:b1] = True
         wins = [(int(a), int(b)) for a, b in zip(*np.nonzero(need))]
         r0, r1, c0, c1 = layout.cells(k)
+        # each job goes to the scratch folder as it is made: the driver keeps a reference, not the plan
         tasks.append(
-            RegionTask(
-                index=k,
-                n_regions=nreg,
-                fingerprint=fingerprint,
-                scratch=str(scratch),
-                dem=dem,
-                method=s.method,
-                windows=wins,
-                own=(wr0, wr1, wc0, wc1),
-                layout=layout,
-                plan=job_plan,
-                class_names=pr.class_name[job_idx],
-                rules=rules,
-                zones=zones,
-                n_parcels=len(idx),
-                where=f"DEM rows {r0}..{r1 - 1}, cols {c0}..{c1 - 1}; {len(idx)} parcels",
-                rasters=rasters,
-                n_halo=len(halo_idx),
+            _save_task(
+                RegionTask(
+                    index=k,
+                    n_regions=nreg,
+                    fingerprint=fingerprint,
+                    scratch=str(scratch),
+                    dem=dem,
+                    method=s.method,
+                    windows=wins,
+                    own=(wr0, wr1, wc0, wc1),
+                    layout=layout,
+                    plan=job_plan,
+                    class_names=pr.class_name[job_idx],
+                    rules=rules,
+                    zones=zones,
+                    n_parcels=len(idx),
+                    where=f"DEM rows {r0}..{r1 - 1}, cols {c0}..{c1 - 1}; {len(idx)} parcels",
+                    rasters=rasters,
+                    n_halo=len(halo_idx),
+                )
             )
         )
-    infos = _run_tasks(tasks, s, step, on_cluster)
-    del tasks  # their per-region plans: the merge needs only the whole plan
+        del job_plan
     release_heap()
+    infos = _run_tasks(tasks, s, step, on_cluster)
 
     # ---- merge: exact integer sums, then everything as the single run computes it
     totals = Totals(n_total, len(plan.thresholds_pct), plan.n_cols, plan.n_classes)
@@ -1061,7 +1104,7 @@ def _subset_plan(plan, idx: np.ndarray):
     )
 
 
-def _run_tasks(tasks: list[RegionTask], s: AuditSettings, step, on_cluster) -> list[dict]:
+def _run_tasks(tasks: list[_TaskRef], s: AuditSettings, step, on_cluster) -> list[dict]:
     """Run the region jobs not finished before, with per-region and overall progress; any failure fails the run
     once the other regions have finished (their results are kept for a rerun)."""
     from landcheck.engine.windows import progress_bar
@@ -1101,7 +1144,9 @@ def _run_tasks(tasks: list[RegionTask], s: AuditSettings, step, on_cluster) -> l
                 pass
             step(f"running {len(todo)} region jobs on {len(client.scheduler_info().get('workers', {}))} Dask workers")
             futures = {
-                client.submit(run_region, t, key=f"landcheck-region-{t.index:05d}-{t.fingerprint[:12]}", pure=False): t
+                client.submit(
+                    run_region_saved, t.path, key=f"landcheck-region-{t.index:05d}-{t.fingerprint[:12]}", pure=False
+                ): t
                 for t in todo
             }
             if on_cluster is not None:
