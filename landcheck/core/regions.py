@@ -18,7 +18,8 @@ per-parcel work or a whole raster:
    global hazard zones are prepared **once** for the whole DEM by
    :func:`landcheck.zones.prepare.prepare_zones` (their cell masks live on disk in a
    :class:`~landcheck.zones.cells.MaskStore` and are read per window by the regions).
-3. **Region jobs** (:func:`run_region`, one Dask task each).  The window pass of
+3. **Region jobs** (:func:`run_region`, one Dask task each; each job is written to the scratch
+   folder as the driver makes it and the task carries its path, :func:`run_region_saved`).  The window pass of
    :class:`landcheck.core.window_pass.WindowJob` over exactly the windows the region's
    parcels touch (the DEM is read only there, with the slope's halo), for the region's
    parcels and their vector-zone pieces.  Whole-area land figures are kept only for the
