@@ -297,12 +297,12 @@ def _save_task(task: RegionTask) -> _TaskRef:
     folder, atomically, and return a reference to it: Dask's task graph then carries a path, not the data
     (no large-graph warning), and the driver does not keep every region's plan while the jobs run.  A job
     rescheduled after a lost worker reads the same file."""
-    import cloudpickle
+    import pickle
 
     path = _task_path(task.scratch, task.index)
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_suffix(f".{os.getpid()}.part")
-    tmp.write_bytes(cloudpickle.dumps(task))
+    tmp.write_bytes(pickle.dumps(task, protocol=pickle.HIGHEST_PROTOCOL))
     os.replace(tmp, path)
     return _TaskRef(task.index, task.where, str(path), task.scratch, task.fingerprint, task.rasters)
 
