@@ -279,3 +279,23 @@ def test_display_block_bits_are_the_or_of_the_cells_inside_parcels(tmp_path):
     ref[~inside.any(axis=(1, 3))] = 255
     assert grid.data[0, 0] == 255
     np.testing.assert_array_equal(grid.data, ref)
+
+
+@pytest.mark.parametrize("kind", ["mean", "bits"])
+def test_display_reduction_on_threads_equals_one_thread(tmp_path, monkeypatch, kind):
+    """A whole raster is reduced chunk by chunk on several threads; each chunk holds whole display rows, so
+    the blocks are the same bits as read on one thread (common practice: a parallel path must not change
+    results), here with 40 chunks of 7 rows."""
+    rng = np.random.default_rng(13)
+    if kind == "mean":
+        a = (rng.random((280, 150)) * 60).astype(np.float32)
+        a[rng.random(a.shape) < 0.05] = -9999.0
+        path = write_raster(tmp_path / "r.tif", a, nodata=-9999.0)
+    else:
+        a = rng.choice(np.array([0, 1, 2, 4, 255], dtype=np.uint8), size=(280, 150))
+        path = write_raster(tmp_path / "r.tif", a, nodata=255)
+    one = maps._read_reduced(path, None, 40, kind)
+    monkeypatch.setattr(maps, "_CHUNK_CELLS", 7 * 150)
+    many = maps._read_reduced(path, None, 40, kind)
+    assert one.factor == many.factor == 7
+    np.testing.assert_array_equal(one.data, many.data)

@@ -22,6 +22,7 @@ import contextlib
 import io
 import logging
 import math
+import os
 import re
 import tempfile
 import textwrap
@@ -302,6 +303,12 @@ def _read_reduced(path: Path, bounds, max_px: int, kind: str) -> _Grid | None:
         return _Grid(out, (left, right, bottom, top), tr, f, ds.crs)
 
 
+#: cells read at a time by a reduced read (about 16 MB of float32)
+_CHUNK_CELLS = 4_000_000
+#: chunks of rows from which a reduced read runs on several threads (a whole 10000² raster has 25)
+_PARALLEL_CHUNKS = 8
+
+
 def _reduce_window(ds, win, f: int, kind: str) -> np.ndarray:
     """Band 1 of the whole-cell window ``win`` of the open raster ``ds``, reduced by ``f`` (see :func:`_read_reduced`)."""
     from rasterio.windows import Window
@@ -318,13 +325,44 @@ def _reduce_window(ds, win, f: int, kind: str) -> np.ndarray:
         counts = np.zeros((out_h, out_w), dtype=np.int64)
         nodata = ds.nodata
         has_nodata = nodata is not None and not math.isnan(nodata)
-    chunk = f * max(1, 4_000_000 // max(1, w * f))  # whole blocks of rows, about 4 million cells
-    for r in range(0, h, chunk):
-        a = ds.read(1, window=Window(int(win.col_off), int(win.row_off) + r, w, min(chunk, h - r)))
+    chunk = f * max(1, _CHUNK_CELLS // max(1, w * f))  # whole blocks of rows
+    starts = list(range(0, h, chunk))
+
+    def reduce_rows(src, r: int) -> None:
+        a = src.read(1, window=Window(int(win.col_off), int(win.row_off) + r, w, min(chunk, h - r)))
         if kind == "bits":
             add_block_bits(a, a.dtype.type(255), f, r // f, bits, seen)
         else:
             add_block_means(a, a.dtype.type(nodata if has_nodata else 0), has_nodata, f, r // f, sums, counts)
+
+    if len(starts) < _PARALLEL_CHUNKS:
+        for r in starts:
+            reduce_rows(ds, r)
+    else:
+        # whole rasters: chunks side by side (decoding in GDAL and the loops release the GIL). Each chunk
+        # holds whole display rows, so no two threads add to the same block and the result does not
+        # depend on their order; each thread reads through its own dataset handle
+        import threading
+        from concurrent.futures import ThreadPoolExecutor
+
+        import rasterio
+
+        local = threading.local()
+        opened: list = []
+
+        def run(r: int) -> None:
+            src = getattr(local, "ds", None)
+            if src is None:
+                src = local.ds = rasterio.open(ds.name)
+                opened.append(src)
+            reduce_rows(src, r)
+
+        try:
+            with ThreadPoolExecutor(max_workers=min(4, os.cpu_count() or 1)) as pool:
+                list(pool.map(run, starts))
+        finally:
+            for src in opened:
+                src.close()
     if kind == "bits":
         return np.where(seen, bits, np.uint8(255))
     with np.errstate(invalid="ignore", divide="ignore"):
