@@ -33,6 +33,7 @@ from pathlib import Path
 import numpy as np
 
 from landcheck.about import CAUTION
+from landcheck.engine.memory import release_heap
 from landcheck.errors import InputDataError
 from landcheck.evidence.folder import (
     AuditFolder,
@@ -363,6 +364,7 @@ def _reduce_window(ds, win, f: int, kind: str) -> np.ndarray:
         finally:
             for src in opened:
                 src.close()
+            release_heap()  # the worker threads' glibc arenas keep their freed chunks otherwise
     if kind == "bits":
         return np.where(seen, bits, np.uint8(255))
     with np.errstate(invalid="ignore", divide="ignore"):
