@@ -99,19 +99,32 @@ def settings_from_options(settings: AuditSettings | None = None, **options) -> A
     return dataclasses.replace(base, **kw) if kw else base
 
 
-def audit_raster_sinks(stage: Path, g, fmt: RasterFormat, zone_names: list[str]) -> tuple[RasterSink, RasterSink]:
+def audit_raster_sinks(
+    stage: Path,
+    g,
+    fmt: RasterFormat,
+    zone_names: list[str],
+    *,
+    paths: tuple[Path, Path] | None = None,
+    overwrite: bool = False,
+) -> tuple[RasterSink, RasterSink]:
     """The streamed writers of ``slope_pct.tif`` and ``conflict.tif`` (docs/outputs.md), for the single run and
-    the region run alike: one definition of their types, nodata values and band names."""
-    slope = RasterSink(stage / "slope_pct.tif", g, dtype="float32", nodata=np.nan, band_names=["slope_pct"], fmt=fmt)
+    the region run alike: one definition of their types, nodata values and band names.  ``paths``: write them
+    elsewhere than ``stage`` (a region job's tiles of its block)."""
+    slope_path, conflict_path = paths or (stage / "slope_pct.tif", stage / "conflict.tif")
+    slope = RasterSink(
+        slope_path, g, dtype="float32", nodata=np.nan, band_names=["slope_pct"], fmt=fmt, overwrite=overwrite
+    )
     try:
         conflict = RasterSink(
-            stage / "conflict.tif",
+            conflict_path,
             g,
             dtype="uint8",
             nodata=CONFLICT_OUTSIDE,
             fmt=fmt,
             categorical=True,
             band_names=["conflict bits: 1=slope" + "".join(f", {1 << (i + 1)}={z}" for i, z in enumerate(zone_names))],
+            overwrite=overwrite,
         )
     except BaseException:
         slope.abort()

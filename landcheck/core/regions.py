@@ -358,7 +358,13 @@ def run_region(task: RegionTask) -> dict:
         wr0, wr1, wc0, wc1 = task.own
         r0, r1, c0, c1 = task.layout.cells(task.index)
         if task.rasters:
-            sinks = _region_sinks(task.scratch, task.index, task.dem.grid, Window(r0, c0, r1 - r0, c1 - c0))
+            sinks = _region_sinks(
+                task.scratch,
+                task.index,
+                task.dem.grid,
+                Window(r0, c0, r1 - r0, c1 - c0),
+                [z.name for z in task.rules.zones],
+            )
         n = len(task.windows)
         step = max(1, n // 10)
         for i, (wr, wc) in enumerate(task.windows):
@@ -428,23 +434,16 @@ def _rows_of(arrays: dict, keep: np.ndarray) -> dict:
     return {k: v if k in ("q_class_hist_m2", "q_land") else v[keep] for k, v in arrays.items()}
 
 
-def _region_sinks(scratch: str, k: int, g, block: Window) -> list:
-    """Writers of region ``k``'s slope and conflict tiles: plain tiled GeoTIFFs of its block (the final
-    rasters' types and nodata), renamed into place when the region's windows are all written."""
-    from landcheck.outputs.writers import RasterFormat, RasterSink
-    from landcheck.overlay.sums import CONFLICT_OUTSIDE
+def _region_sinks(scratch: str, k: int, g, block: Window, zone_names: list[str]) -> list:
+    """Writers of region ``k``'s slope and conflict tiles: plain tiled GeoTIFFs of its block with the final
+    rasters' types and nodata (the same writers), renamed into place when the region's windows are written."""
+    from landcheck.core.audit import audit_raster_sinks
+    from landcheck.outputs.writers import RasterFormat
 
     sub = dataclasses.replace(g, transform=g.window_transform(block), width=block.width, height=block.height)
-    slope_path, conflict_path = _raster_paths(scratch, k)
-    slope_path.parent.mkdir(parents=True, exist_ok=True)
-    kw: dict = dict(overwrite=True, fmt=RasterFormat.GTIFF)
-    slope = RasterSink(slope_path, sub, dtype="float32", nodata=np.nan, **kw)
-    try:
-        conflict = RasterSink(conflict_path, sub, dtype="uint8", nodata=CONFLICT_OUTSIDE, **kw)
-    except BaseException:
-        slope.abort()
-        raise
-    return [slope, conflict]
+    paths = _raster_paths(scratch, k)
+    paths[0].parent.mkdir(parents=True, exist_ok=True)
+    return list(audit_raster_sinks(paths[0].parent, sub, RasterFormat.GTIFF, zone_names, paths=paths, overwrite=True))
 
 
 # --------------------------------------------------------------------------- the driver
@@ -1057,6 +1056,23 @@ def _merge_rasters(stage: Path, g, layout: RegionLayout, scratch: Path, s: Audit
     step(f"writing the rasters from the regions' tiles ({len(windows)} windows)")
     hook = _FolderRasters(stage, RasterFormat.from_user(s.rasters))
     t = layout.tile
+    opened: dict[int, list] = {}  # region -> its two open tile files, each opened once
+
+    def read_tiles(k: int, rw) -> list[np.ndarray]:
+        path = None
+        try:
+            if k not in opened:
+                opened[k] = []
+                for path in _raster_paths(str(scratch), k):
+                    opened[k].append(rasterio.open(path))
+            return [src.read(1, window=rw) for src in opened[k]]
+        except RasterioError as exc:
+            _result_paths(str(scratch), k)[1].unlink(missing_ok=True)  # redo this region on a rerun
+            raise RegionError(
+                f"region {k + 1} of {layout.n_regions}: its tiles {path or _raster_paths(str(scratch), k)[0]} "
+                f"cannot be read ({exc}); rerun the same command: the other regions are resumed, this one is redone."
+            ) from None
+
     try:
         hook.open(g, zone_names, None)
         with progress_bar(len(windows), "rasters", enabled=s.show_progress) as bar:
@@ -1064,22 +1080,16 @@ def _merge_rasters(stage: Path, g, layout: RegionLayout, scratch: Path, s: Audit
                 k = int(layout.region_of_windows(np.array([win.row_off // t]), np.array([win.col_off // t]))[0])
                 r0, _, c0, _ = layout.cells(k)
                 rw = rasterio.windows.Window(win.col_off - c0, win.row_off - r0, win.width, win.height)
-                tiles = []
-                for path in _raster_paths(str(scratch), k):
-                    try:
-                        with rasterio.open(path) as src:
-                            tiles.append(src.read(1, window=rw))
-                    except RasterioError as exc:
-                        _result_paths(str(scratch), k)[1].unlink(missing_ok=True)  # redo this region on a rerun
-                        raise RegionError(
-                            f"region {k + 1} of {layout.n_regions}: its tiles {path} cannot be read ({exc}); rerun "
-                            "the same command: the other regions are resumed, this one is redone."
-                        ) from None
-                hook.write(win, WindowOutput(None, tiles[0], tiles[1]))
+                slope, conflict = read_tiles(k, rw)
+                hook.write(win, WindowOutput(None, slope, conflict))
                 bar.update(1)
     except BaseException:
         hook.abort()
         raise
+    finally:
+        for files in opened.values():
+            for src in files:
+                src.close()
     return hook
 
 
