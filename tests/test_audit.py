@@ -187,13 +187,35 @@ def test_cog_outputs_carry_overviews(tmp_path):
             assert ds.profile["blockxsize"] == ds.profile["blockysize"] == 512
 
 
+def test_cog_deflate_holds_the_same_cells(tmp_path):
+    # Source: GDAL COG driver (COMPRESS=ZSTD / DEFLATE are lossless, docs/references.md §20): the two COG
+    # choices differ only in the codec, so every cell and every overview cell is equal.
+    import rasterio
+
+    dem = ramp_dem(tmp_path / "dem.tif", n=1100, h=1.0)
+    parcels = write_parcels(
+        tmp_path / "p.gpkg", [shapely.box(X0 + 100, Y0 - 900, X0 + 900, Y0 - 100)], pid=np.array([1]), zoning=["R"]
+    )
+    rules = write_rules(tmp_path / "r.toml")
+    runs = {
+        fmt: audit(dem, parcels, rules, tmp_path / fmt, make_report=False, rasters=fmt).out_dir
+        for fmt in ("cog", "cog-deflate")
+    }
+    for name in ("slope_pct.tif", "conflict.tif"):
+        with rasterio.open(runs["cog"] / name) as a, rasterio.open(runs["cog-deflate"] / name) as b:
+            assert (a.profile["compress"], b.profile["compress"]) == ("zstd", "deflate")
+            assert a.overviews(1) == b.overviews(1) == [2, 4]
+            np.testing.assert_array_equal(a.read(1), b.read(1))
+            np.testing.assert_array_equal(a.read(1, out_shape=(275, 275)), b.read(1, out_shape=(275, 275)))
+
+
 def test_outputs_written_and_consistent(tmp_path):
     # Common practice: machine-readable outputs agree with each other.
     import geopandas as gpd
     import rasterio
 
     geoms = _parcels()
-    with pytest.warns(LandcheckWarning, match=r"1 parcels have class values with no rule \('X'\)"):
+    with pytest.warns(LandcheckWarning, match=r"1 parcel has a class value with no rule \('X'\)"):
         res = _run(tmp_path, geoms, ["R", "R", "F", "X"])
     out = res.out_dir
     csv = pd.read_csv(out / "parcels.csv")
@@ -205,7 +227,8 @@ def test_outputs_written_and_consistent(tmp_path):
     assert "not a survey or legal determination" in summary["caution"]
     assert summary["manifest"]["rulebook"]["text"].startswith("\n[rulebook]")
     with rasterio.open(out / "slope_pct.tif") as ds:
-        assert ds.profile["tiled"] and ds.profile["compress"] == "deflate"
+        # docs/scale.md: the default COG is ZSTD level 1 (same size as DEFLATE level 1 here, half the time)
+        assert ds.profile["tiled"] and ds.profile["compress"] == "zstd"
         # Source: GDAL COG driver, OVERVIEWS=AUTO: overviews are added only while the raster is larger than
         # one 512-cell tile, so this 120 x 120 raster has none (the next test checks a larger one)
         assert ds.overviews(1) == []

@@ -63,7 +63,7 @@ def test_partly_outside_dem_gets_no_data(tmp_path):
         shapely.box(X0 + 3000, Y0 - 300, X0 + 3100, Y0 - 200),
     ]  # fully outside
     p = write_parcels(tmp_path / "p.gpkg", geoms, pid=[1, 2, 3], zoning=["R", "R", "R"])
-    with pytest.warns(LandcheckWarning, match="1 parcels lie entirely outside the DEM"):
+    with pytest.warns(LandcheckWarning, match="1 parcel lies entirely outside the DEM"):
         res = audit(dem, p, rules, tmp_path / "out", make_report=False)
     assert res.parcels["verdict"].tolist() == ["no_data", "no_data", "no_data"]
     # covered area: exactly the part inside the DEM extent (x 0..100 and 1000..1200 m)

@@ -8,6 +8,7 @@ import warnings
 import click
 
 from landcheck.errors import LandcheckWarning
+from landcheck.wording import count_text
 
 from .errors import handle_errors
 from .options import CAUTION_HELP, EXIT_CONFLICTS, dem_options, engine_options, method_option, run_options
@@ -70,8 +71,8 @@ def run_audit_and_report(ctx, *, as_json: bool, fail_on_conflict: bool, **kwargs
         vc = t["verdict_counts"]
         share = t["conflict_share"]
         click.echo(
-            f"{t['parcels']} parcels: {vc['conflict']} conflict, {vc['review']} review, {vc['consistent']} consistent, "
-            f"{vc['no_data']} no data, {vc['no_rule']} without a rule. Conflict share of evaluated classified land: "
+            f"{count_text(t['parcels'], 'parcel')}: {vc['conflict']:,d} conflict, {vc['review']:,d} review, {vc['consistent']:,d} consistent, "
+            f"{vc['no_data']:,d} no data, {vc['no_rule']:,d} without a rule. Conflict share of evaluated classified land: "
             f"{'n/a' if share is None else f'{100 * share:.1f} %'}.",
             err=True,
         )
@@ -177,11 +178,12 @@ Examples:
 )
 @click.option(
     "--rasters",
-    type=click.Choice(["cog", "gtiff", "none"]),
+    type=click.Choice(["cog", "cog-deflate", "gtiff", "none"]),
     default="cog",
     show_default=True,
-    help="Slope and conflict rasters as Cloud-Optimized GeoTIFF, plain tiled GeoTIFF (faster for big "
-    "runs), or none (tables only; needs --no-report).",
+    help="Slope and conflict rasters as Cloud-Optimized GeoTIFF (ZSTD; cog-deflate for readers older than "
+    "GDAL 2.3 / libtiff 4.0.10), plain tiled GeoTIFF (faster for big runs), or none (tables only; needs "
+    "--no-report).",
 )
 @click.option(
     "--zone-polygons",

@@ -51,10 +51,11 @@ Examples:
 )
 @click.option(
     "--raster-format",
-    type=click.Choice(["cog", "gtiff"]),
+    type=click.Choice(["cog", "cog-deflate", "gtiff"]),
     default="cog",
     show_default=True,
-    help="Cloud-Optimized GeoTIFF with overviews, or a plain tiled GeoTIFF written straight from the stream.",
+    help="Cloud-Optimized GeoTIFF with overviews (ZSTD; cog-deflate for readers older than GDAL 2.3 / "
+    "libtiff 4.0.10), or a plain tiled GeoTIFF written straight from the stream.",
 )
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary on stdout.")
 @click.pass_context

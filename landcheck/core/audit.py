@@ -179,7 +179,7 @@ class _FolderRasters(_RasterHook):
         """Lay out every COG (the long part), with a progress bar; scratch files stay until :meth:`discard_scratch`.
 
         ``threads``: GDAL's compression threads per copy (default all cores)."""
-        bar = progress_bar(len(self.sinks), "COG rasters" if self.fmt is RasterFormat.COG else "rasters", unit="raster")
+        bar = progress_bar(len(self.sinks), "COG rasters" if self.fmt.is_cog else "rasters", unit="raster")
         try:
             for s in self.sinks:
                 bar.set_postfix_str(s.final.name, refresh=False)

@@ -84,6 +84,7 @@ from landcheck.engine.memory import release_heap
 from landcheck.errors import InputDataError, LandcheckWarning, RegionError
 from landcheck.geo.grid import Window
 from landcheck.inputs.rulebook import Rulebook
+from landcheck.wording import count_text
 
 __all__ = ["RegionLayout", "RegionError", "audit_regions", "plan_regions", "run_region", "DEFAULT_REGION_CELLS"]
 
@@ -892,7 +893,10 @@ def _drive(
     pr = parcel_rules(rules, class_value.to_numpy(dtype=object, na_value=pd.NA))
     warn_unmatched_classes(pr, pd.Series(class_value), where, collected)
     ground_factor = whole_area_ground_factor(g)
-    step(f"{n_total} parcels, {len(rules.classes)} classes, {len(rules.zones)} zones")
+    step(
+        f"{count_text(n_total, 'parcel')}, {count_text(len(rules.classes), 'class', 'classes')}, "
+        f"{count_text(len(rules.zones), 'zone')}"
+    )
 
     # ---- global hazard zones: once, for the whole DEM; regions read their masks per window
     zones = None

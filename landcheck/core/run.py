@@ -50,6 +50,7 @@ from landcheck.verdicts.evaluate import (
     slope_histogram,
     summarise_classes,
 )
+from landcheck.wording import count_text
 
 if TYPE_CHECKING:
     import geopandas as gpd
@@ -224,7 +225,10 @@ def check_parcels_on_dem(inside, empty, where: str, dem, collected: list) -> Non
         )
     n_out = int((~inside & ~empty).sum())
     if n_out:
-        msg = f"{where}: {n_out} parcels lie entirely outside the DEM; they are reported with verdict no_data."
+        msg = (
+            f"{where}: {count_text(n_out, 'parcel')} {'lies' if n_out == 1 else 'lie'} entirely outside the DEM; "
+            "reported as no data (verdict no_data in parcels.csv)."
+        )
         collected.append(msg)
         warnings.warn(msg, LandcheckWarning, stacklevel=4)
 
@@ -234,9 +238,10 @@ def warn_unmatched_classes(pr, class_value, where: str, collected: list) -> None
     no_rule_valued = (pr.class_name == "no_rule") & class_value.notna().to_numpy()  # NULLs: warned on read
     unmatched = sorted(set(class_value[no_rule_valued].astype(str)))
     if unmatched:
+        n = int(no_rule_valued.sum())
         msg = (
-            f"{where}: {int(no_rule_valued.sum())} parcels have class values with no rule "
-            f"({', '.join(map(repr, unmatched[:10]))}); they are listed with verdict no_rule."
+            f"{where}: {count_text(n, 'parcel')} {'has a class value' if n == 1 else 'have class values'} with no rule "
+            f"({', '.join(map(repr, unmatched[:10]))}); listed as no rule (verdict no_rule in parcels.csv)."
         )
         collected.append(msg)
         warnings.warn(msg, LandcheckWarning, stacklevel=4)
@@ -322,7 +327,10 @@ def _run_audit(
     pr = parcel_rules(rules, frame["class_value"].to_numpy())
     warn_unmatched_classes(pr, frame["class_value"], ps.where, collected)
     ground_factor = whole_area_ground_factor(g)
-    step(f"{len(frame)} parcels, {len(rules.classes)} classes, {len(rules.zones)} zones")
+    step(
+        f"{count_text(len(frame), 'parcel')}, {count_text(len(rules.classes), 'class', 'classes')}, "
+        f"{count_text(len(rules.zones), 'zone')}"
+    )
 
     zones = None
     all_geoms = geoms

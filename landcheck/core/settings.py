@@ -136,7 +136,7 @@ class AuditSettings:
     engine, workers, scheduler_address
         Where every window pass runs (:class:`landcheck.engine.backends.Engine`).
     rasters : RasterFormat or str
-        ``cog``, ``gtiff`` or ``none``: the slope and conflict rasters :func:`landcheck.core.audit.audit`
+        ``cog``, ``cog-deflate``, ``gtiff`` or ``none``: the slope and conflict rasters :func:`landcheck.core.audit.audit`
         writes (``run_audit`` writes no file and ignores this; see :class:`landcheck.core.run.AuditRun`).
     report : bool
         Whether :func:`landcheck.core.audit.audit` writes ``report.html`` (needs rasters; default True;
@@ -201,7 +201,7 @@ class AuditSettings:
         if self.report and self.rasters is RasterFormat.NONE:
             raise InputDataError(
                 "rasters='none' writes no slope or conflict raster, and the report maps need them; "
-                "turn the report off (--no-report) or choose rasters 'cog' or 'gtiff'."
+                "turn the report off (--no-report) or choose rasters 'cog', 'cog-deflate' or 'gtiff'."
             )
         if not isinstance(self.confidence, ConfidenceOptions):
             raise InputDataError(f"confidence: expected ConfidenceOptions, got {type(self.confidence).__name__}.")

@@ -83,7 +83,8 @@ def derive_slope(
     a uint8 slope-class raster (``class_scheme``, default the planning scheme) is
     written beside it, with the class labels in the band description.
 
-    ``raster_format`` is ``cog`` (default: Cloud-Optimized GeoTIFF with overviews) or ``gtiff``
+    ``raster_format`` is ``cog`` (default: Cloud-Optimized GeoTIFF with overviews, ZSTD),
+    ``cog-deflate`` (the same with DEFLATE) or ``gtiff``
     (tiled GeoTIFF written straight from the windows, no overviews, the float slope uncompressed and
     the class raster ZSTD; faster, for batch runs);
     see :class:`landcheck.outputs.writers.RasterFormat` and docs/scale.md.
@@ -95,7 +96,7 @@ def derive_slope(
         engine = Engine.from_user(engine, workers, scheduler_address)
     raster_format = RasterFormat.from_user(raster_format)
     if raster_format is RasterFormat.NONE:
-        raise ValueError("the slope command writes a raster: choose raster_format 'cog' or 'gtiff'")
+        raise ValueError("the slope command writes a raster: choose raster_format 'cog', 'cog-deflate' or 'gtiff'")
     method = SlopeMethod.from_user(method)
     unit = SlopeUnit.from_user(unit)
     dem = open_dem(dem_path, band=band, crs=dem_crs, z_unit=z_unit)

@@ -15,6 +15,7 @@ import numpy as np
 from landcheck.terrain.slope_classes import NO_CLASS, SlopeClassScheme
 from landcheck.terrain.slope_classes import classify_slope as classify_slope_by_scheme
 from landcheck.verdicts.labels import VERDICT_LABELS
+from landcheck.wording import count_text
 
 __all__ = [
     "VERDICT_TEXT",
@@ -63,12 +64,6 @@ def yes_no(value) -> str:
     if t in ("false", "0", "no"):
         return "no"
     return str(value)
-
-
-def count_text(n: int, singular: str, plural: str | None = None) -> str:
-    """``1 parcel``, ``2 parcels``, ``1,234 parcels``."""
-    word = singular if n == 1 else (plural or singular + "s")
-    return f"{n:,d} {word}"
 
 
 def area_ha_text(m2) -> str:

@@ -16,12 +16,18 @@ import numpy as np
 
 from landcheck.errors import InputDataError, LandcheckWarning
 from landcheck.geo.shapes import polygonal_part
+from landcheck.wording import count_text
 
 __all__ = ["read_parcels", "read_layer", "validate_parcels", "ParcelSet"]
 
 logger = logging.getLogger(__name__)
 
 _PARQUET_SUFFIXES = (".parquet", ".geoparquet")
+
+
+def _have(n: int) -> str:
+    """``1 parcel has`` / ``3 parcels have``."""
+    return f"{count_text(n, 'parcel')} {'has' if n == 1 else 'have'}"
 
 
 def choose_layer(path: str, layer: str | None, how: str) -> str | None:
@@ -184,7 +190,7 @@ def validate_parcels(
         if ids.isna().any():
             rows = (np.flatnonzero(ids.isna().to_numpy()) + 1)[:5].tolist()
             raise InputDataError(
-                f"{where}: {int(ids.isna().sum())} parcels have no {id_field} (rows {rows}); every parcel needs an id."
+                f"{where}: {_have(int(ids.isna().sum()))} no {id_field} (rows {rows}); every parcel needs an id."
             )
         dup = ids[ids.duplicated(keep=False)]
         if len(dup):
@@ -206,8 +212,8 @@ def validate_parcels(
         ids_null = gdf.loc[null_class, "parcel_id"].tolist()
         shown = ", ".join(map(str, ids_null[:50])) + (f" and {len(ids_null) - 50} more" if len(ids_null) > 50 else "")
         msg = (
-            f"{where}: {len(ids_null)} parcels have no {class_field} value (NULL): "
-            f"{id_field or 'row'} {shown}; they are listed with verdict no_rule."
+            f"{where}: {_have(len(ids_null))} no {class_field} value (NULL): "
+            f"{id_field or 'row'} {shown}; they are listed as no rule (verdict no_rule in parcels.csv)."
         )
         notes.append(msg)
         warnings.warn(msg, LandcheckWarning, stacklevel=2)
@@ -220,7 +226,7 @@ def validate_parcels(
     if not polygonal.all():
         bad = np.flatnonzero(~polygonal)
         raise InputDataError(
-            f"{where}: {len(bad)} features are not polygons (rows {', '.join(str(i + 1) for i in bad[:10])}, "
+            f"{where}: {count_text(len(bad), 'feature')} {'is' if len(bad) == 1 else 'are'} not a polygon (rows {', '.join(str(i + 1) for i in bad[:10])}, "
             f"type {shapely.get_type_id(geom[bad[0]])}); parcels must be Polygon or MultiPolygon."
         )
     invalid = ~empty & ~shapely.is_valid(geom)
@@ -232,7 +238,8 @@ def validate_parcels(
         gdf = gdf.set_geometry(geom, crs=gdf.crs)
         gdf.loc[invalid, "geometry_note"] = "repaired"
         msg = (
-            f"{where}: {int(invalid.sum())} invalid parcel geometries were repaired (rows "
+            f"{where}: {count_text(int(invalid.sum()), 'invalid parcel geometry', 'invalid parcel geometries')} "
+            f"{'was' if int(invalid.sum()) == 1 else 'were'} repaired (rows "
             f"{', '.join(str(i + 1) for i in np.flatnonzero(invalid)[:10])}); check them."
         )
         notes.append(msg)
@@ -241,8 +248,9 @@ def validate_parcels(
     if empty.any():
         gdf.loc[empty, "geometry_note"] = "empty geometry"
         msg = (
-            f"{where}: {int(empty.sum())} parcels have an empty geometry (rows "
-            f"{', '.join(str(i + 1) for i in np.flatnonzero(empty)[:10])}); they are reported with verdict no_data."
+            f"{where}: {_have(int(empty.sum()))} an empty geometry (rows "
+            f"{', '.join(str(i + 1) for i in np.flatnonzero(empty)[:10])}); they are reported as no data "
+            "(verdict no_data in parcels.csv)."
         )
         notes.append(msg)
         warnings.warn(msg, LandcheckWarning, stacklevel=2)

@@ -246,9 +246,12 @@ def fixed_gpkg_date():
 class RasterFormat(UserChoice):
     """How a streamed raster is written (see docs/scale.md for the measured costs).
 
-    * ``cog`` (default): Cloud-Optimized GeoTIFF, DEFLATE level 1 with a predictor, 512-cell tiles
+    * ``cog`` (default): Cloud-Optimized GeoTIFF, ZSTD level 1 with a predictor, 512-cell tiles
       and overviews; windows go to an uncompressed scratch file first, then one GDAL copy lays
-      the COG out.
+      the COG out.  ZSTD makes the same size as DEFLATE level 1 here in about half the time
+      (docs/scale.md); GDAL 2.3+ and libtiff 4.0.10+ read it.
+    * ``cog-deflate``: the same COG with DEFLATE level 1, for readers whose TIFF library
+      predates ZSTD.
     * ``gtiff``: a tiled GeoTIFF (512-cell tiles, no overviews) written straight from the
       window stream: no scratch file and no second pass.  Integer rasters are ZSTD level 1
       (compressed on all cores); float rasters are uncompressed, because full-precision slopes
@@ -257,12 +260,18 @@ class RasterFormat(UserChoice):
     """
 
     COG = "cog"
+    COG_DEFLATE = "cog-deflate"
     GTIFF = "gtiff"
     NONE = "none"
 
     @classmethod
     def _aliases(cls) -> dict:
-        return {"geotiff": "gtiff", "tif": "gtiff", "tiff": "gtiff"}
+        return {"geotiff": "gtiff", "tif": "gtiff", "tiff": "gtiff", "cog_deflate": "cog-deflate"}
+
+    @property
+    def is_cog(self) -> bool:
+        """A Cloud-Optimized GeoTIFF, laid out from a scratch file when the window stream ends."""
+        return self in (RasterFormat.COG, RasterFormat.COG_DEFLATE)
 
     @classmethod
     def _noun(cls) -> str:
@@ -312,11 +321,11 @@ class RasterSink:
             return
         cap_gdal_cache()
         self.final.parent.mkdir(parents=True, exist_ok=True)
-        suffix = ".scratch.tif" if self.fmt is RasterFormat.COG else ".part.tif"
+        suffix = ".scratch.tif" if self.fmt.is_cog else ".part.tif"
         fd, scratch = tempfile.mkstemp(prefix=f".{self.final.name}.", suffix=suffix, dir=self.final.parent)
         os.close(fd)
         self._scratch = Path(scratch)
-        if self.fmt is RasterFormat.COG:
+        if self.fmt.is_cog:
             options = {}  # scratch: uncompressed, fast
         else:
             # Integer rasters (bit flags, classes) compress ~50:1 with ZSTD level 1, cheaply, on all cores as
@@ -421,7 +430,7 @@ class RasterSink:
                     self._scratch,
                     tmp,
                     driver="COG",
-                    COMPRESS="DEFLATE",
+                    COMPRESS="DEFLATE" if self.fmt is RasterFormat.COG_DEFLATE else "ZSTD",
                     LEVEL=1,
                     PREDICTOR="YES",
                     BLOCKSIZE=512,
