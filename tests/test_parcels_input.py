@@ -134,7 +134,7 @@ def test_refusals(tmp_path):
     # points are not parcels
     p = write_parcels(tmp_path / "pts.gpkg", [shapely.Point(X0 + 5, Y0 - 5)], pid=[1], zoning=["R"])
     r = _cli(tmp_path, p, out="o7")
-    assert r.exit_code == 3 and "not polygons" in r.output
+    assert r.exit_code == 3 and "1 feature is not a polygon (rows 1, the first is a Point)" in r.output
     # multi-layer file without a layer choice
     write_parcels(tmp_path / "multi.gpkg", _geoms(), layer="a", pid=[1, 2], zoning=["R", "R"])
     write_parcels(tmp_path / "multi.gpkg", _geoms(), layer="b", pid=[1, 2], zoning=["R", "R"])

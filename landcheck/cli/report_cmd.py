@@ -55,5 +55,22 @@ def command(ctx, out_dir, report_path, dpi, max_closeups, page_size):
     d = Path(out_dir)
     if not (d / "summary.json").exists():
         raise InputDataError(f"{d}: not an audit output folder (no summary.json); run `landcheck audit` first.")
-    path = build_report(d, report_path=report_path, dpi=dpi, max_closeups=max_closeups, page_size=page_size)
+    from landcheck.evidence.figure_worker import start
+    from landcheck.evidence.folder import load_audit_folder
+
+    folder = load_audit_folder(d)
+    # forked before any other thread runs (landcheck.evidence.figure_worker)
+    worker = start()
+    try:
+        path = build_report(
+            folder,
+            report_path=report_path,
+            dpi=dpi,
+            max_closeups=max_closeups,
+            page_size=page_size,
+            figure_worker=worker,
+        )
+    finally:
+        if worker is not None:
+            worker.stop()
     click.echo(str(path))

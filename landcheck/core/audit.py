@@ -228,6 +228,14 @@ class _Background:
             raise self._error
 
 
+def _start_figure_worker():
+    """Fork the report's figure process (None where it cannot run), its heap trimmed first."""
+    from landcheck.evidence.figure_worker import start
+
+    release_heap(collect=True)  # the child starts from a compact heap
+    return start()
+
+
 def _needs_rasters(s: AuditSettings) -> bool:
     return s.rasters is not RasterFormat.NONE or s.capability is not None
 
@@ -382,6 +390,10 @@ def audit(
         # cores for both).  GDAL's block cache holds nothing worth keeping from here on (every raster is
         # read or copied once): a smaller cap keeps the copies' memory beside the report's low (docs/scale.md).
         threads = 1 if s.report else None
+        # The close-ups and charts are drawn by a second process beside the rest of the report; it is
+        # forked here, while no other thread works (landcheck.evidence.figure_worker), and gets its job
+        # once the tables are written.
+        worker = _start_figure_worker() if s.report and hook is not None else None
         with lowered_gdal_cache(AFTER_PASS_GDAL_CACHE_BYTES):
             closing = _Background(lambda: hook.publish(threads)) if hook is not None else None
             try:
@@ -396,8 +408,11 @@ def audit(
                         parcel_shapes=run.parcels,
                         raster_files=hook.readable_files() if hook is not None else None,
                         before_output_hashes=closing.join if closing is not None else None,
+                        figure_worker=worker,
                     )
             finally:
+                if worker is not None:
+                    worker.stop()  # already finished unless the report failed
                 if closing is not None:
                     closing.join()
                     hook.discard_scratch()

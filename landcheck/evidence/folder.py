@@ -133,6 +133,15 @@ class AuditFolder:
         self.__dict__["parcels_gdf"] = keep
         return True
 
+    def use_parcel_subset(self, rows, shapes) -> None:
+        """Hold only these rows of :attr:`parcels` and :attr:`parcels_gdf` (as read here, in file order).
+
+        For a drawing that needs a few parcels and their neighbours (the report's figure process, see
+        :func:`landcheck.evidence.figure_worker.closeup_subset`): neither file is read again.
+        """
+        self.__dict__["parcels"] = rows
+        self.__dict__["parcels_gdf"] = shapes
+
     @cached_property
     def parcels_gdf(self):
         import geopandas as gpd

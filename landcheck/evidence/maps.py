@@ -1138,6 +1138,18 @@ def overview_map(
     return FigureFiles([FigureItem("overview", caption, paths, entries)])
 
 
+def closeup_order(parcels, max_maps: int) -> list[str]:
+    """Ids of the parcels that get a close-up: conflict area > 0, largest first, ties by ``parcel_id``."""
+    cand = parcels[parcels["conflict_m2"].fillna(0) > 0]
+    order = sorted(zip(cand["conflict_m2"], cand["parcel_id"]), key=lambda t: (-float(t[0]), t[1]))
+    return [pid for _, pid in order[: max(0, int(max_maps))]]
+
+
+def closeup_frame(folder: AuditFolder, geom, cell: float | None = None) -> tuple[float, float, float, float]:
+    """The area a close-up of ``geom`` shows (the parcel, a margin, at least four cells each side)."""
+    return _closeup_bounds(geom, _cell_width(folder) if cell is None else cell)
+
+
 def _closeup_bounds(geom, cell: float) -> tuple[float, float, float, float]:
     x0, y0, x1, y1 = geom.bounds
     cx, cy = 0.5 * (x0 + x1), 0.5 * (y0 + y1)
@@ -1191,12 +1203,10 @@ def parcel_closeup_maps(
             if old.suffix in (".png", ".svg"):
                 old.unlink()
     df = folder.parcels
-    cand = df[df["conflict_m2"].fillna(0) > 0]
-    order = sorted(zip(cand["conflict_m2"], cand["parcel_id"]), key=lambda t: (-float(t[0]), t[1]))
     gdf = folder.parcels_gdf
     items = []
     cell = _cell_width(folder)
-    for rank, (_, pid) in enumerate(order[: max(0, int(max_maps))], start=1):
+    for rank, pid in enumerate(closeup_order(df, max_maps), start=1):
         rows = gdf[gdf["parcel_id"] == pid]
         if rows.empty or rows.geometry.iloc[0] is None or rows.geometry.iloc[0].is_empty:
             logger.warning("parcel %s has no geometry in parcels.gpkg; no close-up drawn", pid)

@@ -14,6 +14,7 @@ figures and the same text otherwise.
 from __future__ import annotations
 
 import base64
+import dataclasses
 import html
 import json
 import logging
@@ -27,13 +28,14 @@ from landcheck.about import CAUTION, __version__
 from landcheck.engine.interrupt import raise_if_interrupted
 from landcheck.engine.windows import progress_bar
 from landcheck.evidence.charts import class_share_chart, sensitivity_chart, slope_distribution_chart
+from landcheck.evidence.figure_worker import FigureJob, closeup_subset, draw_closeups
 from landcheck.evidence.folder import AuditFolder, load_audit_folder
 from landcheck.evidence.maps import (
     VERDICTS,
+    FigureFiles,
     FigureItem,
     load_map_data,
     overview_map,
-    parcel_closeup_maps,
 )
 from landcheck.evidence.style import CONFIDENCE_SHORT, DEFAULT_SLOPE_BREAKS_PCT, VERDICT_TEXT, count_text, yes_no
 from landcheck.evidence.webmap import WEBMAP_CSS, webmap_section
@@ -842,6 +844,7 @@ def build_report(
     parcel_shapes=None,
     raster_files=None,
     before_output_hashes=None,
+    figure_worker=None,
 ) -> Path:
     """Write a self-contained HTML report of an audit output folder.
 
@@ -884,6 +887,10 @@ def build_report(
     before_output_hashes : callable, optional
         Called before the output files are hashed for the manifest (the audit waits there for
         those copies).
+    figure_worker : FigureWorker, optional
+        A process from :func:`landcheck.evidence.figure_worker.start` that draws the close-ups and
+        charts while this one draws the rest (the same files as drawn here; that module says when
+        it may be started).  Default: everything is drawn in this process.
 
     Returns
     -------
@@ -921,6 +928,20 @@ def build_report(
     # validate the tables before drawing anything
     _ = folder.parcels, folder.classes, folder.parcels_gdf
     done("tables read")
+    job = FigureJob(
+        folder.out_dir,
+        figures_dir,
+        tuple(float(b) for b in slope_breaks_pct),
+        int(max_closeups),
+        int(dpi),
+        tuple(figure_formats),
+        tuple(closeup_formats),
+        dict(raster_files) if raster_files else None,
+    )
+    if figure_worker is not None:
+        # close-ups and charts drawn beside the maps below, from the few parcels they show
+        rows, shapes = closeup_subset(folder, max_closeups)
+        figure_worker.submit(dataclasses.replace(job, parcel_rows=rows, parcel_shapes=shapes))
     kw = dict(dest_dir=figures_dir, dpi=dpi, formats=formats)
     map_data = load_map_data(folder)
     done("rasters read")
@@ -929,18 +950,28 @@ def build_report(
     breaks = np.asarray([float(b) for b in slope_breaks_pct])
     webmap_html = webmap_section(folder, map_data, breaks, _class_labels(folder))
     done("interactive map")
-    # close-ups are many: PNG by default (SVG on request) to keep the audit quick
-    closeups = parcel_closeup_maps(
-        folder,
-        max_closeups,
-        slope_breaks_pct=slope_breaks_pct,
-        dest_dir=figures_dir,
-        dpi=dpi,
-        formats=tuple(dict.fromkeys(("png", *closeup_formats))),
-        on_drawn=lambda: done("close-ups"),
-    )
-    bar.update(max(0, int(max_closeups)) - len(closeups.items))
-    charts = [class_share_chart(folder, **kw), slope_distribution_chart(folder, **kw), sensitivity_chart(folder, **kw)]
+    del map_data
+    n_closeup_steps = max(0, int(max_closeups))
+    if figure_worker is not None:
+        shown = [0]
+
+        def worker_progress(n: int) -> None:
+            raise_if_interrupted()
+            bar.update(n - shown[0])
+            shown[0] = n
+
+        drawn = figure_worker.collect(worker_progress)
+        closeups = FigureFiles(drawn.closeups)
+        charts = [FigureFiles(c) for c in drawn.charts]
+        bar.update(n_closeup_steps - shown[0])
+    else:
+        closeups = draw_closeups(folder, job, on_drawn=lambda: done("close-ups"))
+        bar.update(n_closeup_steps - len(closeups.items))
+        charts = [
+            class_share_chart(folder, **kw),
+            slope_distribution_chart(folder, **kw),
+            sensitivity_chart(folder, **kw),
+        ]
     done("charts")
 
     extra_warnings: list[str] = []

@@ -227,7 +227,7 @@ def validate_parcels(
         bad = np.flatnonzero(~polygonal)
         raise InputDataError(
             f"{where}: {count_text(len(bad), 'feature')} {'is' if len(bad) == 1 else 'are'} not a polygon (rows {', '.join(str(i + 1) for i in bad[:10])}, "
-            f"type {shapely.get_type_id(geom[bad[0]])}); parcels must be Polygon or MultiPolygon."
+            f"the first is a {geom[bad[0]].geom_type}); parcels must be Polygon or MultiPolygon."
         )
     invalid = ~empty & ~shapely.is_valid(geom)
     if invalid.any():
