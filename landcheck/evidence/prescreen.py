@@ -232,8 +232,8 @@ def _checked_geometry(geom, where: str) -> tuple[object, list[str]]:
                 f"{where}: the polygon is invalid ({reason}) and has no area once repaired; check the vertex order."
             )
         notes.append(
-            f"{where}: the polygon was invalid ({reason}); it was repaired (shapely.make_valid) to "
-            f"{geom.geom_type} of area {geom.area:,.1f} (CRS units squared); check the vertex order."
+            f"{where}: the polygon was invalid ({reason}); it was repaired (shapely.make_valid) to a "
+            f"{geom.geom_type}, whose area on the ground the sheet gives; check the vertex order."
         )
     if geom.area <= 0:
         raise InputDataError(f"{where}: the polygon has zero area; check the coordinates.")
