@@ -29,6 +29,7 @@ import logging
 import math
 import re
 from collections.abc import Sequence
+from concurrent.futures import Executor, Future, ThreadPoolExecutor
 from functools import lru_cache
 from pathlib import Path
 
@@ -142,49 +143,205 @@ _DOT_ZERO = re.compile(r"\.0(?=[,\]])")
 
 
 #: geometries simplified and written at once: each is done on its own, so the chunks change nothing but
-#: the memory (at 100 000 parcels the simplified and moved copies are about 100 MB each when made whole)
+#: the memory and the time (at 100 000 parcels the simplified copies are about 100 MB when made whole)
 _GEOJSON_CHUNK = 10_000
+#: display coordinates are written as whole numbers below this size (GEOS's GeoJSON writer turns to an
+#: exponent from 1e15 on; such a geometry is written by that writer, as is one with a -0 or a NaN)
+_PLAIN_LIMIT = 1e15
+# GeoJSON text of a geometry, by shapely type id: what opens its coordinates and what closes them (with the
+# feature).  Between them come its coordinate sequences (rings, lines, points); a multi-polygon's parts are
+# set apart by "],[", any other two sequences by ",".  Other types (linear rings, collections) and
+# geometries with an empty part are written by GEOS (:func:`_geos_geojson`).
+_GEOJSON_SHAPES = {
+    0: ("Point", "", "}"),
+    1: ("LineString", "", "}"),
+    3: ("Polygon", "[", "]}"),
+    4: ("MultiPoint", "[", "]}"),
+    5: ("MultiLineString", "[", "]}"),
+    6: ("MultiPolygon", "[[", "]]}"),
+}
+_OPEN = np.array([""] * 8, dtype=object)
+_CLOSE = np.array([""] * 8, dtype=object)
+for _t, (_name, _open, _close) in _GEOJSON_SHAPES.items():
+    _OPEN[_t] = f',"geometry":{{"type":"{_name}","coordinates":{_open}'
+    _CLOSE[_t] = _close + "}"
+#: a feature's text up to its properties; "%d" is its id (the text is a %-format template, see _features)
+_FEATURE_OPEN = ',{"type":"Feature","id":%d,"properties":'
+_SEPARATORS = ("", ",", "],[")
 
 
-def _geojson_geometries(geoms, frame: _Frame, tolerance: float) -> list[str]:
-    """Simplified (display only), rounded GeoJSON geometry strings; '' for empty or missing."""
-    arr = np.asarray(geoms, dtype=object)
-    out: list[str] = []
-    for k in range(0, len(arr), _GEOJSON_CHUNK):
-        out += _geojson_chunk(arr[k : k + _GEOJSON_CHUNK], frame, tolerance)
-    return out
-
-
-def _geojson_chunk(arr: np.ndarray, frame: _Frame, tolerance: float) -> list[str]:
+def _geos_geojson(geoms: np.ndarray, frame: _Frame) -> list[str]:
+    """GeoJSON text of non-empty geometries by GEOS's writer, with ".0" dropped from the whole numbers."""
     import shapely
 
-    missing = np.array([g is None for g in arr])
+    return [_DOT_ZERO.sub("", t) for t in shapely.to_geojson(shapely.transform(geoms, frame.transform))]
+
+
+def _sequences(geoms: np.ndarray, frame: _Frame):
+    """The coordinate sequences of non-empty geometries of the types of ``_GEOJSON_SHAPES``, in order.
+
+    Returns (geometry index, separator code (index into ``_SEPARATORS``), number of points, is a point)
+    per sequence, the display coordinates as int64 (n, 2), and a mask of the geometries this layout
+    cannot write (an empty part or a coordinate that is not a plain whole number).  Only multi-part
+    geometries and polygons with holes are taken apart (GEOS copies every part it hands out).
+    """
+    import shapely
+
+    gtype = shapely.get_type_id(geoms)
+    bad = np.zeros(len(geoms), dtype=bool)
+    single = gtype <= 1
+    single[gtype == 3] = shapely.get_num_interior_rings(geoms[gtype == 3]) == 0
+    others = np.flatnonzero(~single)
+    parts, part_of = shapely.get_parts(geoms[others], return_index=True)
+    bad[others[part_of[shapely.is_empty(parts)]]] = True
+    ptype = shapely.get_type_id(parts)
+    poly = ptype == 3
+    n_seq_part = np.ones(len(parts), dtype=np.int64)
+    n_seq_part[poly] = shapely.get_num_interior_rings(parts[poly]) + 1
+    seq_part = np.repeat(np.arange(len(parts)), n_seq_part)
+    if bad.any():
+        return None, None, None, None, None, bad
+    in_poly = poly[seq_part]
+    n_pts_part = np.empty(len(seq_part), dtype=np.int64)
+    n_pts_part[in_poly] = shapely.get_num_coordinates(shapely.get_rings(parts[poly]))
+    n_pts_part[~in_poly] = shapely.get_num_coordinates(parts[~poly])
+    bad[others[part_of[seq_part[n_pts_part == 0]]]] = True
+    # the sequences of all geometries: one for each single one, those just found for the others
+    n_seq = np.ones(len(geoms), dtype=np.int64)
+    n_seq[others] = np.bincount(part_of[seq_part], minlength=len(others))
+    seq_geom = np.repeat(np.arange(len(geoms)), n_seq)
+    of_single = single[seq_geom]
+    n_pts = np.empty(len(seq_geom), dtype=np.int64)
+    n_pts[of_single] = shapely.get_num_coordinates(geoms[single])
+    n_pts[~of_single] = n_pts_part
+    is_point = np.empty(len(seq_geom), dtype=bool)
+    is_point[of_single] = gtype[single] == 0
+    is_point[~of_single] = ptype[seq_part] == 0
+    # separators: none before a geometry's first sequence, "],[" between the parts of a multi-polygon
+    first = np.ones(len(seq_geom), dtype=bool)
+    first[1:] = seq_geom[1:] != seq_geom[:-1]
+    new_part = np.ones(len(seq_part), dtype=bool)
+    new_part[1:] = seq_part[1:] != seq_part[:-1]
+    sep = np.zeros(len(seq_geom), dtype=np.int64)
+    sep[~of_single] = np.where(new_part & (gtype[others[part_of[seq_part]]] == 6), 2, 1)
+    sep[first] = 0
+    xy = frame.transform(shapely.get_coordinates(geoms))
+    odd = ~(np.abs(xy) < _PLAIN_LIMIT) | ((xy == 0) & np.signbit(xy))
+    bad[np.repeat(seq_geom, n_pts)[odd.any(axis=1)]] = True
+    return seq_geom, sep, n_pts, is_point, xy.astype(np.int64), bad
+
+
+def _sequence_templates(sep: np.ndarray, n_pts: np.ndarray, is_point: np.ndarray) -> np.ndarray:
+    """The %-format template of each coordinate sequence, with the separator before it (object array)."""
+    key = (n_pts * 2 + is_point) * len(_SEPARATORS) + sep
+    keys, inverse = np.unique(key, return_inverse=True)
+    table = np.empty(len(keys), dtype=object)
+    for j, k in enumerate(keys.tolist()):
+        rest, s = divmod(k, len(_SEPARATORS))
+        n, point = divmod(rest, 2)
+        table[j] = _SEPARATORS[s] + ("[%d,%d]" if point else "[" + ",".join(["[%d,%d]"] * n) + "]")
+    return table[inverse.ravel()]
+
+
+def _features(arr: np.ndarray, ids: np.ndarray, props: np.ndarray, frame: _Frame, tolerance: float) -> tuple[str, int]:
+    """The features of some geometries, each with a comma before it, and their number.
+
+    ``props``: the JSON text of each one's properties, with "%" doubled.  Missing and empty geometries
+    are left out.
+    """
+    import shapely
+
+    missing = shapely.is_missing(arr)
     arr = np.where(missing, shapely.Polygon(), arr)
     simple = shapely.simplify(arr, tolerance, preserve_topology=True)
     # a part that simplification would collapse keeps its original shape
     collapsed = shapely.is_empty(simple) & ~shapely.is_empty(arr)
     simple = np.where(collapsed, arr, simple)
-    moved = shapely.transform(simple, frame.transform)
-    text = shapely.to_geojson(moved)
-    empty = shapely.is_empty(moved) | missing
-    return ["" if e else _DOT_ZERO.sub("", t) for t, e in zip(text, empty)]
+    keep = ~(missing | shapely.is_empty(simple))
+    geoms, ids, props = simple[keep], ids[keep], props[keep]
+    if not len(geoms):
+        return "", 0
+    gtype = shapely.get_type_id(geoms)
+    plain = np.isin(gtype, list(_GEOJSON_SHAPES))
+    while True:  # again without the geometries a pass could not write, until none is left
+        seq_geom, sep, n_pts, is_point, xy, bad = _sequences(geoms[plain], frame)
+        if not bad.any():
+            break
+        plain[np.flatnonzero(plain)[bad]] = False
+    # the text as a %-format template and its numbers: per feature, its id, then (if plain) its coordinates
+    where = np.flatnonzero(plain)
+    n_seq = np.bincount(seq_geom, minlength=len(where))
+    n_tok = np.full(len(geoms), 3, dtype=np.int64)
+    n_tok[where] += 1 + n_seq
+    start = np.cumsum(n_tok) - n_tok
+    tokens = np.empty(int(n_tok.sum()), dtype=object)
+    tokens[start] = _FEATURE_OPEN
+    tokens[start + 1] = props
+    tokens[start[where] + 2] = _OPEN[gtype[where]]
+    tokens[start[where] + 3 + n_seq] = _CLOSE[gtype[where]]
+    first_seq = np.cumsum(n_seq) - n_seq
+    rank = np.arange(len(seq_geom)) - first_seq[seq_geom]
+    tokens[start[where][seq_geom] + 3 + rank] = _sequence_templates(sep, n_pts, is_point)
+    other = np.flatnonzero(~plain)
+    if len(other):
+        texts = _geos_geojson(geoms[other], frame)
+        tokens[start[other] + 2] = np.array([',"geometry":' + t.replace("%", "%%") + "}" for t in texts], dtype=object)
+    n_val = np.ones(len(geoms), dtype=np.int64)
+    n_val[where] += 2 * np.bincount(seq_geom, weights=n_pts, minlength=len(where)).astype(np.int64)
+    values = np.empty(int(n_val.sum()), dtype=np.int64)
+    is_id = np.zeros(len(values), dtype=bool)
+    is_id[np.cumsum(n_val) - n_val] = True
+    values[is_id] = ids
+    values[~is_id] = xy.ravel()
+    return "".join(tokens.tolist()) % tuple(values.tolist()), len(geoms)
 
 
-def _feature_collection(geom_texts: Sequence[str], props: Sequence[str]) -> str:
-    feats = [
-        f'{{"type":"Feature","id":{i},"properties":{p},"geometry":{g}}}'
-        for i, (g, p) in enumerate(zip(geom_texts, props))
-        if g
+def _submit_features(
+    pool: Executor, geoms, props: Sequence[str], codes: np.ndarray, frame: _Frame, tolerance: float
+) -> list[Future]:
+    """Start writing geometries as GeoJSON features on ``pool``, chunk by chunk (see :func:`_collection`).
+
+    Geometries are simplified for display and rounded to display units; a feature's ``id`` is its row
+    number and its properties are ``props[codes[row]]`` (JSON text).  GEOS releases the GIL while it
+    simplifies, so chunks on two threads overlap.
+    """
+    arr = np.asarray(geoms, dtype=object)
+    prop_text = np.array([p.replace("%", "%%") for p in props], dtype=object)[np.asarray(codes, dtype=np.intp)]
+    ids = np.arange(len(arr), dtype=np.int64)
+    return [
+        pool.submit(
+            _features,
+            arr[k : k + _GEOJSON_CHUNK],
+            ids[k : k + _GEOJSON_CHUNK],
+            prop_text[k : k + _GEOJSON_CHUNK],
+            frame,
+            tolerance,
+        )
+        for k in range(0, len(arr), _GEOJSON_CHUNK)
     ]
-    return '{"type":"FeatureCollection","features":[' + ",".join(feats) + "]}"
+
+
+def _collection(chunks: list[Future]) -> tuple[str, int]:
+    """The GeoJSON FeatureCollection of :func:`_submit_features`, and its number of features.
+
+    Missing and empty geometries are left out.
+    """
+    done = [c.result() for c in chunks]
+    texts = [t for t, _ in done if t]
+    if texts:
+        texts[0] = texts[0][1:]  # no comma before the first feature
+    return '{"type":"FeatureCollection","features":[' + "".join(texts) + "]}", sum(n for _, n in done)
 
 
 def _dictionary(values) -> tuple[list[str], list[int]]:
     """Dictionary-encode a text column: (unique values in first-seen order, index per row)."""
     import pandas as pd
 
-    codes, uniques = pd.factorize(pd.Series(values, dtype=object).astype(str), sort=False)
-    return [str(u) for u in uniques], codes.tolist()
+    s = pd.Series(values)
+    if not (isinstance(s.dtype, pd.StringDtype) and not s.isna().any()):
+        s = pd.Series(s.to_numpy(dtype=object), dtype=object).astype(str)
+    codes, uniques = pd.factorize(s, sort=False)
+    return [str(u) for u in np.asarray(uniques, dtype=object).tolist()], codes.tolist()
 
 
 def _rounded(values, digits: int) -> list:
@@ -195,7 +352,9 @@ def _rounded(values, digits: int) -> list:
     ok = np.isfinite(f)
     r = np.round(np.where(ok, f, 0.0), digits)
     vals = r.astype(np.int64).tolist() if digits == 0 else r.tolist()
-    return [v if k else None for v, k in zip(vals, ok.tolist())]
+    for i in np.flatnonzero(~ok).tolist():
+        vals[i] = None
+    return vals
 
 
 def _conflict_overlay(data: _MapData, n_zone_bits: int) -> str | None:
@@ -209,10 +368,10 @@ def _conflict_overlay(data: _MapData, n_zone_bits: int) -> str | None:
     kind = slope_hit.astype(np.uint8) + 2 * zone_hit.astype(np.uint8)
     if not kind.any():
         return None
-    rgba = np.zeros((*kind.shape, 4), dtype=np.uint8)
+    colours = np.zeros((4, 4), dtype=np.uint8)  # kind 0 stays transparent
     for k, colour in _CONFLICT_RGBA.items():
-        rgba[kind == k] = colour
-    return _png_data_uri(rgba)
+        colours[k] = colour
+    return _png_data_uri(colours[kind])
 
 
 def _cell_zone_overlays(data: _MapData) -> list[dict]:
@@ -232,105 +391,140 @@ def _relief_overlay(data: _MapData, breaks: np.ndarray) -> str:
     return _png_data_uri(rgba)
 
 
+#: threads that build the map data: GEOS (simplifying) and the PNG encoder release the GIL, so two
+#: overlap well; more find little more to do side by side
+_MAX_THREADS = 2
+
+
 def webmap_data(folder: AuditFolder, data: _MapData, breaks: np.ndarray, class_labels: dict[str, str]) -> dict:
     """Everything the page script needs, as one JSON-ready dict."""
+    import pandas as pd
+
+    from landcheck.engine.memory import release_heap
+    from landcheck.engine.windows import default_workers
+
     cell_h = abs(data.slope.transform.e) / max(1, data.slope.factor)
     cell_w = abs(data.slope.transform.a) / max(1, data.slope.factor)
     frame = _Frame(data, cell_h)
     crs = _crs(data.slope.crs)
     tolerance = max(cell_w, cell_h)
+    n_zone_bits = max(0, len(folder.section("conflict_raster_bits", default=["slope"]) or ["slope"]) - 1)
 
     gdf = folder.parcels_gdf
     if gdf.crs is not None and _crs(gdf.crs) != crs:
         gdf = gdf.to_crs(crs.to_wkt())
-    df = folder.parcels.drop_duplicates("parcel_id").set_index("parcel_id")
-    pids = list(gdf["parcel_id"])
-    rec = df.reindex(pids)
-    verdict_keys = [v for v in VERDICTS if (gdf["verdict"] == v).any()]
-    verdict_keys += sorted(set(gdf["verdict"]) - set(VERDICTS) - {""})
+    # text columns read once into Python strings (not element by element from their Arrow arrays)
+    verdict = gdf["verdict"].to_numpy(dtype=object)
+    pids = gdf["parcel_id"].to_numpy(dtype=object).tolist()
+    verdict_codes, verdict_values = pd.factorize(verdict, sort=False)
+    n_of = dict(zip(verdict_values.tolist(), np.bincount(verdict_codes[verdict_codes >= 0]).tolist()))
+    verdict_keys = [v for v in VERDICTS if n_of.get(v, 0) > 0]
+    verdict_keys += sorted(set(n_of) - set(VERDICTS) - {""})
     vindex = {v: i for i, v in enumerate(verdict_keys)}
-    geom_texts = _geojson_geometries(gdf.geometry.values, frame, tolerance)
-    props = [f'{{"v":{vindex.get(v, -1)}}}' for v in gdf["verdict"]]
-    classes, class_idx = _dictionary(rec["class_name"].fillna(""))
-    reasons, reason_idx = _dictionary(rec["reasons"].fillna("") if "reasons" in rec else [""] * len(rec))
-
-    def col(name, digits):
-        return _rounded(rec[name], digits) if name in rec.columns else None
-
-    rows = {
-        "pid": pids,
-        "cls": class_idx,
-        "area_m2": col("area_m2", 0),
-        "evaluated_share": col("evaluated_share", 4),
-        "slope_mean_pct": col("slope_mean_pct", 1),
-        "slope_max_pct": col("slope_max_pct", 1),
-        "limit_pct": col("max_slope_pct", 2),
-        "conflict_m2": col("conflict_m2", 0),
-        "conflict_share": col("conflict_share", 4),
-        "reason": reason_idx,
-    }
-    if "p_conflict" in rec.columns:
-        rows["p_conflict"] = col("p_conflict", 3)
-    if "confidence" in rec.columns:
-        conf, conf_idx = _dictionary(rec["confidence"].fillna(""))
-        rows["confidence"] = conf_idx
-    else:
-        conf = []
-    zones = []
-    for i, (name, zg) in enumerate(folder.zone_layers):
-        if zg.crs is not None and _crs(zg.crs) != crs:
-            zg = zg.to_crs(crs.to_wkt())
-        texts = _geojson_geometries(zg.geometry.values, frame, tolerance)
-        if not any(texts):
-            continue
-        colour = _ZONE_STYLE[i % len(_ZONE_STYLE)][0]
-        lines = bool(zg.geom_type.str.contains("LineString").all())
-        zones.append(
-            {
-                "name": folder.zone_label(name),
-                "colour": colour,
-                "lines": lines,
-                "geojson": _feature_collection(texts, ["{}"] * len(texts)),
-            }
+    # a row's verdict code -> its index in verdict_keys (-1: none, also for a missing verdict)
+    key_of = np.array([vindex.get(v, -1) for v in verdict_values.tolist()] + [-1], dtype=np.int64)
+    with ThreadPoolExecutor(max_workers=max(1, min(_MAX_THREADS, default_workers()))) as pool:
+        relief = pool.submit(_relief_overlay, data, breaks)
+        conflict = pool.submit(_conflict_overlay, data, n_zone_bits)
+        cell_zones = pool.submit(_cell_zone_overlays, data)
+        parcel_chunks = _submit_features(
+            pool,
+            gdf.geometry.values,
+            [f'{{"v":{k}}}' for k in range(-1, len(verdict_keys))],
+            key_of[verdict_codes] + 1,
+            frame,
+            tolerance,
         )
-    n_zone_bits = max(0, len(folder.section("conflict_raster_bits", default=["slope"]) or ["slope"]) - 1)
-    conflict_uri = _conflict_overlay(data, n_zone_bits)
-    counts = {v: int((gdf["verdict"] == v).sum()) for v in verdict_keys}
-    cell_units = _UNITS_PER_CELL * data.slope.factor
-    return {
-        "frame": frame.to_json(),
-        "max_zoom": int(math.ceil(math.log2(_MAX_ZOOM_CELL_PX * data.slope.factor / cell_units))),
-        "relief": _relief_overlay(data, breaks),
-        "conflict": conflict_uri,
-        "conflict_kinds": [
-            {"text": _CONFLICT_KIND_TEXT[k], "rgba": list(_CONFLICT_RGBA[k])}
-            for k in (1, 2, 3)
-            if conflict_uri is not None
-        ],
-        "verdicts": [
-            {
-                "key": v,
-                "text": VERDICT_TEXT.get(v, v.replace("_", " ")),
-                "count": counts[v],
-                "colour": _WEB_VERDICT_STYLE.get(v, ("#444444", 1.2, None))[0],
-                "weight": _WEB_VERDICT_STYLE.get(v, ("#444444", 1.2, None))[1],
-                "dash": _WEB_VERDICT_STYLE.get(v, ("#444444", 1.2, None))[2],
-            }
-            for v in verdict_keys
-        ],
-        "classes": [class_labels.get(c, c.replace("_", " ")) for c in classes],
-        "reasons": reasons,
-        "confidence_text": [CONFIDENCE_TEXT.get(c, c.replace("_", " ")) for c in conf],
-        "rows": rows,
-        "parcels": _feature_collection(geom_texts, props),
-        "zones": zones,
-        "cell_zones": _cell_zone_overlays(data),
-        "slope_classes": [
-            {"text": t, "colour": c} for t, c in zip(slope_class_labels(breaks), slope_class_colours(len(breaks) - 1))
-        ],
-        "relief_note": data.relief_note,
-        "simplify_m": tolerance * (1.0 if not frame.geographic else 111_320.0),
-    }
+        zone_chunks = []
+        for i, (name, zg) in enumerate(folder.zone_layers):
+            if zg.crs is not None and _crs(zg.crs) != crs:
+                zg = zg.to_crs(crs.to_wkt())
+            lines = bool(zg.geom_type.str.contains("LineString").all())
+            chunks = _submit_features(
+                pool, zg.geometry.values, ["{}"], np.zeros(len(zg), dtype=np.intp), frame, tolerance
+            )
+            zone_chunks.append((i, name, lines, chunks))
+
+        df = folder.parcels.drop_duplicates("parcel_id").set_index("parcel_id")
+        rec = df.reindex(pids)
+        classes, class_idx = _dictionary(rec["class_name"].fillna(""))
+        reasons, reason_idx = _dictionary(rec["reasons"].fillna("") if "reasons" in rec else [""] * len(rec))
+
+        def col(name, digits):
+            return _rounded(rec[name], digits) if name in rec.columns else None
+
+        rows = {
+            "pid": pids,
+            "cls": class_idx,
+            "area_m2": col("area_m2", 0),
+            "evaluated_share": col("evaluated_share", 4),
+            "slope_mean_pct": col("slope_mean_pct", 1),
+            "slope_max_pct": col("slope_max_pct", 1),
+            "limit_pct": col("max_slope_pct", 2),
+            "conflict_m2": col("conflict_m2", 0),
+            "conflict_share": col("conflict_share", 4),
+            "reason": reason_idx,
+        }
+        if "p_conflict" in rec.columns:
+            rows["p_conflict"] = col("p_conflict", 3)
+        if "confidence" in rec.columns:
+            conf, conf_idx = _dictionary(rec["confidence"].fillna(""))
+            rows["confidence"] = conf_idx
+        else:
+            conf = []
+        zones = []
+        for i, name, lines, chunks in zone_chunks:
+            text, n = _collection(chunks)
+            if not n:
+                continue
+            zones.append(
+                {
+                    "name": folder.zone_label(name),
+                    "colour": _ZONE_STYLE[i % len(_ZONE_STYLE)][0],
+                    "lines": lines,
+                    "geojson": text,
+                }
+            )
+        parcels, _ = _collection(parcel_chunks)
+        conflict_uri = conflict.result()
+        cell_units = _UNITS_PER_CELL * data.slope.factor
+        out = {
+            "frame": frame.to_json(),
+            "max_zoom": int(math.ceil(math.log2(_MAX_ZOOM_CELL_PX * data.slope.factor / cell_units))),
+            "relief": relief.result(),
+            "conflict": conflict_uri,
+            "conflict_kinds": [
+                {"text": _CONFLICT_KIND_TEXT[k], "rgba": list(_CONFLICT_RGBA[k])}
+                for k in (1, 2, 3)
+                if conflict_uri is not None
+            ],
+            "verdicts": [
+                {
+                    "key": v,
+                    "text": VERDICT_TEXT.get(v, v.replace("_", " ")),
+                    "count": n_of[v],
+                    "colour": _WEB_VERDICT_STYLE.get(v, ("#444444", 1.2, None))[0],
+                    "weight": _WEB_VERDICT_STYLE.get(v, ("#444444", 1.2, None))[1],
+                    "dash": _WEB_VERDICT_STYLE.get(v, ("#444444", 1.2, None))[2],
+                }
+                for v in verdict_keys
+            ],
+            "classes": [class_labels.get(c, c.replace("_", " ")) for c in classes],
+            "reasons": reasons,
+            "confidence_text": [CONFIDENCE_TEXT.get(c, c.replace("_", " ")) for c in conf],
+            "rows": rows,
+            "parcels": parcels,
+            "zones": zones,
+            "cell_zones": cell_zones.result(),
+            "slope_classes": [
+                {"text": t, "colour": c}
+                for t, c in zip(slope_class_labels(breaks), slope_class_colours(len(breaks) - 1))
+            ],
+            "relief_note": data.relief_note,
+            "simplify_m": tolerance * (1.0 if not frame.geographic else 111_320.0),
+        }
+    release_heap()  # the threads' glibc arenas keep their freed chunks otherwise
+    return out
 
 
 def _json_for_script(obj) -> str:
