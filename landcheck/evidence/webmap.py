@@ -398,6 +398,14 @@ _MAX_THREADS = 2
 
 def webmap_data(folder: AuditFolder, data: _MapData, breaks: np.ndarray, class_labels: dict[str, str]) -> dict:
     """Everything the page script needs, as one JSON-ready dict."""
+    return _webmap_data(folder, data, breaks, class_labels, None)
+
+
+def _webmap_data(
+    folder: AuditFolder, data: _MapData, breaks: np.ndarray, class_labels: dict[str, str], ready: dict | None
+) -> dict:
+    """:func:`webmap_data`; with ``ready``, also puts there the script text (:func:`_json_for_script`) of
+    the largest entries, made while the threads work."""
     import pandas as pd
 
     from landcheck.engine.memory import release_heap
@@ -472,6 +480,9 @@ def webmap_data(folder: AuditFolder, data: _MapData, breaks: np.ndarray, class_l
             rows["confidence"] = conf_idx
         else:
             conf = []
+        if ready is not None:  # while the threads work on the shapes and images
+            ready["rows"] = _json_for_script(rows)
+            ready["reasons"] = _json_for_script(reasons)
         zones = []
         for i, name, lines, chunks in zone_chunks:
             text, n = _collection(chunks)
@@ -527,13 +538,18 @@ def webmap_data(folder: AuditFolder, data: _MapData, breaks: np.ndarray, class_l
     return out
 
 
-def _json_for_script(obj) -> str:
+def _json_for_script(obj, ready: dict[str, str] | None = None) -> str:
     """``obj`` as JSON text safe inside a ``<script>`` element.
 
     ASCII only (other characters as ``\\u`` escapes, which JSON.parse decodes): Python keeps an
     ASCII string at one byte a character, where a single "m²" would make the whole text of tens of
-    MB two bytes a character.  ``<``, ``>`` and ``&`` are escaped the same way.
+    MB two bytes a character.  ``<``, ``>`` and ``&`` are escaped the same way.  ``ready``: the text of
+    some entries of the dict ``obj``, made so before (the same text, spliced in unchanged).
     """
+    if ready:
+        return (
+            "{" + ",".join(f"{_json_for_script(k)}:{ready.get(k) or _json_for_script(v)}" for k, v in obj.items()) + "}"
+        )
     text = json.dumps(obj, separators=(",", ":"), ensure_ascii=True, allow_nan=False)
     for ch, esc in _JS_ESCAPES.items():
         text = text.replace(ch, esc)  # returns the same string when there is nothing to replace
@@ -773,13 +789,15 @@ def webmap_section(folder: AuditFolder, data: _MapData, breaks: np.ndarray, clas
     """The interactive-map block of the report: map box, legend, status line, data and scripts."""
     from html import escape
 
-    d = webmap_data(folder, data, breaks, class_labels)
+    ready: dict[str, str] = {}
+    d = _webmap_data(folder, data, breaks, class_labels, ready)
     css, js, lic = leaflet_assets()
     n = sum(v["count"] for v in d["verdicts"])
     simplify = f"{d['simplify_m']:,.0f} m" if d["simplify_m"] >= 1 else f"{d['simplify_m']:.2f} m"
     legend, relief_note = _legend_html(d), d["relief_note"]
     # the data as page text, then the dict goes: at 100 000 parcels both are tens of MB
-    data_json = _json_for_script(d)
+    data_json = _json_for_script(d, ready)
+    del ready
     del d
     return (
         f"<style>{css}</style>"
