@@ -296,21 +296,35 @@ def _features(arr: np.ndarray, ids: np.ndarray, props: np.ndarray, frame: _Frame
     return "".join(tokens.tolist()) % tuple(values.tolist()), len(geoms)
 
 
+def _script_features(*args) -> tuple[str, int]:
+    """:func:`_features` as page text: the content of its JSON string (:func:`_json_for_script`)."""
+    text, n = _features(*args)
+    return _json_for_script(text)[1:-1], n
+
+
 def _submit_features(
-    pool: Executor, geoms, props: Sequence[str], codes: np.ndarray, frame: _Frame, tolerance: float
+    pool: Executor,
+    geoms,
+    props: Sequence[str],
+    codes: np.ndarray,
+    frame: _Frame,
+    tolerance: float,
+    *,
+    script: bool = False,
 ) -> list[Future]:
     """Start writing geometries as GeoJSON features on ``pool``, chunk by chunk (see :func:`_collection`).
 
     Geometries are simplified for display and rounded to display units; a feature's ``id`` is its row
     number and its properties are ``props[codes[row]]`` (JSON text).  GEOS releases the GIL while it
-    simplifies, so chunks on two threads overlap.
+    simplifies, so chunks on two threads overlap.  ``script``: the chunks come as page text, escaped
+    as a JSON string is (escaping goes character by character, so chunk by chunk is the same).
     """
     arr = np.asarray(geoms, dtype=object)
     prop_text = np.array([p.replace("%", "%%") for p in props], dtype=object)[np.asarray(codes, dtype=np.intp)]
     ids = np.arange(len(arr), dtype=np.int64)
     return [
         pool.submit(
-            _features,
+            _script_features if script else _features,
             arr[k : k + _GEOJSON_CHUNK],
             ids[k : k + _GEOJSON_CHUNK],
             prop_text[k : k + _GEOJSON_CHUNK],
@@ -321,16 +335,23 @@ def _submit_features(
     ]
 
 
-def _collection(chunks: list[Future]) -> tuple[str, int]:
+def _collection(chunks: list[Future], *, script: bool = False) -> tuple[str, int]:
     """The GeoJSON FeatureCollection of :func:`_submit_features`, and its number of features.
 
-    Missing and empty geometries are left out.
+    Missing and empty geometries are left out.  ``script``: as page text, a JSON string
+    (:func:`_json_for_script`), from chunks submitted so.
     """
-    done = [c.result() for c in chunks]
-    texts = [t for t, _ in done if t]
-    if texts:
-        texts[0] = texts[0][1:]  # no comma before the first feature
-    return '{"type":"FeatureCollection","features":[' + "".join(texts) + "]}", sum(n for _, n in done)
+    head, tail = '{"type":"FeatureCollection","features":[', "]}"
+    if script:
+        head, tail = _json_for_script(head)[:-1], _json_for_script(tail)[1:]
+    texts, n = [head], 0
+    for c in chunks:
+        text, k = c.result()
+        if text:
+            texts.append(text[1:] if n == 0 else text)  # no comma before the first feature
+            n += k
+    texts.append(tail)
+    return "".join(texts), n
 
 
 def _dictionary(values) -> tuple[list[str], list[int]]:
@@ -401,11 +422,42 @@ def webmap_data(folder: AuditFolder, data: _MapData, breaks: np.ndarray, class_l
     return _webmap_data(folder, data, breaks, class_labels, None)
 
 
+def _script_relief(data: _MapData, breaks: np.ndarray) -> str:
+    return _json_for_script(_relief_overlay(data, breaks))
+
+
+def _table(folder: AuditFolder, pids: list) -> tuple[dict, list[str], list[str], list[str]]:
+    """The per-parcel figures of the pop-ups, in the order of ``pids``: (rows, classes, reasons, confidences)."""
+    df = folder.parcels.drop_duplicates("parcel_id").set_index("parcel_id")
+    rec = df.reindex(pids)
+    classes, class_idx = _dictionary(rec["class_name"].fillna(""))
+    reasons, reason_idx = _dictionary(rec["reasons"].fillna("") if "reasons" in rec else [""] * len(rec))
+    rows: dict[str, list | None] = {"pid": pids, "cls": class_idx}
+    for key, name, digits in (
+        ("area_m2", "area_m2", 0),
+        ("evaluated_share", "evaluated_share", 4),
+        ("slope_mean_pct", "slope_mean_pct", 1),
+        ("slope_max_pct", "slope_max_pct", 1),
+        ("limit_pct", "max_slope_pct", 2),
+        ("conflict_m2", "conflict_m2", 0),
+        ("conflict_share", "conflict_share", 4),
+    ):
+        rows[key] = _rounded(rec[name], digits) if name in rec.columns else None
+    rows["reason"] = reason_idx
+    if "p_conflict" in rec.columns:
+        rows["p_conflict"] = _rounded(rec["p_conflict"], 3)
+    conf: list[str] = []
+    if "confidence" in rec.columns:
+        conf, rows["confidence"] = _dictionary(rec["confidence"].fillna(""))
+    return rows, classes, reasons, conf
+
+
 def _webmap_data(
     folder: AuditFolder, data: _MapData, breaks: np.ndarray, class_labels: dict[str, str], ready: dict | None
 ) -> dict:
-    """:func:`webmap_data`; with ``ready``, also puts there the script text (:func:`_json_for_script`) of
-    the largest entries, made while the threads work."""
+    """:func:`webmap_data`.  With ``ready``, the largest entries (rows, reasons, relief, parcels) go there
+    instead, as page text (:func:`_json_for_script`) made on the way, while the threads work; the dict
+    holds None for them."""
     import pandas as pd
 
     from landcheck.engine.memory import release_heap
@@ -417,14 +469,13 @@ def _webmap_data(
     crs = _crs(data.slope.crs)
     tolerance = max(cell_w, cell_h)
     n_zone_bits = max(0, len(folder.section("conflict_raster_bits", default=["slope"]) or ["slope"]) - 1)
+    script = ready is not None
 
     gdf = folder.parcels_gdf
     if gdf.crs is not None and _crs(gdf.crs) != crs:
         gdf = gdf.to_crs(crs.to_wkt())
     # text columns read once into Python strings (not element by element from their Arrow arrays)
-    verdict = gdf["verdict"].to_numpy(dtype=object)
-    pids = gdf["parcel_id"].to_numpy(dtype=object).tolist()
-    verdict_codes, verdict_values = pd.factorize(verdict, sort=False)
+    verdict_codes, verdict_values = pd.factorize(gdf["verdict"].to_numpy(dtype=object), sort=False)
     n_of = dict(zip(verdict_values.tolist(), np.bincount(verdict_codes[verdict_codes >= 0]).tolist()))
     verdict_keys = [v for v in VERDICTS if n_of.get(v, 0) > 0]
     verdict_keys += sorted(set(n_of) - set(VERDICTS) - {""})
@@ -432,7 +483,8 @@ def _webmap_data(
     # a row's verdict code -> its index in verdict_keys (-1: none, also for a missing verdict)
     key_of = np.array([vindex.get(v, -1) for v in verdict_values.tolist()] + [-1], dtype=np.int64)
     with ThreadPoolExecutor(max_workers=max(1, min(_MAX_THREADS, default_workers()))) as pool:
-        relief = pool.submit(_relief_overlay, data, breaks)
+        # the longest single task first
+        relief = pool.submit(_script_relief if script else _relief_overlay, data, breaks)
         conflict = pool.submit(_conflict_overlay, data, n_zone_bits)
         cell_zones = pool.submit(_cell_zone_overlays, data)
         parcel_chunks = _submit_features(
@@ -442,6 +494,7 @@ def _webmap_data(
             key_of[verdict_codes] + 1,
             frame,
             tolerance,
+            script=script,
         )
         zone_chunks = []
         for i, (name, zg) in enumerate(folder.zone_layers):
@@ -453,56 +506,36 @@ def _webmap_data(
             )
             zone_chunks.append((i, name, lines, chunks))
 
-        df = folder.parcels.drop_duplicates("parcel_id").set_index("parcel_id")
-        rec = df.reindex(pids)
-        classes, class_idx = _dictionary(rec["class_name"].fillna(""))
-        reasons, reason_idx = _dictionary(rec["reasons"].fillna("") if "reasons" in rec else [""] * len(rec))
-
-        def col(name, digits):
-            return _rounded(rec[name], digits) if name in rec.columns else None
-
-        rows = {
-            "pid": pids,
-            "cls": class_idx,
-            "area_m2": col("area_m2", 0),
-            "evaluated_share": col("evaluated_share", 4),
-            "slope_mean_pct": col("slope_mean_pct", 1),
-            "slope_max_pct": col("slope_max_pct", 1),
-            "limit_pct": col("max_slope_pct", 2),
-            "conflict_m2": col("conflict_m2", 0),
-            "conflict_share": col("conflict_share", 4),
-            "reason": reason_idx,
-        }
-        if "p_conflict" in rec.columns:
-            rows["p_conflict"] = col("p_conflict", 3)
-        if "confidence" in rec.columns:
-            conf, conf_idx = _dictionary(rec["confidence"].fillna(""))
-            rows["confidence"] = conf_idx
-        else:
-            conf = []
-        if ready is not None:  # while the threads work on the shapes and images
-            ready["rows"] = _json_for_script(rows)
-            ready["reasons"] = _json_for_script(reasons)
+        # meanwhile, on this thread: the table of the pop-ups
+        rows: dict | None
+        reasons: list[str] | None
+        rows, classes, reasons, conf = _table(folder, gdf["parcel_id"].to_numpy(dtype=object).tolist())
+        if ready is not None:
+            ready["rows"], rows = _json_for_script(rows), None
+            ready["reasons"], reasons = _json_for_script(reasons), None
         zones = []
         for i, name, lines, chunks in zone_chunks:
             text, n = _collection(chunks)
-            if not n:
-                continue
-            zones.append(
-                {
-                    "name": folder.zone_label(name),
-                    "colour": _ZONE_STYLE[i % len(_ZONE_STYLE)][0],
-                    "lines": lines,
-                    "geojson": text,
-                }
-            )
-        parcels, _ = _collection(parcel_chunks)
+            if n:
+                zones.append(
+                    {
+                        "name": folder.zone_label(name),
+                        "colour": _ZONE_STYLE[i % len(_ZONE_STYLE)][0],
+                        "lines": lines,
+                        "geojson": text,
+                    }
+                )
+        parcels: str | None = _collection(parcel_chunks, script=script)[0]
+        relief_uri: str | None = relief.result()
+        if ready is not None:
+            ready["parcels"], parcels = parcels, None
+            ready["relief"], relief_uri = relief_uri, None
         conflict_uri = conflict.result()
         cell_units = _UNITS_PER_CELL * data.slope.factor
         out = {
             "frame": frame.to_json(),
             "max_zoom": int(math.ceil(math.log2(_MAX_ZOOM_CELL_PX * data.slope.factor / cell_units))),
-            "relief": relief.result(),
+            "relief": relief_uri,
             "conflict": conflict_uri,
             "conflict_kinds": [
                 {"text": _CONFLICT_KIND_TEXT[k], "rgba": list(_CONFLICT_RGBA[k])}
@@ -544,12 +577,14 @@ def _json_for_script(obj, ready: dict[str, str] | None = None) -> str:
     ASCII only (other characters as ``\\u`` escapes, which JSON.parse decodes): Python keeps an
     ASCII string at one byte a character, where a single "m²" would make the whole text of tens of
     MB two bytes a character.  ``<``, ``>`` and ``&`` are escaped the same way.  ``ready``: the text of
-    some entries of the dict ``obj``, made so before (the same text, spliced in unchanged).
+    some entries of the dict ``obj``, made so before (the same text, spliced in; taken out of ``ready``).
     """
     if ready:
-        return (
-            "{" + ",".join(f"{_json_for_script(k)}:{ready.get(k) or _json_for_script(v)}" for k, v in obj.items()) + "}"
-        )
+        parts = []
+        for k, v in obj.items():
+            parts += [",", _json_for_script(k), ":", ready.pop(k) if k in ready else _json_for_script(v)]
+        parts[0] = "{"
+        return "".join(parts) + "}"
     text = json.dumps(obj, separators=(",", ":"), ensure_ascii=True, allow_nan=False)
     for ch, esc in _JS_ESCAPES.items():
         text = text.replace(ch, esc)  # returns the same string when there is nothing to replace
