@@ -483,90 +483,94 @@ def _webmap_data(
     # a row's verdict code -> its index in verdict_keys (-1: none, also for a missing verdict)
     key_of = np.array([vindex.get(v, -1) for v in verdict_values.tolist()] + [-1], dtype=np.int64)
     with ThreadPoolExecutor(max_workers=max(1, min(_MAX_THREADS, default_workers()))) as pool:
-        # the longest single task first
-        relief = pool.submit(_script_relief if script else _relief_overlay, data, breaks)
-        conflict = pool.submit(_conflict_overlay, data, n_zone_bits)
-        cell_zones = pool.submit(_cell_zone_overlays, data)
-        parcel_chunks = _submit_features(
-            pool,
-            gdf.geometry.values,
-            [f'{{"v":{k}}}' for k in range(-1, len(verdict_keys))],
-            key_of[verdict_codes] + 1,
-            frame,
-            tolerance,
-            script=script,
-        )
-        zone_chunks = []
-        for i, (name, zg) in enumerate(folder.zone_layers):
-            if zg.crs is not None and _crs(zg.crs) != crs:
-                zg = zg.to_crs(crs.to_wkt())
-            lines = bool(zg.geom_type.str.contains("LineString").all())
-            chunks = _submit_features(
-                pool, zg.geometry.values, ["{}"], np.zeros(len(zg), dtype=np.intp), frame, tolerance
+        try:
+            # the longest single task first
+            relief = pool.submit(_script_relief if script else _relief_overlay, data, breaks)
+            conflict = pool.submit(_conflict_overlay, data, n_zone_bits)
+            cell_zones = pool.submit(_cell_zone_overlays, data)
+            parcel_chunks = _submit_features(
+                pool,
+                gdf.geometry.values,
+                [f'{{"v":{k}}}' for k in range(-1, len(verdict_keys))],
+                key_of[verdict_codes] + 1,
+                frame,
+                tolerance,
+                script=script,
             )
-            zone_chunks.append((i, name, lines, chunks))
-
-        # meanwhile, on this thread: the table of the pop-ups
-        rows: dict | None
-        reasons: list[str] | None
-        rows, classes, reasons, conf = _table(folder, gdf["parcel_id"].to_numpy(dtype=object).tolist())
-        if ready is not None:
-            ready["rows"], rows = _json_for_script(rows), None
-            ready["reasons"], reasons = _json_for_script(reasons), None
-        zones = []
-        for i, name, lines, chunks in zone_chunks:
-            text, n = _collection(chunks)
-            if n:
-                zones.append(
-                    {
-                        "name": folder.zone_label(name),
-                        "colour": _ZONE_STYLE[i % len(_ZONE_STYLE)][0],
-                        "lines": lines,
-                        "geojson": text,
-                    }
+            zone_chunks = []
+            for i, (name, zg) in enumerate(folder.zone_layers):
+                if zg.crs is not None and _crs(zg.crs) != crs:
+                    zg = zg.to_crs(crs.to_wkt())
+                lines = bool(zg.geom_type.str.contains("LineString").all())
+                chunks = _submit_features(
+                    pool, zg.geometry.values, ["{}"], np.zeros(len(zg), dtype=np.intp), frame, tolerance
                 )
-        parcels: str | None = _collection(parcel_chunks, script=script)[0]
-        relief_uri: str | None = relief.result()
-        if ready is not None:
-            ready["parcels"], parcels = parcels, None
-            ready["relief"], relief_uri = relief_uri, None
-        conflict_uri = conflict.result()
-        cell_units = _UNITS_PER_CELL * data.slope.factor
-        out = {
-            "frame": frame.to_json(),
-            "max_zoom": int(math.ceil(math.log2(_MAX_ZOOM_CELL_PX * data.slope.factor / cell_units))),
-            "relief": relief_uri,
-            "conflict": conflict_uri,
-            "conflict_kinds": [
-                {"text": _CONFLICT_KIND_TEXT[k], "rgba": list(_CONFLICT_RGBA[k])}
-                for k in (1, 2, 3)
-                if conflict_uri is not None
-            ],
-            "verdicts": [
-                {
-                    "key": v,
-                    "text": VERDICT_TEXT.get(v, v.replace("_", " ")),
-                    "count": n_of[v],
-                    "colour": _WEB_VERDICT_STYLE.get(v, ("#444444", 1.2, None))[0],
-                    "weight": _WEB_VERDICT_STYLE.get(v, ("#444444", 1.2, None))[1],
-                    "dash": _WEB_VERDICT_STYLE.get(v, ("#444444", 1.2, None))[2],
-                }
-                for v in verdict_keys
-            ],
-            "classes": [class_labels.get(c, c.replace("_", " ")) for c in classes],
-            "reasons": reasons,
-            "confidence_text": [CONFIDENCE_TEXT.get(c, c.replace("_", " ")) for c in conf],
-            "rows": rows,
-            "parcels": parcels,
-            "zones": zones,
-            "cell_zones": cell_zones.result(),
-            "slope_classes": [
-                {"text": t, "colour": c}
-                for t, c in zip(slope_class_labels(breaks), slope_class_colours(len(breaks) - 1))
-            ],
-            "relief_note": data.relief_note,
-            "simplify_m": tolerance * (1.0 if not frame.geographic else 111_320.0),
-        }
+                zone_chunks.append((i, name, lines, chunks))
+
+            # meanwhile, on this thread: the table of the pop-ups
+            rows: dict | None
+            reasons: list[str] | None
+            rows, classes, reasons, conf = _table(folder, gdf["parcel_id"].to_numpy(dtype=object).tolist())
+            if ready is not None:
+                ready["rows"], rows = _json_for_script(rows), None
+                ready["reasons"], reasons = _json_for_script(reasons), None
+            zones = []
+            for i, name, lines, chunks in zone_chunks:
+                text, n = _collection(chunks)
+                if n:
+                    zones.append(
+                        {
+                            "name": folder.zone_label(name),
+                            "colour": _ZONE_STYLE[i % len(_ZONE_STYLE)][0],
+                            "lines": lines,
+                            "geojson": text,
+                        }
+                    )
+            parcels: str | None = _collection(parcel_chunks, script=script)[0]
+            relief_uri: str | None = relief.result()
+            if ready is not None:
+                ready["parcels"], parcels = parcels, None
+                ready["relief"], relief_uri = relief_uri, None
+            conflict_uri = conflict.result()
+            cell_units = _UNITS_PER_CELL * data.slope.factor
+            out = {
+                "frame": frame.to_json(),
+                "max_zoom": int(math.ceil(math.log2(_MAX_ZOOM_CELL_PX * data.slope.factor / cell_units))),
+                "relief": relief_uri,
+                "conflict": conflict_uri,
+                "conflict_kinds": [
+                    {"text": _CONFLICT_KIND_TEXT[k], "rgba": list(_CONFLICT_RGBA[k])}
+                    for k in (1, 2, 3)
+                    if conflict_uri is not None
+                ],
+                "verdicts": [
+                    {
+                        "key": v,
+                        "text": VERDICT_TEXT.get(v, v.replace("_", " ")),
+                        "count": n_of[v],
+                        "colour": _WEB_VERDICT_STYLE.get(v, ("#444444", 1.2, None))[0],
+                        "weight": _WEB_VERDICT_STYLE.get(v, ("#444444", 1.2, None))[1],
+                        "dash": _WEB_VERDICT_STYLE.get(v, ("#444444", 1.2, None))[2],
+                    }
+                    for v in verdict_keys
+                ],
+                "classes": [class_labels.get(c, c.replace("_", " ")) for c in classes],
+                "reasons": reasons,
+                "confidence_text": [CONFIDENCE_TEXT.get(c, c.replace("_", " ")) for c in conf],
+                "rows": rows,
+                "parcels": parcels,
+                "zones": zones,
+                "cell_zones": cell_zones.result(),
+                "slope_classes": [
+                    {"text": t, "colour": c}
+                    for t, c in zip(slope_class_labels(breaks), slope_class_colours(len(breaks) - 1))
+                ],
+                "relief_note": data.relief_note,
+                "simplify_m": tolerance * (1.0 if not frame.geographic else 111_320.0),
+            }
+        except BaseException:
+            pool.shutdown(cancel_futures=True)  # an error or a Ctrl-C drops the queued chunks, not waits for them
+            raise
     release_heap()  # the threads' glibc arenas keep their freed chunks otherwise
     return out
 
