@@ -17,7 +17,9 @@ south-west corner of the raster, and x is scaled by cos(latitude) on a
 geographic DEM so the ground keeps its shape.  Geometry is simplified for
 display only (tolerance one cell, topology kept) and coordinates rounded to
 whole display units; every number in the pop-ups is read from parcels.csv,
-never from the simplified shapes.
+never from the simplified shapes.  The shapes are written from shapely's
+coordinate arrays, 10 000 at a time on two threads beside the images; each
+shape is done on its own, so the text does not depend on the chunks or threads.
 """
 
 from __future__ import annotations
@@ -160,11 +162,11 @@ _GEOJSON_SHAPES = {
     5: ("MultiLineString", "[", "]}"),
     6: ("MultiPolygon", "[[", "]]}"),
 }
-_OPEN = np.array([""] * 8, dtype=object)
-_CLOSE = np.array([""] * 8, dtype=object)
-for _t, (_name, _open, _close) in _GEOJSON_SHAPES.items():
-    _OPEN[_t] = f',"geometry":{{"type":"{_name}","coordinates":{_open}'
-    _CLOSE[_t] = _close + "}"
+_OPEN = np.array(
+    [f',"geometry":{{"type":"{s[0]}","coordinates":{s[1]}' if s else "" for s in map(_GEOJSON_SHAPES.get, range(8))],
+    dtype=object,
+)
+_CLOSE = np.array([s[2] + "}" if s else "" for s in map(_GEOJSON_SHAPES.get, range(8))], dtype=object)
 #: a feature's text up to its properties; "%d" is its id (the text is a %-format template, see _features)
 _FEATURE_OPEN = ',{"type":"Feature","id":%d,"properties":'
 _SEPARATORS = ("", ",", "],[")
