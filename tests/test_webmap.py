@@ -113,7 +113,8 @@ def test_features_follow_the_encoding_rules(monkeypatch, chunk, threads, kx):
     frame = {"left": LEFT, "bottom": BOTTOM, "q": Q, "kx": kx}
     want = reference_collection(geoms, [kinds[c] for c in codes], frame, TOLERANCE)
     with ThreadPoolExecutor(max_workers=threads) as pool:
-        chunks = webmap._submit_features(pool, np.array(geoms, dtype=object), kinds, codes, _frame(**frame), TOLERANCE)
+        tasks = webmap._feature_tasks(np.array(geoms, dtype=object), kinds, codes, _frame(**frame), TOLERANCE)
+        chunks = [pool.submit(t) for t in tasks]
         text, n = webmap._collection(chunks)
     assert text == want
     assert n == len(json.loads(want)["features"]) == len(geoms) - 2  # the missing and the empty shape are left out
@@ -127,7 +128,8 @@ def test_features_follow_the_encoding_rules(monkeypatch, chunk, threads, kx):
 def test_no_feature_at_all(monkeypatch):
     with ThreadPoolExecutor(max_workers=2) as pool:
         geoms = np.array([None, shapely.Polygon(), None], dtype=object)
-        chunks = webmap._submit_features(pool, geoms, ["{}"], np.zeros(3, dtype=int), _frame(LEFT, BOTTOM, Q, 1.0), 1.0)
+        tasks = webmap._feature_tasks(geoms, ["{}"], np.zeros(3, dtype=int), _frame(LEFT, BOTTOM, Q, 1.0), 1.0)
+        chunks = [pool.submit(t) for t in tasks]
         assert webmap._collection(chunks) == ('{"type":"FeatureCollection","features":[]}', 0)
 
 

@@ -30,9 +30,9 @@ import json
 import logging
 import math
 import re
-from collections.abc import Sequence
-from concurrent.futures import Executor, Future, ThreadPoolExecutor
-from functools import lru_cache
+from collections.abc import Callable, Sequence
+from concurrent.futures import Future, ThreadPoolExecutor
+from functools import lru_cache, partial
 from pathlib import Path
 
 import numpy as np
@@ -304,8 +304,7 @@ def _script_features(*args) -> tuple[str, int]:
     return _json_for_script(text)[1:-1], n
 
 
-def _submit_features(
-    pool: Executor,
+def _feature_tasks(
     geoms,
     props: Sequence[str],
     codes: np.ndarray,
@@ -313,8 +312,8 @@ def _submit_features(
     tolerance: float,
     *,
     script: bool = False,
-) -> list[Future]:
-    """Start writing geometries as GeoJSON features on ``pool``, chunk by chunk (see :func:`_collection`).
+) -> list[Callable[[], tuple[str, int]]]:
+    """Tasks that write geometries as GeoJSON features, a chunk each, to run on threads (see :func:`_collection`).
 
     Geometries are simplified for display and rounded to display units; a feature's ``id`` is its row
     number and its properties are ``props[codes[row]]`` (JSON text).  GEOS releases the GIL while it
@@ -325,7 +324,7 @@ def _submit_features(
     prop_text = np.array([p.replace("%", "%%") for p in props], dtype=object)[np.asarray(codes, dtype=np.intp)]
     ids = np.arange(len(arr), dtype=np.int64)
     return [
-        pool.submit(
+        partial(
             _script_features if script else _features,
             arr[k : k + _GEOJSON_CHUNK],
             ids[k : k + _GEOJSON_CHUNK],
@@ -338,7 +337,8 @@ def _submit_features(
 
 
 def _collection(chunks: list[Future], *, script: bool = False) -> tuple[str, int]:
-    """The GeoJSON FeatureCollection of :func:`_submit_features`, and its number of features.
+    """The GeoJSON FeatureCollection of the :func:`_feature_tasks` run as ``chunks``, and its number of
+    features.
 
     Missing and empty geometries are left out.  ``script``: as page text, a JSON string
     (:func:`_json_for_script`), from chunks submitted so.
@@ -380,7 +380,8 @@ def _rounded(values, digits: int) -> list:
     return vals
 
 
-def _conflict_overlay(data: _MapData, n_zone_bits: int) -> str | None:
+def _conflict_image(data: _MapData, n_zone_bits: int) -> np.ndarray | None:
+    """RGBA of the conflict-cell overlay; None when no cell is in conflict."""
     if data.bits is None:
         return None
     b = data.bits.data
@@ -394,24 +395,29 @@ def _conflict_overlay(data: _MapData, n_zone_bits: int) -> str | None:
     colours = np.zeros((4, 4), dtype=np.uint8)  # kind 0 stays transparent
     for k, colour in _CONFLICT_RGBA.items():
         colours[k] = colour
-    return _png_data_uri(colours[kind])
+    return colours[kind]
 
 
-def _cell_zone_overlays(data: _MapData) -> list[dict]:
-    """One transparent PNG per cell-based hazard zone, on the display grid of the overview map."""
+def _cell_zone_images(data: _MapData) -> list[tuple[str, str, np.ndarray]]:
+    """(label, colour, RGBA) of a transparent image per cell-based hazard zone, on the display grid of the
+    overview map."""
     from matplotlib.colors import to_rgb
 
     out = []
     for cz in data.cell_zones:
         rgba = np.zeros((*cz.mask.shape, 4), dtype=np.uint8)
         rgba[cz.mask] = (*(round(255 * c) for c in to_rgb(cz.colour)), _CELL_ZONE_ALPHA)
-        out.append({"name": cz.label, "colour": cz.colour, "png": _png_data_uri(rgba)})
+        out.append((cz.label, cz.colour, rgba))
     return out
 
 
-def _relief_overlay(data: _MapData, breaks: np.ndarray) -> str:
-    rgba = _composite(data.slope.data, data.relief, breaks, slope_class_colours(len(breaks) - 1))
-    return _png_data_uri(rgba)
+def _relief_image(data: _MapData, breaks: np.ndarray) -> np.ndarray:
+    return _composite(data.slope.data, data.relief, breaks, slope_class_colours(len(breaks) - 1))
+
+
+def _script_png(rgba: np.ndarray) -> str:
+    """:func:`_png_data_uri` as page text (:func:`_json_for_script`)."""
+    return _json_for_script(_png_data_uri(rgba))
 
 
 #: threads that build the map data: GEOS (simplifying) and the PNG encoder release the GIL, so two
@@ -422,10 +428,6 @@ _MAX_THREADS = 2
 def webmap_data(folder: AuditFolder, data: _MapData, breaks: np.ndarray, class_labels: dict[str, str]) -> dict:
     """Everything the page script needs, as one JSON-ready dict."""
     return _webmap_data(folder, data, breaks, class_labels, None)
-
-
-def _script_relief(data: _MapData, breaks: np.ndarray) -> str:
-    return _json_for_script(_relief_overlay(data, breaks))
 
 
 def _table(folder: AuditFolder, pids: list) -> tuple[dict, list[str], list[str], list[str]]:
@@ -484,30 +486,38 @@ def _webmap_data(
     vindex = {v: i for i, v in enumerate(verdict_keys)}
     # a row's verdict code -> its index in verdict_keys (-1: none, also for a missing verdict)
     key_of = np.array([vindex.get(v, -1) for v in verdict_values.tolist()] + [-1], dtype=np.int64)
+    parcel_tasks = _feature_tasks(
+        gdf.geometry.values,
+        [f'{{"v":{k}}}' for k in range(-1, len(verdict_keys))],
+        key_of[verdict_codes] + 1,
+        frame,
+        tolerance,
+        script=script,
+    )
+    zone_tasks = []
+    for i, (name, zg) in enumerate(folder.zone_layers):
+        if zg.crs is not None and _crs(zg.crs) != crs:
+            zg = zg.to_crs(crs.to_wkt())
+        lines = bool(zg.geom_type.str.contains("LineString").all())
+        tasks = _feature_tasks(zg.geometry.values, ["{}"], np.zeros(len(zg), dtype=np.intp), frame, tolerance)
+        zone_tasks.append((i, name, lines, tasks))
     with ThreadPoolExecutor(max_workers=max(1, min(_MAX_THREADS, default_workers()))) as pool:
         try:
-            # the longest single task first
-            relief = pool.submit(_script_relief if script else _relief_overlay, data, breaks)
-            conflict = pool.submit(_conflict_overlay, data, n_zone_bits)
-            cell_zones = pool.submit(_cell_zone_overlays, data)
-            parcel_chunks = _submit_features(
-                pool,
-                gdf.geometry.values,
-                [f'{{"v":{k}}}' for k in range(-1, len(verdict_keys))],
-                key_of[verdict_codes] + 1,
-                frame,
-                tolerance,
-                script=script,
-            )
-            zone_chunks = []
-            for i, (name, zg) in enumerate(folder.zone_layers):
-                if zg.crs is not None and _crs(zg.crs) != crs:
-                    zg = zg.to_crs(crs.to_wkt())
-                lines = bool(zg.geom_type.str.contains("LineString").all())
-                chunks = _submit_features(
-                    pool, zg.geometry.values, ["{}"], np.zeros(len(zg), dtype=np.intp), frame, tolerance
-                )
-                zone_chunks.append((i, name, lines, chunks))
+            # the threads start on the shapes while this one first collects what the steps before left
+            # (a drawn figure's reference cycles hold about 150 MB at 100 000 parcels); the images are
+            # made here, where that memory is free again, and encoded on the threads
+            parcel_chunks = [pool.submit(t) for t in parcel_tasks[:2]]
+            release_heap(collect=True)
+            relief = pool.submit(_script_png if script else _png_data_uri, _relief_image(data, breaks))
+            conflict_rgba = _conflict_image(data, n_zone_bits)
+            conflict = None if conflict_rgba is None else pool.submit(_png_data_uri, conflict_rgba)
+            del conflict_rgba
+            cell_zones = [
+                (label, colour, pool.submit(_png_data_uri, rgba)) for label, colour, rgba in _cell_zone_images(data)
+            ]
+            parcel_chunks += [pool.submit(t) for t in parcel_tasks[2:]]
+            zone_chunks = [(i, name, lines, [pool.submit(t) for t in tasks]) for i, name, lines, tasks in zone_tasks]
+            del parcel_tasks, zone_tasks
 
             # meanwhile, on this thread: the table of the pop-ups
             rows: dict | None
@@ -533,7 +543,7 @@ def _webmap_data(
             if ready is not None:
                 ready["parcels"], parcels = parcels, None
                 ready["relief"], relief_uri = relief_uri, None
-            conflict_uri = conflict.result()
+            conflict_uri = None if conflict is None else conflict.result()
             cell_units = _UNITS_PER_CELL * data.slope.factor
             out = {
                 "frame": frame.to_json(),
@@ -562,7 +572,9 @@ def _webmap_data(
                 "rows": rows,
                 "parcels": parcels,
                 "zones": zones,
-                "cell_zones": cell_zones.result(),
+                "cell_zones": [
+                    {"name": label, "colour": colour, "png": png.result()} for label, colour, png in cell_zones
+                ],
                 "slope_classes": [
                     {"text": t, "colour": c}
                     for t, c in zip(slope_class_labels(breaks), slope_class_colours(len(breaks) - 1))
