@@ -225,14 +225,18 @@ class AuditFolder:
     @cached_property
     def class_limits_pct(self) -> dict[str, float]:
         """Slope limit (%) per class, from parcels.csv ``max_slope_pct``; NaN when the class has none."""
-        limits: dict[str, float] = {}
+        import pandas as pd
+
         df = self.parcels
-        if "max_slope_pct" in df.columns:
-            for name, val in zip(df["class_name"], df["max_slope_pct"]):
-                v = math.nan if _isnan(val) else float(val)
-                if name not in limits or (math.isnan(limits[name]) and not math.isnan(v)):
-                    limits[name] = v
-        return limits
+        if "max_slope_pct" not in df.columns:
+            return {}
+        # per class the first value that is a number, in the order the classes first appear (whole
+        # columns at once: 100 000 parcels in milliseconds)
+        values = pd.to_numeric(df["max_slope_pct"], errors="coerce").astype(float)
+        names = df["class_name"]
+        given = pd.DataFrame({"name": names, "value": values})[values.notna()].drop_duplicates("name")
+        first = dict(zip(given["name"], given["value"]))
+        return {name: float(first.get(name, math.nan)) for name in names.drop_duplicates()}
 
 
 def load_audit_folder(out_dir) -> AuditFolder:

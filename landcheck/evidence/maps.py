@@ -102,8 +102,6 @@ _WATER_COLOUR = "#1f5fa0"
 _MANY_PARCELS = 3000
 #: above this many conflict display cells, conflict cells are tinted, not hatched polygons
 _MANY_CONFLICT_CELLS = 40_000
-#: ring segments sampled at once when outlines are burnt into an image
-_BURN_CHUNK = 100_000
 _CONFLICT_TINT = {1: (0.09, 0.09, 0.09, 0.5), 2: (0.42, 0.0, 0.36, 0.5), 3: (0.0, 0.0, 0.0, 0.78)}
 _LEGEND_WRAP_CHARS = 34
 _SVG_METADATA = {"Date": None}
@@ -568,6 +566,41 @@ def _line_segments(geoms) -> list[np.ndarray]:
     return segs
 
 
+def _outline_vertices(geoms) -> tuple[np.ndarray, np.ndarray]:
+    """The outlines of :func:`_line_segments` as one vertex array and the ring of each vertex.
+
+    Returns ``(xy, ring)``: (n, 2) float64 coordinates, ring by ring, and (n,) int64 ring numbers, so
+    that vertices ``k`` and ``k + 1`` are joined when ``ring[k] == ring[k + 1]``.  Polygons without
+    holes (the usual parcel) go through GEOS in one call, without a Python object per ring.
+    """
+    import shapely
+
+    arr = np.asarray(geoms, dtype=object)
+    arr = arr[~(shapely.is_missing(arr) | shapely.is_empty(arr))]
+    kind = shapely.get_type_id(arr)
+    simple = kind == 3
+    simple[simple] = shapely.get_num_interior_rings(arr[simple]) == 0
+    parts = [shapely.get_coordinates(arr[simple], return_index=True)]
+    rings = [
+        shapely.get_rings(shapely.get_parts(arr[~simple & np.isin(kind, (3, 6))])),
+        shapely.get_parts(arr[np.isin(kind, (1, 2, 5))]),
+    ]
+    other = []
+    for g in _simple_parts(arr[kind == 7]):  # collections: part by part, as _line_segments
+        if g.geom_type == "Polygon":
+            other += [g.exterior, *g.interiors]
+        elif g.geom_type in ("LineString", "LinearRing"):
+            other.append(g)
+    rings.append(np.asarray(other, dtype=object))
+    parts += [shapely.get_coordinates(r, return_index=True) for r in rings if r.size]
+    ring, base = [], 0
+    for _, idx in parts:  # ring numbers of each part after those of the parts before it
+        ring.append(idx.astype(np.int64) + base)
+        base += int(idx.max()) + 1 if idx.size else 0
+    xy = np.concatenate([p[0] for p in parts])
+    return np.ascontiguousarray(xy, dtype=np.float64), np.concatenate(ring)
+
+
 def _add_polygons(ax, geoms, **kw) -> None:
     from matplotlib.collections import PathCollection
 
@@ -593,6 +626,18 @@ def _new_figure(figsize_in, dpi):
 
     fig = Figure(figsize=figsize_in, dpi=dpi)
     FigureCanvasAgg(fig)
+    return fig
+
+
+def _emptied(fig):
+    """``fig`` with everything drawn on it removed, ready for the next figure of the same size.
+
+    Unlike ``fig.clear()`` the axes are not cleared one by one before they go, and the canvas and its
+    renderer stay, with matplotlib's cache of text sizes measured on it (legends, ticks and titles
+    repeat from one close-up to the next).
+    """
+    for artist in [*fig.axes, *fig.texts, *fig.legends, *fig.artists, *fig.patches, *fig.lines, *fig.images]:
+        artist.remove()
     return fig
 
 
@@ -831,23 +876,78 @@ def _grid_bounds(g: _Grid) -> tuple[float, float, float, float]:
     return min(left, right), min(bottom, top), max(left, right), max(bottom, top)
 
 
-def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str | None = None):  # noqa: C901
-    """Draw the map layers into a new axes; return (axes, legend groups, legend entries)."""
+def _tint_rgba8(colour) -> np.ndarray:
+    """The 8-bit RGBA that matplotlib draws for a float RGBA ``colour`` filling an image.
+
+    matplotlib turns a float RGBA image into bytes in float32: premultiplied by alpha, divided back,
+    times 255 and truncated; the same here keeps a tint's colour byte for byte what it was when the
+    tints were float images of their own.
+    """
+    c = np.asarray(colour, dtype=np.float32)
+    rgb = (c[:3] * c[3]) / c[3] if c[3] > 0 else c[:3]
+    return (np.append(rgb, c[3]) * np.float32(255)).astype(np.uint8)
+
+
+def _paint_tint(tint: np.ndarray | None, mask: np.ndarray, colour) -> np.ndarray:
+    """Paint the float RGBA ``colour`` over the 8-bit RGBA image ``tint`` where ``mask`` (a new image when None).
+
+    Porter-Duff "over" with straight alpha, as matplotlib composites one image over another, rounded
+    to 8 bits: where nothing is painted yet the cell takes the colour's bytes exactly.
+    """
+    if tint is None:
+        tint = np.zeros((*mask.shape, 4), dtype=np.uint8)
+    src = _tint_rgba8(colour).astype(np.float64) / 255.0
+    below = tint[mask].astype(np.float64) / 255.0
+    a_src, a_below = src[3], below[:, 3]
+    a = a_src + a_below * (1.0 - a_src)
+    rgb = src[:3] * a_src + below[:, :3] * (a_below * (1.0 - a_src))[:, None]
+    rgb /= np.where(a > 0, a, 1.0)[:, None]
+    tint[mask] = np.round(np.column_stack([rgb, a]) * 255.0).astype(np.uint8)
+    return tint
+
+
+def _draw_tint(ax, tint: np.ndarray, extent, zorder: float) -> None:
+    from landcheck.evidence.map_images import imshow_rgba8
+
+    imshow_rgba8(ax, tint, extent, zorder=zorder)
+
+
+def _parcels_in_crs(folder: AuditFolder, crs):
+    """``folder.parcels_gdf`` in ``crs`` (the frame itself when it is in it already)."""
+    gdf = folder.parcels_gdf
+    if gdf.crs is not None and _crs(gdf.crs) != crs:
+        gdf = gdf.to_crs(crs.to_wkt())
+    return gdf
+
+
+def _in_view(gdf, view):
+    """The rows of ``gdf`` whose shape intersects the rectangle ``view``, in their order (as ``gdf.cx``).
+
+    Through the frame's spatial index (built once per frame), so a close-up does not test every parcel.
+    """
+    from shapely.geometry import box
+
+    hits = gdf.sindex.query(box(*view), predicate="intersects")
+    return gdf.iloc[np.sort(hits)]
+
+
+def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str | None = None, parcels=None):  # noqa: C901
+    """Draw the map layers into a new axes; return (axes, legend groups, legend entries).
+
+    ``parcels``: the folder's parcels already in the map's CRS; close-ups pass it, so the parcels are
+    projected once and those in view are found through the frame's spatial index.
+    """
     from matplotlib.colors import to_rgb
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
+
+    from landcheck.evidence.map_images import imshow_rgba8
 
     folder = data.folder
     crs = _crs(data.slope.crs)
     ax = fig.add_axes(rect)
     colours = slope_class_colours(len(breaks) - 1)
-    ax.imshow(
-        _composite(data.slope.data, data.relief, breaks, colours),
-        extent=data.slope.extent,
-        origin="upper",
-        interpolation="nearest",
-        zorder=1,
-    )
+    imshow_rgba8(ax, _composite(data.slope.data, data.relief, breaks, colours), data.slope.extent, zorder=1)
     groups, entries = [], []
     labels = slope_class_labels(breaks)
     idx = classify_slope(data.slope.data, breaks)
@@ -867,16 +967,21 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
     if len(relief_l) > 1:
         entries.append(LegendEntry("relief", "no_slope", relief_l[1]))
 
-    # hazard zones and water features: cell-based zones tinted first, vector zones outlined over them
+    # hazard zones and water features: cell-based zones tinted first, vector zones outlined over them.
+    # Raster layers are 8-bit images, each drawn once; the tints of all cell zones are painted into
+    # one. The relief (zorder 1), the zone tints (2), the conflict tint (4) and the burnt outlines (5)
+    # stay separate images: matplotlib draws the axis with its grid lines (zorder 1.5) and the frame
+    # (2.5) between them.
     x0, y0, x1, y1 = view
     zh, zl = [], []
+    tint = None
     for cz in data.cell_zones:
-        rgba = np.zeros((*cz.mask.shape, 4), dtype=np.float32)
-        rgba[cz.mask] = (*to_rgb(cz.colour), _CELL_ZONE_ALPHA)
-        ax.imshow(rgba, extent=data.slope.extent, origin="upper", interpolation="nearest", zorder=2)
+        tint = _paint_tint(tint, cz.mask, (*to_rgb(cz.colour), _CELL_ZONE_ALPHA))
         zh.append(Patch(facecolor=(*to_rgb(cz.colour), _CELL_ZONE_ALPHA), edgecolor=cz.colour, lw=1.0))
         zl.append(f"{cz.label} (cells)")
         entries.append(LegendEntry("zone", cz.name, zl[-1]))
+    if tint is not None:
+        _draw_tint(ax, tint, data.slope.extent, zorder=2)
     for i, (name, gdf) in enumerate(folder.zone_layers):
         if gdf.crs is not None and _crs(gdf.crs) != crs:
             gdf = gdf.to_crs(crs.to_wkt())
@@ -914,14 +1019,15 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
         shapes = [] if many_cells else _conflict_shapes(data.bits, n_zone_bits)
         if many_cells:
             # tens of thousands of hatched polygons take matplotlib minutes: tint the cells instead
-            rgba = np.zeros((*kinds.shape, 4), dtype=np.float32)  # float32: half the memory of float64
+            tint = np.zeros((*kinds.shape, 4), dtype=np.uint8)
             for kind, colour in _CONFLICT_TINT.items():
-                rgba[kinds == kind] = colour
-                if (kinds == kind).any():
+                hit = kinds == kind
+                if hit.any():
+                    tint = _paint_tint(tint, hit, colour)
                     ch.append(Patch(facecolor=colour, edgecolor="#161616", lw=0.4))
                     cl.append(_CONFLICT_TEXT[kind])
                     entries.append(LegendEntry("conflict", {1: "slope", 2: "zone", 3: "slope+zone"}[kind], cl[-1]))
-            ax.imshow(rgba, extent=data.bits.extent, origin="upper", interpolation="nearest", zorder=4)
+            _draw_tint(ax, tint, data.bits.extent, zorder=4)
         for kind in (1, 2, 3):
             sub = [g for g, k in shapes if k == kind]
             if not sub:
@@ -945,13 +1051,14 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
     groups.append((title, ch, cl))
 
     # parcels by verdict
-    gdf = folder.parcels_gdf
-    if gdf.crs is not None and _crs(gdf.crs) != crs:
-        gdf = gdf.to_crs(crs.to_wkt())
-    gdf = gdf.cx[x0:x1, y0:y1]
+    if parcels is None:  # the whole area: one test of every parcel, no index needed
+        gdf = _parcels_in_crs(folder, crs).cx[x0:x1, y0:y1]
+    else:
+        gdf = _in_view(parcels, view)
     vh, vl = [], []
-    present = [v for v in VERDICTS if (gdf["verdict"] == v).any()]
-    present += sorted(set(gdf["verdict"]) - set(VERDICTS) - {""})
+    n_of = gdf["verdict"].value_counts(dropna=False).to_dict()
+    present = [v for v in VERDICTS if n_of.get(v, 0) > 0]
+    present += sorted(set(n_of) - set(VERDICTS) - {""})
     many = len(gdf) > _MANY_PARCELS
     geoms = gdf.geometry.values
     verdicts = gdf["verdict"].to_numpy()
@@ -971,7 +1078,7 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
             )
     for v in present:
         colour, lw, ls = _VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))
-        n = int((gdf["verdict"] == v).sum())
+        n = int(n_of[v])
         vh.append(Line2D([0], [0], color=colour, lw=lw, linestyle=ls, path_effects=_halo(lw + 2.2)))
         vl.append(f"{VERDICT_TEXT.get(v, v)} ({n})")
         entries.append(LegendEntry("verdict", v, vl[-1]))
@@ -1013,9 +1120,13 @@ def _burn_outlines(fig, ax, rect, geoms, verdicts, present, view) -> None:
     Drawing 100 000 outlines as vector paths takes matplotlib tens of seconds and makes a
     50 MB SVG; at overview scale an outline is about one pixel wide anyway, so one image
     (conflict burnt last, on top) shows the same and keeps the SVG small.  Every ring
-    segment is sampled at half-pixel steps (vectorized), which marks each pixel it crosses.
+    segment is sampled at half-pixel steps, which marks each pixel it crosses (compiled loop:
+    :func:`landcheck.evidence.display_loops.burn_segments`).
     """
     from matplotlib.colors import to_rgba
+
+    from landcheck.evidence.display_loops import burn_segments
+    from landcheck.evidence.map_images import imshow_rgba8
 
     x0, y0, x1, y1 = view
     w_px = max(1, int(round(fig.get_figwidth() * fig.dpi * rect[2])))
@@ -1025,31 +1136,11 @@ def _burn_outlines(fig, ax, rect, geoms, verdicts, present, view) -> None:
     palette = np.zeros((len(present) + 1, 4))
     for code, v in enumerate(reversed(present), start=1):
         palette[code] = to_rgba(_VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))[0])
-        segs = _line_segments(geoms[verdicts == v])
-        if not segs:
-            continue
-        lengths = np.fromiter((len(a) for a in segs), dtype=np.int64, count=len(segs))
-        xy = np.concatenate(segs)
-        px = np.column_stack([(xy[:, 0] - x0) * sx, (y1 - xy[:, 1]) * sy])
-        # segment k joins vertex k and k+1 of the same ring
-        last = np.cumsum(lengths) - 1
-        start = np.ones(len(px), dtype=bool)
-        start[last] = False
-        a_all, b_all = px[start], px[np.flatnonzero(start) + 1]
-        # in chunks of segments, so the sample arrays stay small at 100 000 parcels (same pixels)
-        for k in range(0, len(a_all), _BURN_CHUNK):
-            a, b = a_all[k : k + _BURN_CHUNK], b_all[k : k + _BURN_CHUNK]
-            steps = np.maximum(1, np.ceil(2.0 * np.abs(b - a).max(axis=1)).astype(np.int64))
-            seg = np.repeat(np.arange(len(a)), steps + 1)
-            t = np.arange(len(seg)) - np.repeat(np.cumsum(steps + 1) - (steps + 1), steps + 1)
-            t = t / np.repeat(steps, steps + 1)
-            pts = a[seg] + (b[seg] - a[seg]) * t[:, None]
-            c = np.floor(pts[:, 0]).astype(np.int64)
-            r = np.floor(pts[:, 1]).astype(np.int64)
-            ok = (c >= 0) & (c < w_px) & (r >= 0) & (r < h_px)
-            codes[r[ok], c[ok]] = code
+        xy, ring = _outline_vertices(geoms[verdicts == v])
+        if len(xy) > 1:
+            burn_segments(xy, ring, float(x0), float(y1), float(sx), float(sy), np.uint8(code), codes)
     rgba8 = np.round(palette * 255.0).astype(np.uint8)[codes]
-    ax.imshow(rgba8, extent=(x0, x1, y0, y1), origin="upper", interpolation="nearest", zorder=5)
+    imshow_rgba8(ax, rgba8, (x0, x1, y0, y1), zorder=5)
 
 
 def _figure_frame(fig, title: str, subtitle: str, notes: Sequence[str]) -> None:
@@ -1141,8 +1232,14 @@ def overview_map(
 def closeup_order(parcels, max_maps: int) -> list[str]:
     """Ids of the parcels that get a close-up: conflict area > 0, largest first, ties by ``parcel_id``."""
     cand = parcels[parcels["conflict_m2"].fillna(0) > 0]
+    n_maps = max(0, int(max_maps))
+    if n_maps < len(cand):
+        # only parcels at or above the n-th largest conflict area can be drawn: sort those few, not all
+        area = cand["conflict_m2"].to_numpy(dtype=np.float64)
+        nth = np.partition(area, len(area) - max(1, n_maps))[len(area) - max(1, n_maps)]
+        cand = cand[area >= nth]
     order = sorted(zip(cand["conflict_m2"], cand["parcel_id"]), key=lambda t: (-float(t[0]), t[1]))
-    return [pid for _, pid in order[: max(0, int(max_maps))]]
+    return [pid for _, pid in order[:n_maps]]
 
 
 def closeup_frame(folder: AuditFolder, geom, cell: float | None = None) -> tuple[float, float, float, float]:
@@ -1203,18 +1300,27 @@ def parcel_closeup_maps(
             if old.suffix in (".png", ".svg"):
                 old.unlink()
     df = folder.parcels
+    pids = closeup_order(df, max_maps)
+    # the rows of the parcels drawn, found once (not a pass over every parcel per close-up)
+    wanted = set(pids)
     gdf = folder.parcels_gdf
+    gdf = gdf[gdf["parcel_id"].isin(wanted)]
+    df = df[df["parcel_id"].isin(wanted)]
+    parcels = None  # all parcels in the maps' CRS, projected once
+    fig = None  # one figure for all close-ups: its renderer keeps the text sizes measured for the last one
     items = []
     cell = _cell_width(folder)
-    for rank, pid in enumerate(closeup_order(df, max_maps), start=1):
+    for rank, pid in enumerate(pids, start=1):
         rows = gdf[gdf["parcel_id"] == pid]
         if rows.empty or rows.geometry.iloc[0] is None or rows.geometry.iloc[0].is_empty:
             logger.warning("parcel %s has no geometry in parcels.gpkg; no close-up drawn", pid)
             continue
         view = _closeup_bounds(rows.geometry.iloc[0], cell)
         data = _load_map_data(folder, view, max_px)
-        fig = _new_figure(figsize_in, dpi)
-        _, groups, entries = _draw_map(fig, [0.1, 0.12, 0.56, 0.77], data, breaks, view, focus_id=pid)
+        if parcels is None:
+            parcels = _parcels_in_crs(folder, _crs(data.slope.crs))
+        fig = _new_figure(figsize_in, dpi) if fig is None else _emptied(fig)
+        _, groups, entries = _draw_map(fig, [0.1, 0.12, 0.56, 0.77], data, breaks, view, focus_id=pid, parcels=parcels)
         lax = fig.add_axes([0.7, 0.12, 0.29, 0.77])
         lax.axis("off")
         _legend_column(fig, lax, groups)
