@@ -183,7 +183,6 @@ def _child(conn, parent_pid: int) -> None:
 
 
 def _draw(job: FigureJob, on_drawn: Callable[[int], None]) -> DrawnFigures:
-    from landcheck.evidence.charts import class_share_chart, sensitivity_chart, slope_distribution_chart
     from landcheck.evidence.folder import load_audit_folder
 
     folder = load_audit_folder(job.out_dir)
@@ -201,9 +200,7 @@ def _draw(job: FigureJob, on_drawn: Callable[[int], None]) -> DrawnFigures:
         on_drawn(drawn[0])
 
     closeups = draw_closeups(folder, job, on_drawn=step)
-    kw = dict(dest_dir=job.figures_dir, dpi=job.dpi, formats=_formats(job.figure_formats))
-    charts = [class_share_chart(folder, **kw), slope_distribution_chart(folder, **kw), sensitivity_chart(folder, **kw)]
-    return DrawnFigures(list(closeups.items), [list(c.items) for c in charts])
+    return DrawnFigures(list(closeups.items), [list(c.items) for c in draw_charts(folder, job)])
 
 
 def closeup_subset(folder, max_closeups: int):
@@ -272,6 +269,17 @@ def warm_up() -> None:
     ax.plot([0, 1], [0, 1], label="a")
     ax.legend(title="b")
     fig.savefig(io.BytesIO(), format="png")
+
+
+def draw_charts(folder, job: FigureJob) -> list:
+    """The report's three charts of ``job`` (one definition for the worker and the one-process report)."""
+    from landcheck.evidence.charts import class_share_chart, sensitivity_chart, slope_distribution_chart
+
+    formats = _formats(job.figure_formats)
+    return [
+        chart(folder, dest_dir=job.figures_dir, dpi=job.dpi, formats=formats)
+        for chart in (class_share_chart, slope_distribution_chart, sensitivity_chart)
+    ]
 
 
 def _formats(formats: Sequence[str]) -> tuple[str, ...]:

@@ -667,6 +667,8 @@ def _save(fig, dest: Path, stem: str, dpi: int, formats: Sequence[str]) -> list[
 
 def _legend_column(fig, lax, groups) -> None:
     """Stack one titled legend per group, top to bottom, in the axes ``lax``."""
+    from matplotlib.legend import Legend
+
     renderer = fig.canvas.get_renderer()
     y = 1.0
     # wrap to the legend column's width: 7.5 pt text averages about 0.55 em a character,
@@ -678,7 +680,10 @@ def _legend_column(fig, lax, groups) -> None:
             continue
         labels = [textwrap.fill(lab, wrap, subsequent_indent="  ") for lab in labels]
         title = textwrap.fill(title, wrap + 4)
-        leg = lax.legend(
+        # a Legend artist added once (``lax.legend`` would also keep the last group as the axes' own
+        # legend, drawing it twice)
+        leg = Legend(
+            lax,
             handles,
             labels,
             title=title,

@@ -27,8 +27,7 @@ import numpy as np
 from landcheck.about import CAUTION, __version__
 from landcheck.engine.interrupt import raise_if_interrupted
 from landcheck.engine.windows import progress_bar
-from landcheck.evidence.charts import class_share_chart, sensitivity_chart, slope_distribution_chart
-from landcheck.evidence.figure_worker import FigureJob, closeup_subset, draw_closeups
+from landcheck.evidence.figure_worker import FigureJob, closeup_subset, draw_charts, draw_closeups
 from landcheck.evidence.folder import AuditFolder, load_audit_folder
 from landcheck.evidence.maps import (
     VERDICTS,
@@ -967,11 +966,7 @@ def build_report(
     else:
         closeups = draw_closeups(folder, job, on_drawn=lambda: done("close-ups"))
         bar.update(n_closeup_steps - len(closeups.items))
-        charts = [
-            class_share_chart(folder, **kw),
-            slope_distribution_chart(folder, **kw),
-            sensitivity_chart(folder, **kw),
-        ]
+        charts = draw_charts(folder, job)
     done("charts")
 
     extra_warnings: list[str] = []
