@@ -499,6 +499,8 @@ def report_benchmark(data: Path, rules: Path, cache: Path) -> list[dict]:
         load0 = os.getloadavg()[0]
         quick = measure([*base, "--out", str(work / "out_quick"), "--rasters", "gtiff", "--no-report"], env)
         full = measure([*base, "--out", str(work / "out_full")], env)
+        # the same default run drawing every figure in one process (landcheck.evidence.figure_worker)
+        single = measure([*base, "--out", str(work / "out_one")], dict(env, LANDCHECK_REPORT_PROCESSES="1"))
         load1 = os.getloadavg()[0]
         report = work / "out_full" / "report.html"
         open_s = report_open_seconds(report)
@@ -511,6 +513,7 @@ def report_benchmark(data: Path, rules: Path, cache: Path) -> list[dict]:
                 report_mb=report.stat().st_size / 1e6,
                 open_s=open_s,
             ),
+            dict(run="default, figures in one process", wall_s=single["wall_s"], peak_mib=single["all_mib"]),
         ]
         print(f"report benchmark: {dem.name}, {parcels.name}, {rules.name}; load average {load0:.1f} -> {load1:.1f}")
         print(f"{'run':34s} {'wall s':>8s} {'peak MiB':>9s} {'report MB':>10s} {'open s':>7s}")

@@ -1,4 +1,9 @@
-"""The report's close-ups and charts drawn by a second process while the first draws the rest.
+"""The report's figures drawn by two processes: the overview, charts and close-ups beside the rest.
+
+The second process draws the charts, then close-ups, and the overview map as soon as the first
+process hands it the map rasters it has read (which the interactive map needs too); the first
+builds the interactive map and the tables, then draws close-ups too.  The two take close-ups
+from one shared counter, so whichever is free draws the next one.
 
 Drawing is Python holding the GIL, so threads cannot share it out; a process can.  The worker
 is made with ``fork`` (the standard library's ``multiprocessing``, *fork* context), so it starts
@@ -26,7 +31,7 @@ import logging
 import os
 import sys
 import traceback
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -56,10 +61,11 @@ class FigureJob:
 
 @dataclass
 class DrawnFigures:
-    """The worker's answer: the close-ups and the three charts, as the report lists them."""
+    """The worker's answer: the items of the close-ups it drew, the three charts and the overview."""
 
     closeups: list
     charts: list[list]
+    overview: list
 
 
 def _can_fork() -> bool:
@@ -77,26 +83,45 @@ def _start_methods() -> list[str]:
     return multiprocessing.get_all_start_methods()
 
 
-def start() -> FigureWorker | None:
-    """Fork the worker now (see the module text for when that is safe); ``None`` where it cannot run."""
+def start(parcel_shapes=None) -> FigureWorker | None:
+    """Fork the worker now (see the module text for when that is safe); ``None`` where it cannot run.
+
+    ``parcel_shapes``: the frame the report will be given as ``parcel_shapes`` (or the folder's
+    ``parcels_gdf``), for the overview map; the child keeps the parent's copy, page for page.
+    """
     if os.environ.get("LANDCHECK_REPORT_PROCESSES", "") == "1" or not _can_fork():
         return None
     import multiprocessing
 
     ctx = multiprocessing.get_context("fork")
     parent_end, child_end = ctx.Pipe(duplex=True)
-    proc = ctx.Process(target=_child, args=(child_end, os.getpid()), name="landcheck-figures", daemon=True)
+    claims = ctx.Value("i", 0)  # the next close-up to draw, shared by both processes
+    proc = ctx.Process(
+        target=_child, args=(child_end, os.getpid(), claims, parcel_shapes), name="landcheck-figures", daemon=True
+    )
     proc.start()
     child_end.close()
-    return FigureWorker(proc, parent_end)
+    return FigureWorker(proc, parent_end, claims)
+
+
+def _claimed(claims, n: int) -> Iterator[int]:
+    """Places 0..n-1 of the close-up order, each handed to one process only, whichever asks first."""
+    while True:
+        with claims.get_lock():
+            k = claims.value
+            if k >= n:
+                return
+            claims.value = k + 1
+        yield k
 
 
 class FigureWorker:
     """The parent's handle: :meth:`submit` a job, :meth:`collect` the figures, :meth:`stop` on failure."""
 
-    def __init__(self, proc, conn):
+    def __init__(self, proc, conn, claims):
         self._proc = proc
         self._conn = conn
+        self._claims = claims
         self._submitted = False
         self._done: DrawnFigures | None = None
         self._progress = 0
@@ -107,6 +132,15 @@ class FigureWorker:
             raise RuntimeError("a figure job was already submitted")
         self._conn.send(job)
         self._submitted = True
+
+    def send_map_data(self, map_data) -> None:
+        """The rasters read for the maps (:func:`landcheck.evidence.maps.load_map_data`): the worker draws
+        the overview map from them."""
+        self._conn.send(map_data)
+
+    def closeup_places(self, n: int) -> Iterator[int]:
+        """Close-ups left for this process to draw (see :func:`_claimed`)."""
+        return _claimed(self._claims, n)
 
     def progress(self) -> int:
         """Close-ups drawn so far (messages read without waiting)."""
@@ -154,7 +188,7 @@ class FigureWorker:
             raise RuntimeError(f"figure worker: unexpected message {kind!r}")
 
 
-def _child(conn, parent_pid: int) -> None:
+def _child(conn, parent_pid: int, claims, parcel_shapes) -> None:
     """The worker process: wait for a job, draw it, send the result; always ends with ``os._exit``."""
     import signal
 
@@ -167,7 +201,7 @@ def _child(conn, parent_pid: int) -> None:
     try:
         warm_up()  # while the parent writes the tables this needs
         job = conn.recv()
-        conn.send(("done", _draw(job, lambda n: conn.send(("drawn", n)))))
+        conn.send(("done", _draw(job, conn, claims, parcel_shapes)))
     except EOFError:  # the parent went away before handing over a job
         code = 1
     except BaseException as exc:  # handed to the parent, which raises it
@@ -182,7 +216,45 @@ def _child(conn, parent_pid: int) -> None:
         os._exit(code)  # no atexit handlers or buffers of the parent's run here
 
 
-def _draw(job: FigureJob, on_drawn: Callable[[int], None]) -> DrawnFigures:
+def _draw(job: FigureJob, conn, claims, parcel_shapes) -> DrawnFigures:
+    """The worker's part: charts, then close-ups taken from the shared counter, the overview map as soon
+    as its rasters arrive (between two close-ups, or after the last)."""
+    from landcheck.evidence.folder import load_audit_folder
+
+    folder = closeup_folder(job)
+    full = load_audit_folder(job.out_dir)  # the overview's view: every parcel
+    if parcel_shapes is not None:
+        full.use_parcel_shapes(parcel_shapes)
+    if job.raster_files:
+        full.use_raster_files(job.raster_files)
+    overview: list = []
+    drawn = [0]
+
+    def overview_when_ready(wait: bool) -> None:
+        if not overview and (wait or conn.poll()):
+            overview.extend(draw_overview(full, job, conn.recv()).items)
+            gc.collect()
+
+    def places() -> Iterator[int]:
+        for k in _claimed(claims, max(0, job.max_closeups)):
+            overview_when_ready(False)
+            yield k
+
+    def step() -> None:
+        drawn[0] += 1
+        # a figure is a web of cycles: collected now (cheap, the inherited objects are frozen), its
+        # buffers do not pile up until the collector's next full pass
+        gc.collect()
+        conn.send(("drawn", drawn[0]))
+
+    charts = [list(c.items) for c in draw_charts(folder, job)]
+    closeups = draw_closeups(folder, job, on_drawn=step, places=places())
+    overview_when_ready(True)
+    return DrawnFigures(list(closeups.items), charts, overview)
+
+
+def closeup_folder(job: FigureJob):
+    """The folder as the close-ups of ``job`` read it: only the parcels they show, rasters from ``job``."""
     from landcheck.evidence.folder import load_audit_folder
 
     folder = load_audit_folder(job.out_dir)
@@ -190,17 +262,21 @@ def _draw(job: FigureJob, on_drawn: Callable[[int], None]) -> DrawnFigures:
         folder.use_parcel_subset(job.parcel_rows, job.parcel_shapes)
     if job.raster_files:
         folder.use_raster_files(job.raster_files)
-    drawn = [0]
+    return folder
 
-    def step() -> None:
-        drawn[0] += 1
-        # a figure is a web of cycles: collected now (cheap, the inherited objects are frozen), its
-        # buffers do not pile up until the collector's next full pass
-        gc.collect()
-        on_drawn(drawn[0])
 
-    closeups = draw_closeups(folder, job, on_drawn=step)
-    return DrawnFigures(list(closeups.items), [list(c.items) for c in draw_charts(folder, job)])
+def draw_overview(folder, job: FigureJob, map_data):
+    """The report's overview map of ``job`` (one definition for the worker and the one-process report)."""
+    from landcheck.evidence.maps import overview_map
+
+    return overview_map(
+        folder,
+        slope_breaks_pct=job.slope_breaks_pct,
+        map_data=map_data,
+        dest_dir=job.figures_dir,
+        dpi=job.dpi,
+        formats=_formats(job.figure_formats),
+    )
 
 
 def closeup_subset(folder, max_closeups: int):
@@ -234,8 +310,9 @@ def _cell(folder) -> float:
     return _cell_width(folder)
 
 
-def draw_closeups(folder, job: FigureJob, on_drawn=None):
-    """The report's close-ups of ``job`` (one definition for the worker and the one-process report)."""
+def draw_closeups(folder, job: FigureJob, on_drawn=None, places: Iterable[int] | None = None):
+    """The report's close-ups of ``job`` (one definition for the worker and the one-process report);
+    ``places``: only these places of the order (see :func:`landcheck.evidence.maps.parcel_closeup_maps`)."""
     from landcheck.evidence.maps import parcel_closeup_maps
 
     # close-ups are many: PNG by default (SVG on request) to keep the audit quick
@@ -247,6 +324,7 @@ def draw_closeups(folder, job: FigureJob, on_drawn=None):
         dpi=job.dpi,
         formats=_formats(job.closeup_formats),
         on_drawn=on_drawn,
+        ranks=places,
     )
 
 

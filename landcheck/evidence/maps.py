@@ -1275,12 +1275,13 @@ def parcel_closeup_maps(
     max_px: int = 1200,
     formats: Sequence[str] = ("png", "svg"),
     on_drawn=None,
+    ranks: Iterable[int] | None = None,
 ) -> FigureFiles:
     """One close-up map per parcel with conflict area, largest ``conflict_m2`` first.
 
     Ties are ordered by ``parcel_id``.  Files are ``closeup_NN_<parcel_id>.{png,svg}``;
     earlier close-ups in ``dest_dir`` are removed first so the set always
-    matches the folder.
+    matches the folder (not with ``ranks``: the caller does that, see below).
 
     Parameters
     ----------
@@ -1291,6 +1292,10 @@ def parcel_closeup_maps(
         As for :func:`overview_map`.
     on_drawn : callable, optional
         Called with no argument after each close-up (a progress bar's step).
+    ranks : iterable of int, optional
+        Draw only these places of the order (0 = largest conflict area), as the iterable yields them;
+        it may be lazy, so two processes can take turns (:mod:`landcheck.evidence.figure_worker`).
+        Default: all of them.
 
     Returns
     -------
@@ -1300,10 +1305,8 @@ def parcel_closeup_maps(
     folder = load_audit_folder(out_dir)
     breaks = _check_breaks(slope_breaks_pct)
     dest = _dest(folder, dest_dir)
-    if dest.is_dir():
-        for old in dest.glob("closeup_*"):
-            if old.suffix in (".png", ".svg"):
-                old.unlink()
+    if ranks is None:
+        remove_closeups(dest)
     df = folder.parcels
     pids = closeup_order(df, max_maps)
     # the rows of the parcels drawn, found once (not a pass over every parcel per close-up)
@@ -1315,7 +1318,10 @@ def parcel_closeup_maps(
     fig = None  # one figure for all close-ups: its renderer keeps the text sizes measured for the last one
     items = []
     cell = _cell_width(folder)
-    for rank, pid in enumerate(pids, start=1):
+    for k in range(len(pids)) if ranks is None else ranks:
+        if not 0 <= k < len(pids):
+            break
+        rank, pid = k + 1, pids[k]
         rows = gdf[gdf["parcel_id"] == pid]
         if rows.empty or rows.geometry.iloc[0] is None or rows.geometry.iloc[0].is_empty:
             logger.warning("parcel %s has no geometry in parcels.gpkg; no close-up drawn", pid)
@@ -1355,6 +1361,19 @@ def parcel_closeup_maps(
         if on_drawn is not None:
             on_drawn()
     return FigureFiles(items)
+
+
+def remove_closeups(dest: Path) -> None:
+    """Remove earlier close-up figures from ``dest`` (the set written next always matches the folder)."""
+    if dest.is_dir():
+        for old in dest.glob("closeup_*"):
+            if old.suffix in (".png", ".svg"):
+                old.unlink()
+
+
+def closeup_rank(item: FigureItem) -> int:
+    """Place of a close-up in the order (0 = largest conflict area), from its file stem."""
+    return int(item.stem.split("_")[1]) - 1
 
 
 def _class_label(folder: AuditFolder, name: str) -> str:

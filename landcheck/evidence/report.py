@@ -27,14 +27,22 @@ import numpy as np
 from landcheck.about import CAUTION, __version__
 from landcheck.engine.interrupt import raise_if_interrupted
 from landcheck.engine.windows import progress_bar
-from landcheck.evidence.figure_worker import FigureJob, closeup_subset, draw_charts, draw_closeups
+from landcheck.evidence.figure_worker import (
+    FigureJob,
+    closeup_folder,
+    closeup_subset,
+    draw_charts,
+    draw_closeups,
+    draw_overview,
+)
 from landcheck.evidence.folder import AuditFolder, load_audit_folder
 from landcheck.evidence.maps import (
     VERDICTS,
     FigureFiles,
     FigureItem,
+    closeup_rank,
     load_map_data,
-    overview_map,
+    remove_closeups,
 )
 from landcheck.evidence.style import CONFIDENCE_SHORT, DEFAULT_SLOPE_BREAKS_PCT, VERDICT_TEXT, count_text, yes_no
 from landcheck.evidence.webmap import WEBMAP_CSS, webmap_section
@@ -912,7 +920,6 @@ def build_report(
         folder.use_raster_files(raster_files)
     report_path = Path(report_path) if report_path is not None else folder.out_dir / "report.html"
     figures_dir = Path(figures_dir) if figures_dir is not None else folder.out_dir / "figures"
-    formats = tuple(dict.fromkeys(("png", *figure_formats)))
     # no wall-clock time inside a reproducible output (docs/outputs.md): SOURCE_DATE_EPOCH or nothing
     built_utc = source_date_utc() or "not recorded (run times: run_times.json)"
 
@@ -937,21 +944,37 @@ def build_report(
         tuple(closeup_formats),
         dict(raster_files) if raster_files else None,
     )
-    if figure_worker is not None:
-        # close-ups and charts drawn beside the maps below, from the few parcels they show
-        rows, shapes = closeup_subset(folder, max_closeups)
-        figure_worker.submit(dataclasses.replace(job, parcel_rows=rows, parcel_shapes=shapes))
-    kw = dict(dest_dir=figures_dir, dpi=dpi, formats=formats)
-    map_data = load_map_data(folder)
-    done("rasters read")
-    overview = overview_map(folder, slope_breaks_pct=slope_breaks_pct, map_data=map_data, **kw)
-    done("overview map")
     breaks = np.asarray([float(b) for b in slope_breaks_pct])
-    webmap_html = webmap_section(folder, map_data, breaks, _class_labels(folder))
-    done("interactive map")
-    del map_data
-    n_closeup_steps = max(0, int(max_closeups))
-    if figure_worker is not None:
+    if figure_worker is None:
+        map_data = load_map_data(folder)
+        done("rasters read")
+        overview = draw_overview(folder, job, map_data)
+        done("overview map")
+        webmap_html = webmap_section(folder, map_data, breaks, _class_labels(folder))
+        done("interactive map")
+        del map_data
+        closeups = draw_closeups(folder, job, on_drawn=lambda: done("close-ups"))
+        bar.update(max(0, int(max_closeups)) - len(closeups.items))
+        charts = draw_charts(folder, job)
+    else:
+        # the second process draws the charts, close-ups and (once the rasters are read) the overview
+        # while this one builds the interactive map; then both draw the close-ups that are left
+        remove_closeups(figures_dir)
+        rows, shapes = closeup_subset(folder, max_closeups)
+        job = dataclasses.replace(job, parcel_rows=rows, parcel_shapes=shapes)
+        figure_worker.submit(job)
+        map_data = load_map_data(folder)
+        figure_worker.send_map_data(map_data)
+        done("rasters read")
+        webmap_html = webmap_section(folder, map_data, breaks, _class_labels(folder))
+        done("interactive map")
+        del map_data
+        mine = draw_closeups(
+            closeup_folder(job),
+            job,
+            on_drawn=lambda: done("close-ups"),
+            places=figure_worker.closeup_places(max(0, int(max_closeups))),
+        )
         shown = [0]
 
         def worker_progress(n: int) -> None:
@@ -960,13 +983,11 @@ def build_report(
             shown[0] = n
 
         drawn = figure_worker.collect(worker_progress)
-        closeups = FigureFiles(drawn.closeups)
+        closeups = FigureFiles(sorted([*mine.items, *drawn.closeups], key=closeup_rank))
+        bar.update(max(0, int(max_closeups)) - len(closeups.items))
         charts = [FigureFiles(c) for c in drawn.charts]
-        bar.update(n_closeup_steps - shown[0])
-    else:
-        closeups = draw_closeups(folder, job, on_drawn=lambda: done("close-ups"))
-        bar.update(n_closeup_steps - len(closeups.items))
-        charts = draw_charts(folder, job)
+        overview = FigureFiles(drawn.overview)
+        done("overview map")
     done("charts")
 
     extra_warnings: list[str] = []
