@@ -49,8 +49,8 @@ def test_two_processes_write_the_files_of_one(tmp_path, monkeypatch):
     started = []
     real_start = figure_worker.start
 
-    def spy(*args):
-        w = real_start(*args)
+    def spy():
+        w = real_start()
         started.append(w)
         return w
 

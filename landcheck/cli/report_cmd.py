@@ -59,8 +59,8 @@ def command(ctx, out_dir, report_path, dpi, max_closeups, page_size):
     from landcheck.evidence.folder import load_audit_folder
 
     folder = load_audit_folder(d)
-    # parcels read once, before the fork (no other thread runs yet: landcheck.evidence.figure_worker)
-    worker = start(folder.parcels_gdf)
+    # forked before any other thread runs (landcheck.evidence.figure_worker)
+    worker = start()
     try:
         path = build_report(
             folder,

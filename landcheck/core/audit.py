@@ -228,12 +228,12 @@ class _Background:
             raise self._error
 
 
-def _start_figure_worker(run: AuditRun):
+def _start_figure_worker():
     """Fork the report's figure process (None where it cannot run), its heap trimmed first."""
     from landcheck.evidence.figure_worker import start
 
     release_heap(collect=True)  # the child starts from a compact heap
-    return start(run.parcels)
+    return start()
 
 
 def _needs_rasters(s: AuditSettings) -> bool:
@@ -393,7 +393,7 @@ def audit(
         # The close-ups and charts are drawn by a second process beside the rest of the report; it is
         # forked here, while no other thread works (landcheck.evidence.figure_worker), and gets its job
         # once the tables are written.
-        worker = _start_figure_worker(run) if s.report and hook is not None else None
+        worker = _start_figure_worker() if s.report and hook is not None else None
         with lowered_gdal_cache(AFTER_PASS_GDAL_CACHE_BYTES):
             closing = _Background(lambda: hook.publish(threads)) if hook is not None else None
             try:

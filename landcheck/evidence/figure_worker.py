@@ -1,9 +1,10 @@
-"""The report's figures drawn by two processes: the overview, charts and close-ups beside the rest.
+"""The report's figures drawn by two processes: charts and close-ups beside the maps.
 
-The second process draws the charts, then close-ups, and the overview map as soon as the first
-process hands it the map rasters it has read (which the interactive map needs too); the first
-builds the interactive map and the tables, then draws close-ups too.  The two take close-ups
-from one shared counter, so whichever is free draws the next one.
+The second process draws the charts, then close-ups; the first reads the map rasters, draws the
+overview and builds the interactive map, then draws close-ups too.  The two take close-ups from
+one shared counter, so whichever is free draws the next one.  (Drawing the overview in the second
+process as well was measured slower and larger: it needs every parcel's shape, which the first
+process would hand over or the second copy.)
 
 Drawing is Python holding the GIL, so threads cannot share it out; a process can.  The worker
 is made with ``fork`` (the standard library's ``multiprocessing``, *fork* context), so it starts
@@ -61,11 +62,10 @@ class FigureJob:
 
 @dataclass
 class DrawnFigures:
-    """The worker's answer: the items of the close-ups it drew, the three charts and the overview."""
+    """The worker's answer: the items of the close-ups it drew and of the three charts."""
 
     closeups: list
     charts: list[list]
-    overview: list
 
 
 def _can_fork() -> bool:
@@ -83,12 +83,8 @@ def _start_methods() -> list[str]:
     return multiprocessing.get_all_start_methods()
 
 
-def start(parcel_shapes=None) -> FigureWorker | None:
-    """Fork the worker now (see the module text for when that is safe); ``None`` where it cannot run.
-
-    ``parcel_shapes``: the frame the report will be given as ``parcel_shapes`` (or the folder's
-    ``parcels_gdf``), for the overview map; the child keeps the parent's copy, page for page.
-    """
+def start() -> FigureWorker | None:
+    """Fork the worker now (see the module text for when that is safe); ``None`` where it cannot run."""
     if os.environ.get("LANDCHECK_REPORT_PROCESSES", "") == "1" or not _can_fork():
         return None
     import multiprocessing
@@ -96,9 +92,7 @@ def start(parcel_shapes=None) -> FigureWorker | None:
     ctx = multiprocessing.get_context("fork")
     parent_end, child_end = ctx.Pipe(duplex=True)
     claims = ctx.Value("i", 0)  # the next close-up to draw, shared by both processes
-    proc = ctx.Process(
-        target=_child, args=(child_end, os.getpid(), claims, parcel_shapes), name="landcheck-figures", daemon=True
-    )
+    proc = ctx.Process(target=_child, args=(child_end, os.getpid(), claims), name="landcheck-figures", daemon=True)
     proc.start()
     child_end.close()
     return FigureWorker(proc, parent_end, claims)
@@ -132,11 +126,6 @@ class FigureWorker:
             raise RuntimeError("a figure job was already submitted")
         self._conn.send(job)
         self._submitted = True
-
-    def send_map_data(self, map_data) -> None:
-        """The rasters read for the maps (:func:`landcheck.evidence.maps.load_map_data`): the worker draws
-        the overview map from them."""
-        self._conn.send(map_data)
 
     def closeup_places(self, n: int) -> Iterator[int]:
         """Close-ups left for this process to draw (see :func:`_claimed`)."""
@@ -188,7 +177,7 @@ class FigureWorker:
             raise RuntimeError(f"figure worker: unexpected message {kind!r}")
 
 
-def _child(conn, parent_pid: int, claims, parcel_shapes) -> None:
+def _child(conn, parent_pid: int, claims) -> None:
     """The worker process: wait for a job, draw it, send the result; always ends with ``os._exit``."""
     import signal
 
@@ -201,7 +190,7 @@ def _child(conn, parent_pid: int, claims, parcel_shapes) -> None:
     try:
         warm_up()  # while the parent writes the tables this needs
         job = conn.recv()
-        conn.send(("done", _draw(job, conn, claims, parcel_shapes)))
+        conn.send(("done", _draw(job, conn, claims)))
     except EOFError:  # the parent went away before handing over a job
         code = 1
     except BaseException as exc:  # handed to the parent, which raises it
@@ -216,29 +205,10 @@ def _child(conn, parent_pid: int, claims, parcel_shapes) -> None:
         os._exit(code)  # no atexit handlers or buffers of the parent's run here
 
 
-def _draw(job: FigureJob, conn, claims, parcel_shapes) -> DrawnFigures:
-    """The worker's part: charts, then close-ups taken from the shared counter, the overview map as soon
-    as its rasters arrive (between two close-ups, or after the last)."""
-    from landcheck.evidence.folder import load_audit_folder
-
+def _draw(job: FigureJob, conn, claims) -> DrawnFigures:
+    """The worker's part: the charts, then close-ups taken from the shared counter."""
     folder = closeup_folder(job)
-    full = load_audit_folder(job.out_dir)  # the overview's view: every parcel
-    if parcel_shapes is not None:
-        full.use_parcel_shapes(parcel_shapes)
-    if job.raster_files:
-        full.use_raster_files(job.raster_files)
-    overview: list = []
     drawn = [0]
-
-    def overview_when_ready(wait: bool) -> None:
-        if not overview and (wait or conn.poll()):
-            overview.extend(draw_overview(full, job, conn.recv()).items)
-            gc.collect()
-
-    def places() -> Iterator[int]:
-        for k in _claimed(claims, max(0, job.max_closeups)):
-            overview_when_ready(False)
-            yield k
 
     def step() -> None:
         drawn[0] += 1
@@ -248,9 +218,9 @@ def _draw(job: FigureJob, conn, claims, parcel_shapes) -> DrawnFigures:
         conn.send(("drawn", drawn[0]))
 
     charts = [list(c.items) for c in draw_charts(folder, job)]
-    closeups = draw_closeups(folder, job, on_drawn=step, places=places())
-    overview_when_ready(True)
-    return DrawnFigures(list(closeups.items), charts, overview)
+    places = _claimed(claims, max(0, job.max_closeups))
+    closeups = draw_closeups(folder, job, on_drawn=step, places=places)
+    return DrawnFigures(list(closeups.items), charts)
 
 
 def closeup_folder(job: FigureJob):

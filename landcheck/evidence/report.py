@@ -957,15 +957,16 @@ def build_report(
         bar.update(max(0, int(max_closeups)) - len(closeups.items))
         charts = draw_charts(folder, job)
     else:
-        # the second process draws the charts, close-ups and (once the rasters are read) the overview
-        # while this one builds the interactive map; then both draw the close-ups that are left
+        # the second process draws the charts and close-ups while this one draws the overview and builds
+        # the interactive map; then both draw the close-ups that are left
         remove_closeups(figures_dir)
         rows, shapes = closeup_subset(folder, max_closeups)
         job = dataclasses.replace(job, parcel_rows=rows, parcel_shapes=shapes)
         figure_worker.submit(job)
         map_data = load_map_data(folder)
-        figure_worker.send_map_data(map_data)
         done("rasters read")
+        overview = draw_overview(folder, job, map_data)
+        done("overview map")
         webmap_html = webmap_section(folder, map_data, breaks, _class_labels(folder))
         done("interactive map")
         del map_data
@@ -986,8 +987,6 @@ def build_report(
         closeups = FigureFiles(sorted([*mine.items, *drawn.closeups], key=closeup_rank))
         bar.update(max(0, int(max_closeups)) - len(closeups.items))
         charts = [FigureFiles(c) for c in drawn.charts]
-        overview = FigureFiles(drawn.overview)
-        done("overview map")
     done("charts")
 
     extra_warnings: list[str] = []
