@@ -21,6 +21,7 @@ import pandas as pd
 
 from landcheck.core.run import AuditRun, _RasterHook, _run_audit, open_rules
 from landcheck.core.settings import AuditSettings, CapabilityOptions
+from landcheck.engine.backends import EngineKind
 from landcheck.engine.memory import release_heap
 from landcheck.engine.windows import progress_bar
 from landcheck.inputs.gdal_cache import lowered_gdal_cache
@@ -392,8 +393,9 @@ def audit(
         threads = 1 if s.report else None
         # The close-ups and charts are drawn by a second process beside the rest of the report; it is
         # forked here, while no other thread works (landcheck.evidence.figure_worker), and gets its job
-        # once the tables are written.
-        worker = _start_figure_worker() if s.report and hook is not None else None
+        # once the tables are written.  Not beside a Dask client, whose threads keep running.
+        forkable = s.engine.kind is not EngineKind.DASK
+        worker = _start_figure_worker() if s.report and hook is not None and forkable else None
         with lowered_gdal_cache(AFTER_PASS_GDAL_CACHE_BYTES):
             closing = _Background(lambda: hook.publish(threads)) if hook is not None else None
             try:
