@@ -945,37 +945,27 @@ def build_report(
         dict(raster_files) if raster_files else None,
     )
     breaks = np.asarray([float(b) for b in slope_breaks_pct])
-    if figure_worker is None:
-        map_data = load_map_data(folder)
-        done("rasters read")
-        overview = draw_overview(folder, job, map_data)
-        done("overview map")
-        webmap_html = webmap_section(folder, map_data, breaks, _class_labels(folder))
-        done("interactive map")
-        del map_data
-        closeups = draw_closeups(folder, job, on_drawn=lambda: done("close-ups"))
-        bar.update(max(0, int(max_closeups)) - len(closeups.items))
-        charts = draw_charts(folder, job)
-    else:
+    if figure_worker is not None:
         # the second process draws the charts and close-ups while this one draws the overview and builds
         # the interactive map; then both draw the close-ups that are left
         remove_closeups(figures_dir)
         rows, shapes = closeup_subset(folder, max_closeups)
         job = dataclasses.replace(job, parcel_rows=rows, parcel_shapes=shapes)
         figure_worker.submit(job)
-        map_data = load_map_data(folder)
-        done("rasters read")
-        overview = draw_overview(folder, job, map_data)
-        done("overview map")
-        webmap_html = webmap_section(folder, map_data, breaks, _class_labels(folder))
-        done("interactive map")
-        del map_data
-        mine = draw_closeups(
-            closeup_folder(job),
-            job,
-            on_drawn=lambda: done("close-ups"),
-            places=figure_worker.closeup_places(max(0, int(max_closeups))),
-        )
+    map_data = load_map_data(folder)
+    done("rasters read")
+    overview = draw_overview(folder, job, map_data)
+    done("overview map")
+    webmap_html = webmap_section(folder, map_data, breaks, _class_labels(folder))
+    done("interactive map")
+    del map_data
+    n_places = max(0, int(max_closeups))
+    if figure_worker is None:
+        closeups = draw_closeups(folder, job, on_drawn=lambda: done("close-ups"))
+        charts = draw_charts(folder, job)
+    else:
+        places = figure_worker.closeup_places(n_places)
+        mine = draw_closeups(closeup_folder(job), job, on_drawn=lambda: done("close-ups"), places=places)
         shown = [0]
 
         def worker_progress(n: int) -> None:
@@ -985,8 +975,8 @@ def build_report(
 
         drawn = figure_worker.collect(worker_progress)
         closeups = FigureFiles(sorted([*mine.items, *drawn.closeups], key=closeup_rank))
-        bar.update(max(0, int(max_closeups)) - len(closeups.items))
         charts = [FigureFiles(c) for c in drawn.charts]
+    bar.update(n_places - len(closeups.items))  # parcels without a shape get no close-up
     done("charts")
 
     extra_warnings: list[str] = []
