@@ -109,3 +109,13 @@ def test_stop_ends_a_waiting_worker_that_ignores_ctrl_c():
     assert not worker._proc.is_alive()
     with pytest.raises(ProcessLookupError):
         os.kill(pid, 0)
+
+
+def test_a_worker_killed_from_outside_is_a_clear_error(tmp_path):
+    from landcheck.errors import OutputWriteError
+
+    worker = figure_worker.start()
+    os.kill(worker._proc.pid, signal.SIGKILL)  # as the system does when memory runs out
+    with pytest.raises(OutputWriteError, match=r"ended unexpectedly \(exit code -9.*LANDCHECK_REPORT_PROCESSES=1"):
+        worker.collect()
+    worker.stop()

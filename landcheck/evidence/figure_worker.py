@@ -8,8 +8,9 @@ process would hand over or the second copy.)
 
 Drawing is Python holding the GIL, so threads cannot share it out; a process can.  The worker
 is made with ``fork`` (the standard library's ``multiprocessing``, *fork* context), so it starts
-at once, needs no imports, and shares the parent's memory page by page until either writes
-(its own figures and the pages the parent changes later are all it adds).
+at once with every module the parent has loaded (it loads matplotlib itself while the parent writes
+the tables) and shares the parent's memory page by page until either writes (its own figures and the
+pages the parent changes later are all it adds).
 
 When to fork matters: a fork copies only the calling thread, so a lock held at that moment
 by another thread (GDAL's, for one) stays locked for ever in the child.  :func:`start` is
@@ -38,7 +39,17 @@ from pathlib import Path
 
 from landcheck.errors import OutputWriteError
 
-__all__ = ["FigureJob", "FigureWorker", "start"]
+__all__ = [
+    "FigureJob",
+    "FigureWorker",
+    "start",
+    "closeup_subset",
+    "closeup_folder",
+    "draw_overview",
+    "draw_closeups",
+    "draw_charts",
+    "warm_up",
+]
 
 logger = logging.getLogger(__name__)
 
@@ -131,12 +142,6 @@ class FigureWorker:
         """Close-ups left for this process to draw (see :func:`_claimed`)."""
         return _claimed(self._claims, n)
 
-    def progress(self) -> int:
-        """Close-ups drawn so far (messages read without waiting)."""
-        while self._done is None and self._conn.poll():
-            self._read()
-        return self._progress
-
     def collect(self, on_progress: Callable[[int], None] | None = None) -> DrawnFigures:
         """Wait for the figures; ``on_progress(n)`` after each message with the close-ups drawn so far."""
         while self._done is None:
@@ -163,8 +168,9 @@ class FigureWorker:
         except (EOFError, OSError):
             self._proc.join(5.0)
             raise OutputWriteError(
-                f"report: the process drawing the close-ups ended unexpectedly (exit code {self._proc.exitcode}); "
-                "run `landcheck report` on the folder, or set LANDCHECK_REPORT_PROCESSES=1 to draw in one process."
+                f"report: the process drawing the close-ups ended unexpectedly (exit code {self._proc.exitcode}; "
+                "-9 is often the system stopping it for lack of memory); run again, or with "
+                "LANDCHECK_REPORT_PROCESSES=1 in the environment to draw in one process."
             ) from None
         if kind == "drawn":
             self._progress = int(value)
