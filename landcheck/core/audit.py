@@ -396,28 +396,32 @@ def audit(
         # once the tables are written.  Not beside a Dask client, whose threads keep running.
         forkable = s.engine.kind is not EngineKind.DASK
         worker = _start_figure_worker() if s.report and hook is not None and forkable else None
-        with lowered_gdal_cache(AFTER_PASS_GDAL_CACHE_BYTES):
-            closing = _Background(lambda: hook.publish(threads)) if hook is not None else None
-            try:
-                write_audit_folder(stage, run, cell_zones_written=hook is not None)
-                # memory freed by the pass and the raster thread goes back before the report adds its own
-                release_heap(collect=True)
-                if s.report:
-                    step("building the report")
-                    # the parcel shapes just written to parcels.gpkg are passed on, not read back
-                    build_report(
-                        stage,
-                        parcel_shapes=run.parcels,
-                        raster_files=hook.readable_files() if hook is not None else None,
-                        before_output_hashes=closing.join if closing is not None else None,
-                        figure_worker=worker,
-                    )
-            finally:
-                if worker is not None:
-                    worker.stop()  # already finished unless the report failed
-                if closing is not None:
-                    closing.join()
-                    hook.discard_scratch()
+        try:
+            with lowered_gdal_cache(AFTER_PASS_GDAL_CACHE_BYTES):
+                closing = _Background(lambda: hook.publish(threads)) if hook is not None else None
+                try:
+                    write_audit_folder(stage, run, cell_zones_written=hook is not None)
+                    # memory freed by the pass and the raster thread goes back before the report adds its own
+                    release_heap(collect=True)
+                    if s.report:
+                        step("building the report")
+                        # the parcel shapes just written to parcels.gpkg are passed on, not read back
+                        build_report(
+                            stage,
+                            parcel_shapes=run.parcels,
+                            raster_files=hook.readable_files() if hook is not None else None,
+                            before_output_hashes=closing.join if closing is not None else None,
+                            figure_worker=worker,
+                        )
+                finally:
+                    if worker is not None:
+                        worker.stop()  # already finished unless the report failed: stopped first
+                    if closing is not None:
+                        closing.join()
+                        hook.discard_scratch()
+        finally:
+            if worker is not None:
+                worker.stop()  # also when the steps before the report failed
         # the one file a rerun changes (docs/outputs.md): times, and how the run was executed
         write_run_times(stage, started, execution={"tile_cells": s.tile_cells, **s.engine.describe()})
     step(f"outputs in {out}")
