@@ -119,3 +119,30 @@ def test_a_worker_killed_from_outside_is_a_clear_error(tmp_path):
     with pytest.raises(OutputWriteError, match=r"ended unexpectedly \(exit code -9.*LANDCHECK_REPORT_PROCESSES=1"):
         worker.collect()
     worker.stop()
+
+
+def _running(pid: int) -> bool:
+    try:
+        with open(f"/proc/{pid}/stat") as fh:
+            state = fh.read().rsplit(")", 1)[1].split()[0]
+    except OSError:
+        return False
+    return state not in ("Z", "X")  # a zombie has ended, only its exit status waits to be read
+
+
+def test_the_worker_ends_with_its_parent():
+    import subprocess
+    import sys
+
+    # common practice: a helper process must not outlive the run that started it (killed by PR_SET_PDEATHSIG
+    # while it draws; while it waits for a job, the closed pipe ends it)
+    code = (
+        "import os, time; from landcheck.evidence import figure_worker as f; w = f.start(); "
+        "print(w._proc.pid, flush=True); time.sleep(1.0); os._exit(0)"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120, check=True)
+    pid = int(out.stdout.split()[0])
+    deadline = time.monotonic() + 10
+    while _running(pid) and time.monotonic() < deadline:
+        time.sleep(0.1)
+    assert not _running(pid)

@@ -17,6 +17,8 @@ import sys
 import threading
 from pathlib import Path
 
+from landcheck.engine.interrupt import die_with_parent
+
 from .workspace import Workspace, utc_now
 
 __all__ = ["RunManager"]
@@ -34,13 +36,8 @@ def _sha256(path: Path) -> str:
 
 
 def _die_with_parent() -> None:  # pragma: no cover - runs in the child
-    """Linux: the worker gets SIGTERM when the app's process dies, so it never publishes behind its back."""
-    try:
-        import ctypes
-
-        ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, signal.SIGTERM)  # PR_SET_PDEATHSIG
-    except Exception:
-        pass
+    """The worker gets SIGTERM when the app's process dies, so it never publishes behind its back."""
+    die_with_parent(signal.SIGTERM)
 
 
 class RunManager:

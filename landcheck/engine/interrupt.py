@@ -18,7 +18,14 @@ import contextlib
 import signal
 import threading
 
-__all__ = ["abandon_pool", "ignore_sigint", "note_interrupt", "clear_interrupt", "raise_if_interrupted"]
+__all__ = [
+    "abandon_pool",
+    "ignore_sigint",
+    "note_interrupt",
+    "clear_interrupt",
+    "raise_if_interrupted",
+    "die_with_parent",
+]
 
 _requested = threading.Event()
 
@@ -58,3 +65,16 @@ def abandon_pool(pool) -> None:
     for p in processes.values():
         with contextlib.suppress(Exception):
             p.join(1.0)
+
+
+def die_with_parent(sig: int = signal.SIGKILL) -> None:
+    """Linux: this process gets ``sig`` when its parent ends (``PR_SET_PDEATHSIG``); elsewhere nothing.
+
+    Called first thing in a child process, so no child outlives the run that started it (and writes
+    behind its back).
+    """
+    with contextlib.suppress(Exception):
+        import ctypes
+
+        pr_set_pdeathsig = 1
+        ctypes.CDLL(None, use_errno=True).prctl(pr_set_pdeathsig, int(sig), 0, 0, 0)

@@ -37,6 +37,7 @@ from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
+from landcheck.engine.interrupt import die_with_parent
 from landcheck.errors import OutputWriteError
 
 __all__ = [
@@ -188,7 +189,7 @@ def _child(conn, parent_pid: int, claims) -> None:
     import signal
 
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C reaches the whole group; the parent decides
-    _die_with_parent()
+    die_with_parent()
     if os.getppid() != parent_pid:  # the parent ended before the line above took effect
         os._exit(1)
     gc.freeze()  # inherited objects stay out of the collector's walks: their pages stay shared
@@ -349,14 +350,3 @@ def _picklable(exc: BaseException) -> BaseException:
     except Exception:
         text = "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))
         return RuntimeError(f"figure worker failed:\n{text}")
-
-
-def _die_with_parent() -> None:
-    """Linux: SIGKILL this process when the parent ends, so no orphan draws into a removed folder."""
-    with contextlib.suppress(Exception):
-        import ctypes
-        import signal
-
-        libc = ctypes.CDLL(None, use_errno=True)
-        pr_set_pdeathsig = 1
-        libc.prctl(pr_set_pdeathsig, int(signal.SIGKILL), 0, 0, 0)
