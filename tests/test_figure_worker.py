@@ -98,10 +98,18 @@ def test_a_failure_in_the_worker_is_raised_in_the_parent(tmp_path):
     assert worker._proc.exitcode == 1
 
 
+def _ignores_sigint(pid: int) -> bool:
+    with open(f"/proc/{pid}/status") as fh:
+        mask = next(int(line.split()[1], 16) for line in fh if line.startswith("SigIgn:"))
+    return bool(mask & (1 << (signal.SIGINT - 1)))
+
+
 def test_stop_ends_a_waiting_worker_that_ignores_ctrl_c():
     worker = figure_worker.start()
     pid = worker._proc.pid
-    time.sleep(0.5)
+    deadline = time.monotonic() + 20
+    while not _ignores_sigint(pid) and time.monotonic() < deadline:  # the child's first step
+        time.sleep(0.05)
     os.kill(pid, signal.SIGINT)  # the terminal sends Ctrl-C to the whole group: the parent decides
     time.sleep(0.3)
     assert worker._proc.is_alive()
