@@ -536,6 +536,13 @@ def test_rgba8_image_pixels_as_matplotlib_draws_them(shape, extent, figsize, dpi
     assert opaque.any() and seen.any()
     assert (got[opaque] == ref[opaque]).all()
     assert np.abs(got[seen].astype(int) - ref[seen].astype(int)).max() <= 1
+    # the byte path runs on the matplotlib versions it was checked against, and only there
+    import matplotlib
+
+    from landcheck.evidence import map_images
+
+    minor = ".".join(matplotlib.__version__.split(".")[:2])
+    assert map_images._BYTE_PATH is (minor in map_images.CHECKED_MATPLOTLIB)
 
 
 def test_parcels_in_view_are_those_of_cx(audit):

@@ -8,6 +8,10 @@ picks input pixels, so the maps' 8-bit images are resampled as bytes by the same
 pixels come out byte for byte as before; a semi-transparent one may differ by one level, where the
 float round trip rounded down (tests/test_maps.py compares both).
 
+The byte path follows matplotlib's private drawing code, so it is taken only on the matplotlib
+versions it was checked against (:data:`CHECKED_MATPLOTLIB`); any other version draws through
+matplotlib's own path, with the same look.
+
 Imported only when a map is drawn.
 """
 
@@ -17,7 +21,16 @@ import numpy as np
 from matplotlib import image as mimage
 from matplotlib.transforms import Affine2D, Bbox, IdentityTransform
 
-__all__ = ["RGBA8Image", "imshow_rgba8"]
+__all__ = ["RGBA8Image", "imshow_rgba8", "CHECKED_MATPLOTLIB"]
+
+#: matplotlib minor versions whose private image code the byte path was checked against (tests/test_maps.py)
+CHECKED_MATPLOTLIB = ("3.11",)
+
+
+def _byte_path_checked() -> bool:
+    import matplotlib
+
+    return ".".join(matplotlib.__version__.split(".")[:2]) in CHECKED_MATPLOTLIB
 
 
 class RGBA8Image(mimage.AxesImage):
@@ -32,7 +45,8 @@ class RGBA8Image(mimage.AxesImage):
     ):
         resample = getattr(mimage, "_resample", None)
         if (
-            unsampled
+            not _BYTE_PATH
+            or unsampled
             or not round_to_pixel_border
             or resample is None
             or A.dtype != np.uint8
@@ -81,3 +95,6 @@ def imshow_rgba8(ax, rgba: np.ndarray, extent, zorder: float) -> RGBA8Image:
     im.set_extent(im.get_extent())
     ax.add_image(im)
     return im
+
+
+_BYTE_PATH = _byte_path_checked()
