@@ -1085,7 +1085,7 @@ def _draw_map(fig, rect, data: _MapData, breaks: np.ndarray, view, focus_id: str
         colour, lw, ls = _VERDICT_STYLE.get(v, ("#444444", 1.2, "solid"))
         n = int(n_of[v])
         vh.append(Line2D([0], [0], color=colour, lw=lw, linestyle=ls, path_effects=_halo(lw + 2.2)))
-        vl.append(f"{VERDICT_TEXT.get(v, v)} ({n})")
+        vl.append(f"{VERDICT_TEXT.get(v, v)} ({n:,d})")
         entries.append(LegendEntry("verdict", v, vl[-1]))
     groups.insert(0, ("Parcel verdict (parcels shown)", vh, vl))
 
