@@ -1,5 +1,8 @@
 """The interactive map's GeoJSON text against a plain reference of its encoding rules.
 
+Source: docs/references.md §21 (RFC 7946 GeoJSON structure, IEEE 754 round-half-even, Douglas-Peucker as
+GEOS applies it through shapely); the reference writer below is plain Python, independent of the map's code.
+
 The rules (docstring of landcheck.evidence.webmap): each shape is simplified for display on its own
 (shapely's topology-preserving simplifier, docs/references.md §21; a shape it would empty keeps its
 original form), moved to display units u = (x - left) / q * kx, v = (y - bottom) / q, rounded to whole

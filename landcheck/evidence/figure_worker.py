@@ -81,18 +81,8 @@ class DrawnFigures:
 
 
 def _can_fork() -> bool:
-    if not sys.platform.startswith("linux") or "fork" not in _start_methods():
-        return False
-    try:
-        return len(os.sched_getaffinity(0)) >= 2
-    except (AttributeError, OSError):  # pragma: no cover - sched_getaffinity exists on Linux
-        return (os.cpu_count() or 1) >= 2
-
-
-def _start_methods() -> list[str]:
-    import multiprocessing
-
-    return multiprocessing.get_all_start_methods()
+    """Linux (where ``fork`` and ``PR_SET_PDEATHSIG`` exist) with two or more cores for this process."""
+    return sys.platform.startswith("linux") and len(os.sched_getaffinity(0)) >= 2
 
 
 def start() -> FigureWorker | None:
@@ -207,8 +197,6 @@ def _child(conn, parent_pid: int, claims) -> None:
     finally:
         with contextlib.suppress(Exception):
             conn.close()
-        with contextlib.suppress(Exception):
-            sys.stdout.flush()
         os._exit(code)  # no atexit handlers or buffers of the parent's run here
 
 
@@ -262,29 +250,23 @@ def closeup_subset(folder, max_closeups: int):
     Close-ups go to the largest conflict areas (:func:`landcheck.evidence.maps.closeup_order`); a frame
     (:func:`landcheck.evidence.maps.closeup_frame`) shows each parcel whose shape intersects it, so the
     shapes kept are those intersecting any frame, in file order.  Drawn from this subset, every close-up
-    is the one drawn from the whole folder (tests/test_report.py compares the files).
+    is the one drawn from the whole folder (tests/test_figure_worker.py compares the files).
     """
     import numpy as np
     import shapely
 
-    from landcheck.evidence.maps import closeup_frame, closeup_order
+    from landcheck.evidence.maps import _cell_width, closeup_frame, closeup_order
 
     df, gdf = folder.parcels, folder.parcels_gdf
     pids = closeup_order(df, max_closeups)
     rows = df[df["parcel_id"].isin(pids)]
     targets = gdf[gdf["parcel_id"].isin(pids)]
-    cell = None if targets.empty else _cell(folder)
+    cell = None if targets.empty else _cell_width(folder)  # read once, not once per frame
     frames = [closeup_frame(folder, g, cell) for g in targets.geometry if g is not None and not g.is_empty]
     if not frames:
         return rows, gdf.iloc[:0]
     hit = gdf.sindex.query(shapely.box(*np.asarray(frames).T), predicate="intersects")[1]
     return rows, gdf.iloc[np.unique(hit)]
-
-
-def _cell(folder) -> float:
-    from landcheck.evidence.maps import _cell_width
-
-    return _cell_width(folder)
 
 
 def draw_closeups(folder, job: FigureJob, on_drawn=None, places: Iterable[int] | None = None):
